@@ -1,0 +1,337 @@
+"""Run configuration: one TOML file validated into frozen, typed dataclasses.
+
+Every key is declared once, here, with its type, default and a one-line description (the field
+``metadata["doc"]``); configs/README.md lists them and a test keeps the two in step.  Unknown keys
+and wrong types are errors naming the file and the dotted key.  Relative paths resolve against
+the folder of the config file.  The file is read as data (:mod:`tomllib`); nothing in it runs.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "RunConfig",
+    "CatalogueConfig",
+    "MapConfig",
+    "ApertureConfig",
+    "TrendConfig",
+    "BinsConfig",
+    "CovarianceConfig",
+    "TheoryConfig",
+    "NullConfig",
+    "ComputeConfig",
+    "Config",
+    "load_config",
+    "config_from_dict",
+    "iter_config_keys",
+]
+
+import dataclasses
+import difflib
+import math
+import tomllib
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .cosmology import Cosmology
+from .errors import ConfigError
+
+
+def _key(default, doc, **extra):
+    """A config field with a default and its documentation line."""
+    return field(default=default, metadata={"doc": doc, **extra})
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    name: str = _key("pairvel-run", "label written into every output")
+    seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs")
+
+
+@dataclass(frozen=True)
+class CatalogueConfig:
+    path: Path | None = _key(None, "tracer catalogue: FITS, ECSV, CSV or Parquet table (required)")
+    format: str = _key("auto", "auto (from the file suffix), fits, ecsv, csv or parquet",
+                       choices=("auto", "fits", "ecsv", "csv", "parquet"))
+    ra_column: str = _key("ra", "column with right ascension in degrees")
+    dec_column: str = _key("dec", "column with declination in degrees")
+    z_column: str = _key("z", "column with spectroscopic redshift")
+    proxy_column: str | None = _key(None, "optional column with a mass or luminosity proxy (used by proxy cuts)")
+    z_min: float = _key(0.0, "keep tracers with z >= z_min")
+    z_max: float = _key(math.inf, "keep tracers with z < z_max")
+    proxy_min: float = _key(-math.inf, "keep tracers with proxy >= proxy_min (needs proxy_column)")
+    proxy_max: float = _key(math.inf, "keep tracers with proxy < proxy_max (needs proxy_column)")
+    drop_invalid_rows: bool = _key(False, "drop rows with NaN or out-of-range ra/dec/z (counted) instead of stopping")
+
+
+@dataclass(frozen=True)
+class MapConfig:
+    path: Path | None = _key(None, "HEALPix temperature map, FITS, full or partial sky (required)")
+    field: int = _key(0, "which map column (0-based) to read")
+    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
+    ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
+                                choices=(None, "RING", "NESTED"))
+    mask_path: Path | None = _key(None, "optional HEALPix mask (1 = use, 0 = masked) of the map's nside")
+    max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",
+                                      bounds=(0.0, 1.0))
+
+
+@dataclass(frozen=True)
+class ApertureConfig:
+    radius_arcmin: float = _key(2.1, "compensated aperture: disc radius theta, annulus theta..sqrt(2) theta",
+                                bounds=(0.05, 60.0))
+
+
+@dataclass(frozen=True)
+class TrendConfig:
+    enabled: bool = _key(True, "subtract the Gaussian-kernel redshift trend of the aperture temperatures")
+    sigma_z: float = _key(0.01, "width of the redshift kernel", bounds=(1e-5, 1.0))
+
+
+@dataclass(frozen=True)
+class BinsConfig:
+    r_min_mpc: float = _key(0.0, "lowest comoving separation, Mpc", bounds=(0.0, 1e4))
+    r_max_mpc: float = _key(300.0, "highest comoving separation, Mpc", bounds=(0.0, 1e4))
+    width_mpc: float = _key(20.0, "bin width, Mpc", bounds=(1e-3, 1e4))
+    edges_mpc: tuple[float, ...] | None = _key(None, "explicit increasing bin edges in Mpc (overrides the three above)")
+
+    def edges(self) -> np.ndarray:
+        """The separation bin edges in Mpc, (nbins + 1,)."""
+        if self.edges_mpc is not None:
+            return np.asarray(self.edges_mpc, dtype=float)
+        n = int(round((self.r_max_mpc - self.r_min_mpc) / self.width_mpc))
+        return self.r_min_mpc + self.width_mpc * np.arange(n + 1)
+
+
+@dataclass(frozen=True)
+class CovarianceConfig:
+    n_regions: int = _key(50, "number of k-means sky regions for the delete-one jackknife", bounds=(2, 100000))
+
+
+@dataclass(frozen=True)
+class TheoryConfig:
+    bias: float = _key(1.0, "linear bias of the tracers in the pairwise-velocity template", bounds=(0.01, 20.0))
+    wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
+    fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
+    fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
+
+
+@dataclass(frozen=True)
+class NullConfig:
+    n_random: int = _key(10, "realisations of the null test with apertures at random unmasked sky positions",
+                         bounds=(0, 10000))
+
+
+@dataclass(frozen=True)
+class ComputeConfig:
+    n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
+
+
+@dataclass(frozen=True)
+class Config:
+    """A whole run configuration; ``source`` is the file it came from (None when built in code)."""
+
+    run: RunConfig = field(default_factory=RunConfig)
+    catalogue: CatalogueConfig = field(default_factory=CatalogueConfig)
+    map: MapConfig = field(default_factory=MapConfig)
+    aperture: ApertureConfig = field(default_factory=ApertureConfig)
+    trend: TrendConfig = field(default_factory=TrendConfig)
+    bins: BinsConfig = field(default_factory=BinsConfig)
+    covariance: CovarianceConfig = field(default_factory=CovarianceConfig)
+    theory: TheoryConfig = field(default_factory=TheoryConfig)
+    cosmology: Cosmology = field(default_factory=Cosmology)
+    nulls: NullConfig = field(default_factory=NullConfig)
+    compute: ComputeConfig = field(default_factory=ComputeConfig)
+    source: Path | None = None
+
+    def as_dict(self) -> dict:
+        """Plain JSON-able dict of every setting (paths as strings, infinities as strings)."""
+
+        def plain(v):
+            if isinstance(v, Path):
+                return str(v)
+            if isinstance(v, float) and not math.isfinite(v):
+                return str(v)
+            if isinstance(v, tuple):
+                return [plain(x) for x in v]
+            return v
+
+        out = {}
+        for sec in dataclasses.fields(self):
+            if sec.name == "source":
+                continue
+            obj = getattr(self, sec.name)
+            out[sec.name] = {f.name: plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+        return out
+
+
+_SECTIONS = {f.name: f for f in dataclasses.fields(Config) if f.name != "source"}
+
+
+def _section_type(name):
+    return typing.get_type_hints(Config)[name]
+
+
+def iter_config_keys():
+    """Yield (dotted key, type text, default, doc) for every documented key, in declaration order."""
+    for sec_name in _SECTIONS:
+        cls = _section_type(sec_name)
+        hints = typing.get_type_hints(cls)
+        for f in dataclasses.fields(cls):
+            doc = f.metadata.get("doc", "cosmological parameter (see pairvel.cosmology.Cosmology)")
+            yield f"{sec_name}.{f.name}", _type_text(hints[f.name]), f.default, doc
+
+
+def _type_text(tp) -> str:
+    args = typing.get_args(tp)
+    if typing.get_origin(tp) in (typing.Union, types.UnionType):
+        inner = [a for a in args if a is not type(None)]
+        return _type_text(inner[0]) + " (optional)"
+    if typing.get_origin(tp) is tuple:
+        return f"list of {_type_text(args[0])}"
+    return {Path: "path"}.get(tp, getattr(tp, "__name__", str(tp)))
+
+
+def _coerce(value, tp, where: str, base_dir: Path):
+    """Check ``value`` from TOML against annotation ``tp``; return the typed value."""
+    origin = typing.get_origin(tp)
+    if origin in (typing.Union, types.UnionType):
+        inner = [a for a in typing.get_args(tp) if a is not type(None)][0]
+        return _coerce(value, inner, where, base_dir)
+    if origin is tuple:
+        if not isinstance(value, list) or not value:
+            raise ConfigError(f"{where} must be a non-empty list of numbers; got {value!r}")
+        return tuple(_coerce(v, typing.get_args(tp)[0], where, base_dir) for v in value)
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"{where} must be true or false; got {value!r}")
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{where} must be an integer; got {value!r}")
+        return value
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{where} must be a number; got {value!r}")
+        return float(value)
+    if tp is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"{where} must be a string; got {value!r}")
+        return value
+    if tp is Path:
+        if not isinstance(value, str) or not value:
+            raise ConfigError(f"{where} must be a file path string; got {value!r}")
+        p = Path(value).expanduser()
+        return p if p.is_absolute() else (base_dir / p)
+    raise TypeError(f"unsupported config type {tp!r}")  # a bug in the schema, not user input
+
+
+def _build_section(cls, table, sec_name: str, where_file: str, base_dir: Path):
+    if not isinstance(table, dict):
+        raise ConfigError(f"config {where_file}: [{sec_name}] must be a table; got {table!r}", key=sec_name)
+    hints = typing.get_type_hints(cls)
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    kwargs = {}
+    for key, value in table.items():
+        dotted = f"{sec_name}.{key}"
+        if key not in fields:
+            hint = difflib.get_close_matches(key, list(fields), n=1)
+            extra = f" (did you mean '{sec_name}.{hint[0]}'?)" if hint else ""
+            raise ConfigError(f"config {where_file}: unknown key '{dotted}'{extra}", path=where_file, key=dotted)
+        where = f"config {where_file}: '{dotted}'"
+        try:
+            typed = _coerce(value, hints[key], where, base_dir)
+        except ConfigError as err:
+            raise ConfigError(str(err), path=where_file, key=dotted) from None
+        meta = fields[key].metadata
+        if "choices" in meta and typed not in meta["choices"]:
+            shown = ", ".join(repr(c) for c in meta["choices"] if c is not None)
+            raise ConfigError(f"{where} must be one of {shown}; got {typed!r}", path=where_file, key=dotted)
+        if "bounds" in meta and typed is not None:
+            lo, hi = meta["bounds"]
+            vals = typed if isinstance(typed, tuple) else (typed,)
+            if any(not (lo <= v <= hi) for v in vals):
+                raise ConfigError(f"{where} must lie in [{lo}, {hi}]; got {typed!r}", path=where_file, key=dotted)
+        kwargs[key] = typed
+    try:
+        return cls(**kwargs)
+    except ConfigError as err:  # Cosmology validates itself
+        raise ConfigError(f"config {where_file}: {err}", path=where_file, key=err.key) from None
+
+
+def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
+    """Validate a parsed TOML mapping into a :class:`Config`.
+
+    Parameters
+    ----------
+    data : dict
+        The parsed TOML document.
+    source : Path, optional
+        The file it came from; relative paths resolve against its folder (else the working folder).
+    """
+    where_file = str(source) if source is not None else "<dict>"
+    base_dir = source.parent.resolve() if source is not None else Path.cwd()
+    sections = {}
+    for sec_name, table in data.items():
+        if sec_name not in _SECTIONS:
+            hint = difflib.get_close_matches(sec_name, list(_SECTIONS), n=1)
+            extra = f" (did you mean '[{hint[0]}]'?)" if hint else ""
+            raise ConfigError(f"config {where_file}: unknown section '[{sec_name}]'{extra}", path=where_file, key=sec_name)
+        sections[sec_name] = _build_section(_section_type(sec_name), table, sec_name, where_file, base_dir)
+    cfg = Config(**sections, source=source)
+    _check_consistency(cfg, where_file)
+    return cfg
+
+
+def _check_consistency(cfg: Config, where_file: str) -> None:
+    def bad(key, msg):
+        raise ConfigError(f"config {where_file}: '{key}' {msg}", path=where_file, key=key)
+
+    if cfg.catalogue.path is None:
+        bad("catalogue.path", "is required")
+    if cfg.map.path is None:
+        bad("map.path", "is required")
+    if not cfg.catalogue.z_min < cfg.catalogue.z_max:
+        bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
+    if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
+        bad("catalogue.proxy_max", "must exceed catalogue.proxy_min")
+    proxy_cut = math.isfinite(cfg.catalogue.proxy_min) or math.isfinite(cfg.catalogue.proxy_max)
+    if proxy_cut and cfg.catalogue.proxy_column is None:
+        bad("catalogue.proxy_column", "is required when proxy_min or proxy_max is set")
+    b = cfg.bins
+    if b.edges_mpc is not None:
+        e = np.asarray(b.edges_mpc)
+        if e.size < 2 or np.any(np.diff(e) <= 0) or e[0] < 0:
+            bad("bins.edges_mpc", f"must be at least two increasing values >= 0; got {list(b.edges_mpc)}")
+    else:
+        n = (b.r_max_mpc - b.r_min_mpc) / b.width_mpc
+        if n < 1 or abs(n - round(n)) > 1e-9:
+            bad("bins.width_mpc", f"must divide r_max_mpc - r_min_mpc into a whole number (>= 1) of bins; "
+                                  f"got {b.width_mpc} for {b.r_min_mpc}..{b.r_max_mpc}")
+    if not cfg.theory.fit_r_min_mpc < cfg.theory.fit_r_max_mpc:
+        bad("theory.fit_r_max_mpc", "must exceed theory.fit_r_min_mpc")
+
+
+def load_config(path) -> Config:
+    """Read and validate a TOML config file.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing or unreadable, is not valid TOML, has an unknown key or a value of the
+        wrong type or range.  The message names the file and the dotted key.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError(f"config {path}: file not found", path=path) from None
+    except OSError as err:
+        raise ConfigError(f"config {path}: cannot be read ({err.strerror})", path=path) from None
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(f"config {path}: not valid TOML ({err})", path=path) from None
+    return config_from_dict(data, source=path.resolve())
