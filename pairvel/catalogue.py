@@ -144,7 +144,7 @@ def read_table_columns(path, columns, *, fmt="auto") -> dict:
 def _describe_invalid(name, values, ok) -> str:
     """'12 rows are not (first: row 41, z=-0.3)' for the rows where ``ok`` is false."""
     bad = np.flatnonzero(~ok)
-    return f"{bad.size} rows are not (first: row {bad[0]}, {name}={values[bad[0]]!r})"
+    return f"{bad.size} rows are not (first: row {bad[0]}, {name}={values[bad[0]]:.6g})"
 
 
 def load_catalogue(cfg) -> Catalogue:

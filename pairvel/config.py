@@ -168,6 +168,15 @@ class Config:
         return out
 
 
+_COSMOLOGY_DOCS = {
+    "h": "H0 / (100 km/s/Mpc)",
+    "omega_m": "matter density parameter today (flat LCDM)",
+    "omega_b": "baryon density parameter today",
+    "n_s": "scalar spectral index of the primordial power spectrum",
+    "sigma_8": "rms linear density contrast in 8 Mpc/h spheres at z = 0 (normalises P(k))",
+    "t_cmb_k": "CMB temperature in K",
+}
+
 _SECTIONS = {f.name: f for f in dataclasses.fields(Config) if f.name != "source"}
 
 
@@ -181,7 +190,7 @@ def iter_config_keys():
         cls = _section_type(sec_name)
         hints = typing.get_type_hints(cls)
         for f in dataclasses.fields(cls):
-            doc = f.metadata.get("doc", "cosmological parameter (see pairvel.cosmology.Cosmology)")
+            doc = f.metadata.get("doc") or _COSMOLOGY_DOCS[f.name]
             yield f"{sec_name}.{f.name}", _type_text(hints[f.name]), f.default, doc
 
 
