@@ -1,0 +1,225 @@
+"""The Ferreira et al. (1999) mean pairwise momentum estimator over comoving-separation bins.
+
+p_hat(r) = - sum_{i<j} (T_i - T_j) c_ij / sum_{i<j} c_ij^2,  c_ij = rhat_ij . (rhat_i + rhat_j) / 2,
+
+summed over the pairs whose comoving separation lies in the bin [lo, hi).  One pass of the compiled
+pair engine gives every bin, every temperature set and every delete-one jackknife sample.
+"""
+
+from __future__ import annotations
+
+__all__ = ["PairwiseResult", "pairwise_momentum", "mean_pairwise_velocity_3d"]
+
+import os
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from . import _kernels
+from .errors import InputError
+
+
+@dataclass(frozen=True)
+class PairwiseResult:
+    """Output of :func:`pairwise_momentum`.
+
+    Attributes
+    ----------
+    edges : ndarray of shape (nbins + 1,), Mpc
+    p : ndarray of shape (nbins,) or (M, nbins), uK
+        The estimator; nan in bins without pairs.
+    numerator : ndarray, same shape as ``p``
+        sum (T_i - T_j) c_ij.
+    denominator : ndarray of shape (nbins,)
+        sum c_ij^2.
+    pair_counts : ndarray of shape (nbins,), int64
+    z_eff : ndarray of shape (nbins,) or None
+        Mean pair redshift (z_i + z_j)/2 weighted by c_ij^2, when redshifts were given.
+    p_jk : ndarray of shape (n_jk, nbins) or (M, n_jk, nbins), or None
+        Delete-one jackknife samples: the estimator without the pairs touching region k.
+    n_jk : int
+    """
+
+    edges: np.ndarray
+    p: np.ndarray
+    numerator: np.ndarray
+    denominator: np.ndarray
+    pair_counts: np.ndarray
+    z_eff: np.ndarray | None = None
+    p_jk: np.ndarray | None = None
+    n_jk: int = 0
+
+    @property
+    def r_mid(self) -> np.ndarray:
+        """Bin centres, Mpc."""
+        return 0.5 * (self.edges[1:] + self.edges[:-1])
+
+
+def _ratio(num, den):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, -num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def _check_edges(edges) -> np.ndarray:
+    edges = np.asarray(edges, dtype=np.float64)
+    if edges.ndim != 1 or edges.size < 2 or not np.all(np.isfinite(edges)) or edges[0] < 0 \
+            or np.any(np.diff(edges) <= 0):
+        raise InputError(f"separation edges must be at least two finite, increasing values >= 0 Mpc; got {edges!r}")
+    return edges
+
+
+def _check_positions(positions) -> np.ndarray:
+    pos = np.asarray(positions, dtype=np.float64)
+    if pos.ndim != 2 or pos.shape[1] != 3:
+        raise InputError(f"positions must have shape (N, 3) in comoving Mpc; got shape {pos.shape}")
+    bad = ~np.all(np.isfinite(pos), axis=1)
+    if bad.any():
+        raise InputError(f"positions must be finite; {bad.sum()} rows are not (first: row {np.flatnonzero(bad)[0]})")
+    return pos
+
+
+def _prepare(pos, cell_size):
+    """Cell-sorted positions and unit vectors plus the cell index arrays."""
+    order, start, dims = _kernels.build_cells(pos, cell_size)
+    xs = np.ascontiguousarray(pos[order])
+    norm = np.linalg.norm(xs, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        us = np.where(norm[:, None] > 0, xs / norm[:, None], 0.0)
+    return order, start, dims, xs, np.ascontiguousarray(us)
+
+
+def _n_chunks(n_threads):
+    return max(4 * n_threads, 1)
+
+
+def _threads(n_threads) -> int:
+    if n_threads is None:
+        return numba.config.NUMBA_NUM_THREADS
+    if int(n_threads) < 1:
+        raise InputError(f"n_threads must be >= 1; got {n_threads}")
+    return min(int(n_threads), numba.config.NUMBA_NUM_THREADS)
+
+
+def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts=None, n_threads=None):
+    """Mean pairwise kSZ momentum in comoving-separation bins (Ferreira et al. 1999).
+
+    Parameters
+    ----------
+    positions : ndarray of shape (N, 3), comoving Mpc
+        Observer at the origin.
+    temperatures : ndarray of shape (N,) or (M, N), uK
+        One or M temperature sets; all go through the same pass over pairs.
+    edges : ndarray of shape (nbins + 1,), Mpc
+        Increasing bin edges; bins are [lo, hi).
+    regions : ndarray of shape (N,), int, optional
+        Jackknife region labels 0..n_jk-1; enables ``p_jk``.
+    redshifts : ndarray of shape (N,), optional
+        Enables the pair-weighted mean redshift per bin.
+    n_threads : int, optional
+        Threads for the compiled loop (default: all numba threads).
+
+    Returns
+    -------
+    PairwiseResult
+
+    Notes
+    -----
+    p_hat = - sum (T_i - T_j) c_ij / sum c_ij^2 with c_ij = rhat_ij.(rhat_i + rhat_j)/2 and
+    r_ij = r_i - r_j; coincident points are never a pair.  Memory is O(N + M bins n_jk threads).
+
+    References
+    ----------
+    Ferreira, Juszkiewicz, Feldman, Davis & Jaffe 1999, ApJ 515, L1.
+    """
+    pos = _check_positions(positions)
+    n = pos.shape[0]
+    temps = np.asarray(temperatures, dtype=np.float64)
+    single = temps.ndim == 1
+    temps2 = temps[None, :] if single else temps
+    if temps2.ndim != 2 or temps2.shape[1] != n:
+        raise InputError(f"temperatures must have shape ({n},) or (M, {n}) to match positions; got {temps.shape}")
+    if not np.all(np.isfinite(temps2)):
+        bad = np.flatnonzero(~np.all(np.isfinite(temps2), axis=0))
+        raise InputError(f"temperatures must be finite; {bad.size} tracers are not (first: row {bad[0]})")
+    edges = _check_edges(edges)
+    n_jk = 0
+    reg = np.zeros(n, dtype=np.int64)
+    if regions is not None:
+        reg = np.asarray(regions)
+        if reg.shape != (n,) or reg.dtype.kind not in "iu" or (n and reg.min() < 0):
+            raise InputError(f"regions must be non-negative integer labels of shape ({n},); got {reg.dtype} {reg.shape}")
+        reg = reg.astype(np.int64)
+        n_jk = int(reg.max()) + 1 if n else 0
+    want_z = redshifts is not None
+    zz = np.zeros(n) if not want_z else np.asarray(redshifts, dtype=np.float64)
+    if zz.shape != (n,):
+        raise InputError(f"redshifts must have shape ({n},); got {zz.shape}")
+    nbins = edges.size - 1
+    m_sets = temps2.shape[0]
+    if n < 2:
+        num = np.zeros((m_sets, nbins)); den = np.zeros(nbins); cnt = np.zeros(nbins, np.int64)
+        zsum = np.zeros(nbins); jk_num = np.zeros((max(n_jk, 1), m_sets, nbins))
+        jk_den = np.zeros((max(n_jk, 1), nbins)); jk_cnt = np.zeros((max(n_jk, 1), nbins), np.int64)
+    else:
+        order, start, dims, xs, us = _prepare(pos, edges[-1])
+        ts = np.ascontiguousarray(temps2[:, order])
+        nt = _threads(n_threads)
+        previous = numba.get_num_threads()
+        numba.set_num_threads(nt)
+        try:
+            uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
+            num, den, cnt, zsum, jk_num, jk_den, jk_cnt = _kernels.pair_sums(
+                xs, us, ts, np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]), start, dims,
+                edges, uniform, n_jk, _n_chunks(nt), want_z)
+        finally:
+            numba.set_num_threads(previous)
+    p = _ratio(num, den[None, :])
+    z_eff = None
+    if want_z:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z_eff = np.where(den > 0, zsum / np.where(den > 0, den, 1.0), np.nan)
+    p_jk = None
+    if n_jk:
+        # jackknife k: all pairs minus the pairs touching region k
+        num_k = num[None, :, :] - jk_num[:n_jk]            # (n_jk, M, nb)
+        den_k = den[None, :] - jk_den[:n_jk]                # (n_jk, nb)
+        p_jk = np.moveaxis(_ratio(num_k, den_k[:, None, :]), 0, 1)  # (M, n_jk, nb)
+        if single:
+            p_jk = p_jk[0]
+    return PairwiseResult(edges=edges, p=p[0] if single else p, numerator=num[0] if single else num,
+                          denominator=den, pair_counts=cnt, z_eff=z_eff, p_jk=p_jk, n_jk=n_jk)
+
+
+def mean_pairwise_velocity_3d(positions, velocities, edges, *, n_threads=None):
+    """Mean 3D pairwise velocity <(v_i - v_j) . rhat_ij> per separation bin, km/s (negative = approaching).
+
+    Parameters
+    ----------
+    positions : ndarray of shape (N, 3), comoving Mpc
+    velocities : ndarray of shape (N, 3), km/s
+    edges : ndarray of shape (nbins + 1,), Mpc
+
+    Returns
+    -------
+    v12 : ndarray of shape (nbins,), km/s (nan in empty bins)
+    pair_counts : ndarray of shape (nbins,), int64
+    """
+    pos = _check_positions(positions)
+    vel = np.asarray(velocities, dtype=np.float64)
+    if vel.shape != pos.shape or not np.all(np.isfinite(vel)):
+        raise InputError(f"velocities must be finite with shape {pos.shape}; got {vel.shape}")
+    edges = _check_edges(edges)
+    order, start, dims, xs, _ = _prepare(pos, edges[-1])
+    nt = _threads(n_threads)
+    previous = numba.get_num_threads()
+    numba.set_num_threads(nt)
+    try:
+        uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
+        vsum, cnt = _kernels.velocity_sums(xs, np.ascontiguousarray(vel[order]), start, dims, edges, uniform,
+                                           _n_chunks(nt))
+    finally:
+        numba.set_num_threads(previous)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v12 = np.where(cnt > 0, vsum / np.maximum(cnt, 1), np.nan)
+    return v12, cnt
