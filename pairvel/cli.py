@@ -1,0 +1,178 @@
+"""Command line: ``pairvel run | demo | mock | keys``.
+
+A thin layer over the library.  Every :class:`~pairvel.errors.PairvelError` becomes one line on
+stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.
+"""
+
+from __future__ import annotations
+
+__all__ = ["main"]
+
+import argparse
+import datetime as _dt
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+from . import __version__
+from .errors import PairvelError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    top = argparse.ArgumentParser(
+        prog="pairvel",
+        description="Mean pairwise kSZ momentum of a spectroscopic catalogue on a HEALPix CMB map.",
+    )
+    top.add_argument("--version", action="version", version=f"pairvel {__version__}")
+    sub = top.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    def common(p):
+        p.add_argument("--quiet", action="store_true", help="no progress lines, only the closing summary")
+        p.add_argument("--debug", action="store_true", help="show the full traceback of an error")
+
+    run = sub.add_parser("run", help="measure, fit and null-test from a TOML config",
+                         description="Run the whole measurement described by CONFIG and write a new output folder.")
+    run.add_argument("config", help="TOML config file (see configs/README.md)")
+    run.add_argument("--out", help="new output folder (default: ./<run.name>)")
+    run.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    common(run)
+
+    demo = sub.add_parser("demo", help="run configs/demo.toml on the shipped synthetic survey and compare with its truth",
+                          description="Run the invented demo survey shipped in demo_data/ and check the result "
+                                      "against the injected optical depth.")
+    demo.add_argument("--out", help="new output folder (default: ./pairvel-demo-<timestamp>)")
+    demo.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    common(demo)
+
+    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json)",
+                          description="Generate a self-consistent synthetic survey with a known kSZ signal.")
+    mock.add_argument("out", help="new folder for the mock files")
+    mock.add_argument("--n-tracers", type=int, default=30000, help="number of tracers (default 30000)")
+    mock.add_argument("--nside", type=int, default=2048, help="HEALPix nside of the map (default 2048)")
+    mock.add_argument("--tau-mean", type=float, default=None, help="injected mean aperture optical depth")
+    mock.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    common(mock)
+
+    keys = sub.add_parser("keys", help="list every config key with its type, default and meaning")
+    keys.add_argument("--markdown", action="store_true", help="print a Markdown table")
+    return top
+
+
+def _closing_summary(result, out: Path) -> str:
+    f = result.fit
+    lines = [
+        f"pairvel: {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, z_eff = {result.z_eff:.3f}",
+        f"  tau_mean = {f.amplitude:.3e} ± {f.error:.3e}   S/N = {f.snr:.2f}",
+        f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
+        f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
+    ]
+    if result.null is not None:
+        n = result.null
+        lines.append(f"  null (random positions, {n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / "
+                     f"{n.dof} (PTE {n.pte_mean:.2g})")
+    lines.append(f"  outputs: {out}")
+    return "\n".join(lines)
+
+
+def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
+    from ._progress import Progress
+    from .config import load_config
+    from .outputs import prepare_output_dir, write_outputs
+    from .pipeline import run_pipeline
+
+    cfg = load_config(config_path)
+    out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
+    progress = Progress(9, quiet=args.quiet)
+    result = run_pipeline(cfg, progress=progress)
+    if demo:
+        from .demo import attach_truth_check
+
+        result = attach_truth_check(result)
+    with progress.stage("writing outputs"):
+        write_outputs(result, out, force=args.force)
+    print(_closing_summary(result, out))
+    if demo:
+        print(result.extra["demo_check"]["verdict"])
+    progress.say(f"finished in {progress.elapsed:.0f} s")
+    return EXIT_OK
+
+
+def _cmd_keys(args) -> int:
+    from .config import iter_config_keys
+
+    if args.markdown:
+        print("| key | type | default | meaning |\n|---|---|---|---|")
+    for key, typ, default, doc in iter_config_keys():
+        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
+        print(f"| `{key}` | {typ} | {shown} | {doc} |" if args.markdown else f"{key:34s} {typ:22s} {shown:12s} {doc}")
+    return EXIT_OK
+
+
+def _cmd_mock(args) -> int:
+    from .mock import make_mock_survey
+
+    options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
+    if args.tau_mean is not None:
+        options["tau_mean"] = args.tau_mean
+    truth = make_mock_survey(args.out, **options)
+    print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
+          f"tau_mean = {truth.tau_mean:.3e})")
+    return EXIT_OK
+
+
+def _short_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"pairvel: warning: {message}", file=sys.stderr if file is None else file)
+
+
+def main(argv=None) -> int:
+    """Entry point; returns the exit code (0 success, 2 bad input or config, 1 internal error)."""
+    args = _parser().parse_args(argv)
+    debug = getattr(args, "debug", False)
+    with warnings.catch_warnings():
+        if not debug:
+            warnings.showwarning = _short_warning
+        try:
+            if args.command == "run":
+                return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), demo=False)
+            if args.command == "demo":
+                from .demo import demo_config_path
+
+                stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
+                return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", demo=True)
+            if args.command == "mock":
+                return _cmd_mock(args)
+            return _cmd_keys(args)
+        except PairvelError as err:
+            if debug:
+                traceback.print_exc()
+            print(f"pairvel: error: {err}", file=sys.stderr)
+            return EXIT_USER
+        except KeyboardInterrupt:
+            print("pairvel: interrupted; no output written", file=sys.stderr)
+            return 130
+        except Exception as err:  # a bug: say so in one line, traceback with --debug
+            if debug:
+                traceback.print_exc()
+            print(f"pairvel: internal error: {type(err).__name__}: {err} (rerun with --debug and report it)",
+                  file=sys.stderr)
+            return EXIT_INTERNAL
+
+
+def _run_name(config_path) -> str:
+    """Default output folder name: the config's run.name, read leniently (the full check comes later)."""
+    import tomllib
+
+    try:
+        with open(config_path, "rb") as fh:
+            name = tomllib.load(fh).get("run", {}).get("name", "pairvel-run")
+        return name if isinstance(name, str) and name and "/" not in name else "pairvel-run"
+    except (OSError, tomllib.TOMLDecodeError, AttributeError):
+        return "pairvel-run"
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,253 @@
+"""Write a run's tables, figure, summary and report into a new folder, all or nothing.
+
+Files are written into a hidden temporary folder beside the target and renamed into place at the
+end, so a failure leaves no half-written output.  An existing folder is replaced only with
+``force=True`` and only when it carries the marker file of an earlier pairvel output, so nothing
+a user made is ever deleted.
+"""
+
+from __future__ import annotations
+
+__all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir"]
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from .errors import OutputError
+
+#: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
+OUTPUT_MARKER = ".pairvel-output"
+
+
+def prepare_output_dir(out_dir, *, force: bool = False) -> Path:
+    """Check that ``out_dir`` may be written; return it as an absolute Path (nothing is created)."""
+    out = Path(out_dir).expanduser().resolve()
+    if out.exists():
+        if not force:
+            raise OutputError(f"output folder {out} exists already; choose another --out or pass --force", path=out)
+        if not (out / OUTPUT_MARKER).is_file():
+            raise OutputError(f"output folder {out} exists and is not a pairvel output; --force only replaces "
+                              f"folders that pairvel wrote", path=out)
+    if not out.parent.is_dir():
+        raise OutputError(f"output folder {out}: parent folder {out.parent} does not exist", path=out)
+    return out
+
+
+def _json_default(obj):
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def _finite_or_none(obj):
+    """JSON has no inf/nan: replace them by None, recursively."""
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, dict):
+        return {k: _finite_or_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite_or_none(v) for v in obj]
+    return obj
+
+
+def summary_dict(result) -> dict:
+    """The contents of summary.json: headline numbers, null test, selection and provenance."""
+    fit = result.fit.as_dict()
+    out = {
+        "producer": "pairvel",
+        "run_name": result.config.run.name,
+        "tau_mean": fit["amplitude"],
+        "tau_mean_error": fit["error"],
+        "snr": fit["snr"],
+        "chi2_null": fit["chi2_null"],
+        "pte_null": fit["pte_null"],
+        "chi2_min": fit["chi2_min"],
+        "pte_min": fit["pte_min"],
+        "dof": fit["dof"],
+        "fit": fit,
+        "z_eff": result.z_eff,
+        "n_tracers": result.n_tracers,
+        "n_pairs": int(result.pair_counts.sum()),
+        "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
+        "covariance": {"method": "delete-one jackknife over k-means sky regions",
+                       "n_regions": result.config.covariance.n_regions,
+                       "precision_correction": "Hartlap, Simon & Schneider 2007"},
+        "template": {"kind": "linear-theory mean pairwise velocity",
+                     "bias": result.config.theory.bias, "z_eff": result.z_eff,
+                     "meaning": "p_model(r) = tau_mean * T_CMB * v12(r) / c"},
+        "null_test": None if result.null is None else result.null.as_dict(),
+        "selection": result.selection,
+        "config": result.config.as_dict(),
+        "provenance": result.provenance,
+    }
+    if "demo_check" in result.extra:
+        out["demo_check"] = result.extra["demo_check"]
+    return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
+
+
+def _write_tables(result, folder: Path) -> None:
+    from astropy.io import fits
+    from astropy.table import Table
+
+    nb = result.edges.size - 1
+    table = Table()
+    table["r_min"] = result.edges[:-1]
+    table["r_max"] = result.edges[1:]
+    table["r_mid"] = result.r_mid
+    table["p_uK"] = result.p
+    table["p_err_uK"] = result.p_err
+    table["n_pairs"] = result.pair_counts.astype(np.int64)
+    table["z_pair"] = result.z_eff_bins
+    table["v12_lin_km_s"] = result.v12_template
+    table["model_uK"] = result.model_uk
+    table["in_fit"] = result.in_fit
+    for name in ("r_min", "r_max", "r_mid"):
+        table[name].unit = "Mpc"
+    table["p_uK"].unit = table["p_err_uK"].unit = table["model_uK"].unit = "uK"
+    table["v12_lin_km_s"].unit = "km / s"
+    table.meta["description"] = "mean pairwise kSZ momentum (Ferreira et al. 1999 estimator) against comoving separation"
+    table.meta["tau_mean"] = float(result.fit.amplitude)
+    table.meta["tau_mean_error"] = float(result.fit.error)
+    table.write(folder / "pairwise.ecsv", format="ascii.ecsv")
+
+    hdr = fits.Header()
+    hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
+    hdr["NJK"] = (result.config.covariance.n_regions, "jackknife regions")
+    hdr["NBINS"] = nb
+    hdr["COMMENT"] = "delete-one jackknife covariance of the pairwise momentum; bins as in pairwise.ecsv"
+    sig = np.sqrt(np.diag(result.covariance))
+    corr = result.covariance / np.outer(sig, sig)
+    hdus = [fits.PrimaryHDU(result.covariance, header=hdr),
+            fits.ImageHDU(corr, name="CORRELATION"),
+            fits.ImageHDU(result.p_jk, name="JACKKNIFE_SAMPLES"),
+            fits.ImageHDU(result.edges, name="EDGES_MPC")]
+    fits.HDUList(hdus).writeto(folder / "covariance.fits")
+
+    if result.null is not None:
+        nt = Table()
+        nt["r_mid"] = result.r_mid
+        nt["r_mid"].unit = "Mpc"
+        nt["p_mean_uK"] = result.null.p.mean(axis=0)
+        nt["p_scatter_uK"] = result.null.p.std(axis=0, ddof=1) if result.null.n_real > 1 else np.nan
+        for k in range(result.null.n_real):
+            nt[f"p_real{k:03d}_uK"] = result.null.p[k]
+        nt.meta["description"] = "null test: apertures at random unmasked sky positions, catalogue geometry kept"
+        nt.meta["chi2_each"] = [float(x) for x in result.null.chi2]
+        nt.meta["pte_each"] = [float(x) for x in result.null.pte]
+        nt.write(folder / "null_random.ecsv", format="ascii.ecsv")
+
+
+def _plot(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    r = result.r_mid
+    fig, ax = plt.subplots(figsize=(7.0, 4.6), constrained_layout=True)
+    ax.axhline(0.0, color="0.6", lw=0.8)
+    if result.null is not None:
+        spread = result.null.p.std(axis=0, ddof=1) if result.null.n_real > 1 else np.zeros_like(r)
+        ax.fill_between(r, result.null.p.mean(axis=0) - spread, result.null.p.mean(axis=0) + spread,
+                        color="0.85", label=f"null: random positions (mean ± 1σ of {result.null.n_real})")
+    ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
+                ms=4, capsize=2, label="measured (jackknife errors)")
+    if (~result.in_fit).any():
+        ax.errorbar(r[~result.in_fit], result.p[~result.in_fit], yerr=result.p_err[~result.in_fit], fmt="o",
+                    mfc="none", color="C0", ms=4, capsize=2, label="not fitted")
+    f = result.fit
+    ax.plot(r, result.model_uk, color="C3",
+            label=f"linear theory, τ̄ = ({f.amplitude * 1e4:.2f} ± {f.error * 1e4:.2f})×10⁻⁴, S/N = {f.snr:.1f}")
+    for name, curve in result.extra.get("plot_curves", {}).items():
+        ax.plot(r, curve, ls="--", lw=1.2, label=name)
+    ax.set_xlabel("comoving separation r [Mpc]")
+    ax.set_ylabel("mean pairwise kSZ momentum p(r) [μK]")
+    ax.set_title(f"{result.config.run.name}: {result.n_tracers:,} tracers, "
+                 f"θ = {result.config.aperture.radius_arcmin:g}′, z_eff = {result.z_eff:.2f}", fontsize=10)
+    ax.legend(fontsize=8, loc="lower right")
+    fig.savefig(path, dpi=130)
+    plt.close(fig)
+
+
+def _report(result, summary: dict) -> str:
+    f = result.fit
+    lines = [
+        f"# pairvel report: {result.config.run.name}",
+        "",
+        "## Headline",
+        f"- mean optical depth tau_mean = {f.amplitude:.4e} ± {f.error:.4e} (S/N = {f.snr:.2f})",
+        f"- chi2 against zero: {f.chi2_null:.2f} for {f.n_bins} bins (PTE {f.pte_null:.3g}); "
+        f"best fit: {f.chi2_min:.2f} for {f.dof} dof (PTE {f.pte_min:.3g})",
+        f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
+        "",
+        "## Null test: apertures at random sky positions",
+    ]
+    if result.null is None:
+        lines.append("- not run (nulls.n_random = 0)")
+    else:
+        n = result.null
+        lines += [f"- {n.n_real} realisations; mean curve chi2 = {n.chi2_mean:.2f} for {n.dof} bins (PTE {n.pte_mean:.3g})",
+                  f"- fraction of realisations with PTE < 0.05: {np.mean(n.pte < 0.05):.2f}"]
+    lines += ["", "## Measured curve", "",
+              "| r_min | r_max | p [uK] | error [uK] | pairs | model [uK] | fitted |",
+              "|---:|---:|---:|---:|---:|---:|:---:|"]
+    for k in range(result.edges.size - 1):
+        lines.append(f"| {result.edges[k]:g} | {result.edges[k + 1]:g} | {result.p[k]:+.4f} | {result.p_err[k]:.4f} | "
+                     f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.4f} | {'yes' if result.in_fit[k] else 'no'} |")
+    lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
+    for section, body in result.extra.get("report_sections", {}).items():
+        lines += ["", f"## {section}", "", body]
+    prov = result.provenance
+    lines += ["", "## Provenance", "",
+              f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')})",
+              f"- catalogue: {prov['catalogue']['path']} (sha256 {prov['catalogue']['sha256']})",
+              f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
+              f"- seed: {prov['seed']}; started {prov['started_utc']}",
+              "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
+              "", "Files: pairwise.ecsv, covariance.fits, null_random.ecsv, summary.json, pairwise.png.", ""]
+    return "\n".join(lines)
+
+
+def write_outputs(result, out_dir, *, force: bool = False) -> Path:
+    """Write every output of ``result`` into ``out_dir`` atomically; return the folder.
+
+    Raises
+    ------
+    OutputError
+        The folder exists (without ``force``), is not a pairvel output, or cannot be written.
+    """
+    out = prepare_output_dir(out_dir, force=force)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        summary = summary_dict(result)
+        _write_tables(result, tmp)
+        _plot(result, tmp / "pairwise.png")
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+        (tmp / "report.md").write_text(_report(result, summary))
+        (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
+        if out.exists():  # force: only reached for a folder that pairvel wrote
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+            os.rename(out, old / out.name)
+            os.rename(tmp, out)
+            shutil.rmtree(old)
+        else:
+            os.rename(tmp, out)
+    except OSError as err:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"output folder {out}: cannot be written ({err.strerror or err})", path=out) from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out

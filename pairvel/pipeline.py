@@ -1,0 +1,246 @@
+"""The only module that knows the order of the stages.
+
+config -> catalogue + sky map -> photometry -> redshift-trend correction -> geometry -> pairs ->
+estimate -> covariance -> fit -> null test.  Each stage is a plain function of plain data; this
+module wires them together and collects a frozen :class:`RunResult` that the output writer turns
+into files.
+"""
+
+from __future__ import annotations
+
+__all__ = ["RunResult", "NullTestResult", "run_pipeline", "package_versions"]
+
+import datetime as _dt
+import importlib.metadata
+import platform
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import __version__
+from ._progress import Progress
+from ._rng import as_generator
+from .catalogue import Catalogue, file_sha256, load_catalogue
+from .config import Config
+from .constants import C_KM_S, T_CMB_UK
+from .covariance import jackknife_covariance, kmeans_regions
+from .errors import InputError, PairvelWarning
+from .estimator import pairwise_momentum
+from .fit import AmplitudeFit, chi2_against_zero, fit_amplitude
+from .geometry import comoving_positions
+from .photometry import measure_apertures, measure_random_apertures
+from .skymap import read_map, read_mask
+from .theory import binned_pairwise_velocity
+from .trend import remove_redshift_trend
+
+_DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
+
+
+@dataclass(frozen=True)
+class NullTestResult:
+    """Pairwise curves measured with every aperture moved to a random unmasked sky position.
+
+    Attributes
+    ----------
+    p : ndarray of shape (n_real, nbins), uK
+        One curve per realisation.
+    chi2, pte : ndarray of shape (n_real,)
+        Each curve against zero with its own jackknife covariance (Hartlap-corrected).
+    chi2_mean, pte_mean : float
+        The mean curve against zero, covariance = mean jackknife covariance / n_real.
+    dof : int
+    """
+
+    p: np.ndarray
+    chi2: np.ndarray
+    pte: np.ndarray
+    chi2_mean: float
+    pte_mean: float
+    dof: int
+
+    @property
+    def n_real(self) -> int:
+        return self.p.shape[0]
+
+    def as_dict(self) -> dict:
+        return {
+            "kind": "apertures at random unmasked sky positions",
+            "n_realisations": int(self.n_real),
+            "dof": int(self.dof),
+            "chi2_mean_curve": float(self.chi2_mean),
+            "pte_mean_curve": float(self.pte_mean),
+            "chi2_each": [float(x) for x in self.chi2],
+            "pte_each": [float(x) for x in self.pte],
+            "fraction_pte_below_0.05": float(np.mean(self.pte < 0.05)) if self.n_real else None,
+        }
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """Everything a run measured, with the provenance needed to reproduce it."""
+
+    config: Config
+    edges: np.ndarray
+    p: np.ndarray
+    covariance: np.ndarray
+    p_jk: np.ndarray
+    pair_counts: np.ndarray
+    z_eff_bins: np.ndarray
+    z_eff: float
+    v12_template: np.ndarray
+    in_fit: np.ndarray
+    fit: AmplitudeFit
+    null: NullTestResult | None
+    n_tracers: int
+    selection: dict
+    provenance: dict
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def r_mid(self) -> np.ndarray:
+        return 0.5 * (self.edges[1:] + self.edges[:-1])
+
+    @property
+    def p_err(self) -> np.ndarray:
+        return np.sqrt(np.diag(self.covariance))
+
+    @property
+    def template_uk(self) -> np.ndarray:
+        """Model curve per unit optical depth, uK: T_CMB v12 / c."""
+        return T_CMB_UK * self.v12_template / C_KM_S
+
+    @property
+    def model_uk(self) -> np.ndarray:
+        """Best-fit model curve, uK."""
+        return self.fit.amplitude * self.template_uk
+
+
+def package_versions() -> dict:
+    """Versions of Python, pairvel and its dependencies."""
+    out = {"python": platform.python_version(), "pairvel": __version__}
+    for name in _DEPENDENCIES:
+        try:
+            out[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str):
+    res = measure_apertures(skymap, ra, dec, cfg.aperture.radius_arcmin,
+                            max_masked_fraction=cfg.map.max_masked_fraction, progress=progress.counter(label))
+    return res.temperatures[0], res.usable
+
+
+def _trend(temps, z, cfg: Config):
+    if not cfg.trend.enabled:
+        return temps
+    return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
+
+
+def _null_test(p_null, p_jk_null, n_jk: int) -> NullTestResult:
+    covs = jackknife_covariance(p_jk_null)
+    chi2 = np.empty(p_null.shape[0])
+    pte = np.empty(p_null.shape[0])
+    for k in range(p_null.shape[0]):
+        chi2[k], dof, pte[k] = chi2_against_zero(p_null[k], covs[k], n_samples=n_jk)
+    chi2_m, dof, pte_m = chi2_against_zero(p_null.mean(axis=0), covs.mean(axis=0) / p_null.shape[0], n_samples=n_jk)
+    return NullTestResult(p=p_null, chi2=chi2, pte=pte, chi2_mean=float(chi2_m), pte_mean=float(pte_m), dof=int(dof))
+
+
+def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
+    """Run every stage for a validated config and return the result (nothing is written).
+
+    Parameters
+    ----------
+    cfg : Config
+        A validated configuration (see :func:`pairvel.config.load_config`).
+    progress : Progress, optional
+        Where stage lines go; silent when None.
+    """
+    progress = progress or Progress(9, quiet=True)
+    rng = as_generator(cfg.run.seed)
+    started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+    with progress.stage("catalogue"):
+        cat: Catalogue = load_catalogue(cfg.catalogue)
+        progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
+    with progress.stage("sky map"):
+        skymap = read_map(cfg.map.path, field=cfg.map.field, unit=cfg.map.unit,
+                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
+        if cfg.map.mask_path is not None:
+            mask = read_mask(cfg.map.mask_path, nside=skymap.nside)
+            skymap = skymap.with_mask(mask)
+    with progress.stage(f"aperture photometry at {len(cat)} tracers"):
+        temps, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
+        n_masked = int((~usable).sum())
+        if n_masked:
+            warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
+                          f"{cfg.map.max_masked_fraction:.0%} masked or outside the map", PairvelWarning, stacklevel=2)
+        if usable.sum() < 2:
+            raise InputError(f"map {cfg.map.path}: fewer than 2 tracers have usable apertures "
+                             f"({n_masked} of {len(cat)} masked or outside the map)", path=cfg.map.path)
+        cat = cat.subset(usable)
+        temps = temps[usable]
+    selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
+
+    with progress.stage("redshift-trend correction"):
+        temps = _trend(temps, cat.z, cfg)
+    with progress.stage("geometry and jackknife regions"):
+        positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
+        n_jk = cfg.covariance.n_regions
+        if n_jk > len(cat):
+            raise InputError(f"covariance.n_regions = {n_jk} exceeds the {len(cat)} usable tracers")
+        regions = kmeans_regions(cat.ra, cat.dec, n_jk, seed=rng)
+
+    n_null = cfg.nulls.n_random
+    with progress.stage(f"null-test photometry: {n_null} sets of random sky positions"):
+        null_sets = []
+        for k in range(n_null):
+            _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
+                                                 max_masked_fraction=cfg.map.max_masked_fraction)
+            null_sets.append(_trend(t_r[0], cat.z, cfg))
+            progress.say(f"      null set {k + 1}/{n_null}")
+
+    edges = cfg.bins.edges()
+    with progress.stage(f"pair pass: {len(cat)} tracers, {1 + n_null} temperature sets, {edges.size - 1} bins"):
+        stacked = np.vstack([temps[None, :]] + [t[None, :] for t in null_sets])
+        pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
+                               n_threads=cfg.compute.n_threads)
+        progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
+
+    with progress.stage("covariance, template and fit"):
+        p, p_jk = pr.p[0], pr.p_jk[0]
+        valid = np.all(np.isfinite(p_jk), axis=0) & np.isfinite(p)
+        if not valid.all():
+            raise InputError(f"separation bins {np.flatnonzero(~valid).tolist()} have no pairs in some jackknife "
+                             f"sample; widen bins.width_mpc or reduce covariance.n_regions")
+        cov = jackknife_covariance(p_jk)
+        r_mid = 0.5 * (edges[1:] + edges[:-1])
+        in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+        weight = pr.denominator * in_fit
+        z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
+        v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
+        template = T_CMB_UK * v12 / C_KM_S
+        fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
+        null = _null_test(pr.p[1:], pr.p_jk[1:], n_jk) if n_null else None
+
+    provenance = {
+        "pairvel_version": __version__,
+        "started_utc": started,
+        "config_file": None if cfg.source is None else str(cfg.source),
+        "config_sha256": None if cfg.source is None else file_sha256(cfg.source),
+        "catalogue": {"path": cat.path, "sha256": cat.sha256},
+        "map": {"path": str(cfg.map.path), "sha256": file_sha256(cfg.map.path)},
+        "mask": None if cfg.map.mask_path is None else {"path": str(cfg.map.mask_path),
+                                                         "sha256": file_sha256(cfg.map.mask_path)},
+        "seed": cfg.run.seed,
+        "versions": package_versions(),
+        "platform": platform.platform(),
+    }
+    return RunResult(
+        config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
+        z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, null=null,
+        n_tracers=len(cat), selection=selection, provenance=provenance,
+    )

@@ -1,0 +1,106 @@
+"""The command line: one clear line and exit code 2 for bad input, no partial output, atomic writes."""
+
+import json
+
+import healpy as hp
+import numpy as np
+import pandas as pd
+import pytest
+
+from pairvel.cli import main
+from conftest import write_healpix
+
+
+def run(folder, *extra):
+    return main(["run", str(folder / "run.toml"), "--out", str(folder / "out"), "--quiet", *extra])
+
+
+def only_error_line(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    errors = [line for line in err if line.startswith("pairvel: error:")]
+    assert len(errors) == 1, err
+    assert not any("Traceback" in line for line in err)
+    return errors[0]
+
+
+def test_run_writes_every_output_and_refuses_to_overwrite(tiny_survey, capsys):
+    assert run(tiny_survey) == 0
+    out = tiny_survey / "out"
+    for name in ("pairwise.ecsv", "covariance.fits", "null_random.ecsv", "summary.json", "report.md", "pairwise.png"):
+        assert (out / name).is_file(), name
+    summary = json.loads((out / "summary.json").read_text())
+    for key in ("tau_mean", "tau_mean_error", "snr", "chi2_null", "pte_null", "null_test", "provenance"):
+        assert key in summary
+    assert summary["provenance"]["seed"] == 3 and len(summary["provenance"]["catalogue"]["sha256"]) == 64
+    before = (out / "summary.json").read_bytes()
+    assert run(tiny_survey) == 2
+    assert "exists already" in only_error_line(capsys)
+    assert (out / "summary.json").read_bytes() == before
+    assert run(tiny_survey, "--force") == 0
+    assert not [p for p in tiny_survey.iterdir() if p.name.startswith(".out")]  # no temporary folders left
+
+
+def test_config_typo(tiny_survey, capsys):
+    cfg = tiny_survey / "run.toml"
+    cfg.write_text(cfg.read_text().replace("radius_arcmin", "radius_arcmn"))
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "run.toml" in line and "aperture.radius_arcmn" in line
+    assert not (tiny_survey / "out").exists()
+
+
+def test_missing_column(tiny_survey, capsys):
+    df = pd.read_csv(tiny_survey / "cat.csv").drop(columns="dec")
+    df.to_csv(tiny_survey / "cat.csv", index=False)
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "cat.csv" in line and "'dec'" in line and "catalogue.dec_column" in line
+    assert not (tiny_survey / "out").exists()
+
+
+def test_nan_in_catalogue(tiny_survey, capsys):
+    df = pd.read_csv(tiny_survey / "cat.csv")
+    df.loc[17, "z"] = np.nan
+    df.to_csv(tiny_survey / "cat.csv", index=False)
+    assert run(tiny_survey) == 2
+    assert "row 17" in only_error_line(capsys)
+    assert not (tiny_survey / "out").exists()
+
+
+def test_mask_of_another_nside(tiny_survey, capsys):
+    write_healpix(tiny_survey / "mask.fits", np.ones(hp.nside2npix(128), np.float32), nside=128, unit=None)
+    cfg = tiny_survey / "run.toml"
+    cfg.write_text(cfg.read_text().replace('path = "map.fits"', 'path = "map.fits"\nmask_path = "mask.fits"'))
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "mask.fits" in line and "nside 128" in line and "nside 256" in line
+    assert not (tiny_survey / "out").exists()
+
+
+def test_unreadable_map(tiny_survey, capsys):
+    (tiny_survey / "map.fits").write_bytes(b"\x00garbage" * 50)
+    assert run(tiny_survey) == 2
+    assert "map.fits" in only_error_line(capsys)
+    assert not (tiny_survey / "out").exists()
+
+
+def test_debug_shows_traceback(tiny_survey, capsys):
+    (tiny_survey / "map.fits").unlink()
+    assert run(tiny_survey, "--debug") == 2
+    assert "Traceback" in capsys.readouterr().err
+
+
+def test_force_never_replaces_a_folder_pairvel_did_not_write(tiny_survey, capsys):
+    (tiny_survey / "out").mkdir()
+    (tiny_survey / "out" / "precious.txt").write_text("user data")
+    assert run(tiny_survey, "--force") == 2
+    assert "not a pairvel output" in only_error_line(capsys)
+    assert (tiny_survey / "out" / "precious.txt").read_text() == "user data"
+
+
+def test_keys_and_help(capsys):
+    assert main(["keys"]) == 0
+    assert "aperture.radius_arcmin" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as exc:
+        main(["run", "--help"])
+    assert exc.value.code == 0
