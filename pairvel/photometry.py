@@ -1,9 +1,18 @@
-"""Compensated top-hat aperture photometry on HEALPix maps.
+"""Compensated top-hat aperture photometry on HEALPix maps, full or partial sky.
 
-T_AP = (mean of the pixels whose centres lie within theta) - (mean of the pixels in the annulus
-theta..sqrt(2) theta); the two regions have equal areas, so a constant and a linear gradient cancel
-[common practice].  Masked pixels are left out of both means; each tracer reports the masked
-fraction of its disc and annulus.
+For a tracer at direction n and a disc radius theta,
+
+    T_AP = <T>_disc(theta) - <T>_annulus(theta, sqrt(2) theta),
+
+the means taken over the pixels whose centres lie in the disc and in the annulus [common
+practice].  The two regions have equal areas, so a constant cancels exactly and a linear
+gradient cancels up to pixelisation.  Each pixel enters its mean with the map's usable weight
+(1 = usable, 0 = masked), so masked pixels, and pixels a partial map does not hold, are left
+out; the masked fraction of each region is 1 - (sum of weights) / (number of pixel centres).
+
+One ``healpy.query_disc`` of radius sqrt(2) theta_max per tracer (RING scheme, the fast one),
+then numpy for everything else: exact chord distances of the pixel centres split disc and
+annulus, and ``bincount`` sums give the means.  About 0.2 s per 10^4 tracers at nside 2048.
 """
 
 from __future__ import annotations
@@ -11,127 +20,198 @@ from __future__ import annotations
 __all__ = ["ApertureResult", "aperture_temperatures", "measure_apertures", "random_positions_in_footprint",
            "measure_random_apertures"]
 
+import math
+import warnings
 from dataclasses import dataclass
 
+import healpy as hp
 import numpy as np
 
 from ._rng import as_generator
 from .constants import ARCMIN_RAD
-from .errors import InputError, MapError
-from .geometry import unit_vectors
+from .errors import InputError, MapError, PairvelWarning
 from .skymap import SkyMap
 
-_BATCH = 4096
+_CHUNK = 4096               # tracers per vectorised batch (and per progress call)
+_MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" is not what anyone wants
+_SUBPIXEL_LEVELS = 10       # random positions: uniform over 4^10 sub-pixels of the chosen pixel
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class ApertureResult:
-    """Aperture photometry at N positions for n_radii radii.
+    """Compensated aperture photometry of N positions at n_radii radii.
 
     Attributes
     ----------
+    radius_arcmin : ndarray of shape (n_radii,), arcmin
+        Disc radii theta; each annulus runs from theta to sqrt(2) theta.
     temperatures : ndarray of shape (n_radii, N), uK
-        Compensated aperture temperature; nan where the disc or annulus has no usable pixel.
+        Disc mean minus annulus mean; NaN where the disc or annulus has no usable pixel.
     masked_fraction_disc, masked_fraction_annulus : ndarray of shape (n_radii, N)
-    n_pixels_disc : ndarray of shape (n_radii, N), int
-        Pixels (usable or not) with centres inside the disc.
+        1 - (sum of pixel weights) / (pixel centres in the region); 1 for a region with none.
+    n_pixels_disc, n_pixels_annulus : ndarray of shape (n_radii, N), int64
+        Pixel centres inside each region, usable or not.
     usable : ndarray of shape (N,), bool
-        Both masked fractions <= max_masked_fraction at every radius, and a finite temperature.
-    radius_arcmin : ndarray of shape (n_radii,)
+        Finite temperature and both masked fractions <= ``max_masked_fraction`` at every radius.
+    max_masked_fraction : float
+        The threshold ``usable`` was computed with.
     """
 
+    radius_arcmin: np.ndarray
     temperatures: np.ndarray
     masked_fraction_disc: np.ndarray
     masked_fraction_annulus: np.ndarray
     n_pixels_disc: np.ndarray
+    n_pixels_annulus: np.ndarray
     usable: np.ndarray
-    radius_arcmin: np.ndarray
+    max_masked_fraction: float
+
+    @property
+    def n_usable(self) -> int:
+        return int(self.usable.sum())
 
 
 def _check_positions(ra_deg, dec_deg):
-    ra = np.asarray(ra_deg, dtype=float)
-    dec = np.asarray(dec_deg, dtype=float)
-    if ra.shape != dec.shape or ra.ndim != 1:
-        raise InputError(f"ra and dec must be 1-D arrays of equal length; got shapes {ra.shape} and {dec.shape}")
-    bad = ~(np.isfinite(ra) & np.isfinite(dec) & (np.abs(dec) <= 90))
+    ra = np.asarray(ra_deg, dtype=np.float64)
+    dec = np.asarray(dec_deg, dtype=np.float64)
+    if ra.ndim != 1 or ra.shape != dec.shape:
+        raise InputError(f"ra_deg and dec_deg must be 1-D arrays of equal length; got shapes {ra.shape} and {dec.shape}")
+    bad = ~(np.isfinite(ra) & np.isfinite(dec) & (np.abs(dec) <= 90.0))
     if bad.any():
-        raise InputError(f"positions must be finite with |dec| <= 90 degrees; {bad.sum()} are not "
-                         f"(first: row {np.flatnonzero(bad)[0]})")
+        first = int(np.flatnonzero(bad)[0])
+        raise InputError(f"positions must be finite with |dec| <= 90 degrees; {int(bad.sum())} are not "
+                         f"(first: row {first}, ra={float(ra[first])}, dec={float(dec[first])})")
     return ra, dec
 
 
-def _check_radii(radius_arcmin):
-    radii = np.atleast_1d(np.asarray(radius_arcmin, dtype=float))
-    if radii.ndim != 1 or not np.all(np.isfinite(radii)) or np.any(radii <= 0):
-        raise InputError(f"aperture radii must be positive numbers of arcmin; got {radius_arcmin!r}")
+def _check_radii(radius_arcmin) -> np.ndarray:
+    try:
+        radii = np.atleast_1d(np.asarray(radius_arcmin, dtype=np.float64))
+    except (TypeError, ValueError):
+        raise InputError(f"radius_arcmin must be a positive number or a sequence of them; got {radius_arcmin!r}") from None
+    if radii.ndim != 1 or radii.size == 0 or not np.all(np.isfinite(radii)) \
+            or np.any(radii <= 0) or np.any(radii > _MAX_RADIUS_ARCMIN):
+        raise InputError(f"radius_arcmin must be positive and at most {_MAX_RADIUS_ARCMIN:g} arcmin "
+                         f"(scalar or 1-D); got {radius_arcmin!r}")
     return radii
+
+
+def _check_fraction(max_masked_fraction) -> float:
+    f = max_masked_fraction
+    if isinstance(f, bool) or not isinstance(f, (int, float, np.integer, np.floating)) or not 0.0 <= f <= 1.0:
+        raise InputError(f"max_masked_fraction must be a number in [0, 1]; got {f!r}")
+    return float(f)
+
+
+def _chord2(angle_rad):
+    """Squared chord length of an angle on the unit sphere: (2 sin(a/2))^2."""
+    return (2.0 * np.sin(0.5 * np.asarray(angle_rad))) ** 2
+
+
+def _ang2vec(ra, dec) -> np.ndarray:
+    ra_r, dec_r = np.radians(ra), np.radians(dec)
+    cd = np.cos(dec_r)
+    return np.column_stack([cd * np.cos(ra_r), cd * np.sin(ra_r), np.sin(dec_r)])
+
+
+def _measure(skymap: SkyMap, ra, dec, radii, max_masked_fraction, progress) -> ApertureResult:
+    """Validated inputs in, ApertureResult out (see measure_apertures)."""
+    n, nr = ra.size, radii.size
+    nside = skymap.nside
+    vec = _ang2vec(ra, dec)
+    theta = radii * ARCMIN_RAD
+    c2_in = _chord2(theta)
+    c2_out = _chord2(math.sqrt(2.0) * theta)
+    r_query = math.sqrt(2.0) * float(theta.max())
+
+    temps = np.full((nr, n), np.nan)
+    frac_disc = np.ones((nr, n))
+    frac_ann = np.ones((nr, n))
+    n_disc = np.zeros((nr, n), dtype=np.int64)
+    n_ann = np.zeros((nr, n), dtype=np.int64)
+    for b0 in range(0, n, _CHUNK):
+        b1 = min(b0 + _CHUNK, n)
+        m = b1 - b0
+        vb = vec[b0:b1]
+        lists = [hp.query_disc(nside, vb[k], r_query, inclusive=False) for k in range(m)]
+        lens = np.fromiter((p.size for p in lists), dtype=np.int64, count=m)
+        pix_ring = np.concatenate(lists) if m else np.zeros(0, np.int64)
+        owner = np.repeat(np.arange(m), lens)
+        px, py, pz = hp.pix2vec(nside, pix_ring)
+        d2 = (px - vb[owner, 0]) ** 2 + (py - vb[owner, 1]) ** 2 + (pz - vb[owner, 2]) ** 2
+        pix = hp.ring2nest(nside, pix_ring) if skymap.nest else pix_ring
+        vals, w = skymap.lookup(pix)
+        w = w.astype(np.float64)
+        wv = np.where(w > 0, vals, 0.0) * w
+        for r in range(nr):
+            in_disc = d2 <= c2_in[r]
+            in_ann = ~in_disc & (d2 <= c2_out[r])
+            nd = np.bincount(owner[in_disc], minlength=m)
+            na = np.bincount(owner[in_ann], minlength=m)
+            wd = np.bincount(owner[in_disc], weights=w[in_disc], minlength=m)
+            wa = np.bincount(owner[in_ann], weights=w[in_ann], minlength=m)
+            sd = np.bincount(owner[in_disc], weights=wv[in_disc], minlength=m)
+            sa = np.bincount(owner[in_ann], weights=wv[in_ann], minlength=m)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                t = np.where((wd > 0) & (wa > 0), sd / wd - sa / wa, np.nan)
+                fd = np.where(nd > 0, 1.0 - wd / nd, 1.0)
+                fa = np.where(na > 0, 1.0 - wa / na, 1.0)
+            temps[r, b0:b1] = t
+            frac_disc[r, b0:b1] = np.clip(fd, 0.0, 1.0)
+            frac_ann[r, b0:b1] = np.clip(fa, 0.0, 1.0)
+            n_disc[r, b0:b1] = nd
+            n_ann[r, b0:b1] = na
+        if progress is not None:
+            progress(b1, n)
+    tol = 1e-9  # the fractions are ratios of float sums; do not let rounding flip a boundary case
+    usable = np.all(np.isfinite(temps) & (frac_disc <= max_masked_fraction + tol)
+                    & (frac_ann <= max_masked_fraction + tol), axis=0)
+    return ApertureResult(radii, temps, frac_disc, frac_ann, n_disc, n_ann, usable, max_masked_fraction)
 
 
 def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_masked_fraction=0.1,
                       progress=None) -> ApertureResult:
-    """Compensated aperture temperatures at every position, for one or several radii.
+    """Compensated top-hat aperture temperatures at every position, for one or several radii.
 
     Parameters
     ----------
     skymap : SkyMap
-        Map in uK with its usable-pixel weight.
+        Map in uK_CMB with its usable weights (full or partial sky, either ordering).
     ra_deg, dec_deg : ndarray of shape (N,), degrees
-        Positions in the map's coordinate frame.
-    radius_arcmin : float or sequence of float
+        Positions, in the map's (equatorial) frame.
+    radius_arcmin : float or sequence of float, arcmin
         Disc radius theta; the annulus runs from theta to sqrt(2) theta.
     max_masked_fraction : float, default 0.1
-        A position is usable when at most this fraction of its disc and of its annulus is masked.
+        A position is usable when at most this fraction of its disc and of its annulus is masked
+        (or outside a partial map), at every radius.
     progress : callable(done, total), optional
+        Called after every batch of 4096 positions.
 
     Returns
     -------
     ApertureResult
-    """
-    import healpy as hp
+        ``temperatures`` of shape (n_radii, N) in uK, masked fractions, pixel counts, ``usable``.
 
+    Notes
+    -----
+    A pixel belongs to the disc when the angular distance of its centre from the position is
+    <= theta, to the annulus when it is in (theta, sqrt(2) theta]; distances are exact chord
+    lengths of the pixel-centre unit vectors.  The disc and annulus means are weighted by the
+    map's usable weights, which for a binary mask leaves masked pixels out.
+    """
+    if not isinstance(skymap, SkyMap):
+        raise InputError(f"skymap must be a pairvel SkyMap (see read_map); got {type(skymap).__name__}")
     ra, dec = _check_positions(ra_deg, dec_deg)
     radii = _check_radii(radius_arcmin)
-    n, nr = ra.size, radii.size
-    vec = unit_vectors(ra, dec)
-    cos_in = np.cos(radii * ARCMIN_RAD)
-    cos_out = np.cos(np.sqrt(2.0) * radii * ARCMIN_RAD)
-    r_query = np.sqrt(2.0) * radii.max() * ARCMIN_RAD
-    temps = np.full((nr, n), np.nan)
-    f_disc = np.ones((nr, n))
-    f_ann = np.ones((nr, n))
-    n_disc = np.zeros((nr, n), dtype=np.int64)
-    for b0 in range(0, n, _BATCH):
-        b1 = min(b0 + _BATCH, n)
-        lists = [hp.query_disc(skymap.nside, vec[k], r_query, inclusive=False, nest=skymap.nest)
-                 for k in range(b0, b1)]
-        lens = np.fromiter((len(p) for p in lists), dtype=np.int64, count=b1 - b0)
-        pix = np.concatenate(lists) if lists else np.zeros(0, np.int64)
-        owner = np.repeat(np.arange(b1 - b0), lens)
-        pv = np.array(hp.pix2vec(skymap.nside, pix, nest=skymap.nest))
-        cosd = np.einsum("ij,ji->i", vec[b0:b1][owner], pv)
-        vals, w = skymap.lookup(pix)
-        ok = w > 0
-        vals = np.where(ok, vals, 0.0).astype(np.float64)
-        m = b1 - b0
-        for r in range(nr):
-            for region, sel in (("disc", cosd >= cos_in[r]), ("annulus", (cosd < cos_in[r]) & (cosd >= cos_out[r]))):
-                total = np.bincount(owner, weights=sel, minlength=m)
-                good = np.bincount(owner, weights=sel & ok, minlength=m)
-                s = np.bincount(owner, weights=vals * (sel & ok), minlength=m)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    mean = np.where(good > 0, s / np.maximum(good, 1), np.nan)
-                    frac = np.where(total > 0, 1.0 - good / np.maximum(total, 1), 1.0)
-                if region == "disc":
-                    disc_mean = mean
-                    f_disc[r, b0:b1] = frac
-                    n_disc[r, b0:b1] = total
-                else:
-                    temps[r, b0:b1] = disc_mean - mean
-                    f_ann[r, b0:b1] = frac
-        if progress is not None:
-            progress(b1, n)
-    usable = np.all(np.isfinite(temps) & (f_disc <= max_masked_fraction) & (f_ann <= max_masked_fraction), axis=0)
-    return ApertureResult(temps, f_disc, f_ann, n_disc, usable, radii)
+    fmax = _check_fraction(max_masked_fraction)
+    if progress is not None and not callable(progress):
+        raise InputError(f"progress must be a callable(done, total) or None; got {type(progress).__name__}")
+    expected = math.pi * radii.min() ** 2 / skymap.pixel_area_arcmin2
+    if expected < 3.0:
+        warnings.warn(f"aperture radius {radii.min():g} arcmin holds only ~{expected:.1f} pixel centres at nside "
+                      f"{skymap.nside} (pixel size {skymap.pixel_size_arcmin:.2f} arcmin); the aperture temperature "
+                      f"is dominated by pixelisation", PairvelWarning, stacklevel=2)
+    return _measure(skymap, ra, dec, radii, fmax, progress)
 
 
 def aperture_temperatures(hpx_map, ra_deg, dec_deg, radius_arcmin, *, nest=False):
@@ -140,17 +220,17 @@ def aperture_temperatures(hpx_map, ra_deg, dec_deg, radius_arcmin, *, nest=False
     Parameters
     ----------
     hpx_map : ndarray of shape (12 nside^2,), uK
-        UNSEEN and NaN pixels are left out of the means.
+        Full-sky map; UNSEEN and NaN pixels are left out of the means.
     ra_deg, dec_deg : ndarray of shape (N,), degrees
-    radius_arcmin : float or sequence of float
+    radius_arcmin : float or sequence of float, arcmin
         Disc radius theta (annulus theta..sqrt(2) theta).
     nest : bool, default False
         Ordering of ``hpx_map``.
 
     Returns
     -------
-    ndarray of shape (N,) for one radius, (n_radii, N) for several, uK; nan where the disc or
-    annulus holds no usable pixel.
+    ndarray of shape (N,) for a scalar radius, (n_radii, N) for a sequence, uK
+        NaN where the disc or the annulus holds no usable pixel.
 
     Examples
     --------
@@ -159,69 +239,102 @@ def aperture_temperatures(hpx_map, ra_deg, dec_deg, radius_arcmin, *, nest=False
     >>> float(aperture_temperatures(m, [10.0], [20.0], 30.0)[0])
     0.0
     """
-    res = measure_apertures(SkyMap.from_array(hpx_map, nest=nest), ra_deg, dec_deg, radius_arcmin,
-                            max_masked_fraction=1.0)
+    skymap = SkyMap.from_array(hpx_map, nest=nest)
+    ra, dec = _check_positions(ra_deg, dec_deg)
+    radii = _check_radii(radius_arcmin)
+    res = _measure(skymap, ra, dec, radii, 1.0, None)
     return res.temperatures[0] if np.ndim(radius_arcmin) == 0 else res.temperatures
 
 
-def random_positions_in_footprint(skymap: SkyMap, n: int, *, seed=None):
-    """``n`` positions uniform over the usable pixels of ``skymap`` (ra, dec in degrees).
-
-    A usable pixel is drawn at random, then a point uniform within it (rejection in a small cap
-    around its centre), so positions are not tied to pixel centres.
-    """
-    import healpy as hp
-
-    rng = as_generator(seed)
-    usable = skymap.usable_pixels()
-    if usable.size == 0:
-        raise MapError(f"map {skymap.path}: no usable pixels to place random apertures on")
-    ra_out = np.empty(0)
-    dec_out = np.empty(0)
-    cap = 1.5 * hp.nside2resol(skymap.nside)
-    while ra_out.size < n:
-        k = max(2 * (n - ra_out.size), 64)
-        pix = usable[rng.integers(0, usable.size, k)]
-        theta_c, phi_c = hp.pix2ang(skymap.nside, pix, nest=skymap.nest)
-        # uniform in a cap of radius `cap` around the pixel centre, keep points that land in the pixel
-        cos_r = 1.0 - rng.uniform(0, 1, k) * (1.0 - np.cos(cap))
-        sin_r = np.sqrt(1.0 - cos_r**2)
-        az = rng.uniform(0, 2 * np.pi, k)
-        centre = np.column_stack([np.sin(theta_c) * np.cos(phi_c), np.sin(theta_c) * np.sin(phi_c), np.cos(theta_c)])
-        east = np.column_stack([-np.sin(phi_c), np.cos(phi_c), np.zeros(k)])
-        north = np.cross(centre, east)
-        v = centre * cos_r[:, None] + sin_r[:, None] * (np.cos(az)[:, None] * east + np.sin(az)[:, None] * north)
-        keep = hp.vec2pix(skymap.nside, v[:, 0], v[:, 1], v[:, 2], nest=skymap.nest) == pix
-        ra, dec = hp.vec2ang(v[keep], lonlat=True)
-        ra_out = np.concatenate([ra_out, ra])
-        dec_out = np.concatenate([dec_out, dec])
-    return ra_out[:n], dec_out[:n]
+def _candidates(skymap: SkyMap, usable_pix: np.ndarray, k: int, rng: np.random.Generator):
+    """k positions uniform over the area of the usable pixels (ra, dec in degrees)."""
+    nside = skymap.nside
+    levels = min(_SUBPIXEL_LEVELS, 29 - int(round(math.log2(nside))))
+    pix = usable_pix[rng.integers(0, usable_pix.size, k)]
+    nest_pix = pix if skymap.nest else hp.ring2nest(nside, pix)
+    # HEALPix pixels have equal areas, and so do the 4^levels NESTED children of each one: a random
+    # child centre is uniform within the pixel to 1/2^levels of its size.
+    child = nest_pix * (4 ** levels) + rng.integers(0, 4 ** levels, k)
+    return hp.pix2ang(nside * 2 ** levels, child, nest=True, lonlat=True)
 
 
-def measure_random_apertures(skymap: SkyMap, n: int, radius_arcmin, *, seed=None, max_masked_fraction=0.1,
-                             max_rounds=50):
-    """Aperture temperatures at ``n`` random positions whose apertures are usable.
+def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws):
+    usable_pix = skymap.usable_pixels()
+    if usable_pix.size == 0:
+        raise MapError(f"map {skymap.path}: no usable pixels to place random apertures on", path=skymap.path)
+    ra_parts, dec_parts, t_parts = [], [], []
+    have, drawn, accepted = 0, 0, 0
+    while have < n:
+        if drawn >= max_draws:
+            raise MapError(f"map {skymap.path}: only {have} of {n} random apertures of {radii.max():g} arcmin found "
+                           f"with at most {fmax:.0%} masked after {drawn} draws; the usable footprint is too small "
+                           f"or too fragmented for this aperture", path=skymap.path)
+        rate = max((accepted + 1) / (drawn + 1), 0.01)
+        k = int(min(max((n - have) / rate * 1.2 + 64, 256), 1 << 20, max_draws - drawn))
+        ra, dec = _candidates(skymap, usable_pix, k, rng)
+        res = _measure(skymap, ra, dec, radii, fmax, None)
+        ok = np.flatnonzero(res.usable)
+        drawn += k
+        accepted += ok.size
+        ok = ok[: n - have]
+        ra_parts.append(ra[ok])
+        dec_parts.append(dec[ok])
+        t_parts.append(res.temperatures[:, ok])
+        have += ok.size
+    return (np.concatenate(ra_parts) if ra_parts else np.zeros(0), np.concatenate(dec_parts) if dec_parts else np.zeros(0),
+            np.concatenate(t_parts, axis=1) if t_parts else np.zeros((radii.size, 0)))
 
-    Positions are drawn with :func:`random_positions_in_footprint`; those whose disc or annulus is
-    too masked (near the edge of the footprint or a mask hole) are redrawn.
+
+def _check_n(n) -> int:
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 0:
+        raise InputError(f"n must be a non-negative integer; got {n!r}")
+    return int(n)
+
+
+def random_positions_in_footprint(skymap: SkyMap, n, *, seed, radius_arcmin, max_masked_fraction,
+                                  max_draws=None):
+    """Random sky positions whose apertures are usable on the map, for the random-position null test.
+
+    Positions are drawn uniformly over the area of the usable pixels (weight > 0), then kept only
+    when their aperture passes the same test as a tracer's in :func:`measure_apertures`; the rest
+    are redrawn.  So the accepted positions are uniform over the region where an aperture is usable.
+
+    Parameters
+    ----------
+    skymap : SkyMap
+    n : int
+        Number of positions wanted.
+    seed : None, int or numpy.random.Generator
+    radius_arcmin : float or sequence of float, arcmin
+        Aperture radii that must all be usable.
+    max_masked_fraction : float
+        As in :func:`measure_apertures`.
+    max_draws : int, optional
+        Give up (MapError) after this many candidates; default max(100 n, 10^5).
 
     Returns
     -------
-    ra, dec : ndarray of shape (n,), degrees
-    temperatures : ndarray of shape (n_radii, n), uK
+    ra_deg, dec_deg : ndarray of shape (n,), degrees
     """
-    rng = as_generator(seed)
+    ra, dec, _ = measure_random_apertures(skymap, n, radius_arcmin, seed=seed,
+                                          max_masked_fraction=max_masked_fraction, max_draws=max_draws)
+    return ra, dec
+
+
+def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_masked_fraction=0.1, max_draws=None):
+    """Random usable positions (see :func:`random_positions_in_footprint`) and their aperture temperatures.
+
+    Returns
+    -------
+    ra_deg, dec_deg : ndarray of shape (n,), degrees
+    temperatures : ndarray of shape (n_radii, n), uK
+        The same values :func:`measure_apertures` gives at those positions.
+    """
+    if not isinstance(skymap, SkyMap):
+        raise InputError(f"skymap must be a pairvel SkyMap (see read_map); got {type(skymap).__name__}")
+    n = _check_n(n)
     radii = _check_radii(radius_arcmin)
-    ra_all, dec_all, t_all = [], [], []
-    have = 0
-    for _ in range(max_rounds):
-        want = n - have
-        ra, dec = random_positions_in_footprint(skymap, int(want * 1.2) + 16, seed=rng)
-        res = measure_apertures(skymap, ra, dec, radii, max_masked_fraction=max_masked_fraction)
-        ok = np.flatnonzero(res.usable)[:want]
-        ra_all.append(ra[ok]); dec_all.append(dec[ok]); t_all.append(res.temperatures[:, ok])
-        have += ok.size
-        if have >= n:
-            return np.concatenate(ra_all), np.concatenate(dec_all), np.concatenate(t_all, axis=1)
-    raise MapError(f"map {skymap.path}: could not place {n} random apertures of {radii.max():g} arcmin with at most "
-                   f"{max_masked_fraction:.0%} masked after {max_rounds} rounds; is the footprint too small?")
+    fmax = _check_fraction(max_masked_fraction)
+    rng = as_generator(seed)
+    limit = max(100 * n, 100_000) if max_draws is None else _check_n(max_draws)
+    return _draw_usable(skymap, n, rng, radii, fmax, limit)

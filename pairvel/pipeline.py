@@ -170,7 +170,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         skymap = read_map(cfg.map.path, field=cfg.map.field, unit=cfg.map.unit,
                           nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
         if cfg.map.mask_path is not None:
-            mask = read_mask(cfg.map.mask_path, nside=skymap.nside)
+            mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
+                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
             skymap = skymap.with_mask(mask)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
         temps, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
