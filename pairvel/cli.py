@@ -118,10 +118,14 @@ def _cmd_mock(args) -> int:
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
         options["tau_mean"] = args.tau_mean
-    truth = make_mock_survey(args.out, **options)
+    truth = make_mock_survey(args.out, **options, progress=None if args.quiet else _say)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
     return EXIT_OK
+
+
+def _say(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
 
 
 def _short_warning(message, category, filename, lineno, file=None, line=None):
