@@ -99,10 +99,10 @@ def _gaussian_fields(shape, cell, cosmo, rng):
     amp = np.sqrt(linear_power(np.sqrt(k2), 0.0, cosmo=cosmo) / cell**3)
     amp[0, 0, 0] = 0.0
     dk = white * amp
-    delta = np.fft.irfftn(dk, s=shape).astype(np.float32)
+    delta = np.fft.irfftn(dk, s=shape, axes=(0, 1, 2)).astype(np.float32)
     u = []
     for kk in (kx[:, None, None], ky[None, :, None], kz[None, None, :]):
-        u.append(np.fft.irfftn(1j * dk * kk / k2, s=shape).astype(np.float32))
+        u.append(np.fft.irfftn(1j * dk * kk / k2, s=shape, axes=(0, 1, 2)).astype(np.float32))
     return delta, u
 
 
