@@ -5,11 +5,14 @@ patch, observed at 150 GHz by the Skerry Millimetre Telescope.  Steps:
 
 1. A Gaussian linear density field at z = 0 on an FFT grid enclosing the light cone, drawn from
    :func:`pairvel.theory.linear_power`; the linear velocity from the continuity equation,
-   v(k) = i a H f D delta_0(k) k / k^2, each tracer scaled to its own redshift.
+   v(k) = i a H f D delta_0(k) k / k^2, each tracer scaled to its own redshift.  The grid axes
+   are turned so that the first one points at the centre of the footprint, which keeps the box
+   tight around the cone wherever the patch lies on the sky.
 2. Tracers Poisson-sampled from n (1 + b D(z) delta_0) (linear bias b, clipped at zero, at constant
    comoving density), uniform within their cell, with a log-mass proxy and an optical depth
    tau_i proportional to M^(2/3) with mean tau_mean.  Redshifts are cosmological (no redshift-space
-   distortion).
+   distortion, no peculiar-velocity Doppler shift), so the pipeline's comoving positions computed
+   from (ra, dec, z) with the same cosmology are the tracers' true positions.
 3. Each tracer is painted as a beam-shaped source: kSZ dT_i = -tau_i T_CMB v_r,i / c with solid-angle
    integral dT_i pi theta_ap^2 (so an ideal aperture of radius theta_ap returns dT_i: tau is the
    aperture optical depth), and a negative thermal-SZ term that grows with mass and redshift.
@@ -28,6 +31,7 @@ __all__ = ["MockTruth", "make_mock_survey", "load_cmb_cl", "SURVEY_NAME", "TELES
 import json
 import math
 import time
+import warnings
 from dataclasses import asdict, dataclass, field
 from importlib import resources
 from pathlib import Path
@@ -37,7 +41,7 @@ import numpy as np
 from ._rng import as_generator
 from .constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
 from .cosmology import DEFAULT_COSMOLOGY, Cosmology
-from .errors import InputError, OutputError
+from .errors import InputError, OutputError, PairvelWarning
 from .geometry import unit_vectors
 
 SURVEY_NAME = "Larkspur Cluster Survey"
@@ -47,16 +51,53 @@ MAP_FILE = "skerry_150ghz_partial.fits"
 _DEFAULT_EDGES = np.arange(0.0, 301.0, 20.0)
 _TREND_SIGMA_Z = 0.01  # the pipeline's default trend.sigma_z
 _TSZ_F150 = -0.95333  # x coth(x/2) - 4 at 150 GHz, T_CMB = 2.72548 K (Carlstrom et al. 2002)
+_MAX_CELLS = 50_000_000  # about 3 GB at the peak of the field synthesis
 
 
 @dataclass(frozen=True)
 class MockTruth:
-    """What a mock survey holds; also written to truth.json."""
+    """What a mock survey holds; also written to truth.json (with a few descriptive extras).
+
+    Attributes
+    ----------
+    n_tracers : int
+        Tracers written (a Poisson draw around the requested number).
+    tau_mean : float
+        Mean injected aperture optical depth (see ``make_mock_survey``).
+    bias : float
+        Linear bias of the tracer sampling.
+    seed : int or None
+        The seed used (drawn from fresh entropy and recorded when None was passed; None when a
+        Generator was passed).
+    options : dict
+        Every option of the call, the cosmology included.
+    edges_mpc : list of float, Mpc
+        Separation bin edges of the curves below (0-300 Mpc in 20 Mpc steps).
+    v12_3d_realised_km_s : list of float, km/s
+        <(v_i - v_j) . rhat_ij> over the tracers' pairs.
+    v12_los_realised_km_s : list of float, km/s
+        The Ferreira estimator on the tracers' true line-of-sight velocities after the pipeline's
+        default redshift-trend removal: what the kSZ measurement sees, per unit tau T_CMB / c.
+    v12_linear_km_s : list of float, km/s
+        Linear theory at ``z_eff`` with ``bias``.
+    z_eff : float
+        Pair-weighted mean redshift.
+    aperture_response : float
+        Slope of the measured compensated-aperture temperature against the injected dT on a
+        noiseless kSZ-only map (nan when no aperture could be measured).
+    clipped_cell_fraction : float
+        Fraction of grid cells whose biased density 1 + b D delta was negative and set to zero.
+    files : dict
+    timings_s : dict
+    position_roundtrip_mpc : float, Mpc
+        Largest distance between a tracer's true position and the one recomputed from its
+        catalogue (ra, dec, z) by :func:`pairvel.geometry.comoving_positions`.
+    """
 
     n_tracers: int
     tau_mean: float
     bias: float
-    seed: int
+    seed: int | None
     options: dict
     edges_mpc: list
     v12_3d_realised_km_s: list
@@ -67,27 +108,88 @@ class MockTruth:
     clipped_cell_fraction: float
     files: dict = field(default_factory=dict)
     timings_s: dict = field(default_factory=dict)
+    position_roundtrip_mpc: float = 0.0
 
 
 def load_cmb_cl():
-    """The shipped lensed CMB TT spectrum: (ell, C_l in uK^2); see pairvel/data/README.md."""
+    """The shipped lensed CMB TT power spectrum (see pairvel/data/README.md for how it was made).
+
+    Returns
+    -------
+    ell : ndarray of shape (8001,), int
+        Multipoles 0..8000.
+    cl : ndarray of shape (8001,), uK_CMB^2
+        C_l (not D_l); zero at ell = 0 and 1.
+    """
     text = resources.files("pairvel").joinpath("data/cmb_cl_tt_lensed.txt").read_text()
     table = np.loadtxt(text.splitlines(), comments="#")
     return table[:, 0].astype(int), table[:, 1]
 
 
-def _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, margin):
-    """Bounding box of the light cone from a dense sample of its boundary."""
+def _check_options(o: dict) -> None:
+    """One-line errors naming the option, what it must be and what it got."""
+    def need(ok, name, must):
+        if not ok:
+            raise InputError(f"mock option '{name}' must be {must}; got {o[name]!r}", key=name)
+
+    def is_num(name):
+        v = o[name]
+        return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool) and math.isfinite(v)
+
+    for name in ("ra_min", "ra_max", "dec_min", "dec_max", "z_min", "z_max", "tau_mean", "bias", "cell_mpc",
+                 "beam_fwhm_arcmin", "noise_uk_arcmin", "aperture_radius_arcmin", "tsz_amplitude_uk"):
+        need(is_num(name), name, "a finite number")
+    n = o["n_tracers"]
+    need(isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 2, "n_tracers", "an integer >= 2")
+    ns = o["nside"]
+    need(isinstance(ns, (int, np.integer)) and not isinstance(ns, bool) and 1 <= ns <= 2**13 and not ns & (ns - 1),
+         "nside", "a power of 2 between 1 and 8192")
+    need(-90 <= o["dec_min"] < 90, "dec_min", "in [-90, 90)")
+    need(o["dec_min"] < o["dec_max"] <= 90, "dec_max", f"in (dec_min = {o['dec_min']}, 90]")
+    need(o["ra_min"] < o["ra_max"] <= o["ra_min"] + 360, "ra_max",
+         f"greater than ra_min = {o['ra_min']} and at most ra_min + 360")
+    need(0 < o["z_min"] <= 3, "z_min", "in (0, 3]")
+    need(o["z_min"] < o["z_max"] <= 3, "z_max", f"in (z_min = {o['z_min']}, 3]")
+    for name in ("cell_mpc", "beam_fwhm_arcmin", "aperture_radius_arcmin"):
+        need(o[name] > 0, name, "> 0")
+    for name in ("tau_mean", "bias", "noise_uk_arcmin"):
+        need(o[name] >= 0, name, ">= 0")
+    need(isinstance(o["include_cmb"], (bool, np.bool_)), "include_cmb", "True or False")
+    need(isinstance(o["cosmo"], Cosmology), "cosmo", "a pairvel Cosmology")
+    need(o["progress"] is None or callable(o["progress"]), "progress", "None or a callable(str)")
+
+
+def _patch_frame(ra_min, ra_max, dec_min, dec_max) -> np.ndarray:
+    """Rotation (3, 3) whose rows are the unit vectors towards the footprint centre, east and north.
+
+    Grid coordinates are q = frame @ x; equatorial ones x = q @ frame for row vectors.  For a patch
+    centred on RA = 0, Dec = 0 the frame is exactly the identity.
+    """
+    ra_c = math.radians(ra_min + 0.5 * (ra_max - ra_min))
+    dec_c = math.radians(0.5 * (dec_min + dec_max))
+    centre = [math.cos(dec_c) * math.cos(ra_c), math.cos(dec_c) * math.sin(ra_c), math.sin(dec_c)]
+    east = [-math.sin(ra_c), math.cos(ra_c), 0.0]
+    north = [-math.sin(dec_c) * math.cos(ra_c), -math.sin(dec_c) * math.sin(ra_c), math.cos(dec_c)]
+    return np.array([centre, east, north])
+
+
+def _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, margin, frame=None):
+    """Bounding box, in the grid frame, of the light cone from a dense sample of its boundary."""
     ra = np.linspace(ra_min, ra_max, 41)
     dec = np.linspace(dec_min, dec_max, 41)
     rr, dd = np.meshgrid(ra, dec)
     u = unit_vectors(rr.ravel(), dd.ravel())
+    if frame is not None:
+        u = u @ frame.T
     pts = np.concatenate([u * d for d in np.linspace(d_min, d_max, 41)])
     return pts.min(axis=0) - margin, pts.max(axis=0) + margin
 
 
 def _gaussian_fields(shape, cell, cosmo, rng):
-    """delta_0(x) and the velocity potential gradient u_0(x) = IFFT[i delta_0(k) k / k^2] (Mpc)."""
+    """delta_0(x) and the velocity potential gradient u_0(x) = IFFT[i delta_0(k) k / k^2] (Mpc).
+
+    The z = 0 linear velocity is a H0 f(0) u_0; at redshift z it is a H(z) f(z) D(z) u_0.
+    """
     from .theory import linear_power
 
     kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
@@ -118,13 +220,19 @@ def _gaussian_alm(cl, lmax, rng):
 
 
 def _inverse_distance(cosmo, z_max):
+    """z(d) by linear interpolation on a 6001-point grid (relative error ~1e-9 in distance)."""
     zg = np.linspace(0.0, z_max * 1.2 + 0.05, 6001)
     dg = cosmo.comoving_distance_mpc(zg)
     return lambda d: np.interp(d, dg, zg)
 
 
 def _paint(nside, ra, dec, integral_uk_sr, fwhm_arcmin):
-    """Beam-shaped sources: (pixel indices, values in uK) summed over overlapping sources."""
+    """Beam-shaped sources sampled at pixel centres: (pixel indices, values in uK), overlaps summed.
+
+    Each source is a circular Gaussian of the beam FWHM with the given solid-angle integral,
+    evaluated out to 5 sigma; like the CMB from ``alm2map``, the map is point-sampled, so a
+    source's pixel sum times the pixel area equals its integral only on average over positions.
+    """
     import healpy as hp
 
     sigma = fwhm_arcmin * ARCMIN_RAD / math.sqrt(8 * math.log(2))
@@ -148,6 +256,7 @@ def _paint(nside, ra, dec, integral_uk_sr, fwhm_arcmin):
 
 
 def _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg):
+    """RING pixels of the footprint grown by ``margin_deg`` (sorted)."""
     import healpy as hp
 
     th1 = np.radians(90 - min(dec_max + margin_deg, 90))
@@ -155,74 +264,131 @@ def _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg):
     pix = hp.query_strip(nside, th1, th2, inclusive=True)
     lon, _ = hp.pix2ang(nside, pix, lonlat=True)
     dra = (lon - 0.5 * (ra_min + ra_max) + 180.0) % 360.0 - 180.0
-    half = 0.5 * (ra_max - ra_min) + margin_deg / max(math.cos(math.radians(max(abs(dec_min), abs(dec_max)) + margin_deg)), 0.05)
+    cos_edge = math.cos(math.radians(min(max(abs(dec_min), abs(dec_max)) + margin_deg, 90.0)))
+    half = 0.5 * (ra_max - ra_min) + margin_deg / max(cos_edge, 0.05)
     return np.sort(pix[np.abs(dra) <= half])
+
+
+def _plain(obj):
+    """JSON-ready copy: numpy scalars to Python numbers, non-finite floats to None."""
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    return obj
 
 
 def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_max=20.0, dec_min=-10.0,
                      dec_max=10.0, z_min=0.15, z_max=0.55, tau_mean=2.0e-3, bias=0.4, cell_mpc=6.0,
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
-                     tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202, progress=None):
+                     tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
+                     progress=None) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json) into a new folder.
 
     Parameters
     ----------
     out_dir : path-like
-        New (or empty) folder.
-    n_tracers : int
-        Expected number of tracers (Poisson).
-    nside : int
-        HEALPix resolution of the map.
-    ra_min, ra_max, dec_min, dec_max : float, degrees
-        The footprint (ra_min may be negative: the patch crosses RA = 0).
-    z_min, z_max : float
-        Redshift range of the tracers.
-    tau_mean : float
-        Mean aperture optical depth injected.
-    bias : float
-        Linear bias of the tracer sampling.
-    cell_mpc : float
-        FFT grid cell, comoving Mpc.
-    beam_fwhm_arcmin, noise_uk_arcmin : float
-        Gaussian beam and white-noise level of the map.
-    aperture_radius_arcmin : float
+        New or empty folder; created if missing.
+    n_tracers : int, default 30000
+        Expected number of tracers in the light cone (the realised number is a Poisson draw).
+    nside : int, default 2048
+        HEALPix resolution of the map (RING ordering).
+    ra_min, ra_max, dec_min, dec_max : float, degrees, default -20, 20, -10, 10
+        The footprint, a RA-Dec rectangle (``ra_min`` may be negative: the patch then crosses
+        RA = 0; catalogue RAs are written in [0, 360)).
+    z_min, z_max : float, default 0.15, 0.55
+        Redshift range of the tracers, z_min <= z < z_max.
+    tau_mean : float, default 2e-3
+        Mean injected aperture optical depth (definition in Notes).
+    bias : float, default 0.4
+        Linear bias b of the tracer sampling.
+    cell_mpc : float, Mpc, default 6.0
+        Cell of the FFT grid; also sets the smallest scale of the velocity field.
+    beam_fwhm_arcmin : float, arcmin, default 1.4
+        Gaussian beam applied to the CMB and giving the shape of the painted sources.
+    noise_uk_arcmin : float, uK-arcmin, default 15.0
+        White-noise level of the map.
+    aperture_radius_arcmin : float, arcmin, default 2.1
         theta_ap in the definition of the injected optical depth.
-    include_cmb : bool
-        Add primary CMB (full-sky synthesis; the slow step at high nside).
-    tsz_amplitude_uk : float
-        Thermal-SZ aperture decrement of a 10^14.5 Msun tracer at z = 0.35, before the 150 GHz
-        spectral factor (negative at 150 GHz).
-    seed : int
+    include_cmb : bool, default True
+        Add the lensed primary CMB (a full-sky synthesis up to lmax = min(3 nside - 1, 8000);
+        the slow step at high nside).
+    tsz_amplitude_uk : float, uK, default 4.0
+        Thermal-SZ aperture decrement of a 10^14.5 Msun tracer at z = 0.35 before the 150 GHz
+        spectral factor f = -0.953 (the map gets f times this, scaling as M^(5/3) (1 + z)^2).
+    cosmo : Cosmology, default DEFAULT_COSMOLOGY
+        Power spectrum, growth, distances; the pipeline must use the same one for the written
+        redshifts to map back to the true positions.
+    seed : None, int or numpy Generator, default 20261202
+        None draws fresh entropy, which is recorded in the truth.
+    progress : callable(str), optional
+        Receives one-line progress messages.
 
     Returns
     -------
     MockTruth
+        Also written, with descriptive extras, to ``out_dir/truth.json``.
+
+    Raises
+    ------
+    OutputError
+        ``out_dir`` exists and is not an empty folder.
+    InputError
+        An option is out of range, or the grid would be too large.
+
+    Notes
+    -----
+    Files: ``larkspur_clusters.fits`` (columns ra, dec [deg], z, log_mass) and
+    ``skerry_150ghz_partial.fits`` (float32, uK_CMB, footprint plus a 1 degree margin).
+
+    Each tracer's kSZ temperature is dT_i = -tau_i T_CMB v_r,i / c (v_r > 0 receding), painted as
+    a beam-shaped source whose solid-angle integral is dT_i pi theta_ap^2, so a compensated
+    aperture of radius theta_ap on a noiseless map returns (1 - exp(-theta_ap^2 / 2 sigma_b^2))^2
+    dT_i, i.e. dT_i up to the beam's spill beyond the disc; ``aperture_response`` reports the
+    measured slope of the pixelised aperture.  tau_i is proportional to M_i^(2/3), scaled so that
+    its mean over the written tracers is ``tau_mean``.
     """
     import healpy as hp
     from astropy.table import Table
 
     from .estimator import mean_pairwise_velocity_3d, pairwise_momentum
+    from .geometry import comoving_positions
     from .photometry import measure_apertures
     from .skymap import SkyMap, write_partial_map
     from .theory import binned_pairwise_velocity, growth_factor, growth_rate
     from .trend import remove_redshift_trend
 
-    say = progress or (lambda text: None)
     out = Path(out_dir)
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise OutputError(f"mock folder {out} exists and is not empty; choose a new folder", path=out)
-    if not (0 < z_min < z_max) or not (-90 <= dec_min < dec_max <= 90) or not ra_min < ra_max <= ra_min + 360:
-        raise InputError("mock footprint or redshift range is empty or out of range")
-    if nside < 1 or nside & (nside - 1):
-        raise InputError(f"mock nside must be a power of 2; got {nside}")
+    _check_options(dict(n_tracers=n_tracers, nside=nside, ra_min=ra_min, ra_max=ra_max, dec_min=dec_min,
+                        dec_max=dec_max, z_min=z_min, z_max=z_max, tau_mean=tau_mean, bias=bias, cell_mpc=cell_mpc,
+                        beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
+                        aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
+                        tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo, progress=progress))
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
     rng = as_generator(seed)
+    say = progress or (lambda text: None)
     timings = {}
     t0 = time.perf_counter()
 
-    # 1. Gaussian density and velocity fields at z = 0
+    # 1. Gaussian density and velocity fields at z = 0, on a grid turned towards the footprint
     d_min, d_max = cosmo.comoving_distance_mpc([z_min, z_max])
-    lo, hi = _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, cell_mpc)
+    frame = _patch_frame(ra_min, ra_max, dec_min, dec_max)
+    lo, hi = _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, cell_mpc, frame)
     shape = tuple(int(s) for s in np.ceil((hi - lo) / cell_mpc).astype(int))
+    n_cells = shape[0] * shape[1] * shape[2]
+    if n_cells > _MAX_CELLS:
+        raise InputError(f"mock grid must have at most {_MAX_CELLS:,} cells; got {n_cells:,} "
+                         f"({shape[0]}x{shape[1]}x{shape[2]} of {cell_mpc:g} Mpc): increase cell_mpc or shrink "
+                         f"the footprint or redshift range", key="cell_mpc")
     say(f"mock: Gaussian field on a {shape[0]}x{shape[1]}x{shape[2]} grid of {cell_mpc:g} Mpc cells")
     delta0, u0 = _gaussian_fields(shape, cell_mpc, cosmo, rng)
     timings["fields"] = time.perf_counter() - t0
@@ -233,30 +399,32 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     centres = [lo[i] + cell_mpc * (np.arange(shape[i]) + 0.5) for i in range(3)]
     to_z = _inverse_distance(cosmo, z_max)
     zg = np.linspace(z_min, z_max, 256)
-    dz_growth = np.interp  # (alias for readability below)
     d_grid = growth_factor(zg, cosmo=cosmo)
+    yy, zz = np.meshgrid(centres[1], centres[2], indexing="ij")
     cells_x, cells_y, cells_z, counts = [], [], [], []
     clipped = total = 0
     for ix in range(shape[0]):
         x = centres[0][ix]
-        yy, zz = np.meshgrid(centres[1], centres[2], indexing="ij")
         dist = np.sqrt(x * x + yy**2 + zz**2)
         near = (dist > d_min - cell_mpc) & (dist < d_max + cell_mpc)
         if not near.any():
             continue
-        growth = dz_growth(to_z(dist[near]), zg, d_grid)
+        growth = np.interp(to_z(dist[near]), zg, d_grid)
         dens = 1.0 + bias * growth * delta0[ix][near]
         clipped += int((dens < 0).sum())
         total += dens.size
-        lam = n_bar * cell_mpc**3 * np.clip(dens, 0.0, None)
-        k = rng.poisson(lam)
+        k = rng.poisson(n_bar * cell_mpc**3 * np.clip(dens, 0.0, None))
         iy, iz = np.nonzero(near)
         sel = k > 0
-        cells_x.append(np.full(sel.sum(), ix)); cells_y.append(iy[sel]); cells_z.append(iz[sel]); counts.append(k[sel])
+        cells_x.append(np.full(sel.sum(), ix))
+        cells_y.append(iy[sel])
+        cells_z.append(iz[sel])
+        counts.append(k[sel])
     counts = np.concatenate(counts)
     cx, cy, cz = (np.repeat(np.concatenate(c), counts) for c in (cells_x, cells_y, cells_z))
     pos = np.column_stack([centres[0][cx], centres[1][cy], centres[2][cz]])
     pos += rng.uniform(-0.5 * cell_mpc, 0.5 * cell_mpc, pos.shape)
+    pos = pos @ frame  # grid frame -> equatorial axes
     dist = np.linalg.norm(pos, axis=1)
     ra = np.degrees(np.arctan2(pos[:, 1], pos[:, 0]))
     dec = np.degrees(np.arcsin(pos[:, 2] / dist))
@@ -265,12 +433,16 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     pos, dist, ra, dec = pos[inside], dist[inside], ra[inside] % 360.0, dec[inside]
     cx, cy, cz = cx[inside], cy[inside], cz[inside]
     n = pos.shape[0]
+    if n < 2:
+        raise InputError(f"mock option 'n_tracers' must give at least 2 tracers in the cone; got {n} "
+                         f"(requested {n_tracers})", key="n_tracers")
     z = to_z(dist)
     a = 1.0 / (1.0 + z)
     vel_scale = a * cosmo.hubble_km_s_mpc(z) * growth_rate(z, cosmo=cosmo) * np.interp(z, zg, d_grid)
-    vel = np.column_stack([u[cx, cy, cz] for u in u0]).astype(np.float64) * vel_scale[:, None]
+    vel = np.column_stack([u[cx, cy, cz] for u in u0]).astype(np.float64) @ frame * vel_scale[:, None]
     del delta0, u0
     v_r = np.einsum("ij,ij->i", vel, pos) / dist
+    roundtrip = float(np.max(np.linalg.norm(comoving_positions(ra, dec, z, cosmo=cosmo) - pos, axis=1)))
     # mass proxy: dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^(2/3), mean tau_mean
     uu = rng.uniform(size=n)
     lo_m, hi_m = 10.0 ** (-1.5 * 14.0), 10.0 ** (-1.5 * 15.0)
@@ -318,7 +490,11 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     ksz_only = SkyMap(nside, False, pix_k, val_k, np.ones(pix_k.size, np.float32))
     resp = measure_apertures(ksz_only, ra, dec, aperture_radius_arcmin, max_masked_fraction=1.0).temperatures[0]
     ok = np.isfinite(resp)
-    response = float(np.sum(resp[ok] * dt_ksz[ok]) / np.sum(dt_ksz[ok] ** 2))
+    norm = float(np.sum(dt_ksz[ok] ** 2))
+    response = float(np.sum(resp[ok] * dt_ksz[ok]) / norm) if norm > 0 else math.nan
+    if not math.isfinite(response):
+        warnings.warn(f"mock aperture response could not be measured ({int(ok.sum())} usable apertures, "
+                      f"tau_mean = {tau_mean}); truth.json records it as null", PairvelWarning, stacklevel=2)
     timings["truth"] = time.perf_counter() - t0 - sum(timings.values())
 
     out.mkdir(parents=True, exist_ok=True)
@@ -337,23 +513,27 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = los.p / v_lin
     truth = MockTruth(
-        n_tracers=int(n), tau_mean=float(tau_mean), bias=float(bias), seed=int(seed) if seed is not None else None,
-        options=options, edges_mpc=edges.tolist(), v12_3d_realised_km_s=v3d.tolist(),
+        n_tracers=int(n), tau_mean=float(tau_mean), bias=float(bias),
+        seed=int(seed) if isinstance(seed, (int, np.integer)) else None,
+        options=_plain(options), edges_mpc=edges.tolist(), v12_3d_realised_km_s=v3d.tolist(),
         v12_los_realised_km_s=los.p.tolist(), v12_linear_km_s=v_lin.tolist(), z_eff=z_eff,
         aperture_response=response, clipped_cell_fraction=clipped / max(total, 1),
-        files={"catalogue": CATALOGUE_FILE, "map": MAP_FILE}, timings_s={k: round(v, 2) for k, v in timings.items()})
+        files={"catalogue": CATALOGUE_FILE, "map": MAP_FILE}, timings_s={k: round(v, 2) for k, v in timings.items()},
+        position_roundtrip_mpc=roundtrip)
     record = asdict(truth)
     record.update({
         "scenario": {"survey": SURVEY_NAME, "telescope": TELESCOPE_NAME, "frequency_ghz": 150,
                      "note": "invented names; every number here was generated by pairvel mock"},
         "tau_definition": f"mean aperture optical depth: each tracer's kSZ is a beam-shaped source whose solid-angle "
                           f"integral is dT pi theta_ap^2 with theta_ap = {aperture_radius_arcmin} arcmin",
-        "realised_over_linear": [None if not np.isfinite(x) else float(x) for x in ratio],
+        "realised_over_linear": ratio.tolist(),
         "v12_los_realised_no_trend_removal_km_s": los_raw.p.tolist(),
         "velocity_note": "v12_los_realised is the Ferreira estimator applied to the tracers' true line-of-sight "
-                         f"velocities after the pipeline's redshift-trend removal (sigma_z = {_TREND_SIGMA_Z}), i.e. what "
-                         "the kSZ measurement sees; v12_los_realised_no_trend_removal skips that removal; "
+                         f"velocities after the pipeline's redshift-trend removal (sigma_z = {_TREND_SIGMA_Z}), "
+                         "i.e. what the kSZ measurement sees; v12_los_realised_no_trend_removal skips that removal; "
                          "v12_3d_realised is <(v_i - v_j).rhat_ij> over pairs",
+        "redshift_note": "cosmological redshifts only (no redshift-space distortion); comoving positions recomputed "
+                         "from (ra, dec, z) with the recorded cosmology are the true ones (position_roundtrip_mpc)",
     })
-    (out / "truth.json").write_text(json.dumps(record, indent=2, default=float) + "\n")
+    (out / "truth.json").write_text(json.dumps(_plain(record), indent=2, allow_nan=False) + "\n")
     return truth
