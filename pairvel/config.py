@@ -128,6 +128,10 @@ class NullConfig:
 @dataclass(frozen=True)
 class ComputeConfig:
     n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
+    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
+                                               "the pair pass over; unset: run in this process")
+    n_units: int = _key(16, "spatial work units the pair pass is cut into when a scheduler is used",
+                        bounds=(1, 100000))
 
 
 @dataclass(frozen=True)

@@ -132,6 +132,13 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
     ----------
     Ferreira, Juszkiewicz, Feldman, Davis & Jaffe 1999, ApJ 515, L1.
     """
+    pos, temps2, single, edges, reg, n_jk, zz, want_z = _validate(positions, temperatures, edges, regions, redshifts)
+    sums = pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, n_threads=n_threads)
+    return finalise(sums, edges, single=single, n_jk=n_jk, want_z=want_z)
+
+
+def _validate(positions, temperatures, edges, regions, redshifts):
+    """Check the inputs of :func:`pairwise_momentum`; return them as float64/int64 arrays."""
     pos = _check_positions(positions)
     n = pos.shape[0]
     temps = np.asarray(temperatures, dtype=np.float64)
@@ -155,25 +162,38 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
     zz = np.zeros(n) if not want_z else np.asarray(redshifts, dtype=np.float64)
     if zz.shape != (n,):
         raise InputError(f"redshifts must have shape ({n},); got {zz.shape}")
+    return pos, temps2, single, edges, reg, n_jk, zz, want_z
+
+
+def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, n_threads=None) -> tuple:
+    """One pass of the compiled engine over validated inputs; returns the additive sums
+    (num (M, nb), den, cnt, zsum, jk_num (max(n_jk,1), M, nb), jk_den, jk_cnt).
+
+    The sums of disjoint sets of pairs add, which is what lets work units run anywhere.
+    """
+    n = pos.shape[0]
     nbins = edges.size - 1
     m_sets = temps2.shape[0]
     if n < 2:
-        num = np.zeros((m_sets, nbins)); den = np.zeros(nbins); cnt = np.zeros(nbins, np.int64)
-        zsum = np.zeros(nbins); jk_num = np.zeros((max(n_jk, 1), m_sets, nbins))
-        jk_den = np.zeros((max(n_jk, 1), nbins)); jk_cnt = np.zeros((max(n_jk, 1), nbins), np.int64)
-    else:
-        order, start, dims, xs, us = _prepare(pos, edges[-1])
-        ts = np.ascontiguousarray(temps2[:, order])
-        nt = _threads(n_threads)
-        previous = numba.get_num_threads()
-        numba.set_num_threads(nt)
-        try:
-            uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
-            num, den, cnt, zsum, jk_num, jk_den, jk_cnt = _kernels.pair_sums(
-                xs, us, ts, np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]), start, dims,
-                edges, uniform, n_jk, _n_chunks(nt), want_z)
-        finally:
-            numba.set_num_threads(previous)
+        nj = max(n_jk, 1)
+        return (np.zeros((m_sets, nbins)), np.zeros(nbins), np.zeros(nbins, np.int64), np.zeros(nbins),
+                np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
+    order, start, dims, xs, us = _prepare(pos, edges[-1])
+    ts = np.ascontiguousarray(temps2[:, order])
+    nt = _threads(n_threads)
+    previous = numba.get_num_threads()
+    numba.set_num_threads(nt)
+    try:
+        uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
+        return _kernels.pair_sums(xs, us, ts, np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]),
+                                  start, dims, edges, uniform, n_jk, _n_chunks(nt), want_z)
+    finally:
+        numba.set_num_threads(previous)
+
+
+def finalise(sums, edges, *, single: bool, n_jk: int, want_z: bool) -> PairwiseResult:
+    """Turn the additive sums of :func:`pass_sums` into a :class:`PairwiseResult`."""
+    num, den, cnt, zsum, jk_num, jk_den, jk_cnt = sums
     p = _ratio(num, den[None, :])
     z_eff = None
     if want_z:

@@ -26,6 +26,7 @@ from .config import Config
 from .constants import C_KM_S, T_CMB_UK
 from .covariance import jackknife_covariance, kmeans_regions
 from .errors import InputError, PairvelWarning
+from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
 from .fit import AmplitudeFit, chi2_against_zero, fit_amplitude
 from .geometry import comoving_positions
@@ -207,8 +208,13 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {1 + n_null} temperature sets, {edges.size - 1} bins"):
         stacked = np.vstack([temps[None, :]] + [t[None, :] for t in null_sets])
-        pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                               n_threads=cfg.compute.n_threads)
+        if cfg.compute.scheduler_address:
+            pr = pairwise_momentum_units(positions, stacked, edges, regions=regions, redshifts=cat.z,
+                                         n_units=cfg.compute.n_units, scheduler=cfg.compute.scheduler_address,
+                                         n_threads=cfg.compute.n_threads)
+        else:
+            pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
+                                   n_threads=cfg.compute.n_threads)
         progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
 
     with progress.stage("covariance, template and fit"):
