@@ -5,7 +5,7 @@ import pytest
 
 from pairvel.constants import C_KM_S, T_CMB_UK
 from pairvel.errors import InputError
-from pairvel.estimator import mean_pairwise_velocity_3d, pairwise_momentum
+from pairvel.estimator import mean_pairwise_velocity_3d, pairwise_momentum, pairwise_momentum_cross
 from pairvel.geometry import unit_vectors
 
 
@@ -131,3 +131,32 @@ def test_bad_inputs():
         pairwise_momentum(pos, np.array([0, np.nan, 0]), [0, 1])
     with pytest.raises(InputError, match=r"separation edges must be"):
         pairwise_momentum(pos, np.zeros(3), [0, 5, 5])
+
+
+def test_cross_pairs_match_direct_cross_loop():
+    pos_a, rng = sky(300, 21)
+    pos_b, _ = sky(900, 22)
+    pos_b[0] = pos_a[0]  # a shared position is never a pair
+    ta, tb = rng.normal(size=(2, 300)), rng.normal(size=(2, 900))
+    ra, rb = rng.integers(0, 5, 300), rng.integers(0, 5, 900)
+    edges = np.linspace(0, 120, 7)
+    res = pairwise_momentum_cross(pos_a, ta, pos_b, tb, edges, regions_a=ra, regions_b=rb)
+    # direct numpy loop over all (a, b) pairs (analytic formula)
+    d = pos_a[:, None, :] - pos_b[None, :, :]
+    r = np.linalg.norm(d, axis=2)
+    ua = pos_a / np.linalg.norm(pos_a, axis=1)[:, None]
+    ub = pos_b / np.linalg.norm(pos_b, axis=1)[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c = np.einsum("ijk,ijk->ij", d, ua[:, None, :] + ub[None, :, :]) / (2 * r)
+    b = np.searchsorted(edges, r, side="right") - 1
+    ok = (b >= 0) & (b < 6) & (r > 0)
+    den = np.bincount(b[ok], weights=c[ok] ** 2, minlength=6)
+    num = np.array([np.bincount(b[ok], weights=((ta[m][:, None] - tb[m][None, :]) * c)[ok], minlength=6)
+                    for m in range(2)])
+    np.testing.assert_array_equal(res.pair_counts, np.bincount(b[ok], minlength=6))
+    np.testing.assert_allclose(res.denominator, den, rtol=1e-10)
+    np.testing.assert_allclose(res.p, -num / den, rtol=1e-9)
+    keep = ok & (ra[:, None] != 3) & (rb[None, :] != 3)
+    jk_den = np.bincount(b[keep], weights=c[keep] ** 2, minlength=6)
+    jk_num = np.bincount(b[keep], weights=((ta[0][:, None] - tb[0][None, :]) * c)[keep], minlength=6)
+    np.testing.assert_allclose(res.p_jk[0, 3], -jk_num / jk_den, rtol=1e-9)
