@@ -70,10 +70,9 @@ def _closing_summary(result, out: Path) -> str:
         f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
         f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
     ]
-    if result.null is not None:
-        n = result.null
-        lines.append(f"  null (random positions, {n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / "
-                     f"{n.dof} (PTE {n.pte_mean:.2g})")
+    for n in result.nulls:
+        lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
+                     f"(PTE {n.pte_mean:.2g}): {'pass' if n.passed else 'FAIL'}")
     lines.append(f"  outputs: {out}")
     return "\n".join(lines)
 

@@ -123,6 +123,12 @@ class TheoryConfig:
 class NullConfig:
     n_random: int = _key(10, "realisations of the null test with apertures at random unmasked sky positions",
                          bounds=(0, 10000))
+    n_shuffle: int = _key(10, "realisations of the null test with temperatures shuffled among tracers",
+                          bounds=(0, 10000))
+    n_shuffle_z: int = _key(10, "realisations with temperatures shuffled within redshift slices", bounds=(0, 10000))
+    z_slice_width: float = _key(0.02, "width of the redshift slices for the within-slice shuffle", bounds=(1e-4, 1.0))
+    pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
+                                bounds=(0.0, 0.5))
 
 
 @dataclass(frozen=True)

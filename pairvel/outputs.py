@@ -87,7 +87,8 @@ def summary_dict(result) -> dict:
         "template": {"kind": "linear-theory mean pairwise velocity",
                      "bias": result.config.theory.bias, "z_eff": result.z_eff,
                      "meaning": "p_model(r) = tau_mean * T_CMB * v12(r) / c"},
-        "null_test": None if result.null is None else result.null.as_dict(),
+        "null_tests": [n.as_dict() for n in result.nulls],
+        "null_tests_passed": all(n.passed for n in result.nulls),
         "selection": result.selection,
         "config": result.config.as_dict(),
         "provenance": result.provenance,
@@ -135,18 +136,17 @@ def _write_tables(result, folder: Path) -> None:
             fits.ImageHDU(result.edges, name="EDGES_MPC")]
     fits.HDUList(hdus).writeto(folder / "covariance.fits")
 
-    if result.null is not None:
+    for null in result.nulls:
         nt = Table()
         nt["r_mid"] = result.r_mid
         nt["r_mid"].unit = "Mpc"
-        nt["p_mean_uK"] = result.null.p.mean(axis=0)
-        nt["p_scatter_uK"] = result.null.p.std(axis=0, ddof=1) if result.null.n_real > 1 else np.nan
-        for k in range(result.null.n_real):
-            nt[f"p_real{k:03d}_uK"] = result.null.p[k]
-        nt.meta["description"] = "null test: apertures at random unmasked sky positions, catalogue geometry kept"
-        nt.meta["chi2_each"] = [float(x) for x in result.null.chi2]
-        nt.meta["pte_each"] = [float(x) for x in result.null.pte]
-        nt.write(folder / "null_random.ecsv", format="ascii.ecsv")
+        nt["p_mean_uK"] = null.p.mean(axis=0)
+        nt["p_mean_err_uK"] = null.mean_error
+        for k in range(null.n_real):
+            nt[f"p_real{k:03d}_uK"] = null.p[k]
+        nt.meta["description"] = f"null test: {null.description}"
+        nt.meta.update({k: v for k, v in null.as_dict().items() if k != "description"})
+        nt.write(folder / f"null_{null.kind}.ecsv", format="ascii.ecsv")
 
 
 def _plot(result, path: Path) -> None:
@@ -158,10 +158,12 @@ def _plot(result, path: Path) -> None:
     r = result.r_mid
     fig, ax = plt.subplots(figsize=(7.0, 4.6), constrained_layout=True)
     ax.axhline(0.0, color="0.6", lw=0.8)
-    if result.null is not None:
-        spread = result.null.p.std(axis=0, ddof=1) if result.null.n_real > 1 else np.zeros_like(r)
-        ax.fill_between(r, result.null.p.mean(axis=0) - spread, result.null.p.mean(axis=0) + spread,
-                        color="0.85", label=f"null: random positions (mean ± 1σ of {result.null.n_real})")
+    random = [n for n in result.nulls if n.kind == "random_positions"]
+    if random:
+        n = random[0]
+        spread = n.p.std(axis=0, ddof=1) if n.n_real > 1 else np.zeros_like(r)
+        ax.fill_between(r, n.p.mean(axis=0) - spread, n.p.mean(axis=0) + spread,
+                        color="0.85", label=f"null: random positions (mean ± 1σ of {n.n_real})")
     ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
                 ms=4, capsize=2, label="measured (jackknife errors)")
     if (~result.in_fit).any():
@@ -181,6 +183,27 @@ def _plot(result, path: Path) -> None:
     plt.close(fig)
 
 
+def _plot_nulls(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, len(result.nulls), figsize=(4.2 * len(result.nulls), 3.6), sharey=True,
+                             constrained_layout=True, squeeze=False)
+    for ax, n in zip(axes[0], result.nulls):
+        ax.axhline(0.0, color="0.6", lw=0.8)
+        for k in range(n.n_real):
+            ax.plot(result.r_mid, n.p[k], color="0.8", lw=0.7)
+        ax.errorbar(result.r_mid, n.p.mean(axis=0), yerr=n.mean_error, fmt="o", ms=3, capsize=2, color="C2")
+        ax.set_title(f"{n.kind}: χ² = {n.chi2_mean:.1f}/{n.dof}, PTE = {n.pte_mean:.2f} "
+                     f"({'pass' if n.passed else 'FAIL'})", fontsize=8.5)
+        ax.set_xlabel("comoving separation r [Mpc]")
+    axes[0][0].set_ylabel("null p(r) [μK]: realisations and mean")
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def _report(result, summary: dict) -> str:
     f = result.fit
     lines = [
@@ -192,14 +215,19 @@ def _report(result, summary: dict) -> str:
         f"best fit: {f.chi2_min:.2f} for {f.dof} dof (PTE {f.pte_min:.3g})",
         f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
         "",
-        "## Null test: apertures at random sky positions",
+        "## Null tests",
+        "",
+        f"Mean curve of each kind against zero; a kind passes when its PTE exceeds "
+        f"{result.config.nulls.pte_threshold:g}.",
+        "",
+        "| null test | realisations | chi2 (mean curve) | dof | PTE | result | realisations with PTE < 0.05 |",
+        "|---|---:|---:|---:|---:|:---:|---:|",
     ]
-    if result.null is None:
-        lines.append("- not run (nulls.n_random = 0)")
-    else:
-        n = result.null
-        lines += [f"- {n.n_real} realisations; mean curve chi2 = {n.chi2_mean:.2f} for {n.dof} bins (PTE {n.pte_mean:.3g})",
-                  f"- fraction of realisations with PTE < 0.05: {np.mean(n.pte < 0.05):.2f}"]
+    for n in result.nulls:
+        lines.append(f"| {n.description} | {n.n_real} | {n.chi2_mean:.2f} | {n.dof} | {n.pte_mean:.3g} | "
+                     f"{'pass' if n.passed else 'FAIL'} | {int(np.sum(n.pte < 0.05))} |")
+    if not result.nulls:
+        lines.append("| (none configured) | | | | | | |")
     lines += ["", "## Measured curve", "",
               "| r_min | r_max | p [uK] | error [uK] | pairs | model [uK] | fitted |",
               "|---:|---:|---:|---:|---:|---:|:---:|"]
@@ -216,7 +244,7 @@ def _report(result, summary: dict) -> str:
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
-              "", "Files: pairwise.ecsv, covariance.fits, null_random.ecsv, summary.json, pairwise.png.", ""]
+              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png.", ""]
     return "\n".join(lines)
 
 
@@ -234,6 +262,8 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         summary = summary_dict(result)
         _write_tables(result, tmp)
         _plot(result, tmp / "pairwise.png")
+        if result.nulls:
+            _plot_nulls(result, tmp / "nulls.png")
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")

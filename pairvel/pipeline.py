@@ -8,7 +8,7 @@ into files.
 
 from __future__ import annotations
 
-__all__ = ["RunResult", "NullTestResult", "run_pipeline", "package_versions"]
+__all__ = ["RunResult", "run_pipeline", "package_versions"]
 
 import datetime as _dt
 import importlib.metadata
@@ -28,53 +28,15 @@ from .covariance import jackknife_covariance, kmeans_regions
 from .errors import InputError, PairvelWarning
 from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
-from .fit import AmplitudeFit, chi2_against_zero, fit_amplitude
+from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
+from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
 from .theory import binned_pairwise_velocity
 from .trend import remove_redshift_trend
 
 _DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
-
-
-@dataclass(frozen=True)
-class NullTestResult:
-    """Pairwise curves measured with every aperture moved to a random unmasked sky position.
-
-    Attributes
-    ----------
-    p : ndarray of shape (n_real, nbins), uK
-        One curve per realisation.
-    chi2, pte : ndarray of shape (n_real,)
-        Each curve against zero with its own jackknife covariance (Hartlap-corrected).
-    chi2_mean, pte_mean : float
-        The mean curve against zero, covariance = mean jackknife covariance / n_real.
-    dof : int
-    """
-
-    p: np.ndarray
-    chi2: np.ndarray
-    pte: np.ndarray
-    chi2_mean: float
-    pte_mean: float
-    dof: int
-
-    @property
-    def n_real(self) -> int:
-        return self.p.shape[0]
-
-    def as_dict(self) -> dict:
-        return {
-            "kind": "apertures at random unmasked sky positions",
-            "n_realisations": int(self.n_real),
-            "dof": int(self.dof),
-            "chi2_mean_curve": float(self.chi2_mean),
-            "pte_mean_curve": float(self.pte_mean),
-            "chi2_each": [float(x) for x in self.chi2],
-            "pte_each": [float(x) for x in self.pte],
-            "fraction_pte_below_0.05": float(np.mean(self.pte < 0.05)) if self.n_real else None,
-        }
 
 
 @dataclass(frozen=True)
@@ -92,7 +54,7 @@ class RunResult:
     v12_template: np.ndarray
     in_fit: np.ndarray
     fit: AmplitudeFit
-    null: NullTestResult | None
+    nulls: tuple
     n_tracers: int
     selection: dict
     provenance: dict
@@ -138,16 +100,6 @@ def _trend(temps, z, cfg: Config):
     if not cfg.trend.enabled:
         return temps
     return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
-
-
-def _null_test(p_null, p_jk_null, n_jk: int) -> NullTestResult:
-    covs = jackknife_covariance(p_jk_null)
-    chi2 = np.empty(p_null.shape[0])
-    pte = np.empty(p_null.shape[0])
-    for k in range(p_null.shape[0]):
-        chi2[k], dof, pte[k] = chi2_against_zero(p_null[k], covs[k], n_samples=n_jk)
-    chi2_m, dof, pte_m = chi2_against_zero(p_null.mean(axis=0), covs.mean(axis=0) / p_null.shape[0], n_samples=n_jk)
-    return NullTestResult(p=p_null, chi2=chi2, pte=pte, chi2_mean=float(chi2_m), pte_mean=float(pte_m), dof=int(dof))
 
 
 def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
@@ -205,9 +157,13 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             null_sets.append(_trend(t_r[0], cat.z, cfg))
             progress.say(f"      null set {k + 1}/{n_null}")
 
+    nc = cfg.nulls
+    null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
+                 "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
+                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)}
+    stacked = np.vstack([temps[None, :]] + list(null_sets.values()))
     edges = cfg.bins.edges()
-    with progress.stage(f"pair pass: {len(cat)} tracers, {1 + n_null} temperature sets, {edges.size - 1} bins"):
-        stacked = np.vstack([temps[None, :]] + [t[None, :] for t in null_sets])
+    with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
             pr = pairwise_momentum_units(positions, stacked, edges, regions=regions, redshifts=cat.z,
                                          n_units=cfg.compute.n_units, scheduler=cfg.compute.scheduler_address,
@@ -231,7 +187,12 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
         template = T_CMB_UK * v12 / C_KM_S
         fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
-        null = _null_test(pr.p[1:], pr.p_jk[1:], n_jk) if n_null else None
+        nulls, row = [], 1
+        for kind, sets in null_sets.items():
+            if sets.shape[0]:
+                rows = slice(row, row + sets.shape[0])
+                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold))
+                row += sets.shape[0]
 
     provenance = {
         "pairvel_version": __version__,
@@ -248,6 +209,6 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     }
     return RunResult(
         config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
-        z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, null=null,
+        z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
         n_tracers=len(cat), selection=selection, provenance=provenance,
     )

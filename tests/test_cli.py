@@ -26,10 +26,11 @@ def only_error_line(capsys):
 def test_run_writes_every_output_and_refuses_to_overwrite(tiny_survey, capsys):
     assert run(tiny_survey) == 0
     out = tiny_survey / "out"
-    for name in ("pairwise.ecsv", "covariance.fits", "null_random.ecsv", "summary.json", "report.md", "pairwise.png"):
+    for name in ("pairwise.ecsv", "covariance.fits", "null_random_positions.ecsv", "null_shuffled.ecsv",
+                 "null_shuffled_in_z.ecsv", "summary.json", "report.md", "pairwise.png", "nulls.png"):
         assert (out / name).is_file(), name
     summary = json.loads((out / "summary.json").read_text())
-    for key in ("tau_mean", "tau_mean_error", "snr", "chi2_null", "pte_null", "null_test", "provenance"):
+    for key in ("tau_mean", "tau_mean_error", "snr", "chi2_null", "pte_null", "null_tests", "provenance"):
         assert key in summary
     assert summary["provenance"]["seed"] == 3 and len(summary["provenance"]["catalogue"]["sha256"]) == 64
     before = (out / "summary.json").read_bytes()
