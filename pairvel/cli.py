@@ -66,7 +66,8 @@ def _closing_summary(result, out: Path) -> str:
     f = result.fit
     lines = [
         f"pairvel: {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, z_eff = {result.z_eff:.3f}",
-        f"  tau_mean = {f.amplitude:.3e} ± {f.error:.3e}   S/N = {f.snr:.2f}",
+        f"  tau_mean = {f.amplitude:.3e} ± {f.error:.3e}   S/N = {f.snr:.2f} "
+        f"(sqrt(chi2_null - chi2_min) = {f.snr_delta_chi2:.2f})",
         f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
         f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
     ]

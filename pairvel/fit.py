@@ -23,7 +23,11 @@ from .errors import InputError
 
 @dataclass(frozen=True)
 class AmplitudeFit:
-    """Result of :func:`fit_amplitude` (chi2_null is d^T Psi d with n_bins degrees of freedom)."""
+    """Result of :func:`fit_amplitude` (chi2_null is d^T Psi d with n_bins degrees of freedom).
+
+    ``snr`` is amplitude / error; ``snr_delta_chi2`` is sqrt(chi2_null - chi2_min), the same number
+    for a linear model with Gaussian errors (the two differ only by rounding), signed like the amplitude.
+    """
 
     amplitude: float
     error: float
@@ -35,6 +39,7 @@ class AmplitudeFit:
     pte_null: float
     n_bins: int
     precision_factor: float
+    snr_delta_chi2: float = float("nan")
 
     def as_dict(self) -> dict:
         return {k: (int(v) if isinstance(v, (int, np.integer)) else float(v)) for k, v in asdict(self).items()}
@@ -112,8 +117,9 @@ def fit_amplitude(data, template, covariance, *, n_samples=None, use=None) -> Am
     chi2_min = float(resid @ psi @ resid)
     chi2_null = float(d @ psi @ d)
     n = d.size
+    delta = np.sign(amp) * np.sqrt(max(chi2_null - chi2_min, 0.0))
     return AmplitudeFit(float(amp), float(err), float(amp / err), chi2_min, chi2_null, n - 1,
-                        chi2_pte(chi2_min, n - 1), chi2_pte(chi2_null, n), n, factor)
+                        chi2_pte(chi2_min, n - 1), chi2_pte(chi2_null, n), n, factor, float(delta))
 
 
 def chi2_against_zero(data, covariance, *, n_samples=None):

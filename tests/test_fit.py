@@ -41,6 +41,8 @@ def test_monte_carlo_unbiased_with_honest_error():
     np.testing.assert_allclose(est.std(ddof=1), err, rtol=0.05)
     chi2 = np.array([f.chi2_min for f in amps])
     np.testing.assert_allclose(chi2.mean(), nb - 1, rtol=0.05)  # analytic: chi2 with nb - 1 dof
+    # analytic: for a linear model chi2_null - chi2_min = (A / sigma_A)^2
+    np.testing.assert_allclose([f.snr_delta_chi2 for f in amps[:50]], [f.snr for f in amps[:50]], rtol=1e-8)
 
 
 def test_chi2_against_zero_and_errors():
