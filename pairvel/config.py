@@ -108,7 +108,12 @@ class BinsConfig:
 
 @dataclass(frozen=True)
 class CovarianceConfig:
+    regions: str = _key("kmeans", "how the sky is cut into jackknife regions: kmeans or healpix",
+                        choices=("kmeans", "healpix"))
     n_regions: int = _key(50, "number of k-means sky regions for the delete-one jackknife", bounds=(2, 100000))
+    healpix_nside: int = _key(8, "HEALPix nside of the pixel regions when regions = healpix", bounds=(1, 8192))
+    min_region_tracers: int = _key(20, "pixel regions with fewer tracers merge into the nearest pixel region",
+                                   bounds=(1, 10**9))
 
 
 @dataclass(frozen=True)

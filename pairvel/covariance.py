@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["kmeans_regions", "jackknife_covariance"]
+__all__ = ["kmeans_regions", "healpix_regions", "jackknife_covariance"]
 
 import numpy as np
 
@@ -44,6 +44,38 @@ def kmeans_regions(ra_deg, dec_deg, n_regions=50, *, seed=None) -> np.ndarray:
     rank = np.empty(n_regions, dtype=np.int64)
     rank[np.argsort(centre_lon, kind="stable")] = np.arange(n_regions)
     return rank[labels]
+
+
+def healpix_regions(ra_deg, dec_deg, nside: int, *, min_tracers: int = 1) -> np.ndarray:
+    """Jackknife regions from HEALPix pixels of resolution ``nside`` (RING), numbered 0..n-1.
+
+    Pixels holding fewer than ``min_tracers`` tracers are merged into the neighbouring occupied
+    pixel with the nearest centre, so no region is nearly empty.
+
+    Returns
+    -------
+    ndarray of shape (N,), int64
+    """
+    import healpy as hp
+
+    if nside < 1 or nside & (nside - 1):
+        raise InputError(f"covariance.healpix_nside must be a power of 2; got {nside}")
+    pix = hp.ang2pix(nside, np.asarray(ra_deg, dtype=float), np.asarray(dec_deg, dtype=float), lonlat=True)
+    occupied, counts = np.unique(pix, return_counts=True)
+    big = occupied[counts >= min_tracers]
+    if big.size < 2:
+        raise InputError(f"only {big.size} HEALPix pixels at nside {nside} hold >= {min_tracers} tracers; "
+                         f"lower covariance.healpix_nside")
+    small = occupied[counts < min_tracers]
+    if small.size:
+        cen_big = np.array(hp.pix2vec(nside, big)).T
+        cen_small = np.array(hp.pix2vec(nside, small)).T
+        nearest = big[np.argmax(cen_small @ cen_big.T, axis=1)]
+        pix = pix.copy()
+        for s_pix, target in zip(small, nearest):
+            pix[pix == s_pix] = target
+    _, labels = np.unique(pix, return_inverse=True)
+    return labels.astype(np.int64)
 
 
 def jackknife_covariance(samples) -> np.ndarray:

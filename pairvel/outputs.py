@@ -81,8 +81,8 @@ def summary_dict(result) -> dict:
         "n_tracers": result.n_tracers,
         "n_pairs": int(result.pair_counts.sum()),
         "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
-        "covariance": {"method": "delete-one jackknife over k-means sky regions",
-                       "n_regions": result.config.covariance.n_regions,
+        "covariance": {"method": f"delete-one jackknife over {result.config.covariance.regions} sky regions",
+                       "n_regions": result.n_jk,
                        "precision_correction": "Hartlap, Simon & Schneider 2007"},
         "template": {"kind": "linear-theory mean pairwise velocity",
                      "bias": result.config.theory.bias, "z_eff": result.z_eff,
@@ -125,7 +125,7 @@ def _write_tables(result, folder: Path) -> None:
 
     hdr = fits.Header()
     hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
-    hdr["NJK"] = (result.config.covariance.n_regions, "jackknife regions")
+    hdr["NJK"] = (result.n_jk, "jackknife regions")
     hdr["NBINS"] = nb
     hdr["COMMENT"] = "delete-one jackknife covariance of the pairwise momentum; bins as in pairwise.ecsv"
     sig = np.sqrt(np.diag(result.covariance))

@@ -24,7 +24,7 @@ from ._rng import as_generator
 from .catalogue import Catalogue, file_sha256, load_catalogue
 from .config import Config
 from .constants import C_KM_S, T_CMB_UK
-from .covariance import jackknife_covariance, kmeans_regions
+from .covariance import healpix_regions, jackknife_covariance, kmeans_regions
 from .errors import InputError, PairvelWarning
 from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
@@ -63,6 +63,11 @@ class RunResult:
     @property
     def r_mid(self) -> np.ndarray:
         return 0.5 * (self.edges[1:] + self.edges[:-1])
+
+    @property
+    def n_jk(self) -> int:
+        """Number of jackknife regions used."""
+        return self.p_jk.shape[0]
 
     @property
     def p_err(self) -> np.ndarray:
@@ -143,10 +148,15 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         temps = _trend(temps, cat.z, cfg)
     with progress.stage("geometry and jackknife regions"):
         positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
-        n_jk = cfg.covariance.n_regions
-        if n_jk > len(cat):
-            raise InputError(f"covariance.n_regions = {n_jk} exceeds the {len(cat)} usable tracers")
-        regions = kmeans_regions(cat.ra, cat.dec, n_jk, seed=rng)
+        cc = cfg.covariance
+        if cc.regions == "healpix":
+            regions = healpix_regions(cat.ra, cat.dec, cc.healpix_nside, min_tracers=cc.min_region_tracers)
+        else:
+            if cc.n_regions > len(cat):
+                raise InputError(f"covariance.n_regions = {cc.n_regions} exceeds the {len(cat)} usable tracers")
+            regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=rng)
+        n_jk = int(regions.max()) + 1
+        progress.say(f"      {n_jk} jackknife regions ({cc.regions})")
 
     n_null = cfg.nulls.n_random
     with progress.stage(f"null-test photometry: {n_null} sets of random sky positions"):

@@ -38,3 +38,20 @@ def test_kmeans_regions_cover_and_are_compact():
     np.testing.assert_array_equal(lab, kmeans_regions(ra, dec, 20, seed=3))  # seeded: reproducible
     with pytest.raises(InputError, match="between 2 and the 5000 tracers"):
         kmeans_regions(ra, dec, 1)
+
+
+def test_healpix_regions_merge_sparse_pixels():
+    import healpy as hp
+
+    from pairvel.covariance import healpix_regions
+
+    rng = np.random.default_rng(6)
+    ra, dec = rng.uniform(100, 160, 4000), rng.uniform(-10, 20, 4000)
+    lab = healpix_regions(ra, dec, 8, min_tracers=30)
+    assert lab.min() == 0 and np.bincount(lab).min() >= 30
+    # every region is made of whole nside-8 pixels (analytic: labels are functions of the pixel)
+    pix = hp.ang2pix(8, ra, dec, lonlat=True)
+    for p in np.unique(pix):
+        assert np.unique(lab[pix == p]).size == 1
+    with pytest.raises(InputError, match="power of 2"):
+        healpix_regions(ra, dec, 6)
