@@ -180,6 +180,7 @@ def test_same_seed_same_survey_and_none_is_recorded(tmp_path):
     d = make_mock_survey(tmp_path / "d", seed=c.seed, **TINY)  # the recorded seed reproduces it
     np.testing.assert_array_equal(Table.read(tmp_path / "c" / CATALOGUE_FILE)["z"],
                                   Table.read(tmp_path / "d" / CATALOGUE_FILE)["z"])
+    assert d.v12_3d_realised_km_s == c.v12_3d_realised_km_s
 
 
 def test_velocity_rms_matches_linear_theory():
