@@ -10,7 +10,6 @@ from __future__ import annotations
 
 __all__ = ["PairwiseResult", "pairwise_momentum", "pairwise_momentum_cross", "mean_pairwise_velocity_3d"]
 
-import os
 from dataclasses import dataclass
 
 import numba
@@ -79,18 +78,18 @@ def _check_positions(positions) -> np.ndarray:
     return pos
 
 
-def _prepare(pos, cell_size):
-    """Cell-sorted positions and unit vectors plus the cell index arrays."""
-    order, start, dims = _kernels.build_cells(pos, cell_size)
-    xs = np.ascontiguousarray(pos[order])
+def _prepare(pos, r_max):
+    """Cell-sorted positions and unit vectors, shape (3, N), plus the cell index arrays."""
+    order, start, dims, offsets = _kernels.build_cells(pos, r_max)
+    xs = pos[order]
     norm = np.linalg.norm(xs, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         us = np.where(norm[:, None] > 0, xs / norm[:, None], 0.0)
-    return order, start, dims, xs, np.ascontiguousarray(us)
+    return order, start, dims, offsets, np.ascontiguousarray(xs.T), np.ascontiguousarray(us.T)
 
 
-def _n_chunks(n_threads):
-    return max(4 * n_threads, 1)
+def _is_uniform(edges) -> bool:
+    return bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
 
 
 def _threads(n_threads) -> int:
@@ -126,7 +125,8 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
     Notes
     -----
     p_hat = - sum (T_i - T_j) c_ij / sum c_ij^2 with c_ij = rhat_ij.(rhat_i + rhat_j)/2 and
-    r_ij = r_i - r_j; coincident points are never a pair.  Memory is O(N + M bins n_jk threads).
+    r_ij = r_i - r_j; coincident points are never a pair.  Memory is O(N + 16 M bins n_jk): no list
+    of pairs is ever built.  The sums do not depend on ``n_threads`` (fixed work chunks).
 
     References
     ----------
@@ -178,22 +178,20 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, n_threads=None) -> t
         nj = max(n_jk, 1)
         return (np.zeros((m_sets, nbins)), np.zeros(nbins), np.zeros(nbins, np.int64), np.zeros(nbins),
                 np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
-    order, start, dims, xs, us = _prepare(pos, edges[-1])
-    ts = np.ascontiguousarray(temps2[:, order])
-    nt = _threads(n_threads)
+    order, start, dims, offsets, xs, us = _prepare(pos, edges[-1])
+    ts = np.ascontiguousarray(temps2[:, order].T)      # (N, M): one tracer's sets side by side
     previous = numba.get_num_threads()
-    numba.set_num_threads(nt)
+    numba.set_num_threads(_threads(n_threads))
     try:
-        uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
         return _kernels.pair_sums(xs, us, ts, np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]),
-                                  start, dims, edges, uniform, n_jk, _n_chunks(nt), want_z)
+                                  start, dims, offsets, edges, _is_uniform(edges), n_jk, want_z)
     finally:
         numba.set_num_threads(previous)
 
 
 def finalise(sums, edges, *, single: bool, n_jk: int, want_z: bool) -> PairwiseResult:
     """Turn the additive sums of :func:`pass_sums` into a :class:`PairwiseResult`."""
-    num, den, cnt, zsum, jk_num, jk_den, jk_cnt = sums
+    num, den, cnt, zsum, jk_num, jk_den, _jk_cnt = sums
     p = _ratio(num, den[None, :])
     z_eff = None
     if want_z:
@@ -261,14 +259,15 @@ def mean_pairwise_velocity_3d(positions, velocities, edges, *, n_threads=None):
     if vel.shape != pos.shape or not np.all(np.isfinite(vel)):
         raise InputError(f"velocities must be finite with shape {pos.shape}; got {vel.shape}")
     edges = _check_edges(edges)
-    order, start, dims, xs, _ = _prepare(pos, edges[-1])
-    nt = _threads(n_threads)
+    nbins = edges.size - 1
+    if pos.shape[0] < 2:
+        return np.full(nbins, np.nan), np.zeros(nbins, dtype=np.int64)
+    order, start, dims, offsets, xs, _ = _prepare(pos, edges[-1])
     previous = numba.get_num_threads()
-    numba.set_num_threads(nt)
+    numba.set_num_threads(_threads(n_threads))
     try:
-        uniform = bool(np.allclose(np.diff(edges), edges[1] - edges[0], rtol=1e-12, atol=0.0))
-        vsum, cnt = _kernels.velocity_sums(xs, np.ascontiguousarray(vel[order]), start, dims, edges, uniform,
-                                           _n_chunks(nt))
+        vsum, cnt = _kernels.velocity_sums(xs, np.ascontiguousarray(vel[order].T), start, dims, offsets, edges,
+                                           _is_uniform(edges))
     finally:
         numba.set_num_threads(previous)
     with np.errstate(divide="ignore", invalid="ignore"):

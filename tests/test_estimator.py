@@ -35,8 +35,11 @@ def reference(pos, temps, edges, regions=None, z=None):
         if z is not None:
             out["z"] = np.bincount(b[ok], weights=(c**2 * 0.5 * (z[i] + z[j]))[ok], minlength=nb) / den
         if regions is not None:
-            out["jk"] = np.array([(lambda nd: -nd[0] / nd[1])(sums(ok & (regions[i] != k) & (regions[j] != k)))
-                                  for k in range(regions.max() + 1)])
+            jk = []
+            for k in range(regions.max() + 1):
+                num_k, den_k = sums(ok & (regions[i] != k) & (regions[j] != k))
+                jk.append(-num_k / den_k)
+            out["jk"] = np.array(jk)
     return out
 
 
@@ -160,3 +163,86 @@ def test_cross_pairs_match_direct_cross_loop():
     jk_den = np.bincount(b[keep], weights=c[keep] ** 2, minlength=6)
     jk_num = np.bincount(b[keep], weights=((ta[0][:, None] - tb[0][None, :]) * c)[keep], minlength=6)
     np.testing.assert_allclose(res.p_jk[0, 3], -jk_num / jk_den, rtol=1e-9)
+
+
+def test_threads_give_identical_sums():
+    """Fixed chunking: the sums do not depend on the thread count (internal regression, 1e-12)."""
+    pos, rng = sky(4000, 8)
+    temps = rng.normal(size=(2, 4000))
+    regions = rng.integers(0, 5, 4000)
+    edges = np.linspace(3, 90, 12)
+    one = pairwise_momentum(pos, temps, edges, regions=regions, n_threads=1)
+    two = pairwise_momentum(pos, temps, edges, regions=regions, n_threads=2)
+    np.testing.assert_array_equal(one.pair_counts, two.pair_counts)
+    np.testing.assert_allclose(one.p, two.p, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(one.p_jk, two.p_jk, rtol=1e-12, atol=0)
+
+
+def test_mean_pairwise_velocity_matches_numpy_pair_loop():
+    pos, rng = sky(1200, 13)
+    vel = rng.normal(0, 300, (1200, 3))
+    edges = np.array([4.0, 20.0, 45.0, 50.0, 110.0])
+    v12, cnt = mean_pairwise_velocity_3d(pos, vel, edges)
+    i, j = np.triu_indices(1200, 1)
+    d = pos[i] - pos[j]
+    r = np.linalg.norm(d, axis=1)
+    proj = np.einsum("ij,ij->i", vel[i] - vel[j], d) / r
+    b = np.searchsorted(edges, r, side="right") - 1
+    ok = (b >= 0) & (b < 4)
+    ref_cnt = np.bincount(b[ok], minlength=4)
+    # reference: slow numpy loop over all pairs (analytic definition)
+    np.testing.assert_array_equal(cnt, ref_cnt)
+    np.testing.assert_allclose(v12, np.bincount(b[ok], weights=proj[ok], minlength=4) / ref_cnt, rtol=1e-10)
+
+
+def test_sparse_wide_survey_uses_coarse_grid_and_stays_exact():
+    """Few objects spread over a box far larger than r_max: the grid is coarsened (cells of side
+    >= r_max, 13 forward neighbours) to bound memory; pairs must still all be found."""
+    rng = np.random.default_rng(17)
+    centres = rng.uniform(-4e4, 4e4, (30, 3))
+    pos = (centres[:, None, :] + rng.normal(0, 3.0, (30, 20, 3))).reshape(-1, 3)  # tight groups
+    temps = rng.normal(size=pos.shape[0])
+    edges = np.linspace(0.5, 6.0, 5)
+    from pairvel import _kernels
+    _, start, _, rows = _kernels.build_cells(pos, edges[-1])
+    assert rows.shape[0] == 5 and start.size - 1 <= 2**18  # coarse path taken: 13 neighbours in 5 rows
+    res = pairwise_momentum(pos, temps, edges)
+    ref = reference(pos, temps, edges)
+    np.testing.assert_array_equal(res.pair_counts, ref["cnt"])
+    np.testing.assert_allclose(res.p, ref["p"][0], rtol=1e-10)
+
+
+@pytest.mark.parametrize("n_sub", [1, 2, 3])
+def test_forward_rows_cover_every_neighbour_once(n_sub):
+    """Each non-zero offset within reach appears exactly once, itself or its negative, and the
+    z-rows hold exactly those offsets plus the cell itself (analytic)."""
+    from pairvel._kernels import forward_offsets, forward_rows
+    offs = {tuple(o) for o in forward_offsets(n_sub)}
+    in_rows = [(dx, dy, dz) for dx, dy, z0, z1 in forward_rows(n_sub) for dz in range(z0, z1 + 1)]
+    assert len(in_rows) == len(set(in_rows)) and set(in_rows) == offs | {(0, 0, 0)}
+    reach = [(dx, dy, dz) for dx in range(-n_sub, n_sub + 1) for dy in range(-n_sub, n_sub + 1)
+             for dz in range(-n_sub, n_sub + 1) if (dx, dy, dz) != (0, 0, 0)
+             and sum(max(abs(o) - 1, 0) ** 2 for o in (dx, dy, dz)) < n_sub**2]
+    for o in reach:
+        assert (o in offs) != (tuple(-k for k in o) in offs)
+    assert len(offs) == len(reach) // 2
+    assert len(forward_offsets(1)) == 13
+
+
+@pytest.mark.parametrize("n_sub", [1, 2, 3, 4])
+def test_every_cell_refinement_matches_numpy_pair_loop(n_sub, monkeypatch):
+    """The grid refinement (cells of side r_max / n_sub) is a speed choice only: same sums."""
+    from pairvel import _kernels
+    monkeypatch.setattr(_kernels, "choose_n_sub", lambda positions, r_max: n_sub)
+    pos, rng = sky(1000, 31, ra_range=(350, 370), dec_range=(-10, 10), dist=(900, 1000))
+    temps = rng.normal(0, 20, (2, 1000))
+    regions = rng.integers(0, 4, 1000)
+    edges = np.array([1.0, 15.0, 40.0, 41.0, 77.0])
+    _, _, _, rows = _kernels.build_cells(pos, edges[-1])
+    assert rows[-1, 3] == n_sub  # the requested grid was used (internal)
+    res = pairwise_momentum(pos, temps, edges, regions=regions)
+    ref = reference(pos, temps, edges, regions)
+    # reference: slow numpy loop over all pairs (analytic formula)
+    np.testing.assert_array_equal(res.pair_counts, ref["cnt"])
+    np.testing.assert_allclose(res.p, ref["p"], rtol=1e-10)
+    np.testing.assert_allclose(np.moveaxis(res.p_jk, 0, 1), ref["jk"], rtol=1e-10)
