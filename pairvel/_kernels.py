@@ -199,21 +199,23 @@ def _screen(xi0, xi1, xi2, x, t0, t1, lo2, hi2, rtmp, jbuf, r2buf, nacc):
 
 
 @nb.njit(inline="always")
-def _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, reg, zz, edges, uniform, inv_width, n_jk, want_z,
+def _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, w, reg, zz, edges, uniform, inv_width, n_jk, want_z,
                a_num, a_den, a_cnt, a_z, a_jnum, a_jden, a_jcnt):
     """Add the estimator terms of the screened pairs (i, jbuf[:nacc]) to one chunk's accumulators."""
     m_sets = temps.shape[1]
     xi0, xi1, xi2 = x[0, i], x[1, i], x[2, i]
     ui0, ui1, ui2 = u[0, i], u[1, i], u[2, i]
+    wi = w[i]
     for q in range(nacc):
         j = jbuf[q]
         r = np.sqrt(r2buf[q])
         b = _bin_of(r, edges, uniform, inv_width)
         if b < 0:
             continue
-        c = ((xi0 - x[0, j]) * (ui0 + u[0, j]) + (xi1 - x[1, j]) * (ui1 + u[1, j])
-             + (xi2 - x[2, j]) * (ui2 + u[2, j])) / (2.0 * r)
-        c2 = c * c
+        cc = ((xi0 - x[0, j]) * (ui0 + u[0, j]) + (xi1 - x[1, j]) * (ui1 + u[1, j])
+              + (xi2 - x[2, j]) * (ui2 + u[2, j])) / (2.0 * r)
+        c = cc * (wi * w[j])      # pair weight w_i w_j on the numerator's c_ij ...
+        c2 = cc * c               # ... and on c_ij^2
         a_den[b] += c2
         a_cnt[b] += 1
         for m in range(m_sets):
@@ -248,10 +250,11 @@ def _add_velocities(i, nacc, jbuf, r2buf, x, v, edges, uniform, inv_width, a_v, 
 
 
 @nb.njit(parallel=True, cache=True)
-def pair_sums(x, u, temps, reg, zz, start, dims, rows, edges, uniform, n_jk, want_z):
+def pair_sums(x, u, temps, w, reg, zz, start, dims, rows, edges, uniform, n_jk, want_z):
     """Accumulate the estimator's sums over all pairs with edges[0] <= r < edges[-1].
 
-    x, u : (3, N) positions and unit vectors, sorted by cell; temps : (N, M); reg : (N,) region
+    x, u : (3, N) positions and unit vectors, sorted by cell; temps : (N, M); w : (N,) weights (each
+    pair counts with w_i w_j in numerator and denominator, not in the pair counts); reg : (N,) region
     labels (ignored when n_jk == 0); zz : (N,) redshifts (ignored unless want_z).
     Returns num (M, nb), den (nb,), cnt (nb,), zsum (nb,), jk_num (max(n_jk,1), M, nb),
     jk_den (max(n_jk,1), nb), jk_cnt (max(n_jk,1), nb); the jackknife arrays hold the sums over
@@ -300,12 +303,12 @@ def pair_sums(x, u, temps, reg, zz, start, dims, rows, edges, uniform, n_jk, wan
                 for kk in range(nn + 1):
                     for b0 in range(nbr_lo[kk], nbr_hi[kk], BLOCK):
                         if nacc > BUFFER - BLOCK:
-                            _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, reg, zz, edges, uniform, inv_width,
+                            _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, w, reg, zz, edges, uniform, inv_width,
                                        n_jk, want_z, a_num, a_den, a_cnt, a_z, a_jnum, a_jden, a_jcnt)
                             nacc = 0
                         nacc = _screen(xi0, xi1, xi2, x, b0, min(b0 + BLOCK, nbr_hi[kk]), lo2, hi2,
                                        rtmp, jbuf, r2buf, nacc)
-                _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, reg, zz, edges, uniform, inv_width,
+                _add_pairs(i, nacc, jbuf, r2buf, x, u, temps, w, reg, zz, edges, uniform, inv_width,
                            n_jk, want_z, a_num, a_den, a_cnt, a_z, a_jnum, a_jden, a_jcnt)
     num_t = _chunk_sum(num)
     jk_t = _chunk_sum(jk_num)
@@ -370,3 +373,187 @@ def velocity_sums(x, v, start, dims, rows, edges, uniform):
                                        rtmp, jbuf, r2buf, nacc)
                 _add_velocities(i, nacc, jbuf, r2buf, x, v, edges, uniform, inv_width, a_v, a_cnt)
     return _chunk_sum(vsum), _chunk_sum(cnt)
+
+
+# ---------------------------------------------------------------------------------------------
+# Per-object sums for many temperature sets (the numerator is linear in the temperatures).
+#
+# With c_ij oriented from j to i (c_ji = -c_ij), sum_{i<j} w_i w_j (T_i - T_j) c_ij
+# = sum_i T_i w_i W_i with W_i = sum_{j != i} w_j c_ij per bin.  The sums over the pairs touching
+# jackknife region k are sum_{i in k} T_i w_i W_i + sum_{i not in k} T_i w_i V_{i,k}, where V_{i,k}
+# is W_i restricted to the partners j in region k.  V is sparse: an object only has partners in
+# the few regions near it, so it gets one row per region present in its cell's neighbourhood
+# (other than its own).  Every object visits all its neighbour cells (each pair is seen from both
+# ends), so each row of W and V is written by one chunk only.
+# ---------------------------------------------------------------------------------------------
+
+
+def all_rows(n_sub: int) -> np.ndarray:
+    """All cell offsets within +-n_sub that can hold a pair (itself included), as z-runs
+    (dx, dy, dz_lo, dz_hi), (K, 4) int64."""
+    fwd = forward_offsets(n_sub)
+    offs = np.concatenate([fwd, -fwd, np.zeros((1, 3), dtype=np.int64)])
+    rows = []
+    for dx, dy in sorted({(int(a), int(b)) for a, b, _ in offs}):
+        dz = sorted(int(c) for a, b, c in offs if a == dx and b == dy)
+        if dz != list(range(dz[0], dz[-1] + 1)):
+            raise RuntimeError("cell offsets are not contiguous in z")
+        rows.append((dx, dy, dz[0], dz[-1]))
+    return np.array(rows, dtype=np.int64)
+
+
+@nb.njit(inline="always")
+def _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
+    """Object ranges of every neighbour row of ``cell`` (itself included); return how many."""
+    cz = cell % dims[2]
+    cy = (cell // dims[2]) % dims[1]
+    cx = cell // (dims[1] * dims[2])
+    nn = 0
+    for k in range(rows.shape[0]):
+        jx = cx + rows[k, 0]
+        jy = cy + rows[k, 1]
+        if jx < 0 or jy < 0 or jx >= dims[0] or jy >= dims[1]:
+            continue
+        z0 = max(cz + rows[k, 2], 0)
+        z1 = min(cz + rows[k, 3], dims[2] - 1)
+        if z0 > z1:
+            continue
+        base = (jx * dims[1] + jy) * dims[2]
+        if start[base + z0] < start[base + z1 + 1]:
+            nbr_lo[nn] = start[base + z0]
+            nbr_hi[nn] = start[base + z1 + 1]
+            nn += 1
+    return nn
+
+
+@nb.njit(cache=True)
+def object_rows(reg, start, dims, rows, n_jk):
+    """Layout of the sparse per-region rows: for each object (sorted by cell) the regions other
+    than its own that occur among the objects of its cell's neighbourhood.
+
+    Returns row_start (N + 1,) and row_reg (R,): object i owns rows row_start[i]:row_start[i+1],
+    one per region in row_reg, in increasing region order.
+    """
+    n = reg.size
+    n_cells = start.size - 1
+    seen = np.zeros(max(n_jk, 1), dtype=np.bool_)
+    present = np.empty(max(n_jk, 1), dtype=np.int64)
+    nbr_lo = np.empty(rows.shape[0], dtype=np.int64)
+    nbr_hi = np.empty(rows.shape[0], dtype=np.int64)
+    cell_ptr = np.zeros(n_cells + 1, dtype=np.int64)
+    cell_list = np.empty(16, dtype=np.int64)
+    n_list = 0
+    for cell in range(n_cells):
+        if start[cell] < start[cell + 1]:
+            nn = _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi)
+            npres = 0
+            for kk in range(nn):
+                for j in range(nbr_lo[kk], nbr_hi[kk]):
+                    g = reg[j]
+                    if not seen[g]:
+                        seen[g] = True
+                        present[npres] = g
+                        npres += 1
+            for q in range(npres):
+                seen[present[q]] = False
+            present_sorted = np.sort(present[:npres])
+            while n_list + npres > cell_list.size:
+                grown = np.empty(2 * cell_list.size, dtype=np.int64)
+                grown[:n_list] = cell_list[:n_list]
+                cell_list = grown
+            cell_list[n_list:n_list + npres] = present_sorted
+            n_list += npres
+        cell_ptr[cell + 1] = n_list
+    row_start = np.zeros(n + 1, dtype=np.int64)
+    for cell in range(n_cells):
+        for i in range(start[cell], start[cell + 1]):
+            row_start[i + 1] = row_start[i] + (cell_ptr[cell + 1] - cell_ptr[cell]) - 1
+    row_reg = np.empty(row_start[n], dtype=np.int64)
+    for cell in range(n_cells):
+        for i in range(start[cell], start[cell + 1]):
+            r = row_start[i]
+            for q in range(cell_ptr[cell], cell_ptr[cell + 1]):
+                if cell_list[q] != reg[i]:
+                    row_reg[r] = cell_list[q]
+                    r += 1
+    return row_start, row_reg
+
+
+@nb.njit(inline="always")
+def _add_object(i, nacc, jbuf, r2buf, x, u, w, reg, edges, uniform, inv_width, slot, base, a_w, a_v):
+    """Add w_j c_ij of the screened partners j of object i to its row of W and its sparse rows of V."""
+    xi0, xi1, xi2 = x[0, i], x[1, i], x[2, i]
+    ui0, ui1, ui2 = u[0, i], u[1, i], u[2, i]
+    gi = reg[i]
+    for q in range(nacc):
+        j = jbuf[q]
+        r = np.sqrt(r2buf[q])
+        b = _bin_of(r, edges, uniform, inv_width)
+        if b < 0:
+            continue
+        c = ((xi0 - x[0, j]) * (ui0 + u[0, j]) + (xi1 - x[1, j]) * (ui1 + u[1, j])
+             + (xi2 - x[2, j]) * (ui2 + u[2, j])) / (2.0 * r) * w[j]
+        a_w[i, b] += c
+        gj = reg[j]
+        if gj != gi:
+            a_v[base + slot[gj], b] += c
+
+
+@nb.njit(parallel=True, cache=True)
+def object_sums(x, u, w, reg, start, dims, rows, edges, uniform, row_start, row_reg, n_jk):
+    """W (N, nb): sum over partners of w_j c_ij per bin, and V (R, nb): the same restricted to the
+    partners in region row_reg[r] (rows laid out by :func:`object_rows`; R may be 0 when n_jk == 0).
+
+    x, u : (3, N) positions and unit vectors sorted by cell; rows from :func:`all_rows`.
+    """
+    n = x.shape[1]
+    nbins = edges.size - 1
+    lo2 = edges[0] * edges[0] * (1.0 - 1e-12)
+    hi2 = edges[nbins] * edges[nbins] * (1.0 + 1e-12)
+    inv_width = nbins / (edges[nbins] - edges[0])
+    a_w = np.zeros((n, nbins))
+    a_v = np.zeros((row_reg.size, nbins))
+    n_cells = start.size - 1
+    n_rows = rows.shape[0]
+    for ch in nb.prange(N_CHUNKS):
+        nbr_lo = np.empty(n_rows, dtype=np.int64)
+        nbr_hi = np.empty(n_rows, dtype=np.int64)
+        rtmp = np.empty(BLOCK)
+        jbuf = np.empty(BUFFER, dtype=np.int64)
+        r2buf = np.empty(BUFFER)
+        slot = np.zeros(max(n_jk, 1), dtype=np.int64)
+        for cell in range(ch, n_cells, N_CHUNKS):
+            s0, s1 = start[cell], start[cell + 1]
+            if s0 == s1:
+                continue
+            nn = _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi)
+            for i in range(s0, s1):
+                base = row_start[i]
+                if n_jk > 0:
+                    for q in range(row_start[i + 1] - base):
+                        slot[row_reg[base + q]] = q
+                xi0, xi1, xi2 = x[0, i], x[1, i], x[2, i]
+                nacc = 0
+                for kk in range(nn):
+                    for b0 in range(nbr_lo[kk], nbr_hi[kk], BLOCK):
+                        if nacc > BUFFER - BLOCK:
+                            _add_object(i, nacc, jbuf, r2buf, x, u, w, reg, edges, uniform, inv_width, slot, base,
+                                        a_w, a_v)
+                            nacc = 0
+                        nacc = _screen(xi0, xi1, xi2, x, b0, min(b0 + BLOCK, nbr_hi[kk]), lo2, hi2,
+                                       rtmp, jbuf, r2buf, nacc)
+                _add_object(i, nacc, jbuf, r2buf, x, u, w, reg, edges, uniform, inv_width, slot, base, a_w, a_v)
+    return a_w, a_v
+
+
+@nb.njit(parallel=True, cache=True)
+def gather_centred(src, cols, out):
+    """out[r, c] = src[r, cols[c]] - mean(src[r]) for every row r of src (rows in parallel)."""
+    n = src.shape[1]
+    for r in nb.prange(src.shape[0]):
+        mean = 0.0
+        for a in range(n):
+            mean += src[r, a]
+        mean /= max(n, 1)
+        for c in range(cols.size):
+            out[r, c] = src[r, cols[c]] - mean

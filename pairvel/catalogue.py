@@ -35,6 +35,8 @@ class Catalogue:
     z : ndarray of shape (n,)
     proxy : ndarray of shape (n,) or None
         Mass or luminosity proxy, when the config names its column.
+    weight : ndarray of shape (n,) or None
+        Per-tracer weight, when the config names its column.
     row : ndarray of shape (n,), int
         Row of each tracer in the input file (0-based), for tracing results back.
     path : str
@@ -53,6 +55,7 @@ class Catalogue:
     path: str
     sha256: str
     selection: dict = field(default_factory=dict)
+    weight: np.ndarray | None = None
 
     def __len__(self) -> int:
         return self.ra.size
@@ -61,7 +64,8 @@ class Catalogue:
         """The tracers where boolean ``keep`` is true (same provenance)."""
         return Catalogue(self.ra[keep], self.dec[keep], self.z[keep],
                          None if self.proxy is None else self.proxy[keep], self.row[keep],
-                         self.path, self.sha256, dict(self.selection))
+                         self.path, self.sha256, dict(self.selection),
+                         None if self.weight is None else self.weight[keep])
 
 
 def file_sha256(path) -> str:
@@ -161,9 +165,12 @@ def load_catalogue(cfg) -> Catalogue:
                "catalogue.z_column": cfg.z_column}
     if cfg.proxy_column is not None:
         columns["catalogue.proxy_column"] = cfg.proxy_column
+    if cfg.weight_column is not None:
+        columns["catalogue.weight_column"] = cfg.weight_column
     data = read_table_columns(path, columns, fmt=cfg.format)
     ra, dec, z = data[cfg.ra_column], data[cfg.dec_column], data[cfg.z_column]
     proxy = data[cfg.proxy_column] if cfg.proxy_column is not None else None
+    weight = data[cfg.weight_column] if cfg.weight_column is not None else None
     n_read = ra.size
     if n_read == 0:
         raise CatalogueError(f"catalogue {path}: has no rows", path=path)
@@ -175,6 +182,8 @@ def load_catalogue(cfg) -> Catalogue:
     ]
     if proxy is not None:
         checks.append((cfg.proxy_column, proxy, np.isfinite(proxy), "finite"))
+    if weight is not None:
+        checks.append((cfg.weight_column, weight, np.isfinite(weight) & (weight >= 0), "finite and >= 0"))
     valid = np.ones(n_read, dtype=bool)
     for name, values, ok, rule in checks:
         if not ok.all():
@@ -202,4 +211,5 @@ def load_catalogue(cfg) -> Catalogue:
     return Catalogue(
         ra=ra[keep], dec=dec[keep], z=z[keep], proxy=None if proxy is None else proxy[keep],
         row=np.flatnonzero(keep), path=str(path), sha256=file_sha256(path), selection=selection,
+        weight=None if weight is None else weight[keep],
     )

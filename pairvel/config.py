@@ -60,6 +60,8 @@ class CatalogueConfig:
     dec_column: str = _key("dec", "column with declination in degrees")
     z_column: str = _key("z", "column with spectroscopic redshift")
     proxy_column: str | None = _key(None, "optional column with a mass or luminosity proxy (used by proxy cuts)")
+    weight_column: str | None = _key(None, "optional column of per-tracer weights w >= 0; pairs are weighted by "
+                                           "w_i w_j in the estimator")
     z_min: float = _key(0.0, "keep tracers with z >= z_min")
     z_max: float = _key(math.inf, "keep tracers with z < z_max")
     proxy_min: float = _key(-math.inf, "keep tracers with proxy >= proxy_min (needs proxy_column)")

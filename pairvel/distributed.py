@@ -8,7 +8,7 @@ primary and its upper member a primary or in the halo; the unit's sums are
 
 What scales: a unit costs its pairs (about N_unit x n x 4/3 pi r_max^3) plus its halo's own pairs
 again; the data sent to a worker is its tracers (positions, temperature sets, region labels,
-redshifts: 8 (5 + M) bytes each), and the data sent back is the sums (M x bins x regions).  With
+redshifts, weights: 8 (6 + M) bytes each), and the data sent back is the sums (M x bins x regions).  With
 U units on W workers the speed-up approaches min(U, W) while the halo (slab thickness >> r_max)
 stays small.
 """
@@ -47,13 +47,14 @@ def split_work_units(positions, r_max: float, n_units: int):
     return units
 
 
-def _unit_sums(pos, temps2, reg, zz, n_primary, edges, n_jk, want_z, n_threads):
+def _unit_sums(pos, temps2, reg, zz, w, n_primary, edges, n_jk, want_z, n_threads, method):
     """Sums of the pairs with at least one primary (the first ``n_primary`` rows)."""
-    both = pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, n_threads=n_threads)
+    both = pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads, method=method)
     if n_primary == pos.shape[0]:
         return both
     halo = slice(n_primary, None)
-    only = pass_sums(pos[halo], temps2[:, halo], reg[halo], zz[halo], edges, n_jk, want_z, n_threads=n_threads)
+    only = pass_sums(pos[halo], temps2[:, halo], reg[halo], zz[halo], edges, n_jk, want_z, weights=w[halo],
+                     n_threads=n_threads, method=method)
     return tuple(a - b for a, b in zip(both, only))
 
 
@@ -74,13 +75,13 @@ def _client(scheduler):
                           key="compute.scheduler_address") from None
 
 
-def pairwise_momentum_units(positions, temperatures, edges, *, regions=None, redshifts=None, n_units=8,
-                            scheduler=None, n_threads=None) -> PairwiseResult:
+def pairwise_momentum_units(positions, temperatures, edges, *, regions=None, redshifts=None, weights=None, n_units=8,
+                            scheduler=None, n_threads=None, method="auto") -> PairwiseResult:
     """:func:`pairvel.estimator.pairwise_momentum` computed as ``n_units`` spatial work units.
 
     Parameters
     ----------
-    positions, temperatures, edges, regions, redshifts
+    positions, temperatures, edges, regions, redshifts, weights, method
         As for :func:`pairvel.estimator.pairwise_momentum`.
     n_units : int, default 8
     scheduler : None, str or dask.distributed.Client
@@ -94,18 +95,21 @@ def pairwise_momentum_units(positions, temperatures, edges, *, regions=None, red
     PairwiseResult
         Equal to the single-pass result up to floating-point summation order (~1e-13 relative).
     """
-    pos, temps2, single, edges, reg, n_jk, zz, want_z = _validate(positions, temperatures, edges, regions, redshifts)
+    pos, temps2, single, edges, reg, n_jk, zz, want_z, w = _validate(positions, temperatures, edges, regions,
+                                                                      redshifts, weights)
+    w = np.ones(pos.shape[0]) if w is None else w
     units = split_work_units(pos, edges[-1], n_units)
     client = _client(scheduler)
     payloads = []
     for primary, halo in units:
         idx = np.concatenate([primary, halo])
-        payloads.append((pos[idx], np.ascontiguousarray(temps2[:, idx]), reg[idx], zz[idx], primary.size))
+        payloads.append((pos[idx], np.ascontiguousarray(temps2[:, idx]), reg[idx], zz[idx], w[idx], primary.size))
     if client is None:
-        parts = [_unit_sums(*pl, edges, n_jk, want_z, n_threads) for pl in payloads]
+        parts = [_unit_sums(*pl, edges, n_jk, want_z, n_threads, method) for pl in payloads]
     else:
         try:
-            futures = [client.submit(_unit_sums, *pl, edges, n_jk, want_z, n_threads, pure=False) for pl in payloads]
+            futures = [client.submit(_unit_sums, *pl, edges, n_jk, want_z, n_threads, method, pure=False)
+                       for pl in payloads]
             parts = client.gather(futures)
         finally:
             if client is not scheduler:  # a client this call opened from an address

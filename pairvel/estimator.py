@@ -18,6 +18,10 @@ import numpy as np
 from . import _kernels
 from .errors import InputError
 
+# from this many temperature sets on, method='auto' takes the linear path (measured with
+# benchmarks/bench_many_sets.py at 1e5 tracers and 50 regions: below ~200 sets the direct loop is cheaper)
+LINEAR_MIN_SETS = 200
+
 
 @dataclass(frozen=True)
 class PairwiseResult:
@@ -100,7 +104,8 @@ def _threads(n_threads) -> int:
     return min(int(n_threads), numba.config.NUMBA_NUM_THREADS)
 
 
-def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts=None, n_threads=None):
+def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts=None, weights=None, n_threads=None,
+                      method="auto"):
     """Mean pairwise kSZ momentum in comoving-separation bins (Ferreira et al. 1999).
 
     Parameters
@@ -115,8 +120,17 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
         Jackknife region labels 0..n_jk-1; enables ``p_jk``.
     redshifts : ndarray of shape (N,), optional
         Enables the pair-weighted mean redshift per bin.
+    weights : ndarray of shape (N,), optional
+        Per-tracer weights w >= 0; each pair enters numerator and denominator with w_i w_j
+        (``pair_counts`` stay plain counts).  Default: all 1.
     n_threads : int, optional
         Threads for the compiled loop (default: all numba threads).
+    method : {"auto", "direct", "linear"}
+        "direct" does the arithmetic of every temperature set inside the pair loop (cost grows
+        with M); "linear" makes one pass that gives every tracer its per-bin pair sums and then
+        forms every set's numerator, and every jackknife region's, by matrix products (cost nearly
+        independent of M).  "auto" picks "linear" from ``LINEAR_MIN_SETS`` sets on.  Both give
+        the same sums up to floating-point rounding.
 
     Returns
     -------
@@ -132,12 +146,13 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
     ----------
     Ferreira, Juszkiewicz, Feldman, Davis & Jaffe 1999, ApJ 515, L1.
     """
-    pos, temps2, single, edges, reg, n_jk, zz, want_z = _validate(positions, temperatures, edges, regions, redshifts)
-    sums = pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, n_threads=n_threads)
+    pos, temps2, single, edges, reg, n_jk, zz, want_z, w = _validate(positions, temperatures, edges, regions,
+                                                                      redshifts, weights)
+    sums = pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads, method=method)
     return finalise(sums, edges, single=single, n_jk=n_jk, want_z=want_z)
 
 
-def _validate(positions, temperatures, edges, regions, redshifts):
+def _validate(positions, temperatures, edges, regions, redshifts, weights=None):
     """Check the inputs of :func:`pairwise_momentum`; return them as float64/int64 arrays."""
     pos = _check_positions(positions)
     n = pos.shape[0]
@@ -162,31 +177,111 @@ def _validate(positions, temperatures, edges, regions, redshifts):
     zz = np.zeros(n) if not want_z else np.asarray(redshifts, dtype=np.float64)
     if zz.shape != (n,):
         raise InputError(f"redshifts must have shape ({n},); got {zz.shape}")
-    return pos, temps2, single, edges, reg, n_jk, zz, want_z
+    w = None
+    if weights is not None:
+        w = np.asarray(weights, dtype=np.float64)
+        if w.shape != (n,):
+            raise InputError(f"weights must have shape ({n},); got {w.shape}")
+        bad = ~(np.isfinite(w) & (w >= 0))
+        if bad.any():
+            raise InputError(f"weights must be finite and >= 0; {bad.sum()} are not (first: row {np.flatnonzero(bad)[0]})")
+    return pos, temps2, single, edges, reg, n_jk, zz, want_z, w
 
 
-def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, n_threads=None) -> tuple:
+def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_threads=None, method="auto") -> tuple:
     """One pass of the compiled engine over validated inputs; returns the additive sums
     (num (M, nb), den, cnt, zsum, jk_num (max(n_jk,1), M, nb), jk_den, jk_cnt).
 
     The sums of disjoint sets of pairs add, which is what lets work units run anywhere.
+    ``method`` is as in :func:`pairwise_momentum`.
     """
     n = pos.shape[0]
     nbins = edges.size - 1
     m_sets = temps2.shape[0]
+    if method not in ("auto", "direct", "linear"):
+        raise InputError(f"method must be 'auto', 'direct' or 'linear'; got {method!r}")
     if n < 2:
         nj = max(n_jk, 1)
         return (np.zeros((m_sets, nbins)), np.zeros(nbins), np.zeros(nbins, np.int64), np.zeros(nbins),
                 np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
-    order, start, dims, offsets, xs, us = _prepare(pos, edges[-1])
-    ts = np.ascontiguousarray(temps2[:, order].T)      # (N, M): one tracer's sets side by side
+    w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
+    linear = method == "linear" or (method == "auto" and m_sets >= LINEAR_MIN_SETS)
+    order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
+    ws = np.ascontiguousarray(w[order])
+    regs = np.ascontiguousarray(reg[order])
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
     try:
-        return _kernels.pair_sums(xs, us, ts, np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]),
-                                  start, dims, offsets, edges, _is_uniform(edges), n_jk, want_z)
+        ts = np.empty((n, 0)) if linear else np.ascontiguousarray(temps2[:, order].T)   # (N, M)
+        sums = _kernels.pair_sums(xs, us, ts, ws, regs, np.ascontiguousarray(zz[order]),
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
+        if not linear:
+            return sums
+        full = _kernels.all_rows(int(rows[-1, 3]))
+        if n_jk:
+            row_start, row_reg = _kernels.object_rows(regs, start, dims, full, n_jk)
+        else:
+            row_start, row_reg = np.zeros(n + 1, dtype=np.int64), np.zeros(0, dtype=np.int64)
+        w_obj, v_obj = _kernels.object_sums(xs, us, ws, regs, start, dims, full, edges, _is_uniform(edges),
+                                            row_start, row_reg, n_jk)
     finally:
         numba.set_num_threads(previous)
+    num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
+    _, den, cnt, zsum, _, jk_den, jk_cnt = sums
+    return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
+
+
+def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20):
+    """Numerators of every set, and of the pairs touching every region, from the per-object sums.
+
+    temps2 (M, N) in input order; the other arrays are in cell order (``order`` maps cell order to
+    input order).  Sets are taken in blocks of about ``block_bytes``; for each block the needed
+    columns are gathered once, region by region, so every product is one matrix multiplication
+    on contiguous slices.  A constant added to a set changes no numerator (pair differences), so
+    each set's mean is removed first to keep the products well conditioned.
+    """
+    m_sets, n = temps2.shape
+    nbins = w_obj.shape[1]
+    nj = max(n_jk, 1)
+    reg_in = np.empty(n, dtype=np.int64)
+    reg_in[order] = regs
+    ww = np.empty_like(w_obj)
+    ww[order] = w_obj * ws[:, None]                      # w_i W_i, input order
+    owner = np.repeat(np.arange(n), np.diff(row_start))       # cell-order object of each V row
+    used = np.any(v_obj != 0.0, axis=1)        # rows of regions in reach of the cell but not of the tracer
+    owner, row_reg, v_obj = owner[used], row_reg[used], v_obj[used]
+    row_obj = order[owner]
+    vv = v_obj * ws[owner, None]
+    # columns region by region: the region's own tracers (all of w_i W_i), then the tracers
+    # outside it with partners inside (their V rows for that region)
+    by_region = np.argsort(reg_in, kind="stable")
+    cuts = np.searchsorted(reg_in[by_region], np.arange(nj + 1))
+    rows_by_region = np.argsort(row_reg, kind="stable")
+    row_cuts = np.searchsorted(row_reg[rows_by_region], np.arange(nj + 1))
+    cols, q_parts, seg = [], [], [0]
+    for k in range(nj):
+        rk = rows_by_region[row_cuts[k]:row_cuts[k + 1]]
+        cols += [by_region[cuts[k]:cuts[k + 1]], row_obj[rk]]
+        q_parts += [ww[by_region[cuts[k]:cuts[k + 1]]], vv[rk]]
+        seg += [seg[-1] + cuts[k + 1] - cuts[k], seg[-1] + cuts[k + 1] - cuts[k] + rk.size]
+    cols = np.concatenate(cols)
+    q = np.concatenate(q_parts)
+    seg = np.array(seg)
+    num = np.zeros((m_sets, nbins))
+    jk_num = np.zeros((nj, m_sets, nbins))
+    step = max(1, min(m_sets, int(block_bytes // (8 * max(cols.size, 1)))))
+    buffer = np.empty((step, cols.size))           # reused: no fresh pages per block
+    for m0 in range(0, m_sets, step):
+        block = np.ascontiguousarray(temps2[m0:m0 + step])
+        gathered = buffer[:block.shape[0]]
+        _kernels.gather_centred(block, cols, gathered)
+        for k in range(nj):
+            a0, a1, a2 = seg[2 * k], seg[2 * k + 1], seg[2 * k + 2]
+            inside = gathered[:, a0:a1] @ q[a0:a1]
+            num[m0:m0 + step] += inside
+            if n_jk:
+                jk_num[k, m0:m0 + step] = inside + gathered[:, a1:a2] @ q[a1:a2]
+    return num, jk_num
 
 
 def finalise(sums, edges, *, single: bool, n_jk: int, want_z: bool) -> PairwiseResult:
@@ -210,20 +305,22 @@ def finalise(sums, edges, *, single: bool, n_jk: int, want_z: bool) -> PairwiseR
 
 
 def pairwise_momentum_cross(positions_a, temperatures_a, positions_b, temperatures_b, edges, *, regions_a=None,
-                            regions_b=None, redshifts_a=None, redshifts_b=None, n_threads=None) -> PairwiseResult:
+                            regions_b=None, redshifts_a=None, redshifts_b=None, weights_a=None, weights_b=None,
+                            n_threads=None, method="auto") -> PairwiseResult:
     """The estimator over cross pairs only: one member from catalogue A, the other from B.
 
     Same estimator as :func:`pairwise_momentum` (for example clusters against galaxies); the
     temperature sets of A and B must have the same M.  Regions (both or neither) share one label
-    space; redshifts (both or neither) give the pair redshift.
+    space; redshifts (both or neither) give the pair redshift; weights likewise (both or neither).
 
     Notes
     -----
     Computed from three passes of the engine, sums(A + B) - sums(A) - sums(B), which are exact in
     the pair counts and equal to a direct cross loop up to floating-point rounding.
     """
-    if (regions_a is None) != (regions_b is None) or (redshifts_a is None) != (redshifts_b is None):
-        raise InputError("regions and redshifts must be given for both catalogues or for neither")
+    if ((regions_a is None) != (regions_b is None) or (redshifts_a is None) != (redshifts_b is None)
+            or (weights_a is None) != (weights_b is None)):
+        raise InputError("regions, redshifts and weights must be given for both catalogues or for neither")
     ta = np.asarray(temperatures_a, dtype=np.float64)
     tb = np.asarray(temperatures_b, dtype=np.float64)
     if ta.ndim != tb.ndim or (ta.ndim == 2 and ta.shape[0] != tb.shape[0]):
@@ -232,9 +329,11 @@ def pairwise_momentum_cross(positions_a, temperatures_a, positions_b, temperatur
     both = _validate(np.concatenate([np.asarray(positions_a, float), np.asarray(positions_b, float)]),
                      np.concatenate([ta, tb], axis=-1), edges,
                      None if regions_a is None else np.concatenate([regions_a, regions_b]),
-                     None if redshifts_a is None else np.concatenate([redshifts_a, redshifts_b]))
-    pos, temps2, single, edges, reg, n_jk, zz, want_z = both
-    parts = [pass_sums(pos[sl], temps2[:, sl], reg[sl], zz[sl], edges, n_jk, want_z, n_threads=n_threads)
+                     None if redshifts_a is None else np.concatenate([redshifts_a, redshifts_b]),
+                     None if weights_a is None else np.concatenate([weights_a, weights_b]))
+    pos, temps2, single, edges, reg, n_jk, zz, want_z, w = both
+    parts = [pass_sums(pos[sl], temps2[:, sl], reg[sl], zz[sl], edges, n_jk, want_z,
+                       weights=None if w is None else w[sl], n_threads=n_threads, method=method)
              for sl in (slice(None), slice(None, na), slice(na, None))]
     total = tuple(x - y - w for x, y, w in zip(*parts))
     return finalise(total, edges, single=single, n_jk=n_jk, want_z=want_z)

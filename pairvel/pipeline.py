@@ -119,7 +119,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     """
     progress = progress or Progress(9, quiet=True)
     rng = as_generator(cfg.run.seed)
-    started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
 
     with progress.stage("catalogue"):
         cat: Catalogue = load_catalogue(cfg.catalogue)
@@ -176,11 +176,11 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
             pr = pairwise_momentum_units(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                                         n_units=cfg.compute.n_units, scheduler=cfg.compute.scheduler_address,
+                                         weights=cat.weight, n_units=cfg.compute.n_units, scheduler=cfg.compute.scheduler_address,
                                          n_threads=cfg.compute.n_threads)
         else:
             pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                                   n_threads=cfg.compute.n_threads)
+                                   weights=cat.weight, n_threads=cfg.compute.n_threads)
         progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
 
     with progress.stage("covariance, template and fit"):

@@ -106,3 +106,16 @@ def test_input_file_is_not_modified(tmp_path):
     before = path.read_bytes()
     load_catalogue(cfg_for(path, z_min=0.3))
     assert path.read_bytes() == before
+
+
+def test_weight_column_loaded_and_checked(tmp_path):
+    df = frame()
+    df["W"] = np.linspace(0.5, 2.0, len(df))
+    path = tmp_path / "c.csv"
+    df.to_csv(path, index=False)
+    cat = load_catalogue(cfg_for(path, weight_column="W", z_min=0.3))
+    np.testing.assert_allclose(cat.weight, df["W"][(df.Z >= 0.3)].to_numpy(), rtol=1e-15)
+    df.loc[9, "W"] = -1.0
+    df.to_csv(path, index=False)
+    with pytest.raises(CatalogueError, match=r"column 'W' must be finite and >= 0; 1 rows are not \(first: row 9, W=-1\)"):
+        load_catalogue(cfg_for(path, weight_column="W"))

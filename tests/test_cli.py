@@ -114,3 +114,30 @@ def test_healpix_jackknife_regions(tiny_survey):
     summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
     assert summary["covariance"]["method"].startswith("delete-one jackknife over healpix")
     assert summary["covariance"]["n_regions"] >= 6
+
+
+def test_weight_column_reaches_the_estimator(tiny_survey, capsys):
+    cat = pd.read_csv(tiny_survey / "cat.csv")
+    rng = np.random.default_rng(5)
+    cat["w_flat"] = 2.0
+    cat["w_rand"] = rng.uniform(0.2, 3.0, len(cat))
+    cat["w_bad"] = np.where(np.arange(len(cat)) == 7, -1.0, 1.0)
+    cat.to_csv(tiny_survey / "cat.csv", index=False)
+    base = (tiny_survey / "run.toml").read_text()
+
+    def p_with(column, out):
+        text = base if column is None else base.replace('proxy_column = "log_mass"',
+                                                          f'proxy_column = "log_mass"\nweight_column = "{column}"')
+        (tiny_survey / "run.toml").write_text(text)
+        code = main(["run", str(tiny_survey / "run.toml"), "--out", str(tiny_survey / out), "--quiet"])
+        if code:
+            return code
+        return pd.read_csv(tiny_survey / out / "pairwise.ecsv", comment="#", sep=" ")["p_uK"].to_numpy()
+
+    plain, flat, rand = p_with(None, "o1"), p_with("w_flat", "o2"), p_with("w_rand", "o3")
+    np.testing.assert_allclose(flat, plain, rtol=1e-12)   # analytic: a common weight cancels in the ratio
+    assert np.max(np.abs(rand - plain)) > 1e-3 * np.max(np.abs(plain))
+    capsys.readouterr()
+    assert p_with("w_bad", "o4") == 2
+    line = only_error_line(capsys)
+    assert "w_bad" in line and "row 7" in line and not (tiny_survey / "o4").exists()

@@ -38,6 +38,18 @@ def test_in_process_units_equal_single_pass(n_units):
     assert_same(pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, n_units=n_units), ref)
 
 
+def test_units_with_weights_and_many_sets_on_the_linear_path():
+    pos, _, reg, z = survey()
+    rng = np.random.default_rng(8)
+    temps, w = rng.normal(size=(12, pos.shape[0])), rng.uniform(0.5, 2.0, pos.shape[0])
+    edges = np.linspace(0, 80, 9)
+    ref = pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z, weights=w, method="direct")
+    got = pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, weights=w, n_units=5, method="linear")
+    np.testing.assert_array_equal(got.pair_counts, ref.pair_counts)
+    for name in ("p", "denominator", "z_eff", "p_jk"):
+        np.testing.assert_allclose(getattr(got, name), getattr(ref, name), rtol=1e-9, atol=0)
+
+
 def test_dask_local_cluster_equals_single_pass():
     distributed = pytest.importorskip("dask.distributed")
     pos, temps, reg, z = survey()

@@ -9,8 +9,9 @@ from pairvel.estimator import mean_pairwise_velocity_3d, pairwise_momentum, pair
 from pairvel.geometry import unit_vectors
 
 
-def reference(pos, temps, edges, regions=None, z=None):
-    """Slow O(N^2) numpy version of the estimator, written straight from the formula."""
+def reference(pos, temps, edges, regions=None, z=None, weights=None):
+    """Slow O(N^2) numpy version of the estimator, written straight from the formula
+    (pairs weighted by w_i w_j when weights are given)."""
     temps = np.atleast_2d(temps)
     n = pos.shape[0]
     i, j = np.triu_indices(n, 1)
@@ -19,13 +20,14 @@ def reference(pos, temps, edges, regions=None, z=None):
     u = pos / np.linalg.norm(pos, axis=1)[:, None]
     with np.errstate(invalid="ignore", divide="ignore"):
         c = np.einsum("ij,ij->i", d, u[i] + u[j]) / (2 * r)
+    wij = np.ones_like(r) if weights is None else weights[i] * weights[j]
     b = np.searchsorted(edges, r, side="right") - 1
     ok = (b >= 0) & (b < edges.size - 1) & (r > 0)
     nb = edges.size - 1
 
     def sums(sel):
-        den = np.bincount(b[sel], weights=c[sel] ** 2, minlength=nb)
-        num = np.array([np.bincount(b[sel], weights=((t[i] - t[j]) * c)[sel], minlength=nb) for t in temps])
+        den = np.bincount(b[sel], weights=(wij * c**2)[sel], minlength=nb)
+        num = np.array([np.bincount(b[sel], weights=(wij * (t[i] - t[j]) * c)[sel], minlength=nb) for t in temps])
         return num, den
 
     num, den = sums(ok)
@@ -33,7 +35,7 @@ def reference(pos, temps, edges, regions=None, z=None):
     with np.errstate(invalid="ignore", divide="ignore"):
         out["p"] = -num / den
         if z is not None:
-            out["z"] = np.bincount(b[ok], weights=(c**2 * 0.5 * (z[i] + z[j]))[ok], minlength=nb) / den
+            out["z"] = np.bincount(b[ok], weights=(wij * c**2 * 0.5 * (z[i] + z[j]))[ok], minlength=nb) / den
         if regions is not None:
             jk = []
             for k in range(regions.max() + 1):
@@ -52,13 +54,16 @@ def sky(n, seed, ra_range=(0, 60), dec_range=(-20, 20), dist=(800, 1100)):
 
 @pytest.mark.parametrize("edges", [np.linspace(0, 150, 16), np.array([5.0, 12.0, 30.0, 31.0, 80.0, 140.0])])
 @pytest.mark.parametrize("m_sets", [1, 3])
-def test_kernel_matches_numpy_pair_loop(edges, m_sets):
+@pytest.mark.parametrize("method", ["direct", "linear"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_kernel_matches_numpy_pair_loop(edges, m_sets, method, weighted):
     pos, rng = sky(1500, 11)
     temps = rng.normal(0, 20, (m_sets, 1500)) if m_sets > 1 else rng.normal(0, 20, 1500)
     regions = rng.integers(0, 7, 1500)
     z = rng.uniform(0.2, 0.4, 1500)
-    res = pairwise_momentum(pos, temps, edges, regions=regions, redshifts=z)
-    ref = reference(pos, temps, edges, regions, z)
+    w = rng.uniform(0.0, 3.0, 1500) if weighted else None
+    res = pairwise_momentum(pos, temps, edges, regions=regions, redshifts=z, weights=w, method=method)
+    ref = reference(pos, temps, edges, regions, z, weights=w)
     # reference: slow numpy loop over all pairs (analytic formula of Ferreira et al. 1999)
     np.testing.assert_array_equal(res.pair_counts, ref["cnt"])
     np.testing.assert_allclose(res.denominator, ref["den"], rtol=1e-10)
@@ -246,3 +251,42 @@ def test_every_cell_refinement_matches_numpy_pair_loop(n_sub, monkeypatch):
     np.testing.assert_array_equal(res.pair_counts, ref["cnt"])
     np.testing.assert_allclose(res.p, ref["p"], rtol=1e-10)
     np.testing.assert_allclose(np.moveaxis(res.p_jk, 0, 1), ref["jk"], rtol=1e-10)
+
+
+def test_linear_path_equals_direct_for_many_sets_offsets_and_sparse_regions(monkeypatch):
+    # many sets with a large common offset (the linear path removes each set's mean first),
+    # regions in spatial blocks so most tracers have partners in few other regions
+    pos, rng = sky(4000, 31, ra_range=(0, 90))
+    temps = rng.normal(0, 30, (40, 4000)) + 1e4
+    regions = np.floor(np.degrees(np.arctan2(pos[:, 1], pos[:, 0])) / 9).astype(int)
+    w = rng.uniform(0.5, 1.5, 4000)
+    edges = np.linspace(0, 120, 13)
+    kw = dict(regions=regions, weights=w, redshifts=np.linalg.norm(pos, axis=1) / 3000)
+    a = pairwise_momentum(pos, temps, edges, method="direct", **kw)
+    b = pairwise_momentum(pos, temps, edges, method="linear", **kw)
+    np.testing.assert_array_equal(a.pair_counts, b.pair_counts)
+    np.testing.assert_array_equal(a.denominator, b.denominator)   # same direct pass
+    scale = np.abs(a.numerator).max()
+    np.testing.assert_allclose(b.numerator, a.numerator, rtol=0, atol=1e-11 * scale)
+    np.testing.assert_allclose(b.p_jk, a.p_jk, rtol=1e-9)
+    monkeypatch.setattr("pairvel.estimator.LINEAR_MIN_SETS", 40)
+    c = pairwise_momentum(pos, temps, edges, method="auto", **kw)   # 40 sets: now the linear path
+    np.testing.assert_array_equal(c.p, b.p)
+
+
+def test_weights_zero_removes_a_tracer_and_bad_weights_are_refused():
+    pos, rng = sky(800, 41)
+    temps = rng.normal(0, 10, 800)
+    edges = np.linspace(0, 100, 6)
+    w = np.ones(800)
+    w[:50] = 0.0
+    for method in ("direct", "linear"):
+        weighted = pairwise_momentum(pos, temps, edges, weights=w, method=method)
+        dropped = pairwise_momentum(pos[50:], temps[50:], edges, method=method)
+        np.testing.assert_allclose(weighted.p, dropped.p, rtol=1e-10)   # analytic: w = 0 removes the pairs
+    with pytest.raises(InputError, match=r"weights must be finite and >= 0; 1 are not \(first: row 3\)"):
+        pairwise_momentum(pos, temps, edges, weights=np.where(np.arange(800) == 3, -1.0, 1.0))
+    with pytest.raises(InputError, match=r"weights must have shape \(800,\)"):
+        pairwise_momentum(pos, temps, edges, weights=np.ones(5))
+    with pytest.raises(InputError, match=r"method must be"):
+        pairwise_momentum(pos, temps, edges, method="fast")
