@@ -8,14 +8,19 @@ quoted per pair and the full-size time is scaled by the pair count.
 
 Usage::
 
-    python benchmarks/bench_pairs.py --n 2e5
+    python benchmarks/bench_pairs.py --n 2e5          # also builds cell_loop.c with gcc -O2
     python benchmarks/bench_pairs.py --n 1e6 --sets 3 --regions 50 --baseline-max-pairs 0
 """
 
 from __future__ import annotations
 
 import argparse
+import ctypes
+import pathlib
 import resource
+import shutil
+import subprocess
+import tempfile
 import time
 import tracemalloc
 
@@ -55,6 +60,28 @@ def baseline(pos, temps, edges):
     return -num / den, cnt
 
 
+def c_loop_time(pos, temps, edges, flags):
+    """Build cell_loop.c with gcc and time it on the same points (single set); None without gcc."""
+    gcc = shutil.which("gcc")
+    if gcc is None:
+        return None
+    with tempfile.TemporaryDirectory() as tmp:
+        lib_path = pathlib.Path(tmp) / "cell_loop.so"
+        src = pathlib.Path(__file__).with_name("cell_loop.c")
+        subprocess.run([gcc, *flags.split(), "-shared", "-fPIC", str(src), "-o", str(lib_path), "-lm"], check=True)
+        lib = ctypes.CDLL(str(lib_path))
+        dbl = np.ctypeslib.ndpointer(np.float64, flags="C_CONTIGUOUS")
+        lng = np.ctypeslib.ndpointer(np.int64, flags="C_CONTIGUOUS")
+        lib.cell_loop.argtypes = [ctypes.c_long, dbl, dbl, ctypes.c_double, ctypes.c_long, dbl, dbl, dbl, lng]
+        nbins = edges.size - 1
+        num, den, cnt = np.zeros(nbins), np.zeros(nbins), np.zeros(nbins, dtype=np.int64)
+        t0 = time.perf_counter()
+        lib.cell_loop(pos.shape[0], np.ascontiguousarray(pos), np.ascontiguousarray(temps), float(edges[-1]), nbins,
+                      np.ascontiguousarray(edges), num, den, cnt)
+        elapsed = time.perf_counter() - t0
+    return elapsed, -num / den, cnt
+
+
 def peak_rss_mb():
     """Peak resident memory of this process so far, MB (Linux reports kB)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
@@ -69,6 +96,7 @@ def main(argv=None):
     parser.add_argument("--regions", type=int, default=0, help="jackknife regions (default 0: none)")
     parser.add_argument("--threads", type=int, default=None, help="numba threads (default: all)")
     parser.add_argument("--repeat", type=int, default=3, help="timed repeats of the pair engine; best is shown")
+    parser.add_argument("--c-flags", default="-O2", help="gcc flags for the C cell-list loop (default -O2; '' skips it)")
     parser.add_argument("--baseline-max-pairs", type=float, default=2e7,
                         help="run the baseline on a subsample with about this many pairs (0: skip it)")
     args = parser.parse_args(argv)
@@ -96,12 +124,24 @@ def main(argv=None):
     print(f"pairvel : {n_pairs:,} pairs in {best:.3f} s (best of {args.repeat}) -> {rate:.3e} pairs/s; "
           f"peak RSS so far {peak_rss_mb():.0f} MB")
 
+    t_single = temps if temps.ndim == 1 else temps[0]
+    if args.c_flags and edges[0] == 0.0:
+        ours_one = pairwise_momentum(pos, t_single, edges, n_threads=args.threads)
+        got = c_loop_time(pos, t_single, edges, args.c_flags)
+        if got is None:
+            print("C cell-list loop: skipped (no gcc)")
+        else:
+            t_c, p_c, cnt_c = got
+            same = np.array_equal(cnt_c, ours_one.pair_counts)
+            agree_c = np.nanmax(np.abs(p_c - ours_one.p) / np.abs(ours_one.p))
+            print(f"C cell-list loop (gcc {args.c_flags}, 1 thread, single set, no jackknife): {t_c:.3f} s -> "
+                  f"{cnt_c.sum() / t_c:.3e} pairs/s; pairvel / C = {rate / (cnt_c.sum() / t_c):.2f}x "
+                  f"[same pair counts: {same}; max relative difference of p: {agree_c:.1e}]")
     if args.baseline_max_pairs <= 0:
         return 0
     frac = min(1.0, np.sqrt(args.baseline_max_pairs / max(n_pairs, 1)))  # pairs scale as n^2
     n_sub = max(int(n * frac), 2)
     sub = rng.choice(n, n_sub, replace=False) if n_sub < n else np.arange(n)
-    t_single = temps if temps.ndim == 1 else temps[0]
     ours_sub = pairwise_momentum(pos[sub], t_single[sub], edges, n_threads=args.threads)
     tracemalloc.start()
     t0 = time.perf_counter()
