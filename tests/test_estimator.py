@@ -95,7 +95,8 @@ def test_toy_pair_sign_and_value():
     assert cnt[0] == 1
 
 
-def test_edge_cases_match_reference():
+@pytest.mark.parametrize("method", ["direct", "linear"])
+def test_edge_cases_match_reference(method):
     rng = np.random.default_rng(5)
     n = 400
     ra = np.concatenate([rng.uniform(358, 360, n // 4), rng.uniform(0, 2, n // 4), rng.uniform(0, 360, n // 2)])
@@ -104,17 +105,20 @@ def test_edge_cases_match_reference():
     pos[10] = pos[11]  # a duplicate position: never a pair with itself-like twin
     temps = rng.normal(size=n)
     edges = np.array([2.0, 10.0, 25.0, 40.0])  # not starting at zero
-    res = pairwise_momentum(pos.astype(np.float32), temps.astype(np.float32), edges)
-    ref = reference(pos.astype(np.float32).astype(float), temps.astype(np.float32).astype(float), edges)
+    regions = (ra // 90).astype(int) + 4 * (dec > 45)
+    res = pairwise_momentum(pos.astype(np.float32), temps.astype(np.float32), edges, regions=regions, method=method)
+    ref = reference(pos.astype(np.float32).astype(float), temps.astype(np.float32).astype(float), edges, regions)
     np.testing.assert_array_equal(res.pair_counts, ref["cnt"])
     np.testing.assert_allclose(res.p, ref["p"][0], rtol=1e-10)
+    np.testing.assert_allclose(res.p_jk, ref["jk"][:, 0], rtol=1e-10)
 
 
-def test_single_object_and_empty_bins():
-    res = pairwise_momentum(np.array([[1000.0, 0, 0]]), np.array([3.0]), [0, 10, 20])
+@pytest.mark.parametrize("method", ["direct", "linear"])
+def test_single_object_and_empty_bins(method):
+    res = pairwise_momentum(np.array([[1000.0, 0, 0]]), np.array([3.0]), [0, 10, 20], method=method)
     assert np.all(np.isnan(res.p)) and np.all(res.pair_counts == 0)
     pos = np.array([[1000.0, 0, 0], [1005.0, 0, 0]])
-    res = pairwise_momentum(pos, np.array([1.0, 2.0]), [0, 1, 10, 20])
+    res = pairwise_momentum(pos, np.array([1.0, 2.0]), [0, 1, 10, 20], method=method)
     assert np.isnan(res.p[0]) and np.isfinite(res.p[1]) and np.isnan(res.p[2])
     np.testing.assert_array_equal(res.pair_counts, [0, 1, 0])
 
