@@ -122,6 +122,22 @@ class TheoryConfig:
     wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
     fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
     fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
+    power_table_path: Path | None = _key(None, "linear P(k) table to use instead of Eisenstein & Hu: two text columns "
+                                               "k [1/Mpc], P [Mpc^3], or ECSV with columns k, pk")
+    power_table_z: float = _key(0.0, "redshift of the P(k) table (scaled to other redshifts with D(z))", bounds=(0.0, 20.0))
+    power_table_renormalise: bool = _key(False, "rescale the P(k) table to cosmology.sigma_8 (false: keep its amplitude)")
+    growth_rate: str = _key("exact", "growth rate f(z): exact flat-LCDM value, or linder for Omega_m(z)^0.55",
+                            choices=("exact", "linder"))
+    redshift_weighting: str = _key("pair_distribution", "redshifts the template averages over: pair_distribution "
+                                   "((dN/dz)^2 / (dV/dz) of the catalogue) or effective (one pair-weighted z_eff)",
+                                   choices=("pair_distribution", "effective"))
+    separation_weighting: str = _key("pair_counts", "weighting of r inside each bin: pair_counts (measured) or volume",
+                                     choices=("pair_counts", "volume"))
+    photoz_sigma: float = _key(0.0, "photometric-redshift error sigma_z0 of the tracers, error sigma_z0 (1 + z); "
+                               "0 for spectroscopic redshifts", bounds=(0.0, 0.5))
+    photoz_model: str = _key("convolution", "photo-z damping: convolution (line-of-sight smearing of the pair "
+                             "separation) or exponential (1 - exp(-r^2 / 2 sigma_r^2))",
+                             choices=("convolution", "exponential"))
 
 
 @dataclass(frozen=True)

@@ -95,6 +95,8 @@ def summary_dict(result) -> dict:
     }
     if "demo_check" in result.extra:
         out["demo_check"] = result.extra["demo_check"]
+    if "template" in result.extra:
+        out["template"].update(result.extra["template"])
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 

@@ -33,7 +33,7 @@ from .geometry import comoving_positions
 from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
-from .theory import binned_pairwise_velocity
+from .template import load_power, template_for_run
 from .trend import remove_redshift_trend
 
 _DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
@@ -121,6 +121,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
+    power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
     with progress.stage("catalogue"):
         cat: Catalogue = load_catalogue(cfg.catalogue)
         progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
@@ -194,7 +195,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
         weight = pr.denominator * in_fit
         z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
-        v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
+        v12, template_info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
+                                              z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
         template = T_CMB_UK * v12 / C_KM_S
         fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
         nulls, row = [], 1
@@ -220,5 +222,5 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     return RunResult(
         config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
-        n_tracers=len(cat), selection=selection, provenance=provenance,
+        n_tracers=len(cat), selection=selection, provenance=provenance, extra={"template": template_info},
     )
