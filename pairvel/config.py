@@ -138,6 +138,15 @@ class TheoryConfig:
     photoz_model: str = _key("convolution", "photo-z damping: convolution (line-of-sight smearing of the pair "
                              "separation) or exponential (1 - exp(-r^2 / 2 sigma_r^2))",
                              choices=("convolution", "exponential"))
+    likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
+                           "or sellentin-heavens (marginalised over the jackknife covariance)",
+                           choices=("hartlap", "sellentin-heavens"))
+    proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
+                                                    "with these increasing edges (needs catalogue.proxy_column)")
+    fit_velocity_scale: bool = _key(False, "also fit tau_mean and the velocity amplitude f sigma_8 jointly "
+                                           "(degenerate; see tau_prior_mean)")
+    tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
+    tau_prior_sigma: float | None = _key(None, "width of that prior (set both or neither)", bounds=(1e-12, math.inf))
 
 
 @dataclass(frozen=True)
@@ -353,6 +362,15 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
                                   f"got {b.width_mpc} for {b.r_min_mpc}..{b.r_max_mpc}")
     if not cfg.theory.fit_r_min_mpc < cfg.theory.fit_r_max_mpc:
         bad("theory.fit_r_max_mpc", "must exceed theory.fit_r_min_mpc")
+    th = cfg.theory
+    if th.proxy_bin_edges is not None:
+        pe = np.asarray(th.proxy_bin_edges)
+        if pe.size < 2 or np.any(np.diff(pe) <= 0) or not np.all(np.isfinite(pe)):
+            bad("theory.proxy_bin_edges", f"must be at least two finite, increasing values; got {list(pe)}")
+        if cfg.catalogue.proxy_column is None:
+            bad("catalogue.proxy_column", "is required when theory.proxy_bin_edges is set")
+    if (th.tau_prior_mean is None) != (th.tau_prior_sigma is None):
+        bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
 
 
 def load_config(path) -> Config:

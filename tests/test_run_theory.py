@@ -35,3 +35,36 @@ def test_power_table_and_template_options_reach_the_outputs(tiny_survey):
     assert info["power_spectrum"].startswith("table ") and "sha256" in info["power_spectrum"]
     assert info["photoz_model"] == "convolution" and info["photoz_sigma_z0"] == 0.01
     assert abs(sum(info["z_weights"]) - 1) < 1e-12 and 0.1 <= info["z_mean_model"] <= 0.2
+
+
+def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
+    toml = ('likelihood = "sellentin-heavens"\nproxy_bin_edges = [14.0, 14.5, 15.0]\nfit_velocity_scale = true\n'
+            'tau_prior_mean = 0.01\ntau_prior_sigma = 0.002\n')
+    assert run(tiny_survey, toml) == 0
+    out = tiny_survey / "out"
+    for name in ("proxy_bins.ecsv", "tau_vs_proxy.png", "velocity_scale.png"):
+        assert (out / name).is_file(), name
+    s = json.loads((out / "summary.json").read_text())
+    assert s["likelihood"] == "sellentin-heavens" and s["fit"]["likelihood"] == "sellentin-heavens"
+    lo, hi = s["tau_mean_68"]
+    assert lo < s["tau_mean"] < hi
+    bins = s["proxy_bins"]["bins"]
+    assert len(bins) == 2 and sum(b["n_tracers"] for b in bins) == s["n_tracers"]
+    # conversion: T_CMB / c in uK per km/s (analytic, SCIENCE.md: T_CMB = 2.72548 K)
+    conv = s["conversion"]
+    np.testing.assert_allclose(conv["uK_per_km_s_per_unit_tau"], 2.72548e6 / 299792.458, rtol=1e-12)
+    np.testing.assert_allclose(conv["uK_per_km_s_at_fitted_tau"], conv["uK_per_km_s_per_unit_tau"] * s["tau_mean"],
+                               rtol=1e-12)
+    joint = s["velocity_scale_fit"]
+    assert joint["tau_prior"] == {"mean": 0.01, "sigma": 0.002} and joint["f_sigma8_std"] > 0
+    report = (out / "report.md").read_text()
+    for heading in ("## Template, likelihood and units", "## Fits per bin of log_mass",
+                    "## Joint fit of tau_mean and f sigma_8"):
+        assert heading in report
+
+
+def test_theory_config_consistency(tiny_survey, capsys):
+    assert run(tiny_survey, "tau_prior_mean = 0.01\n") == 2
+    assert "tau_prior_sigma" in error_line(capsys)
+    assert run(tiny_survey, "proxy_bin_edges = [15.0, 14.0]\n") == 2
+    assert "proxy_bin_edges" in error_line(capsys)
