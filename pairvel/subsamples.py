@@ -98,7 +98,7 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
                                    "fitted separation bins without pairs in some jackknife sample"))
             continue
         weight = pr.denominator * in_fit
-        z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
+        z_eff = float(np.sum(weight * np.nan_to_num(pr.z_eff)) / np.sum(weight))
         v12, _ = template_for_run(theory_cfg, cosmo, edges, pair_counts=pr.pair_counts, z_tracers=redshifts[sel],
                                   z_eff=z_eff, power=power)
         cov = jackknife_covariance(np.where(np.isfinite(pr.p_jk), pr.p_jk, 0.0))

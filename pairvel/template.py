@@ -138,11 +138,12 @@ def _separation_weights(edges, pair_counts):
     n = np.asarray(pair_counts, dtype=float)
     if n.shape != (edges.size - 1,) or np.any(~np.isfinite(n)) or np.any(n < 0):
         raise TheoryError(f"pair counts must be {edges.size - 1} finite values >= 0; got shape {n.shape}")
-    if np.any(n <= 0):
+    filled = n > 0
+    if not filled.any():
         return None
-    g = n / ((edges[1:] ** 3 - edges[:-1] ** 3) / 3)
-    mid = 0.5 * (edges[1:] + edges[:-1])
-    return lambda r: np.interp(r, mid, g)
+    g = n[filled] / ((edges[1:] ** 3 - edges[:-1] ** 3)[filled] / 3)
+    mid = 0.5 * (edges[1:] + edges[:-1])[filled]
+    return lambda r: np.interp(r, mid, g)  # bins without pairs take g from their neighbours
 
 
 def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY,
@@ -157,8 +158,8 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
         Redshifts of the pairs and their weights (e.g. from :func:`pair_redshift_distribution`, or a
         single effective redshift with weight 1).
     pair_counts : ndarray of shape (nbins,), optional
-        Measured pairs per bin; sets the weighting inside each bin (see the module notes).  None, or a
-        bin without pairs, falls back to volume (r^2) weighting.
+        Measured pairs per bin; sets the weighting inside each bin (see the module notes).  None falls
+        back to volume (r^2) weighting; a bin without pairs takes g(r) from its neighbours.
     sigma_z0 : float, default 0
         Photometric-redshift error sigma_z0 (1 + z); 0 for spectroscopic redshifts.
     photoz_model : {"convolution", "exponential"}

@@ -68,3 +68,10 @@ def test_theory_config_consistency(tiny_survey, capsys):
     assert "tau_prior_sigma" in error_line(capsys)
     assert run(tiny_survey, "proxy_bin_edges = [15.0, 14.0]\n") == 2
     assert "proxy_bin_edges" in error_line(capsys)
+
+
+def test_empty_proxy_bin_is_reported_not_fatal(tiny_survey):
+    assert run(tiny_survey, "proxy_bin_edges = [14.0, 15.0, 16.0]\n") == 0
+    bins = json.loads((tiny_survey / "out" / "summary.json").read_text())["proxy_bins"]["bins"]
+    assert bins[0]["tau_mean_error"] > 0 and bins[0]["problem"] is None
+    assert bins[1]["n_tracers"] == 0 and bins[1]["problem"] == "only 0 tracers" and "tau_mean" not in bins[1]

@@ -106,3 +106,12 @@ def test_growth_option_in_the_template():
     r = np.array([20.0, 60.0])
     ratio = th.pairwise_velocity(r, 0.5, growth="linder") / th.pairwise_velocity(r, 0.5)
     np.testing.assert_allclose(ratio, th.growth_rate(0.5, method="linder") / th.growth_rate(0.5), rtol=1e-12)
+
+
+def test_bin_without_pairs_borrows_its_neighbours_weighting():
+    """A bin with zero pairs (outside a subsample's reach) leaves the other bins' pair-count weighting
+    intact: with counts proportional to the shell volumes elsewhere, the result is the volume average."""
+    shells = (EDGES[1:] ** 3 - EDGES[:-1] ** 3) * 3.0
+    shells[-1] = 0
+    np.testing.assert_allclose(tp.bin_averaged_velocity(EDGES, [0.3], [1.0], pair_counts=shells),
+                               th.binned_pairwise_velocity(EDGES, 0.3), rtol=1e-12)
