@@ -18,12 +18,13 @@ from __future__ import annotations
 
 __all__ = ["S_MAX_OVER_FID", "VelocityScaleFit", "fit_velocity_scale", "hpd_levels", "plot_velocity_scale"]
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
 
-from .errors import InputError
+from .errors import InputError, PairvelWarning
 from .fit import ONE_SIGMA, AmplitudeFit
 
 #: Upper end of the flat prior on f sigma_8, in units of the template's value.
@@ -155,6 +156,11 @@ def fit_velocity_scale(fit: AmplitudeFit, s_fid: float, *, n_samples=None, tau_p
         lo, hi = (float(np.interp(q, cdf, s)) for q in (0.5 - ONE_SIGMA / 2, 0.5 + ONE_SIGMA / 2))
     else:
         s_m = s_sd = lo = hi = float("nan")
+    edge_mass = float(ps[-max(1, n_s // 50):].sum()) if tau_prior is not None else 0.0
+    if edge_mass > 0.01:
+        warnings.warn(f"the f sigma_8 posterior reaches the top of its flat prior ({s[-1]:.3g}; {edge_mass:.1%} of the "
+                      f"mass in the top 2%): the marginal is truncated; check the prior on tau_mean",
+                      PairvelWarning, stacklevel=2)
     return VelocityScaleFit(tau, s, post, float(s_fid), float(a_hat), float(a_err),
                             None if tau_prior is None else (mu, sig), s_m, s_sd, lo, hi, tau_m, tau_sd,
                             fit.likelihood)

@@ -98,6 +98,9 @@ def summary_dict(result) -> dict:
     if "template" in result.extra:
         out["template"].update(result.extra["template"])
     out.update(theory_summary(result))
+    if result.fit.likelihood == "sellentin-heavens":
+        out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
+                                                     "enters only the reported chi2 values)")
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 

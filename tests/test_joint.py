@@ -67,3 +67,12 @@ def test_joint_fit_errors():
         fit_velocity_scale(fit, S_FID, tau_prior=(1.0, 0.0))
     with pytest.raises(InputError, match="f sigma_8 must be finite and > 0"):
         fit_velocity_scale(fit, 0.0)
+
+
+def test_truncated_posterior_warns():
+    """A prior on tau far below what the amplitude needs pushes f sigma_8 against the top of its range."""
+    from pairvel.errors import PairvelWarning
+
+    fit = fit_amplitude(5.0 * T, T, COV)
+    with pytest.warns(PairvelWarning, match="top of its flat prior"):
+        fit_velocity_scale(fit, S_FID, tau_prior=(1.0, 0.05))

@@ -46,6 +46,7 @@ def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
         assert (out / name).is_file(), name
     s = json.loads((out / "summary.json").read_text())
     assert s["likelihood"] == "sellentin-heavens" and s["fit"]["likelihood"] == "sellentin-heavens"
+    assert s["covariance"]["precision_correction"].startswith("none: Sellentin & Heavens")
     lo, hi = s["tau_mean_68"]
     assert lo < s["tau_mean"] < hi
     bins = s["proxy_bins"]["bins"]
@@ -66,6 +67,8 @@ def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
 def test_theory_config_consistency(tiny_survey, capsys):
     assert run(tiny_survey, "tau_prior_mean = 0.01\n") == 2
     assert "tau_prior_sigma" in error_line(capsys)
+    assert run(tiny_survey, "tau_prior_mean = 0.01\ntau_prior_sigma = 0.001\n") == 2
+    assert "only by the joint fit" in error_line(capsys)
     assert run(tiny_survey, "proxy_bin_edges = [15.0, 14.0]\n") == 2
     assert "proxy_bin_edges" in error_line(capsys)
 

@@ -115,3 +115,41 @@ def test_bin_without_pairs_borrows_its_neighbours_weighting():
     shells[-1] = 0
     np.testing.assert_allclose(tp.bin_averaged_velocity(EDGES, [0.3], [1.0], pair_counts=shells),
                                th.binned_pairwise_velocity(EDGES, 0.3), rtol=1e-12)
+
+
+def test_pair_redshift_model_against_the_pair_engine():
+    """The (dN/dz)^2/(dV/dz) model against the c_ij^2-weighted mean pair redshift that the pair engine
+    measures, for 30000 random tracers in a 25 x 24 deg cone with a selection falling with z: the model
+    mean is within 0.003 of the measured one in the 0-20 Mpc bin (measured 0.2174, model 0.2160),
+    the tracers' own mean redshift (0.27) is not."""
+    from pairvel.estimator import pairwise_momentum
+    from pairvel.geometry import comoving_positions
+
+    rng = np.random.default_rng(2)
+    zg = np.linspace(0.1, 0.6, 3001)
+    pdf = C.comoving_distance_mpc(zg) ** 2 / C.hubble_km_s_mpc(zg) * np.exp(-(((zg - 0.1) / 0.2) ** 2))
+    n = 30000
+    z = np.interp(rng.uniform(size=n), np.cumsum(pdf) / pdf.sum(), zg)
+    ra = rng.uniform(0, 25, n)
+    dec = np.degrees(np.arcsin(rng.uniform(np.sin(np.radians(-12)), np.sin(np.radians(12)), n)))
+    pr = pairwise_momentum(comoving_positions(ra, dec, z), np.zeros(n), np.array([0.0, 20.0]), redshifts=z)
+    zn, w = tp.pair_redshift_distribution(z)
+    model = np.sum(zn * w)
+    assert abs(model - pr.z_eff[0]) < 0.003, (model, pr.z_eff)
+    assert abs(z.mean() - pr.z_eff[0]) > 0.03
+
+
+def test_exponential_form_uses_the_pair_error():
+    """SCIENCE.md asks which width enters 1 - exp(-r^2/2 sigma_r^2) for a pair: against the convolution
+    (derived, and checked by Monte Carlo above), sigma_r = sqrt(2) sigma_x (the error of the pair
+    difference, as implemented) is closer on 20-200 Mpc than the single-tracer sigma_x."""
+    edges = np.arange(20.0, 201.0, 20.0)
+    conv = tp.bin_averaged_velocity(edges, [0.4], [1.0], sigma_z0=0.01)
+    pair = tp.bin_averaged_velocity(edges, [0.4], [1.0], sigma_z0=0.01, photoz_model="exponential")
+    single = tp.bin_averaged_velocity(edges, [0.4], [1.0], sigma_z0=0.01 / np.sqrt(2), photoz_model="exponential")
+    undamped = th.binned_pairwise_velocity(edges, 0.4)
+
+    def rms(a):
+        return np.sqrt(np.mean(((a - conv) / undamped) ** 2))
+
+    assert rms(pair) < 0.5 * rms(single), (rms(pair), rms(single))  # measured 0.055 and 0.184
