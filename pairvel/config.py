@@ -371,6 +371,8 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
             bad("catalogue.proxy_column", "is required when theory.proxy_bin_edges is set")
     if (th.tau_prior_mean is None) != (th.tau_prior_sigma is None):
         bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
+    if th.power_table_path is None and (th.power_table_renormalise or th.power_table_z != 0):
+        bad("theory.power_table_path", "is required when power_table_z or power_table_renormalise is set")
     if th.tau_prior_mean is not None and not th.fit_velocity_scale:
         bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
 

@@ -94,6 +94,9 @@ class TabulatedPower:
             raise InputError(f"{where}: redshift of the table must be in [0, 20]; got {self.z!r}", path=self.source)
         top = k >= k[-1] / 10
         slope = np.polyfit(np.log(k[top]), np.log(pk[top]), 1)[0]
+        if not slope < -1.5:  # linear P(k) falls as about k^-2.3 to k^-2.7 at 2-50 /Mpc
+            raise InputError(f"{where}: P(k) must fall at least as steeply as k^-1.5 over the last decade of k "
+                             f"to be extended beyond it; its log-slope there is {slope:.2f}", path=self.source)
         object.__setattr__(self, "k", k)
         object.__setattr__(self, "pk", pk)
         object.__setattr__(self, "_slope_hi", float(slope))

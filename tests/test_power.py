@@ -40,6 +40,8 @@ def test_table_redshift_and_renormalisation(tmp_path):
     d1 = th.growth_factor(1.0)
     at_z1 = read_power_table(write_text(tmp_path / "z1.txt", k, d1**2 * th.linear_power(k)), z=1.0)
     np.testing.assert_allclose(th.linear_power([0.05, 0.2], power=at_z1), th.linear_power([0.05, 0.2]), rtol=1e-3)
+    Table({"k": k, "pk": th.linear_power(k)}).write(tmp_path / "nounit.ecsv", format="ascii.ecsv")
+    np.testing.assert_allclose(read_power_table(tmp_path / "nounit.ecsv").pk, th.linear_power(k), rtol=1e-12)
     twice = write_text(tmp_path / "x2.txt", k, 2 * th.linear_power(k))
     np.testing.assert_allclose(th.sigma_radius(8 / C.h, power=read_power_table(twice)), np.sqrt(2) * C.sigma_8,
                                rtol=1e-3)
@@ -103,6 +105,10 @@ def test_bad_tables(tmp_path):
         read_power_table(write_text(tmp_path / "dup.txt", kk, pk))
     with pytest.raises(InputError, match=r"must cover k from <= 0.001 to >= 2 1/Mpc.*h/Mpc"):
         read_power_table(write_text(tmp_path / "short.txt", np.geomspace(0.01, 1, 50), pk))
+    flat = pk.copy()
+    flat[k > 5] = flat[k > 5][0]
+    with pytest.raises(InputError, match="must fall at least as steeply as k\\^-1.5"):
+        read_power_table(write_text(tmp_path / "flat.txt", k, flat))
     Table({"kk": k, "pk": pk}).write(tmp_path / "cols.ecsv", format="ascii.ecsv")
     with pytest.raises(InputError, match=r"must have columns 'k' and 'pk'; missing \['k'\]"):
         read_power_table(tmp_path / "cols.ecsv")

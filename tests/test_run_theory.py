@@ -69,6 +69,8 @@ def test_theory_config_consistency(tiny_survey, capsys):
     assert "tau_prior_sigma" in error_line(capsys)
     assert run(tiny_survey, "tau_prior_mean = 0.01\ntau_prior_sigma = 0.001\n") == 2
     assert "only by the joint fit" in error_line(capsys)
+    assert run(tiny_survey, "power_table_z = 1.0\n") == 2
+    assert "power_table_path" in error_line(capsys)
     assert run(tiny_survey, "proxy_bin_edges = [15.0, 14.0]\n") == 2
     assert "proxy_bin_edges" in error_line(capsys)
 
