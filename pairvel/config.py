@@ -124,6 +124,31 @@ class TheoryConfig:
     wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
     fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
     fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
+    power_table_path: Path | None = _key(None, "linear P(k) table to use instead of Eisenstein & Hu: two text columns "
+                                               "k [1/Mpc], P [Mpc^3], or ECSV with columns k, pk")
+    power_table_z: float = _key(0.0, "redshift of the P(k) table (scaled to other redshifts with D(z))", bounds=(0.0, 20.0))
+    power_table_renormalise: bool = _key(False, "rescale the P(k) table to cosmology.sigma_8 (false: keep its amplitude)")
+    growth_rate: str = _key("exact", "growth rate f(z): exact flat-LCDM value, or linder for Omega_m(z)^0.55",
+                            choices=("exact", "linder"))
+    redshift_weighting: str = _key("pair_distribution", "redshifts the template averages over: pair_distribution "
+                                   "((dN/dz)^2 / (dV/dz) of the catalogue) or effective (one pair-weighted z_eff)",
+                                   choices=("pair_distribution", "effective"))
+    separation_weighting: str = _key("pair_counts", "weighting of r inside each bin: pair_counts (measured) or volume",
+                                     choices=("pair_counts", "volume"))
+    photoz_sigma: float = _key(0.0, "photometric-redshift error sigma_z0 of the tracers, error sigma_z0 (1 + z); "
+                               "0 for spectroscopic redshifts", bounds=(0.0, 0.5))
+    photoz_model: str = _key("convolution", "photo-z damping: convolution (line-of-sight smearing of the pair "
+                             "separation) or exponential (1 - exp(-r^2 / 2 sigma_r^2))",
+                             choices=("convolution", "exponential"))
+    likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
+                           "or sellentin-heavens (marginalised over the jackknife covariance)",
+                           choices=("hartlap", "sellentin-heavens"))
+    proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
+                                                    "with these increasing edges (needs catalogue.proxy_column)")
+    fit_velocity_scale: bool = _key(False, "also fit tau_mean and the velocity amplitude f sigma_8 jointly "
+                                           "(degenerate; see tau_prior_mean)")
+    tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
+    tau_prior_sigma: float | None = _key(None, "width of that prior (set both or neither)", bounds=(1e-12, math.inf))
 
 
 @dataclass(frozen=True)
@@ -339,6 +364,19 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
                                   f"got {b.width_mpc} for {b.r_min_mpc}..{b.r_max_mpc}")
     if not cfg.theory.fit_r_min_mpc < cfg.theory.fit_r_max_mpc:
         bad("theory.fit_r_max_mpc", "must exceed theory.fit_r_min_mpc")
+    th = cfg.theory
+    if th.proxy_bin_edges is not None:
+        pe = np.asarray(th.proxy_bin_edges)
+        if pe.size < 2 or np.any(np.diff(pe) <= 0) or not np.all(np.isfinite(pe)):
+            bad("theory.proxy_bin_edges", f"must be at least two finite, increasing values; got {list(pe)}")
+        if cfg.catalogue.proxy_column is None:
+            bad("catalogue.proxy_column", "is required when theory.proxy_bin_edges is set")
+    if (th.tau_prior_mean is None) != (th.tau_prior_sigma is None):
+        bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
+    if th.power_table_path is None and (th.power_table_renormalise or th.power_table_z != 0):
+        bad("theory.power_table_path", "is required when power_table_z or power_table_renormalise is set")
+    if th.tau_prior_mean is not None and not th.fit_velocity_scale:
+        bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
 
 
 def load_config(path) -> Config:

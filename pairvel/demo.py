@@ -62,7 +62,7 @@ def attach_truth_check(result):
         v_real = np.asarray(truth["v12_los_realised_km_s"], dtype=float)
         t_real = T_CMB_UK * v_real / C_KM_S
         real_fit = fit_amplitude(result.p, t_real, result.covariance,
-                                 n_samples=result.n_jk, use=result.in_fit)
+                                 n_samples=result.n_jk, use=result.in_fit, likelihood=fit.likelihood)
         check["tau_mean_vs_realised_velocity"] = real_fit.amplitude
         check["tau_mean_vs_realised_velocity_error"] = real_fit.error
         check["pull_vs_realised_sigma"] = (real_fit.amplitude - tau_true) / real_fit.error

@@ -6,12 +6,21 @@ mean optical depth tau_mean:
     A = t^T Psi d / t^T Psi t,    sigma_A = (t^T Psi t)^(-1/2),
 
 with Psi the inverse covariance times the Hartlap, Simon & Schneider (2007, A&A 464, 399) factor
-(n - p - 2)/(n - 1) when the covariance comes from n samples.
+(n - p - 2)/(n - 1) when the covariance comes from n samples.  Alternatively the Sellentin & Heavens
+(2016, MNRAS 456, L132) likelihood, which marginalises over the true covariance given the estimate
+from n samples: L(A) ~ [1 + chi2(A)/(n - 1)]^(-n/2) with chi2 from the plain inverse.  For a model
+linear in A with a flat prior this is a Student t with n - 1 degrees of freedom,
+
+    A = A_hat + s t_{n-1},   s = sigma_0 sqrt((n - 1 + chi2_min) / (n - 1)),
+
+sigma_0 = (t^T C^-1 t)^(-1/2) (derived from their eq. 17; tests/test_fit.py checks it against a
+numerical integration of the likelihood).
 """
 
 from __future__ import annotations
 
-__all__ = ["AmplitudeFit", "hartlap_factor", "chi2_pte", "fit_amplitude", "chi2_against_zero"]
+__all__ = ["LIKELIHOODS", "AmplitudeFit", "chi2_against_zero", "chi2_pte", "fit_amplitude", "hartlap_factor",
+           "sellentin_heavens_interval"]
 
 from dataclasses import asdict, dataclass
 
@@ -19,6 +28,11 @@ import numpy as np
 from scipy import stats
 
 from .errors import InputError
+
+#: Likelihoods :func:`fit_amplitude` offers.
+LIKELIHOODS = ("hartlap", "sellentin-heavens")
+#: Probability inside +-1 sigma of a Gaussian, 0.682689...
+ONE_SIGMA = float(stats.norm.cdf(1.0) - stats.norm.cdf(-1.0))
 
 
 @dataclass(frozen=True)
@@ -40,9 +54,13 @@ class AmplitudeFit:
     n_bins: int
     precision_factor: float
     snr_delta_chi2: float = float("nan")
+    likelihood: str = "hartlap"
+    lower_68: float = float("nan")
+    upper_68: float = float("nan")
 
     def as_dict(self) -> dict:
-        return {k: (int(v) if isinstance(v, (int, np.integer)) else float(v)) for k, v in asdict(self).items()}
+        return {k: (v if isinstance(v, str) else int(v) if isinstance(v, (int, np.integer)) else float(v))
+                for k, v in asdict(self).items()}
 
 
 def hartlap_factor(n_samples: int, n_bins: int) -> float:
@@ -81,8 +99,34 @@ def _precision(covariance, n_bins, n_samples, what="covariance"):
     return factor * inv.T @ inv, factor
 
 
-def fit_amplitude(data, template, covariance, *, n_samples=None, use=None) -> AmplitudeFit:
-    """Least-squares amplitude of ``template`` in ``data`` with a Gaussian likelihood.
+def sellentin_heavens_interval(amplitude, sigma_0, chi2_min, n_samples, *, level=ONE_SIGMA):
+    """Central interval of A under the Sellentin & Heavens (2016) likelihood (see the module notes).
+
+    Parameters
+    ----------
+    amplitude, sigma_0 : float
+        Best fit and its Gaussian error from the plain (uncorrected) inverse covariance.
+    chi2_min : float
+        chi2 at the best fit with the plain inverse.
+    n_samples : int
+        Samples the covariance was estimated from.
+    level : float
+        Probability inside the interval.
+
+    Returns
+    -------
+    (lower, upper) : tuple of float
+    """
+    nu = int(n_samples) - 1
+    if nu < 1:
+        raise InputError(f"the Sellentin-Heavens likelihood needs a covariance from >= 2 samples; got {n_samples}")
+    scale = sigma_0 * np.sqrt((nu + chi2_min) / nu)
+    half = scale * stats.t.ppf(0.5 + level / 2, nu)
+    return amplitude - half, amplitude + half
+
+
+def fit_amplitude(data, template, covariance, *, n_samples=None, use=None, likelihood="hartlap") -> AmplitudeFit:
+    """Least-squares amplitude of ``template`` in ``data`` with a Gaussian or Sellentin-Heavens likelihood.
 
     Parameters
     ----------
@@ -93,7 +137,22 @@ def fit_amplitude(data, template, covariance, *, n_samples=None, use=None) -> Am
         Hartlap factor.
     use : ndarray of shape (nbins,), bool, optional
         Bins to fit (the fit range); default all.
+    likelihood : {"hartlap", "sellentin-heavens"}, default "hartlap"
+        "hartlap": Gaussian with the Hartlap-corrected precision (error = 1-sigma).
+        "sellentin-heavens": the Student-t posterior of the module notes (needs ``n_samples``);
+        ``error`` is half the central 68.27% (ONE_SIGMA) interval, ``snr`` = amplitude / error, and
+        ``snr_delta_chi2`` is sqrt(-2 ln L(0)/L(A_hat)) of that likelihood.  The chi2 values and
+        PTEs are those of the Hartlap-corrected precision in both cases (goodness of fit).
+
+    Notes
+    -----
+    Both likelihoods give the same best fit A_hat; they differ in the width and tails of its
+    distribution.
     """
+    if likelihood not in LIKELIHOODS:
+        raise InputError(f"likelihood must be one of {LIKELIHOODS}; got {likelihood!r}")
+    if likelihood == "sellentin-heavens" and n_samples is None:
+        raise InputError("the Sellentin-Heavens likelihood needs n_samples (the number of jackknife regions)")
     d = np.asarray(data, dtype=float)
     t = np.asarray(template, dtype=float)
     if d.ndim != 1 or t.shape != d.shape:
@@ -118,8 +177,17 @@ def fit_amplitude(data, template, covariance, *, n_samples=None, use=None) -> Am
     chi2_null = float(d @ psi @ d)
     n = d.size
     delta = np.sign(amp) * np.sqrt(max(chi2_null - chi2_min, 0.0))
+    lo, hi = amp - err, amp + err
+    if likelihood == "sellentin-heavens":
+        sigma_0 = err * np.sqrt(factor)  # the plain inverse is the Hartlap one divided by the factor
+        c2min, c2null = chi2_min / factor, chi2_null / factor
+        lo, hi = sellentin_heavens_interval(amp, sigma_0, c2min, n_samples)
+        err = 0.5 * (hi - lo)
+        lnr = 0.5 * n_samples * (np.log1p(c2null / (n_samples - 1)) - np.log1p(c2min / (n_samples - 1)))
+        delta = np.sign(amp) * np.sqrt(max(2 * lnr, 0.0))
     return AmplitudeFit(float(amp), float(err), float(amp / err), chi2_min, chi2_null, n - 1,
-                        chi2_pte(chi2_min, n - 1), chi2_pte(chi2_null, n), n, factor, float(delta))
+                        chi2_pte(chi2_min, n - 1), chi2_pte(chi2_null, n), n, factor, float(delta),
+                        likelihood, float(lo), float(hi))
 
 
 def chi2_against_zero(data, covariance, *, n_samples=None):

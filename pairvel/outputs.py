@@ -95,7 +95,126 @@ def summary_dict(result) -> dict:
     }
     if "demo_check" in result.extra:
         out["demo_check"] = result.extra["demo_check"]
+    if "template" in result.extra:
+        out["template"].update(result.extra["template"])
+    out.update(theory_summary(result))
+    if result.fit.likelihood == "sellentin-heavens":
+        out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
+                                                     "enters only the reported chi2 values)")
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
+
+
+def conversion(result) -> dict:
+    """How the fitted amplitude, tau_mean and a velocity scale relate, with the numbers of this run."""
+    from .constants import C_KM_S, T_CMB_UK
+
+    uk_per_km_s = T_CMB_UK / C_KM_S
+    tau = float(result.fit.amplitude)
+    v_fit = result.v12_template[result.in_fit]
+    info = result.extra.get("template", {})
+    return {
+        "statement": ("p(r) = tau_mean * T_CMB * v12(r) / c.  The fitted amplitude is tau_mean: the measured curve "
+                      "is tau_mean times the template T_CMB v12_template(r) / c.  Only the product tau_mean * v12 is "
+                      "measured, so a velocity scale different from the template's (e.g. f sigma_8 / "
+                      "f_sigma8_template) rescales tau_mean inversely."),
+        "uK_per_km_s_per_unit_tau": uk_per_km_s,
+        "uK_per_km_s_at_fitted_tau": uk_per_km_s * tau,
+        "km_s_per_uK_at_fitted_tau": (1.0 / (uk_per_km_s * tau)) if tau != 0 else float("inf"),
+        "template_v12_km_s_in_fit_range": [float(v_fit.min()), float(v_fit.max())] if v_fit.size else None,
+        "f_sigma8_template": info.get("f_sigma8_template"),
+        "measured_tau_times_velocity_scale_over_template": tau,
+    }
+
+
+def theory_summary(result) -> dict:
+    """summary.json entries for the conversion, the likelihood, proxy-bin fits and the joint fit."""
+    out = {"conversion": conversion(result), "likelihood": result.fit.likelihood}
+    if result.fit.likelihood == "sellentin-heavens":
+        out["tau_mean_68"] = [result.fit.lower_68, result.fit.upper_68]
+    if "proxy_bins" in result.extra:
+        out["proxy_bins"] = {"proxy_column": result.config.catalogue.proxy_column,
+                             "bins": [b.as_dict() for b in result.extra["proxy_bins"]]}
+    if "velocity_scale_fit" in result.extra:
+        out["velocity_scale_fit"] = result.extra["velocity_scale_fit"].as_dict()
+    return out
+
+
+def _write_theory_outputs(result, folder: Path) -> list:
+    """proxy_bins.ecsv + tau_vs_proxy.png and velocity_scale.png when those fits ran; returns file names."""
+    from astropy.table import Table
+
+    written = []
+    if "proxy_bins" in result.extra:
+        from .subsamples import plot_proxy_bins
+
+        bins = result.extra["proxy_bins"]
+        rows = [b.as_dict() for b in bins]
+        table = Table()
+        for key in ("proxy_min", "proxy_max", "proxy_median", "n_tracers", "n_pairs", "n_regions", "z_mean"):
+            table[key] = [r[key] for r in rows]
+        for key in ("tau_mean", "tau_mean_error", "snr", "chi2_min", "pte_min"):
+            table[key] = [r.get(key, np.nan) for r in rows]
+        table["problem"] = [r["problem"] or "" for r in rows]
+        table.meta["description"] = (f"tau_mean fitted separately in bins of {result.config.catalogue.proxy_column}; "
+                                     f"likelihood {result.fit.likelihood}")
+        table.write(folder / "proxy_bins.ecsv", format="ascii.ecsv")
+        plot_proxy_bins(bins, folder / "tau_vs_proxy.png", proxy_name=str(result.config.catalogue.proxy_column),
+                        tau_all=result.fit.amplitude, tau_all_error=result.fit.error)
+        written += ["proxy_bins.ecsv", "tau_vs_proxy.png"]
+    if "velocity_scale_fit" in result.extra:
+        from .joint import plot_velocity_scale
+
+        plot_velocity_scale(result.extra["velocity_scale_fit"], folder / "velocity_scale.png")
+        written.append("velocity_scale.png")
+    return written
+
+
+def _theory_report(result) -> list:
+    """Report lines: template, likelihood, conversion, proxy bins, joint fit."""
+    f = result.fit
+    conv = conversion(result)
+    info = result.extra.get("template", {})
+    lines = ["", "## Template, likelihood and units", ""]
+    if info:
+        lines += [f"- power spectrum: {info.get('power_spectrum')}; growth rate: {info.get('growth_rate')}",
+                  (f"- redshifts: {info.get('redshift_weighting')} (mean pair redshift of the model "
+                   f"{info.get('z_mean_model', float('nan')):.3f}); separations inside bins: "
+                   f"{info.get('separation_weighting')}"),
+                  "- photo-z damping: " + ("none (spectroscopic redshifts)" if not info.get("photoz_model") else
+                                            f"{info['photoz_model']}, sigma_z = {info['photoz_sigma_z0']:g} (1 + z)")]
+    if f.likelihood == "sellentin-heavens":
+        lines.append(f"- likelihood: Sellentin & Heavens (2016), {result.n_jk} jackknife regions; 68% interval of "
+                     f"tau_mean [{f.lower_68:.4e}, {f.upper_68:.4e}]")
+    else:
+        lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} "
+                     f"({result.n_jk} jackknife regions)")
+    lines += [f"- conversion: {conv['statement']}",
+              f"- 1 km/s of v12 gives {conv['uK_per_km_s_per_unit_tau']:.4f} uK per unit optical depth, i.e. "
+              f"{conv['uK_per_km_s_at_fitted_tau']:.3e} uK at the fitted tau_mean"
+              + (f"; the template's f sigma_8 is {conv['f_sigma8_template']:.4f}" if conv["f_sigma8_template"] else "")]
+    if "proxy_bins" in result.extra:
+        lines += ["", f"## Fits per bin of {result.config.catalogue.proxy_column}", "",
+                  "| proxy range | median | tracers | pairs | regions | tau_mean | error | S/N | note |",
+                  "|---|---:|---:|---:|---:|---:|---:|---:|---|"]
+        for b in result.extra["proxy_bins"]:
+            fit_txt = (f"{b.fit.amplitude:.4e} | {b.fit.error:.4e} | {b.fit.snr:.2f}" if b.fit is not None
+                       else "- | - | -")
+            lines.append(f"| [{b.proxy_min:g}, {b.proxy_max:g}) | {b.proxy_median:.4g} | {b.n_tracers:,} | "
+                         f"{b.n_pairs:,} | {b.n_regions} | {fit_txt} | {b.problem or ''} |")
+    if "velocity_scale_fit" in result.extra:
+        v = result.extra["velocity_scale_fit"]
+        lines += ["", "## Joint fit of tau_mean and f sigma_8", "",
+                  (f"The data measure A = tau_mean f_sigma8 / {v.s_fid:.4f} = {v.amplitude:.4e} ± "
+                   f"{v.amplitude_error:.4e}; tau_mean and f sigma_8 are degenerate along tau_mean f_sigma8 = const "
+                   "(velocity_scale.png).")]
+        if v.prior is None:
+            lines.append("No prior on tau_mean is set (theory.tau_prior_mean / tau_prior_sigma), so f sigma_8 is "
+                         "not constrained.")
+        else:
+            lines.append(f"With the prior tau_mean = {v.prior[0]:.4e} ± {v.prior[1]:.4e}: f sigma_8 = {v.s_mean:.4f} "
+                         f"± {v.s_std:.4f} (68%: [{v.s_lower_68:.4f}, {v.s_upper_68:.4f}]; flat prior on "
+                         f"[0, {v.s_grid[-1]:.3f}])")
+    return lines
 
 
 def _write_tables(result, folder: Path) -> None:
@@ -234,6 +353,7 @@ def _report(result, summary: dict) -> str:
     for k in range(result.edges.size - 1):
         lines.append(f"| {result.edges[k]:g} | {result.edges[k + 1]:g} | {result.p[k]:+.4f} | {result.p_err[k]:.4f} | "
                      f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.4f} | {'yes' if result.in_fit[k] else 'no'} |")
+    lines += _theory_report(result)
     lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
     for section, body in result.extra.get("report_sections", {}).items():
         lines += ["", f"## {section}", "", body]
@@ -264,6 +384,7 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         _plot(result, tmp / "pairwise.png")
         if result.nulls:
             _plot_nulls(result, tmp / "nulls.png")
+        _write_theory_outputs(result, tmp)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")

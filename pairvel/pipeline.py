@@ -33,7 +33,9 @@ from .geometry import comoving_positions
 from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
-from .theory import binned_pairwise_velocity
+from .joint import fit_velocity_scale
+from .subsamples import fit_proxy_bins
+from .template import load_power, template_for_run
 from .trend import remove_redshift_trend
 
 _DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
@@ -107,6 +109,24 @@ def _trend(temps, z, cfg: Config):
     return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
 
 
+def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps, regions, edges, in_fit, power,
+                progress) -> dict:
+    """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
+    out = {}
+    th = cfg.theory
+    if th.proxy_bin_edges is not None:
+        progress.say(f"      fits in {len(th.proxy_bin_edges) - 1} bins of {cfg.catalogue.proxy_column}")
+        out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
+                                           temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
+                                           in_fit=in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
+                                           n_threads=cfg.compute.n_threads)
+    if th.fit_velocity_scale:
+        prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
+        out["velocity_scale_fit"] = fit_velocity_scale(fit, template_info["f_sigma8_template"], n_samples=n_jk,
+                                                       tau_prior=prior)
+    return out
+
+
 def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     """Run every stage for a validated config and return the result (nothing is written).
 
@@ -121,6 +141,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
 
+    power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
     with progress.stage("catalogue"):
         cat: Catalogue = load_catalogue(cfg.catalogue)
         progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
@@ -194,9 +215,10 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
         weight = pr.denominator * in_fit
         z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
-        v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
+        v12, template_info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
+                                              z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
         template = T_CMB_UK * v12 / C_KM_S
-        fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
+        fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit, likelihood=cfg.theory.likelihood)
         nulls, row = [], 1
         for kind, sets in null_sets.items():
             if sets.shape[0]:
@@ -204,6 +226,9 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                 nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold))
                 row += sets.shape[0]
 
+    extra = {"template": template_info}
+    extra.update(_extra_fits(cfg, fit, template_info, n_jk, cat=cat, positions=positions, temps=temps,
+                             regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress))
     provenance = {
         "pairvel_version": __version__,
         "started_utc": started,
@@ -220,5 +245,5 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     return RunResult(
         config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
-        n_tracers=len(cat), selection=selection, provenance=provenance,
+        n_tracers=len(cat), selection=selection, provenance=provenance, extra=extra,
     )

@@ -160,52 +160,66 @@ def _tophat(x):
     return np.where(small, 1 - x * x / 10, 3 * (np.sin(xs) - xs * np.cos(xs)) / xs**3)
 
 
-def _shape(k, cosmo, wiggles):
-    """Unnormalised P(k) shape: k^n_s T(k)^2."""
+def _shape(k, cosmo, wiggles, power=None):
+    """Unnormalised P(k) shape: k^n_s T(k)^2, or the tabulated spectrum when ``power`` is given."""
+    if power is not None:
+        return power(k)
     return k**cosmo.n_s * transfer_eh98(k, cosmo=cosmo, wiggles=wiggles) ** 2
 
 
 @lru_cache(maxsize=32)
-def _sigma8_norm(cosmo: Cosmology, wiggles: bool) -> float:
-    """Amplitude that makes sigma(R = 8/h Mpc, z = 0) equal cosmo.sigma_8 (top-hat window)."""
+def _sigma8_norm(cosmo: Cosmology, wiggles: bool, power=None) -> float:
+    """Factor that turns the shape into P(k, z=0).
+
+    For EH98, and for a table with ``renormalise``, it makes sigma(R = 8/h Mpc, z = 0) equal
+    cosmo.sigma_8 (top-hat window); for a table kept at its own amplitude it is 1 / D(z_table)^2.
+    """
+    if power is not None and not power.renormalise:
+        return float(1.0 / growth_factor(power.z, cosmo=cosmo) ** 2)
     kk = np.geomspace(1e-5, 1e2, 20000)
-    integrand = kk**3 * _shape(kk, cosmo, wiggles) * _tophat(kk * 8.0 / cosmo.h) ** 2
+    integrand = kk**3 * _shape(kk, cosmo, wiggles, power) * _tophat(kk * 8.0 / cosmo.h) ** 2
     return cosmo.sigma_8**2 / (integrate.simpson(integrand, x=np.log(kk)) / (2 * np.pi**2))
 
 
 @lru_cache(maxsize=32)
-def _power_grid(cosmo: Cosmology, wiggles: bool, k_min: float, k_max: float, n_k: int):
+def _power_grid(cosmo: Cosmology, wiggles: bool, k_min: float, k_max: float, n_k: int, power=None):
     """Log-spaced k grid and P(k, z=0)."""
     k = np.geomspace(k_min, k_max, n_k)
-    return k, _sigma8_norm(cosmo, wiggles) * _shape(k, cosmo, wiggles)
+    return k, _sigma8_norm(cosmo, wiggles, power) * _shape(k, cosmo, wiggles, power)
 
 
-def linear_power(k_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True):
+def linear_power(k_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True, power=None):
     """Linear matter power spectrum P(k, z) in Mpc^3, normalised so sigma(8/h Mpc, z=0) = sigma_8.
 
     Parameters
     ----------
     k_mpc : array-like, 1/Mpc
     z : float
+    wiggles : bool, default True
+        EH98 with (True) or without (False) baryon wiggles; ignored when ``power`` is given.
+    power : pairvel.power.TabulatedPower, optional
+        A tabulated spectrum to use instead of EH98 (scaled from its redshift with D(z), and
+        renormalised to sigma_8 when it says so).
     """
     k = np.asarray(k_mpc, dtype=float)
-    return _sigma8_norm(cosmo, bool(wiggles)) * _shape(k, cosmo, wiggles) * growth_factor(z, cosmo=cosmo) ** 2
+    return (_sigma8_norm(cosmo, bool(wiggles), power) * _shape(k, cosmo, wiggles, power)
+            * growth_factor(z, cosmo=cosmo) ** 2)
 
 
-def sigma_radius(radius_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True):
+def sigma_radius(radius_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True, power=None):
     """rms linear density contrast in top-hat spheres of comoving radius ``radius_mpc``."""
     r = np.atleast_1d(np.asarray(radius_mpc, dtype=float))
     kk = np.geomspace(1e-5, 1e2, 20000)
-    pk = linear_power(kk, z, cosmo=cosmo, wiggles=wiggles)
+    pk = linear_power(kk, z, cosmo=cosmo, wiggles=wiggles, power=power)
     out = np.array([integrate.simpson(kk**3 * pk * _tophat(kk * ri) ** 2, x=np.log(kk)) for ri in r])
     out = np.sqrt(out / (2 * np.pi**2))
     return out[0] if np.ndim(radius_mpc) == 0 else out
 
 
 @lru_cache(maxsize=32)
-def _fftlog_tables(cosmo: Cosmology, wiggles: bool, k_min: float, k_max: float, n_k: int):
+def _fftlog_tables(cosmo: Cosmology, wiggles: bool, k_min: float, k_max: float, n_k: int, power=None):
     """r grid and xi(r), xibar(r) at z = 0 from one FFTLog set-up."""
-    k, pk = _power_grid(cosmo, wiggles, k_min, k_max, n_k)
+    k, pk = _power_grid(cosmo, wiggles, k_min, k_max, n_k, power)
     pk = pk * np.exp(-((k / 20.0) ** 2))  # damp k > 20/Mpc to stop ringing; changes xi by < 1e-4 at r > 1 Mpc
     dln = np.log(k[1] / k[0])
     out = {}
@@ -222,14 +236,14 @@ def _fftlog_tables(cosmo: Cosmology, wiggles: bool, k_min: float, k_max: float, 
     return out["r"], out["xi"], out["xibar"]
 
 
-def _correlations(r_mpc, cosmo, wiggles):
+def _correlations(r_mpc, cosmo, wiggles, power=None):
     r = np.asarray(r_mpc, dtype=float)
     if np.any(~np.isfinite(r)) or np.any(r < 0.5) or np.any(r > 2000):
         raise TheoryError(f"correlation functions are computed for 0.5 <= r <= 2000 Mpc; got r in "
                           f"[{np.min(r):g}, {np.max(r):g}]")
     results = []
     for setup in ((_K_MIN, _K_MAX, _N_K), (_K_MIN / 10, _K_MAX, 2 * _N_K)):
-        rg, xi, xibar = _fftlog_tables(cosmo, bool(wiggles), *setup)
+        rg, xi, xibar = _fftlog_tables(cosmo, bool(wiggles), *setup, power)
         sel = (rg > 0.1) & (rg < 1e4)
         results.append((CubicSpline(np.log(rg[sel]), xi[sel])(np.log(r)),
                         CubicSpline(np.log(rg[sel]), xibar[sel])(np.log(r))))
@@ -243,19 +257,21 @@ def _correlations(r_mpc, cosmo, wiggles):
     return results[1]
 
 
-def correlation_function(r_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True):
+def correlation_function(r_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True,
+                         power=None):
     """Linear matter correlation function xi(r, z) = (1/2 pi^2) int k^2 P(k, z) j0(kr) dk."""
-    xi, _ = _correlations(r_mpc, cosmo, wiggles)
+    xi, _ = _correlations(r_mpc, cosmo, wiggles, power)
     return xi * growth_factor(z, cosmo=cosmo) ** 2
 
 
-def mean_correlation(r_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True):
+def mean_correlation(r_mpc, z=0.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True, power=None):
     """Volume-averaged correlation xibar(r) = 3/r^3 int_0^r xi(x) x^2 dx (Hankel form with 3 j1(kr)/kr)."""
-    _, xibar = _correlations(r_mpc, cosmo, wiggles)
+    _, xibar = _correlations(r_mpc, cosmo, wiggles, power)
     return xibar * growth_factor(z, cosmo=cosmo) ** 2
 
 
-def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True):
+def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True,
+                      power=None, growth: str = "exact"):
     """Linear-theory mean pairwise velocity v12(r, z) in km/s (negative: pairs approach).
 
     Parameters
@@ -264,6 +280,10 @@ def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOG
     z : float
     bias : float, default 1.0
         Linear bias b of the tracers.
+    power : pairvel.power.TabulatedPower, optional
+        Tabulated linear P(k) instead of EH98.
+    growth : {"exact", "linder"}, default "exact"
+        Growth rate f(z): exact flat-LCDM value, or Omega_m(z)^0.55 (Linder 2005).
 
     Notes
     -----
@@ -273,9 +293,9 @@ def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOG
     if not np.isfinite(z) or z < 0:
         raise TheoryError(f"redshift for the pairwise velocity must be finite and >= 0; got {z}")
     g2 = growth_factor(z, cosmo=cosmo) ** 2
-    xi, xibar = _correlations(r, cosmo, wiggles)
+    xi, xibar = _correlations(r, cosmo, wiggles, power)
     hz = cosmo.hubble_km_s_mpc(z)
-    f = growth_rate(z, cosmo=cosmo)
+    f = growth_rate(z, cosmo=cosmo, method=growth)
     return -(2.0 / 3.0) * hz / (1 + z) * f * r * bias * g2 * xibar / (1 + bias**2 * g2 * xi)
 
 

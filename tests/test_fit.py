@@ -56,3 +56,73 @@ def test_chi2_against_zero_and_errors():
         fit_amplitude(np.ones(3), np.zeros(3), np.eye(3))
     with pytest.raises(InputError, match=r"covariance must have shape \(3, 3\)"):
         fit_amplitude(np.ones(3), np.ones(3), np.eye(4))
+
+
+def _noisy_setup(rng, nb, ns):
+    t = -np.linspace(1, 0.3, nb)
+    a = rng.normal(size=(nb, nb))
+    cov = a @ a.T / nb + np.eye(nb) * 0.3
+    return t, cov, np.linalg.cholesky(cov)
+
+
+def test_sellentin_heavens_closed_form_against_numerical_posterior():
+    """Analytic (Student t, module notes of pairvel.fit) against a direct numerical integration of the
+    Sellentin & Heavens (2016, MNRAS 456, L132) likelihood [1 + chi2(A)/(n-1)]^(-n/2) over A."""
+    rng = np.random.default_rng(21)
+    nb, ns = 7, 25
+    t, _, chol = _noisy_setup(rng, nb, ns)
+    s = np.cov((chol @ rng.normal(size=(nb, ns))).T, rowvar=False)
+    d = 0.8 * t + chol @ rng.normal(size=nb)
+    fit = fit_amplitude(d, t, s, n_samples=ns, likelihood="sellentin-heavens")
+    inv = np.linalg.inv(s)
+    grid = np.linspace(fit.amplitude - 40 * fit.error, fit.amplitude + 40 * fit.error, 400001)
+    r = d[None, :] - grid[:, None] * t[None, :]
+    chi2 = np.einsum("ai,ij,aj->a", r, inv, r)
+    like = (1 + chi2 / (ns - 1)) ** (-ns / 2)
+    cdf = np.cumsum(like) / like.sum()
+    lo, hi = np.interp([0.5 - 0.682689 / 2, 0.5 + 0.682689 / 2], cdf, grid)  # Gaussian 1-sigma mass
+    np.testing.assert_allclose([fit.lower_68, fit.upper_68], [lo, hi], rtol=0, atol=2e-3 * fit.error)
+    np.testing.assert_allclose(grid[np.argmax(like)], fit.amplitude, atol=1e-3 * fit.error)
+    # significance from the likelihood ratio L(0)/L(A_hat) (analytic, same likelihood)
+    c0 = d @ inv @ d
+    cmin = chi2.min()
+    expect = np.sqrt(ns * (np.log1p(c0 / (ns - 1)) - np.log1p(cmin / (ns - 1))))
+    np.testing.assert_allclose(abs(fit.snr_delta_chi2), expect, rtol=1e-6)
+
+
+def test_sellentin_heavens_tends_to_gaussian_for_many_samples():
+    """Analytic limit: n -> infinity turns the Student t into a Gaussian and the Hartlap factor into 1."""
+    rng = np.random.default_rng(4)
+    t, cov, chol = _noisy_setup(rng, 5, 10)
+    d = 1.1 * t + chol @ rng.normal(size=5)
+    g = fit_amplitude(d, t, cov, n_samples=10**7)
+    sh = fit_amplitude(d, t, cov, n_samples=10**7, likelihood="sellentin-heavens")
+    np.testing.assert_allclose([sh.amplitude, sh.error, sh.lower_68, sh.upper_68],
+                               [g.amplitude, g.error, g.amplitude - g.error, g.amplitude + g.error], rtol=1e-5)
+    assert g.likelihood == "hartlap" and sh.as_dict()["likelihood"] == "sellentin-heavens"
+
+
+def test_interval_coverage_with_estimated_covariance():
+    """Monte Carlo: with a covariance estimated from 60 samples of 6 bins, the 68% intervals of both
+    likelihoods contain the truth in 64-72% of 3000 trials (standard error 0.9%).  (With 20 samples of
+    8 bins both under-cover, ~0.59 and ~0.56: neither includes the extra scatter of the weights.)"""
+    rng = np.random.default_rng(8)
+    nb, ns = 6, 60
+    t, _, chol = _noisy_setup(rng, nb, ns)
+    hits = {"hartlap": 0, "sellentin-heavens": 0}
+    trials = 3000
+    for _ in range(trials):
+        s = np.cov((chol @ rng.normal(size=(nb, ns))).T, rowvar=False)
+        d = 1.3 * t + chol @ rng.normal(size=nb)
+        for name in hits:
+            f = fit_amplitude(d, t, s, n_samples=ns, likelihood=name)
+            hits[name] += f.lower_68 <= 1.3 <= f.upper_68
+    for name, h in hits.items():
+        assert 0.64 < h / trials < 0.72, (name, h / trials)
+
+
+def test_likelihood_choice_errors():
+    with pytest.raises(InputError, match="likelihood must be one of"):
+        fit_amplitude(np.ones(3), np.ones(3), np.eye(3), likelihood="student")
+    with pytest.raises(InputError, match="needs n_samples"):
+        fit_amplitude(np.ones(3), np.ones(3), np.eye(3), likelihood="sellentin-heavens")
