@@ -114,6 +114,9 @@ class CovarianceConfig:
     healpix_nside: int = _key(8, "HEALPix nside of the pixel regions when regions = healpix", bounds=(1, 8192))
     min_region_tracers: int = _key(20, "pixel regions with fewer tracers merge into the nearest pixel region",
                                    bounds=(1, 10**9))
+    estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region) or bootstrap "
+                                       "(regions drawn with replacement)", choices=("jackknife", "bootstrap"))
+    n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
 
 
 @dataclass(frozen=True)

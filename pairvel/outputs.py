@@ -62,6 +62,33 @@ def _finite_or_none(obj):
     return obj
 
 
+def _covariance_method(cc) -> str:
+    if cc.estimator == "bootstrap":
+        return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
+    return f"delete-one jackknife over {cc.regions} sky regions"
+
+
+def _plot_correlation(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    sig = np.sqrt(np.diag(result.covariance))
+    corr = result.covariance / np.outer(sig, sig)
+    fig, ax = plt.subplots(figsize=(5.2, 4.4), constrained_layout=True)
+    e = result.edges
+    im = ax.pcolormesh(e, e, corr, cmap="RdBu_r", vmin=-1, vmax=1)
+    fig.colorbar(im, ax=ax, label="correlation")
+    ax.set_xlabel("r [Mpc]")
+    ax.set_ylabel("r [Mpc]")
+    ax.set_aspect("equal")
+    ax.set_title(f"{_covariance_method(result.config.covariance)}\ncondition number "
+                 f"{np.linalg.cond(result.covariance):.3g}", fontsize=8)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def summary_dict(result) -> dict:
     """The contents of summary.json: headline numbers, null test, selection and provenance."""
     fit = result.fit.as_dict()
@@ -81,7 +108,7 @@ def summary_dict(result) -> dict:
         "n_tracers": result.n_tracers,
         "n_pairs": int(result.pair_counts.sum()),
         "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
-        "covariance": {"method": f"delete-one jackknife over {result.config.covariance.regions} sky regions",
+        "covariance": {"method": _covariance_method(result.config.covariance),
                        "n_regions": result.n_jk,
                        "precision_correction": "Hartlap, Simon & Schneider 2007"},
         "template": {"kind": "linear-theory mean pairwise velocity",
@@ -95,6 +122,8 @@ def summary_dict(result) -> dict:
     }
     if "demo_check" in result.extra:
         out["demo_check"] = result.extra["demo_check"]
+    if "covariance_diagnostics" in result.extra:
+        out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -127,7 +156,7 @@ def _write_tables(result, folder: Path) -> None:
     hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
     hdr["NJK"] = (result.n_jk, "jackknife regions")
     hdr["NBINS"] = nb
-    hdr["COMMENT"] = "delete-one jackknife covariance of the pairwise momentum; bins as in pairwise.ecsv"
+    hdr["COMMENT"] = f"{_covariance_method(result.config.covariance)}; bins as in pairwise.ecsv"
     sig = np.sqrt(np.diag(result.covariance))
     corr = result.covariance / np.outer(sig, sig)
     hdus = [fits.PrimaryHDU(result.covariance, header=hdr),
@@ -165,7 +194,7 @@ def _plot(result, path: Path) -> None:
         ax.fill_between(r, n.p.mean(axis=0) - spread, n.p.mean(axis=0) + spread,
                         color="0.85", label=f"null: random positions (mean ± 1σ of {n.n_real})")
     ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
-                ms=4, capsize=2, label="measured (jackknife errors)")
+                ms=4, capsize=2, label=f"measured ({result.config.covariance.estimator} errors)")
     if (~result.in_fit).any():
         ax.errorbar(r[~result.in_fit], result.p[~result.in_fit], yerr=result.p_err[~result.in_fit], fmt="o",
                     mfc="none", color="C0", ms=4, capsize=2, label="not fitted")
@@ -244,7 +273,7 @@ def _report(result, summary: dict) -> str:
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
-              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png.", ""]
+              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
     return "\n".join(lines)
 
 
@@ -264,6 +293,7 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         _plot(result, tmp / "pairwise.png")
         if result.nulls:
             _plot_nulls(result, tmp / "nulls.png")
+        _plot_correlation(result, tmp / "correlation.png")
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")

@@ -24,8 +24,10 @@ from ._rng import as_generator
 from .catalogue import Catalogue, file_sha256, load_catalogue
 from .config import Config
 from .constants import C_KM_S, T_CMB_UK
-from .covariance import healpix_regions, jackknife_covariance, kmeans_regions
+from .covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
+                         kmeans_regions, region_half_sums)
 from .errors import InputError, PairvelWarning
+from .covdiag import covariance_diagnostics, diagnostics_markdown
 from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
 from .fit import AmplitudeFit, fit_amplitude
@@ -189,7 +191,12 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         if not valid.all():
             raise InputError(f"separation bins {np.flatnonzero(~valid).tolist()} have no pairs in some jackknife "
                              f"sample; widen bins.width_mpc or reduce covariance.n_regions")
-        cov = jackknife_covariance(p_jk)
+        cov_jk = jackknife_covariance(p_jk)
+        cov, p_boot = cov_jk, None
+        if cc.estimator == "bootstrap":
+            num_k, den_k = region_half_sums(positions, temps, edges, regions, n_threads=cfg.compute.n_threads)
+            p_boot = bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng)
+            cov = bootstrap_covariance(p_boot)
         r_mid = 0.5 * (edges[1:] + edges[:-1])
         in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
         weight = pr.denominator * in_fit
@@ -197,6 +204,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
         template = T_CMB_UK * v12 / C_KM_S
         fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
+        covs = {"jackknife": cov_jk} if p_boot is None else {"jackknife": cov_jk, "bootstrap": cov}
+        diag = covariance_diagnostics(covs, {name: n_jk for name in covs}, used=cc.estimator)
         nulls, row = [], 1
         for kind, sets in null_sets.items():
             if sets.shape[0]:
@@ -221,4 +230,6 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
         n_tracers=len(cat), selection=selection, provenance=provenance,
+        extra={"covariance_diagnostics": diag,
+               "report_sections": {"Covariance diagnostics": diagnostics_markdown(diag, edges)}},
     )
