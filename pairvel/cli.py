@@ -86,7 +86,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
 
     cfg = load_config(config_path)
     out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
-    progress = Progress(9, quiet=args.quiet)
+    progress = Progress(10, quiet=args.quiet)
     result = run_pipeline(cfg, progress=progress)
     if demo:
         from .demo import attach_truth_check

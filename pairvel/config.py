@@ -137,6 +137,10 @@ class NullConfig:
     z_slice_width: float = _key(0.02, "width of the redshift slices for the within-slice shuffle", bounds=(1e-4, 1.0))
     pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
                                 bounds=(0.0, 0.5))
+    rotation_deg: tuple[float, ...] = _key((90.0, 180.0, 270.0), "longitude rotations of the map (degrees) for the "
+                                           "rotated-map null; empty list: no such null")
+    rotation_min_usable: float = _key(0.5, "skip a rotation when fewer tracers than this fraction land on usable sky",
+                                      bounds=(0.0, 1.0))
 
 
 @dataclass(frozen=True)

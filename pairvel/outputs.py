@@ -122,6 +122,8 @@ def summary_dict(result) -> dict:
     }
     if "demo_check" in result.extra:
         out["demo_check"] = result.extra["demo_check"]
+    if "rotations_used" in result.extra:
+        out["null_rotations_used"] = result.extra["rotations_used"]
     if "covariance_diagnostics" in result.extra:
         out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
@@ -218,8 +220,19 @@ def _plot_nulls(result, path: Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, axes = plt.subplots(1, len(result.nulls), figsize=(4.2 * len(result.nulls), 3.6), sharey=True,
+    from scipy import stats
+
+    fig, axes = plt.subplots(2, len(result.nulls), figsize=(4.2 * len(result.nulls), 6.8), sharey="row",
                              constrained_layout=True, squeeze=False)
+    for ax, n in zip(axes[1], result.nulls):
+        hi = max(float(np.max(n.chi2)), stats.chi2.ppf(0.995, n.dof))
+        ax.hist(n.chi2, bins=np.linspace(0, hi, 16), density=True, color="C2", alpha=0.6,
+                label=f"{n.n_real} realisations")
+        xs = np.linspace(0, hi, 200)
+        ax.plot(xs, stats.chi2.pdf(xs, n.dof), color="k", lw=1, label=f"χ² pdf, {n.dof} dof")
+        ax.set_xlabel("χ² of one realisation against zero")
+        ax.legend(fontsize=7)
+    axes[1][0].set_ylabel("density")
     for ax, n in zip(axes[0], result.nulls):
         ax.axhline(0.0, color="0.6", lw=0.8)
         for k in range(n.n_real):

@@ -32,7 +32,7 @@ from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
 from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
-from .nulltests import evaluate_null, shuffled_sets
+from .nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
 from .theory import binned_pairwise_velocity
@@ -119,7 +119,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     progress : Progress, optional
         Where stage lines go; silent when None.
     """
-    progress = progress or Progress(9, quiet=True)
+    progress = progress or Progress(10, quiet=True)
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
@@ -170,9 +170,15 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             progress.say(f"      null set {k + 1}/{n_null}")
 
     nc = cfg.nulls
+    with progress.stage(f"null-test photometry: map rotated by {len(nc.rotation_deg)} longitude angles"):
+        rot, rot_kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
+                                     max_masked_fraction=cfg.map.max_masked_fraction,
+                                     min_usable_fraction=nc.rotation_min_usable)
+        rot = np.array([_trend(t, cat.z, cfg) for t in rot]).reshape(rot.shape)
     null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
                  "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
-                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)}
+                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width),
+                 "rotated": rot}
     stacked = np.vstack([temps[None, :]] + list(null_sets.values()))
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
@@ -230,6 +236,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
         n_tracers=len(cat), selection=selection, provenance=provenance,
-        extra={"covariance_diagnostics": diag,
+        extra={"covariance_diagnostics": diag, "rotations_used": [{"angle_deg": a, "usable_fraction": f}
+                                                                  for a, f in rot_kept],
                "report_sections": {"Covariance diagnostics": diagnostics_markdown(diag, edges)}},
     )

@@ -65,6 +65,7 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
 
     text = (tiny_survey / "run.toml").read_text().replace("n_regions = 12",
                                                           'n_regions = 12\nestimator = "bootstrap"\nn_bootstrap = 300')
+    text = text.replace("n_random = 2", "n_random = 2\nrotation_deg = [8.0, 12.0]")
     (tiny_survey / "boot.toml").write_text(text)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", PairvelWarning)
@@ -80,6 +81,10 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
     summary = json.loads((out / "summary.json").read_text())
     assert summary["covariance"]["method"].startswith("bootstrap (300 replicates)")
     assert "Covariance diagnostics" in (out / "report.md").read_text()
+    rotated = [n for n in summary["null_tests"] if n["kind"] == "rotated"]
+    assert rotated and rotated[0]["n_realisations"] == 2 and len(rotated[0]["chi2_each"]) == 2
+    assert [r["angle_deg"] for r in summary["null_rotations_used"]] == [8.0, 12.0]
+    assert (out / "nulls.png").is_file() and (out / "null_rotated.ecsv").is_file()
 
 
 def test_too_few_samples_warns():
