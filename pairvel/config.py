@@ -19,6 +19,7 @@ __all__ = [
     "TheoryConfig",
     "NullConfig",
     "ComputeConfig",
+    "BlindingConfig",
     "Config",
     "load_config",
     "config_from_dict",
@@ -144,6 +145,13 @@ class NullConfig:
 
 
 @dataclass(frozen=True)
+class BlindingConfig:
+    enabled: bool = _key(False, "multiply the curve, errors and amplitude by a hidden factor kept in a key file")
+    key_path: Path | None = _key(None, "blinding key JSON (reused when it exists); default: "
+                                       "<output folder>.blinding-key.json beside the output folder")
+
+
+@dataclass(frozen=True)
 class ComputeConfig:
     n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
     scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
@@ -167,6 +175,7 @@ class Config:
     cosmology: Cosmology = field(default_factory=Cosmology)
     nulls: NullConfig = field(default_factory=NullConfig)
     compute: ComputeConfig = field(default_factory=ComputeConfig)
+    blinding: BlindingConfig = field(default_factory=BlindingConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:

@@ -62,6 +62,14 @@ def _finite_or_none(obj):
     return obj
 
 
+def _blinding(result) -> dict:
+    return result.extra.get("blinding", {"blinded": False})
+
+
+def _blind_tag(result) -> str:
+    return "BLINDED (amplitude scaled by a hidden factor)" if _blinding(result).get("blinded") else "not blinded"
+
+
 def _covariance_method(cc) -> str:
     if cc.estimator == "bootstrap":
         return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
@@ -83,7 +91,7 @@ def _plot_correlation(result, path: Path) -> None:
     ax.set_xlabel("r [Mpc]")
     ax.set_ylabel("r [Mpc]")
     ax.set_aspect("equal")
-    ax.set_title(f"{_covariance_method(result.config.covariance)}\ncondition number "
+    ax.set_title(f"{_covariance_method(result.config.covariance)} ({_blind_tag(result).split(' (')[0]})\ncondition number "
                  f"{np.linalg.cond(result.covariance):.3g}", fontsize=8)
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -95,6 +103,8 @@ def summary_dict(result) -> dict:
     out = {
         "producer": "pairvel",
         "run_name": result.config.run.name,
+        "blinded": bool(_blinding(result).get("blinded")),
+        "blinding": _blinding(result),
         "tau_mean": fit["amplitude"],
         "tau_mean_error": fit["error"],
         "snr": fit["snr"],
@@ -152,12 +162,14 @@ def _write_tables(result, folder: Path) -> None:
     table.meta["description"] = "mean pairwise kSZ momentum (Ferreira et al. 1999 estimator) against comoving separation"
     table.meta["tau_mean"] = float(result.fit.amplitude)
     table.meta["tau_mean_error"] = float(result.fit.error)
+    table.meta["blinding"] = _blind_tag(result)
     table.write(folder / "pairwise.ecsv", format="ascii.ecsv")
 
     hdr = fits.Header()
     hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
     hdr["NJK"] = (result.n_jk, "jackknife regions")
     hdr["NBINS"] = nb
+    hdr["BLINDED"] = (bool(_blinding(result).get("blinded")), "values scaled by a hidden blinding factor")
     hdr["COMMENT"] = f"{_covariance_method(result.config.covariance)}; bins as in pairwise.ecsv"
     sig = np.sqrt(np.diag(result.covariance))
     corr = result.covariance / np.outer(sig, sig)
@@ -176,6 +188,7 @@ def _write_tables(result, folder: Path) -> None:
         for k in range(null.n_real):
             nt[f"p_real{k:03d}_uK"] = null.p[k]
         nt.meta["description"] = f"null test: {null.description}"
+        nt.meta["blinding"] = _blind_tag(result)
         nt.meta.update({k: v for k, v in null.as_dict().items() if k != "description"})
         nt.write(folder / f"null_{null.kind}.ecsv", format="ascii.ecsv")
 
@@ -207,7 +220,8 @@ def _plot(result, path: Path) -> None:
         ax.plot(r, curve, ls="--", lw=1.2, label=name)
     ax.set_xlabel("comoving separation r [Mpc]")
     ax.set_ylabel("mean pairwise kSZ momentum p(r) [μK]")
-    ax.set_title(f"{result.config.run.name}: {result.n_tracers:,} tracers, "
+    ax.set_title(("BLINDED - " if _blinding(result).get("blinded") else "") +
+                 f"{result.config.run.name}: {result.n_tracers:,} tracers, "
                  f"θ = {result.config.aperture.radius_arcmin:g}′, z_eff = {result.z_eff:.2f}", fontsize=10)
     ax.legend(fontsize=8, loc="lower right")
     fig.savefig(path, dpi=130)
@@ -242,6 +256,7 @@ def _plot_nulls(result, path: Path) -> None:
                      f"({'pass' if n.passed else 'FAIL'})", fontsize=8.5)
         ax.set_xlabel("comoving separation r [Mpc]")
     axes[0][0].set_ylabel("null p(r) [μK]: realisations and mean")
+    fig.suptitle(f"null tests ({_blind_tag(result)})", fontsize=9)
     fig.savefig(path, dpi=110)
     plt.close(fig)
 
@@ -250,6 +265,8 @@ def _report(result, summary: dict) -> str:
     f = result.fit
     lines = [
         f"# pairvel report: {result.config.run.name}",
+        "",
+        f"**Blinding: {_blind_tag(result)}.**",
         "",
         "## Headline",
         f"- mean optical depth tau_mean = {f.amplitude:.4e} ± {f.error:.4e} (S/N = {f.snr:.2f})",
