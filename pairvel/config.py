@@ -115,9 +115,17 @@ class CovarianceConfig:
     healpix_nside: int = _key(8, "HEALPix nside of the pixel regions when regions = healpix", bounds=(1, 8192))
     min_region_tracers: int = _key(20, "pixel regions with fewer tracers merge into the nearest pixel region",
                                    bounds=(1, 10**9))
-    estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region) or bootstrap "
-                                       "(regions drawn with replacement)", choices=("jackknife", "bootstrap"))
+    estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region), bootstrap "
+                                       "(regions drawn with replacement) or simulations (Gaussian sky maps)",
+                          choices=("jackknife", "bootstrap", "simulations"))
     n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
+    n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
+    sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")
+    sim_beam_fwhm_arcmin: float = _key(0.0, "Gaussian beam FWHM of the simulated CMB, arcmin (0: none)",
+                                       bounds=(0.0, 600.0))
+    sim_white_noise_uk_arcmin: float = _key(0.0, "white noise of the simulated maps, uK arcmin", bounds=(0.0, 1e6))
+    sim_noise_cl_path: Path | None = _key(None, "optional text table (ell, N_ell in uK^2) of map noise for the "
+                                                "simulations, added after the beam")
 
 
 @dataclass(frozen=True)

@@ -28,6 +28,7 @@ from .covariance import (bootstrap_covariance, bootstrap_samples, healpix_region
                          kmeans_regions, region_half_sums)
 from .errors import InputError, PairvelWarning
 from .covdiag import covariance_diagnostics, diagnostics_markdown
+from .simcov import simulate_aperture_temperatures, simulation_covariance
 from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
 from .fit import AmplitudeFit, fit_amplitude
@@ -109,6 +110,35 @@ def _trend(temps, z, cfg: Config):
     return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
 
 
+def _simulated_sets(skymap, cat, cfg: Config, rng, progress) -> np.ndarray:
+    """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
+    cc = cfg.covariance
+    cmb_cl = noise_cl = None
+    if cc.sim_cmb:
+        from .mock import load_cmb_cl
+
+        cmb_cl = load_cmb_cl()[1]
+    if cc.sim_noise_cl_path is not None:
+        try:
+            table = np.loadtxt(cc.sim_noise_cl_path, comments="#", ndmin=2)
+        except (OSError, ValueError) as err:
+            raise InputError(f"covariance.sim_noise_cl_path {cc.sim_noise_cl_path}: cannot be read as an (ell, N_ell) "
+                             f"table ({err})", path=cc.sim_noise_cl_path) from None
+        noise_cl = np.zeros(int(table[:, 0].max()) + 1)
+        noise_cl[table[:, 0].astype(int)] = table[:, 1]
+    sims = simulate_aperture_temperatures(skymap.nside, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
+                                          seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
+                                          white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin, noise_cl=noise_cl,
+                                          max_masked_fraction=cfg.map.max_masked_fraction,
+                                          n_threads=cfg.compute.n_threads or 1,
+                                          progress=progress.counter("simulated maps"))
+    out = np.empty_like(sims)
+    for k, t in enumerate(sims):
+        ok = np.isfinite(t)
+        out[k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
+    return out
+
+
 def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     """Run every stage for a validated config and return the result (nothing is written).
 
@@ -179,7 +209,11 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                  "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
                  "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width),
                  "rotated": rot}
-    stacked = np.vstack([temps[None, :]] + list(null_sets.values()))
+    sims = np.zeros((0, len(cat)))
+    if cc.estimator == "simulations":
+        with progress.stage(f"simulated maps: {cc.n_sim} Gaussian skies at nside {skymap.nside}"):
+            sims = _simulated_sets(skymap, cat, cfg, rng, progress)
+    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [sims])
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
@@ -199,6 +233,10 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                              f"sample; widen bins.width_mpc or reduce covariance.n_regions")
         cov_jk = jackknife_covariance(p_jk)
         cov, p_boot = cov_jk, None
+        n_cov = n_jk
+        if sims.shape[0]:
+            cov = simulation_covariance(pr.p[stacked.shape[0] - sims.shape[0]:])
+            n_cov = sims.shape[0]
         if cc.estimator == "bootstrap":
             num_k, den_k = region_half_sums(positions, temps, edges, regions, n_threads=cfg.compute.n_threads)
             p_boot = bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng)
@@ -209,9 +247,10 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
         v12 = binned_pairwise_velocity(edges, z_eff, cfg.theory.bias, cosmo=cfg.cosmology, wiggles=cfg.theory.wiggles)
         template = T_CMB_UK * v12 / C_KM_S
-        fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit)
-        covs = {"jackknife": cov_jk} if p_boot is None else {"jackknife": cov_jk, "bootstrap": cov}
-        diag = covariance_diagnostics(covs, {name: n_jk for name in covs}, used=cc.estimator)
+        fit = fit_amplitude(p, template, cov, n_samples=n_cov, use=in_fit)
+        covs = {"jackknife": cov_jk, cc.estimator: cov}
+        diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
+                                      used=cc.estimator)
         nulls, row = [], 1
         for kind, sets in null_sets.items():
             if sets.shape[0]:
