@@ -255,7 +255,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         for kind, sets in null_sets.items():
             if sets.shape[0]:
                 rows = slice(row, row + sets.shape[0])
-                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold))
+                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold,
+                                           **({"covariance": cov, "n_samples": n_cov} if sims.shape[0] else {})))
                 row += sets.shape[0]
 
     provenance = {
