@@ -48,6 +48,14 @@ def _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl):
     return total
 
 
+def _draw_alm(amp, m0, rng) -> np.ndarray:
+    """Gaussian a_lm (healpy ordering) with <|a_lm|^2> = amp^2; real for the indices ``m0`` (m = 0)."""
+    alm = rng.standard_normal(2 * amp.size).view(np.complex128)      # independent (re, im) pairs
+    alm *= amp / np.sqrt(2.0)
+    alm[m0] = alm[m0].real * np.sqrt(2.0)                            # m = 0: real with variance amp^2
+    return alm
+
+
 def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: float, n_sim: int, *, seed=None,
                                    cmb_cl=None, beam_fwhm_arcmin: float = 0.0, white_noise_uk_arcmin: float = 0.0,
                                    noise_cl=None, lmax: int | None = None, max_masked_fraction: float = 0.1,
@@ -97,12 +105,12 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
     sigma_pix = white_noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
     ell, m = hp.Alm.getlm(lmax)
     amp = np.sqrt(spec[ell])
+    m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries in healpy ordering
     out = np.empty((int(n_sim), len(ra_deg)))
     for k in range(int(n_sim)):
         values = np.zeros(pix.size)
         if harmonic:
-            re, im = rng.standard_normal(ell.size), rng.standard_normal(ell.size)
-            alm = np.where(m == 0, amp * re, amp * (re + 1j * im) / np.sqrt(2.0))
+            alm = _draw_alm(amp, m0, rng)
             values += ducc0.sht.experimental.synthesis_general(alm=alm[None, :], spin=0, lmax=lmax, loc=loc,
                                                                epsilon=1e-6, nthreads=n_threads)[0]
         if sigma_pix > 0:
