@@ -57,6 +57,14 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
     common(mock)
 
+    unblind = sub.add_parser("unblind", help="apply a blinding key to a blinded output folder, writing a new folder",
+                             description="Read a blinded pairvel output folder and its key file and write the "
+                                         "unblinded outputs into a new folder; the blinded folder is not changed.")
+    unblind.add_argument("folder", help="blinded pairvel output folder")
+    unblind.add_argument("--key", required=True, help="blinding key JSON written by the blinded run")
+    unblind.add_argument("--out", help="new output folder (default: <folder>-unblinded)")
+    common(unblind)
+
     keys = sub.add_parser("keys", help="list every config key with its type, default and meaning")
     keys.add_argument("--markdown", action="store_true", help="print a Markdown table")
     return top
@@ -74,6 +82,8 @@ def _closing_summary(result, out: Path) -> str:
     for n in result.nulls:
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
                      f"(PTE {n.pte_mean:.2g}): {'pass' if n.passed else 'FAIL'}")
+    if result.extra.get("blinding", {}).get("blinded"):
+        lines.append("  BLINDED: curve, errors and tau_mean are scaled by a hidden factor (pairvel unblind)")
     lines.append(f"  outputs: {out}")
     return "\n".join(lines)
 
@@ -86,18 +96,33 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
 
     cfg = load_config(config_path)
     out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
-    progress = Progress(9, quiet=args.quiet)
+    progress = Progress(10, quiet=args.quiet)
     result = run_pipeline(cfg, progress=progress)
     if demo:
         from .demo import attach_truth_check
 
         result = attach_truth_check(result)
+    if cfg.blinding.enabled:
+        from .blinding import blind_result, default_key_path
+
+        key_path = cfg.blinding.key_path or default_key_path(out)
+        result, _ = blind_result(result, key_path)
+        progress.say(f"      outputs blinded; key kept in {key_path}")
     with progress.stage("writing outputs"):
         write_outputs(result, out, force=args.force)
     print(_closing_summary(result, out))
     if demo:
         print(result.extra["demo_check"]["verdict"])
     progress.say(f"finished in {progress.elapsed:.0f} s")
+    return EXIT_OK
+
+
+def _cmd_unblind(args) -> int:
+    from .blinding import unblind_folder
+
+    folder = Path(args.folder).expanduser().resolve()
+    out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded")
+    print(f"pairvel: unblinded outputs written to {out} ({folder} unchanged)")
     return EXIT_OK
 
 
@@ -149,6 +174,8 @@ def main(argv=None) -> int:
                 return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", demo=True)
             if args.command == "mock":
                 return _cmd_mock(args)
+            if args.command == "unblind":
+                return _cmd_unblind(args)
             return _cmd_keys(args)
         except PairvelError as err:
             if debug:

@@ -19,6 +19,7 @@ __all__ = [
     "TheoryConfig",
     "NullConfig",
     "ComputeConfig",
+    "BlindingConfig",
     "Config",
     "load_config",
     "config_from_dict",
@@ -116,6 +117,17 @@ class CovarianceConfig:
     healpix_nside: int = _key(8, "HEALPix nside of the pixel regions when regions = healpix", bounds=(1, 8192))
     min_region_tracers: int = _key(20, "pixel regions with fewer tracers merge into the nearest pixel region",
                                    bounds=(1, 10**9))
+    estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region), bootstrap "
+                                       "(regions drawn with replacement) or simulations (Gaussian sky maps)",
+                          choices=("jackknife", "bootstrap", "simulations"))
+    n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
+    n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
+    sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")
+    sim_beam_fwhm_arcmin: float = _key(0.0, "Gaussian beam FWHM of the simulated CMB, arcmin (0: none)",
+                                       bounds=(0.0, 600.0))
+    sim_white_noise_uk_arcmin: float = _key(0.0, "white noise of the simulated maps, uK arcmin", bounds=(0.0, 1e6))
+    sim_noise_cl_path: Path | None = _key(None, "optional text table (ell, N_ell in uK^2) of map noise for the "
+                                                "simulations, added after the beam")
 
 
 @dataclass(frozen=True)
@@ -161,6 +173,17 @@ class NullConfig:
     z_slice_width: float = _key(0.02, "width of the redshift slices for the within-slice shuffle", bounds=(1e-4, 1.0))
     pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
                                 bounds=(0.0, 0.5))
+    rotation_deg: tuple[float, ...] = _key((90.0, 180.0, 270.0), "longitude rotations of the map (degrees) for the "
+                                           "rotated-map null; empty list: no such null")
+    rotation_min_usable: float = _key(0.5, "skip a rotation when fewer tracers than this fraction land on usable sky",
+                                      bounds=(0.0, 1.0))
+
+
+@dataclass(frozen=True)
+class BlindingConfig:
+    enabled: bool = _key(False, "multiply the curve, errors and amplitude by a hidden factor kept in a key file")
+    key_path: Path | None = _key(None, "blinding key JSON (reused when it exists); default: "
+                                       "<output folder>.blinding-key.json beside the output folder")
 
 
 @dataclass(frozen=True)
@@ -187,6 +210,7 @@ class Config:
     cosmology: Cosmology = field(default_factory=Cosmology)
     nulls: NullConfig = field(default_factory=NullConfig)
     compute: ComputeConfig = field(default_factory=ComputeConfig)
+    blinding: BlindingConfig = field(default_factory=BlindingConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:

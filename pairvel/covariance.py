@@ -1,8 +1,9 @@
-"""Jackknife regions on the sky and the delete-one jackknife covariance."""
+"""Sky regions and the covariance of the pair estimator: delete-one jackknife and region bootstrap."""
 
 from __future__ import annotations
 
-__all__ = ["kmeans_regions", "healpix_regions", "jackknife_covariance"]
+__all__ = ["kmeans_regions", "healpix_regions", "jackknife_covariance", "region_half_sums", "bootstrap_samples",
+           "bootstrap_covariance"]
 
 import numpy as np
 
@@ -102,3 +103,116 @@ def jackknife_covariance(samples) -> np.ndarray:
     n = s.shape[-2]
     dev = s - s.mean(axis=-2, keepdims=True)
     return (n - 1) / n * np.einsum("...ki,...kj->...ij", dev, dev)
+
+
+def region_half_sums(positions, temperatures, edges, regions, *, weights=None, n_threads=None):
+    """Split the estimator's numerator and denominator into one additive share per region.
+
+    Every pair with both ends in region k belongs to k; a pair joining regions a and b gives half
+    of its terms to each.  The shares add up exactly to the full sums, which is what a bootstrap
+    over regions resamples (see :func:`bootstrap_samples`).
+
+    Parameters
+    ----------
+    positions : ndarray of shape (N, 3), comoving Mpc
+    temperatures : ndarray of shape (N,) or (M, N), uK
+    edges : ndarray of shape (nbins + 1,), Mpc
+    regions : ndarray of shape (N,), int
+        Labels 0..n_reg-1.
+    weights : ndarray of shape (N,), optional
+        Per-tracer weights, as in :func:`pairvel.estimator.pairwise_momentum`.
+
+    Returns
+    -------
+    num_k : ndarray of shape (n_reg, nbins) or (n_reg, M, nbins)
+        Shares of sum (T_i - T_j) c_ij.
+    den_k : ndarray of shape (n_reg, nbins)
+        Shares of sum c_ij^2.
+
+    Notes
+    -----
+    One pass of the pair engine gives, per region, the sums over the pairs *touching* it
+    (S_touch_k = S_in_k + S_cross_k); separate passes over each region's own tracers give S_in_k;
+    the half share is h_k = (S_touch_k + S_in_k) / 2 = S_in_k + S_cross_k / 2.  The extra passes
+    together visit only the within-region pairs, so the cost is at most one more full pass.
+    """
+    from .estimator import _validate, pairwise_momentum, pass_sums
+
+    pos, temps2, single, edges, reg, n_reg, _, _, w = _validate(positions, temperatures, edges, regions, None, weights)
+    if n_reg < 2:
+        raise InputError(f"region shares need at least 2 regions; got labels {np.unique(reg).tolist()}")
+    sums = pass_sums(pos, temps2, reg, np.zeros(pos.shape[0]), edges, n_reg, False, weights=w, n_threads=n_threads)
+    touch_num, touch_den = sums[4][:n_reg], sums[5][:n_reg]          # (n_reg, M, nb), (n_reg, nb)
+    in_num = np.zeros_like(touch_num)
+    in_den = np.zeros_like(touch_den)
+    for k in range(n_reg):
+        sel = reg == k
+        if sel.sum() >= 2:
+            part = pairwise_momentum(pos[sel], temps2[:, sel], edges, weights=None if w is None else w[sel],
+                                     n_threads=n_threads)
+            in_num[k], in_den[k] = part.numerator, part.denominator
+    num_k = 0.5 * (touch_num + in_num)
+    den_k = 0.5 * (touch_den + in_den)
+    return (num_k[:, 0] if single else num_k), den_k
+
+
+def bootstrap_samples(num_k, den_k, n_boot: int, *, seed=None) -> np.ndarray:
+    """Region-bootstrap replicates of the ratio estimator p = -sum num / sum den.
+
+    Each replicate draws n_reg regions with replacement (multiplicities w ~ Multinomial(n_reg,
+    1/n_reg)) and forms p* = -(w . num_k) / (w . den_k) from the region shares of
+    :func:`region_half_sums`.
+
+    Parameters
+    ----------
+    num_k : ndarray of shape (n_reg, nbins) or (n_reg, M, nbins)
+    den_k : ndarray of shape (n_reg, nbins)
+    n_boot : int
+    seed : None, int or numpy Generator
+
+    Returns
+    -------
+    ndarray of shape (n_boot, nbins) or (M, n_boot, nbins)
+
+    Notes
+    -----
+    A pair joining two regions carries weight (w_a + w_b) / 2, the mean multiplicity of its ends;
+    a pair inside one region carries w_k.  This keeps the statistic a sum over regions, so every
+    replicate needs only a dot product of the shares, not a new pass over the pairs.
+    """
+    num = np.asarray(num_k, dtype=float)
+    den = np.asarray(den_k, dtype=float)
+    n_reg = den.shape[0]
+    if n_reg < 2 or num.shape[0] != n_reg or num.shape[-1] != den.shape[-1]:
+        raise InputError(f"bootstrap needs region shares of matching shape with >= 2 regions; "
+                         f"got numerator {num.shape} and denominator {den.shape}")
+    if int(n_boot) < 2:
+        raise InputError(f"covariance.n_bootstrap must be >= 2; got {n_boot}")
+    rng = as_generator(seed)
+    w = rng.multinomial(n_reg, np.full(n_reg, 1.0 / n_reg), size=int(n_boot)).astype(float)  # (B, n_reg)
+    d = w @ den                                                                            # (B, nb)
+    n = np.tensordot(w, num, axes=(1, 0))                                                  # (B, [M,] nb)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if num.ndim == 2:
+            return np.where(d > 0, -n / np.where(d > 0, d, 1.0), np.nan)
+        out = np.where(d[:, None, :] > 0, -n / np.where(d > 0, d, 1.0)[:, None, :], np.nan)
+        return np.moveaxis(out, 1, 0)
+
+
+def bootstrap_covariance(samples) -> np.ndarray:
+    """Sample covariance (ddof = 1) of bootstrap replicates, (n_boot, nbins) or (M, n_boot, nbins).
+
+    References
+    ----------
+    Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 6.
+    """
+    s = np.asarray(samples, dtype=float)
+    if s.ndim not in (2, 3) or s.shape[-2] < 2:
+        raise InputError(f"bootstrap samples must have shape (n_boot >= 2, nbins) or (M, n_boot, nbins); "
+                         f"got {s.shape}")
+    if not np.all(np.isfinite(s)):
+        bins = np.flatnonzero(~np.all(np.isfinite(s.reshape(-1, s.shape[-1])), axis=0)).tolist()
+        raise InputError(f"bootstrap samples must be finite; bins {bins} are not (a replicate without pairs?)")
+    n = s.shape[-2]
+    dev = s - s.mean(axis=-2, keepdims=True)
+    return np.einsum("...ki,...kj->...ij", dev, dev) / (n - 1)

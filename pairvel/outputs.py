@@ -62,12 +62,51 @@ def _finite_or_none(obj):
     return obj
 
 
+def _blinding(result) -> dict:
+    return result.extra.get("blinding", {"blinded": False})
+
+
+def _blind_tag(result) -> str:
+    return "BLINDED (amplitude scaled by a hidden factor)" if _blinding(result).get("blinded") else "not blinded"
+
+
+def _covariance_method(cc) -> str:
+    if cc.estimator == "simulations":
+        return f"{cc.n_sim} simulated Gaussian sky maps through the same photometry and pair pass"
+    if cc.estimator == "bootstrap":
+        return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
+    return f"delete-one jackknife over {cc.regions} sky regions"
+
+
+def _plot_correlation(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    sig = np.sqrt(np.diag(result.covariance))
+    corr = result.covariance / np.outer(sig, sig)
+    fig, ax = plt.subplots(figsize=(5.2, 4.4), constrained_layout=True)
+    e = result.edges
+    im = ax.pcolormesh(e, e, corr, cmap="RdBu_r", vmin=-1, vmax=1)
+    fig.colorbar(im, ax=ax, label="correlation")
+    ax.set_xlabel("r [Mpc]")
+    ax.set_ylabel("r [Mpc]")
+    ax.set_aspect("equal")
+    ax.set_title(f"{_covariance_method(result.config.covariance)} ({_blind_tag(result).split(' (')[0]})\ncondition number "
+                 f"{np.linalg.cond(result.covariance):.3g}", fontsize=8)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def summary_dict(result) -> dict:
     """The contents of summary.json: headline numbers, null test, selection and provenance."""
     fit = result.fit.as_dict()
     out = {
         "producer": "pairvel",
         "run_name": result.config.run.name,
+        "blinded": bool(_blinding(result).get("blinded")),
+        "blinding": _blinding(result),
         "tau_mean": fit["amplitude"],
         "tau_mean_error": fit["error"],
         "snr": fit["snr"],
@@ -81,7 +120,7 @@ def summary_dict(result) -> dict:
         "n_tracers": result.n_tracers,
         "n_pairs": int(result.pair_counts.sum()),
         "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
-        "covariance": {"method": f"delete-one jackknife over {result.config.covariance.regions} sky regions",
+        "covariance": {"method": _covariance_method(result.config.covariance),
                        "n_regions": result.n_jk,
                        "precision_correction": "Hartlap, Simon & Schneider 2007"},
         "template": {"kind": "linear-theory mean pairwise velocity",
@@ -101,6 +140,10 @@ def summary_dict(result) -> dict:
     if result.fit.likelihood == "sellentin-heavens":
         out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
                                                      "enters only the reported chi2 values)")
+    if "rotations_used" in result.extra:
+        out["null_rotations_used"] = result.extra["rotations_used"]
+    if "covariance_diagnostics" in result.extra:
+        out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -240,13 +283,15 @@ def _write_tables(result, folder: Path) -> None:
     table.meta["description"] = "mean pairwise kSZ momentum (Ferreira et al. 1999 estimator) against comoving separation"
     table.meta["tau_mean"] = float(result.fit.amplitude)
     table.meta["tau_mean_error"] = float(result.fit.error)
+    table.meta["blinding"] = _blind_tag(result)
     table.write(folder / "pairwise.ecsv", format="ascii.ecsv")
 
     hdr = fits.Header()
     hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
     hdr["NJK"] = (result.n_jk, "jackknife regions")
     hdr["NBINS"] = nb
-    hdr["COMMENT"] = "delete-one jackknife covariance of the pairwise momentum; bins as in pairwise.ecsv"
+    hdr["BLINDED"] = (bool(_blinding(result).get("blinded")), "values scaled by a hidden blinding factor")
+    hdr["COMMENT"] = f"{_covariance_method(result.config.covariance)}; bins as in pairwise.ecsv"
     sig = np.sqrt(np.diag(result.covariance))
     corr = result.covariance / np.outer(sig, sig)
     hdus = [fits.PrimaryHDU(result.covariance, header=hdr),
@@ -264,6 +309,7 @@ def _write_tables(result, folder: Path) -> None:
         for k in range(null.n_real):
             nt[f"p_real{k:03d}_uK"] = null.p[k]
         nt.meta["description"] = f"null test: {null.description}"
+        nt.meta["blinding"] = _blind_tag(result)
         nt.meta.update({k: v for k, v in null.as_dict().items() if k != "description"})
         nt.write(folder / f"null_{null.kind}.ecsv", format="ascii.ecsv")
 
@@ -284,7 +330,7 @@ def _plot(result, path: Path) -> None:
         ax.fill_between(r, n.p.mean(axis=0) - spread, n.p.mean(axis=0) + spread,
                         color="0.85", label=f"null: random positions (mean ± 1σ of {n.n_real})")
     ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
-                ms=4, capsize=2, label="measured (jackknife errors)")
+                ms=4, capsize=2, label=f"measured ({result.config.covariance.estimator} errors)")
     if (~result.in_fit).any():
         ax.errorbar(r[~result.in_fit], result.p[~result.in_fit], yerr=result.p_err[~result.in_fit], fmt="o",
                     mfc="none", color="C0", ms=4, capsize=2, label="not fitted")
@@ -295,7 +341,8 @@ def _plot(result, path: Path) -> None:
         ax.plot(r, curve, ls="--", lw=1.2, label=name)
     ax.set_xlabel("comoving separation r [Mpc]")
     ax.set_ylabel("mean pairwise kSZ momentum p(r) [μK]")
-    ax.set_title(f"{result.config.run.name}: {result.n_tracers:,} tracers, "
+    ax.set_title(("BLINDED - " if _blinding(result).get("blinded") else "") +
+                 f"{result.config.run.name}: {result.n_tracers:,} tracers, "
                  f"θ = {result.config.aperture.radius_arcmin:g}′, z_eff = {result.z_eff:.2f}", fontsize=10)
     ax.legend(fontsize=8, loc="lower right")
     fig.savefig(path, dpi=130)
@@ -308,8 +355,19 @@ def _plot_nulls(result, path: Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, axes = plt.subplots(1, len(result.nulls), figsize=(4.2 * len(result.nulls), 3.6), sharey=True,
+    from scipy import stats
+
+    fig, axes = plt.subplots(2, len(result.nulls), figsize=(4.2 * len(result.nulls), 6.8), sharey="row",
                              constrained_layout=True, squeeze=False)
+    for ax, n in zip(axes[1], result.nulls):
+        hi = max(float(np.max(n.chi2)), stats.chi2.ppf(0.995, n.dof))
+        ax.hist(n.chi2, bins=np.linspace(0, hi, 16), density=True, color="C2", alpha=0.6,
+                label=f"{n.n_real} realisations")
+        xs = np.linspace(0, hi, 200)
+        ax.plot(xs, stats.chi2.pdf(xs, n.dof), color="k", lw=1, label=f"χ² pdf, {n.dof} dof")
+        ax.set_xlabel("χ² of one realisation against zero")
+        ax.legend(fontsize=7)
+    axes[1][0].set_ylabel("density")
     for ax, n in zip(axes[0], result.nulls):
         ax.axhline(0.0, color="0.6", lw=0.8)
         for k in range(n.n_real):
@@ -319,6 +377,7 @@ def _plot_nulls(result, path: Path) -> None:
                      f"({'pass' if n.passed else 'FAIL'})", fontsize=8.5)
         ax.set_xlabel("comoving separation r [Mpc]")
     axes[0][0].set_ylabel("null p(r) [μK]: realisations and mean")
+    fig.suptitle(f"null tests ({_blind_tag(result)})", fontsize=9)
     fig.savefig(path, dpi=110)
     plt.close(fig)
 
@@ -327,6 +386,8 @@ def _report(result, summary: dict) -> str:
     f = result.fit
     lines = [
         f"# pairvel report: {result.config.run.name}",
+        "",
+        f"**Blinding: {_blind_tag(result)}.**",
         "",
         "## Headline",
         f"- mean optical depth tau_mean = {f.amplitude:.4e} ± {f.error:.4e} (S/N = {f.snr:.2f})",
@@ -364,7 +425,7 @@ def _report(result, summary: dict) -> str:
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
-              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png.", ""]
+              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
     return "\n".join(lines)
 
 
@@ -385,6 +446,7 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         if result.nulls:
             _plot_nulls(result, tmp / "nulls.png")
         _write_theory_outputs(result, tmp)
+        _plot_correlation(result, tmp / "correlation.png")
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")

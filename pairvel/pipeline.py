@@ -24,13 +24,16 @@ from ._rng import as_generator
 from .catalogue import Catalogue, file_sha256, load_catalogue
 from .config import Config
 from .constants import C_KM_S, T_CMB_UK
-from .covariance import healpix_regions, jackknife_covariance, kmeans_regions
+from .covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
+                         kmeans_regions, region_half_sums)
 from .errors import InputError, PairvelWarning
+from .covdiag import covariance_diagnostics, diagnostics_markdown
+from .simcov import simulate_aperture_temperatures, simulation_covariance
 from .distributed import pairwise_momentum_units
 from .estimator import pairwise_momentum
 from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
-from .nulltests import evaluate_null, shuffled_sets
+from .nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
 from .joint import fit_velocity_scale
@@ -127,6 +130,35 @@ def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps,
     return out
 
 
+def _simulated_sets(skymap, cat, cfg: Config, rng, progress) -> np.ndarray:
+    """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
+    cc = cfg.covariance
+    cmb_cl = noise_cl = None
+    if cc.sim_cmb:
+        from .mock import load_cmb_cl
+
+        cmb_cl = load_cmb_cl()[1]
+    if cc.sim_noise_cl_path is not None:
+        try:
+            table = np.loadtxt(cc.sim_noise_cl_path, comments="#", ndmin=2)
+        except (OSError, ValueError) as err:
+            raise InputError(f"covariance.sim_noise_cl_path {cc.sim_noise_cl_path}: cannot be read as an (ell, N_ell) "
+                             f"table ({err})", path=cc.sim_noise_cl_path) from None
+        noise_cl = np.zeros(int(table[:, 0].max()) + 1)
+        noise_cl[table[:, 0].astype(int)] = table[:, 1]
+    sims = simulate_aperture_temperatures(skymap.nside, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
+                                          seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
+                                          white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin, noise_cl=noise_cl,
+                                          max_masked_fraction=cfg.map.max_masked_fraction,
+                                          n_threads=cfg.compute.n_threads or 1,
+                                          progress=progress.counter("simulated maps"))
+    out = np.empty_like(sims)
+    for k, t in enumerate(sims):
+        ok = np.isfinite(t)
+        out[k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
+    return out
+
+
 def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     """Run every stage for a validated config and return the result (nothing is written).
 
@@ -137,7 +169,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     progress : Progress, optional
         Where stage lines go; silent when None.
     """
-    progress = progress or Progress(9, quiet=True)
+    progress = progress or Progress(10, quiet=True)
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
 
@@ -189,16 +221,26 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             progress.say(f"      null set {k + 1}/{n_null}")
 
     nc = cfg.nulls
+    with progress.stage(f"null-test photometry: map rotated by {len(nc.rotation_deg)} longitude angles"):
+        rot, rot_kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
+                                     max_masked_fraction=cfg.map.max_masked_fraction,
+                                     min_usable_fraction=nc.rotation_min_usable)
+        rot = np.array([_trend(t, cat.z, cfg) for t in rot]).reshape(rot.shape)
     null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
                  "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
-                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)}
-    stacked = np.vstack([temps[None, :]] + list(null_sets.values()))
+                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width),
+                 "rotated": rot}
+    sims = np.zeros((0, len(cat)))
+    if cc.estimator == "simulations":
+        with progress.stage(f"simulated maps: {cc.n_sim} Gaussian skies at nside {skymap.nside}"):
+            sims = _simulated_sets(skymap, cat, cfg, rng, progress)
+    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [sims])
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
             pr = pairwise_momentum_units(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                                         weights=cat.weight, n_units=cfg.compute.n_units, scheduler=cfg.compute.scheduler_address,
-                                         n_threads=cfg.compute.n_threads)
+                                         weights=cat.weight, n_units=cfg.compute.n_units,
+                                         scheduler=cfg.compute.scheduler_address, n_threads=cfg.compute.n_threads)
         else:
             pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
                                    weights=cat.weight, n_threads=cfg.compute.n_threads)
@@ -210,7 +252,17 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         if not valid.all():
             raise InputError(f"separation bins {np.flatnonzero(~valid).tolist()} have no pairs in some jackknife "
                              f"sample; widen bins.width_mpc or reduce covariance.n_regions")
-        cov = jackknife_covariance(p_jk)
+        cov_jk = jackknife_covariance(p_jk)
+        cov, p_boot = cov_jk, None
+        n_cov = n_jk
+        if sims.shape[0]:
+            cov = simulation_covariance(pr.p[stacked.shape[0] - sims.shape[0]:])
+            n_cov = sims.shape[0]
+        if cc.estimator == "bootstrap":
+            num_k, den_k = region_half_sums(positions, temps, edges, regions, weights=cat.weight,
+                                            n_threads=cfg.compute.n_threads)
+            p_boot = bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng)
+            cov = bootstrap_covariance(p_boot)
         r_mid = 0.5 * (edges[1:] + edges[:-1])
         in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
         weight = pr.denominator * in_fit
@@ -218,17 +270,24 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         v12, template_info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
                                               z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
         template = T_CMB_UK * v12 / C_KM_S
-        fit = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit, likelihood=cfg.theory.likelihood)
+        fit = fit_amplitude(p, template, cov, n_samples=n_cov, use=in_fit, likelihood=cfg.theory.likelihood)
+        covs = {"jackknife": cov_jk, cc.estimator: cov}
+        diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
+                                      used=cc.estimator)
         nulls, row = [], 1
         for kind, sets in null_sets.items():
             if sets.shape[0]:
                 rows = slice(row, row + sets.shape[0])
-                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold))
+                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold,
+                                           **({"covariance": cov, "n_samples": n_cov} if sims.shape[0] else {})))
                 row += sets.shape[0]
 
     extra = {"template": template_info}
-    extra.update(_extra_fits(cfg, fit, template_info, n_jk, cat=cat, positions=positions, temps=temps,
+    extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
                              regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress))
+    extra.update({"covariance_diagnostics": diag,
+                  "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rot_kept],
+                  "report_sections": {"Covariance diagnostics": diagnostics_markdown(diag, edges)}})
     provenance = {
         "pairvel_version": __version__,
         "started_utc": started,

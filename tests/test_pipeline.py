@@ -1,5 +1,7 @@
 """End-to-end injection-recovery on small mocks with known truth."""
 
+import json
+
 import numpy as np
 import pytest
 
@@ -49,3 +51,49 @@ def test_recovery_is_unbiased_over_mocks(tmp_path):
     pulls = np.array(pulls)
     assert abs(pulls.mean()) < 3 / np.sqrt(8), pulls
     assert pulls.std(ddof=1) < 1.6, pulls
+
+
+def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
+    """Bootstrap covariance through the pipeline: same curve, errors of the same order as the
+    jackknife's (common practice: the two agree to tens of per cent for region resampling)."""
+    import warnings
+
+    from pairvel.config import load_config
+    from pairvel.errors import PairvelWarning
+    from pairvel.outputs import write_outputs
+    from pairvel.pipeline import run_pipeline
+
+    text = (tiny_survey / "run.toml").read_text().replace("n_regions = 12",
+                                                          'n_regions = 12\nestimator = "bootstrap"\nn_bootstrap = 300')
+    text = text.replace("n_random = 2", "n_random = 2\nrotation_deg = [8.0, 12.0]")
+    (tiny_survey / "boot.toml").write_text(text)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PairvelWarning)
+        res = run_pipeline(load_config(tiny_survey / "boot.toml"))
+    diag = res.extra["covariance_diagnostics"]
+    assert diag["used"] == "bootstrap" and set(diag["errors"]) == {"jackknife", "bootstrap"}
+    ratio = np.array(diag["errors"]["bootstrap"]) / np.array(diag["errors"]["jackknife"])
+    assert np.all((ratio > 0.5) & (ratio < 2.0)), ratio
+    np.testing.assert_allclose(res.p_err, diag["errors"]["bootstrap"], rtol=1e-12)
+    assert diag["condition_number"] >= 1.0
+    out = write_outputs(res, tiny_survey / "out_boot")
+    assert (out / "correlation.png").is_file()
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["covariance"]["method"].startswith("bootstrap (300 replicates)")
+    assert "Covariance diagnostics" in (out / "report.md").read_text()
+    rotated = [n for n in summary["null_tests"] if n["kind"] == "rotated"]
+    assert rotated and rotated[0]["n_realisations"] == 2 and len(rotated[0]["chi2_each"]) == 2
+    assert [r["angle_deg"] for r in summary["null_rotations_used"]] == [8.0, 12.0]
+    assert (out / "nulls.png").is_file() and (out / "null_rotated.ecsv").is_file()
+
+
+def test_too_few_samples_warns():
+    """Common practice: a Hartlap factor below 0.8 means too few samples for the bins."""
+    from pairvel.covdiag import covariance_diagnostics
+    from pairvel.errors import PairvelWarning
+
+    cov = np.diag([1.0, 2.0, 4.0, 8.0])
+    with pytest.warns(PairvelWarning, match="'jackknife' comes from 10 samples for 4 bins"):
+        d = covariance_diagnostics({"jackknife": cov}, {"jackknife": 10}, used="jackknife")
+    np.testing.assert_allclose(d["condition_number"], 8.0, rtol=1e-12)  # analytic: max/min eigenvalue
+    assert d["too_few_samples"] == ["jackknife"]
