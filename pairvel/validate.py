@@ -23,6 +23,17 @@ deviation), so a reader can tell a miss from noise.  The same fit is also made o
 noiseless kSZ curve (same pairs, same regions), which isolates the sample-variance part, and the
 per-bin ratio of the mean jackknife variance to the variance of p(r) across mocks is kept, which
 shows at which separations the jackknife is off.
+
+Two alternative jackknives are computed beside the pipeline's as diagnostics (``diagnostics``,
+on by default), to find out why the pipeline's per-bin errors are too large at large separations:
+
+- **re-trended**: sample k is the pipeline's delete-one sample, but with the redshift trend of the
+  temperatures re-estimated without region k (the pipeline removes the trend once, from all
+  tracers, so deleting a region leaves the remaining temperatures with a non-zero trend that the
+  full sample does not have);
+- **object-split**: sample k removes only region k's own share of the numerator,
+  sum_{i in k} T_i sum_j c_ij, instead of every pair touching region k (which also takes out the
+  partners' temperatures).
 """
 
 from __future__ import annotations
@@ -87,6 +98,8 @@ class ValidationOptions:
     z_min, z_max : float, default 0.1, 0.4
     cell_mpc : float, Mpc, default 8.0
         Cell of the Gaussian field.
+    diagnostics : bool, default True
+        Also compute the object-split and re-trended jackknives (2-3 times slower).
     """
 
     n_mocks: int = 100
@@ -114,6 +127,7 @@ class ValidationOptions:
     z_min: float = 0.1
     z_max: float = 0.4
     cell_mpc: float = 8.0
+    diagnostics: bool = True
 
     def __post_init__(self):
         def need(ok, name, must):
@@ -228,7 +242,7 @@ def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     return res.temperatures[0], res.usable
 
 
-def _pairs_and_object_split(pos, sets, edges, regions, z, n_jk):
+def _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended=None, *, object_split=True):
     """The pair engine on ``sets`` (the pipeline's jackknife), plus the object-split jackknife samples.
 
     The pipeline's delete-one sample k drops every pair touching region k, so a cross pair (i in k,
@@ -239,25 +253,40 @@ def _pairs_and_object_split(pos, sets, edges, regions, z, n_jk):
     for cross pairs).  For fixed positions and independent noise this is the jackknife of a sum of
     independent region totals.  Costs 2 n_jk extra temperature sets on the engine's linear path.
 
+    ``retrended`` (n_jk, N), optional: set k holds the measured temperatures with the redshift trend
+    estimated without region k; its delete-one sample k is the pipeline's jackknife with the trend
+    removal redone inside each sample.
+
     Returns
     -------
-    PairwiseResult of ``sets``, and object-split samples of shape (len(sets), n_jk, nbins).
+    PairwiseResult of ``sets``, object-split samples of shape (len(sets), n_jk, nbins), and the
+    re-trended samples of shape (n_jk, nbins) (None without ``retrended``).
     """
     from .estimator import _validate, finalise, pass_sums
 
     m = sets.shape[0]
+    if not object_split and retrended is None:  # the pipeline's pass only
+        from .estimator import pairwise_momentum
+
+        return pairwise_momentum(pos, sets, edges, regions=regions, redshifts=z), None, None
     member = regions[None, :] == np.arange(n_jk)[:, None]                  # (n_jk, N)
     masked = (sets[:, None, :] * member[None, :, :]).reshape(m * n_jk, -1)
-    stacked = np.vstack([sets, masked])
+    stacked = np.vstack([sets, masked] + ([] if retrended is None else [retrended]))
     pos_v, t2, _, e, reg, nj, zz, want_z, w = _validate(pos, stacked, edges, regions, z)
     num, den, cnt, zsum, jk_num, jk_den, jk_cnt = pass_sums(pos_v, t2, reg, zz, e, nj, want_z, method="linear")
     pr = finalise((num[:m], den, cnt, zsum, jk_num[:, :m], jk_den, jk_cnt), e, single=False, n_jk=nj,
                   want_z=want_z)
     with np.errstate(divide="ignore", invalid="ignore"):
         share = jk_den * den / jk_den.sum(axis=0)                          # (n_jk, nb)
-        reg_num = num[m:].reshape(m, n_jk, -1)
+        reg_num = num[m:m + m * n_jk].reshape(m, n_jk, -1)
         p_obj = -(num[:m, None, :] - reg_num) / (den - share)[None, :, :]
-    return pr, p_obj
+    p_re = None
+    if retrended is not None:
+        k = np.arange(n_jk)
+        rows = m + m * n_jk + k
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p_re = -(num[rows] - jk_num[k, rows]) / (den[None, :] - jk_den[k])
+    return pr, p_obj, p_re
 
 
 def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: np.ndarray) -> dict:
@@ -276,10 +305,9 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
         ra, dec, z, v_r, dt, temps = ra[usable], dec[usable], z[usable], v_r[usable], dt[usable], temps[usable]
     else:
         temps = dt + rng.normal(0.0, opt.noise_uk, dt.size)
-    sets = np.vstack([temps, dt])  # measured, and the noiseless kSZ (same pairs and regions)
+    raw = np.vstack([temps, dt])  # measured, and the noiseless kSZ (same pairs and regions)
     trend_cfg = TrendConfig()
-    if opt.trend:
-        sets = remove_redshift_trend(sets, z, sigma_z=trend_cfg.sigma_z)
+    sets = remove_redshift_trend(raw, z, sigma_z=trend_cfg.sigma_z) if opt.trend else raw
 
     pos = comoving_positions(ra, dec, z, cosmo=DEFAULT_COSMOLOGY)
     cov_cfg = CovarianceConfig(regions=opt.regions, n_regions=opt.n_regions, healpix_nside=opt.healpix_nside)
@@ -288,7 +316,14 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     else:
         regions = kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
     n_jk = int(regions.max()) + 1
-    pr, p_obj_jk = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk)
+    retrended = None
+    if opt.trend and opt.diagnostics:  # jackknife sample k with the trend re-estimated without region k (a diagnostic)
+        retrended = np.zeros((n_jk, ra.size))
+        for k in range(n_jk):
+            out = regions != k
+            retrended[k, out] = remove_redshift_trend(raw[0, out], z[out], sigma_z=trend_cfg.sigma_z)
+    pr, p_obj_jk, p_retrend_jk = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended,
+                                                         object_split=opt.diagnostics)
 
     r_mid = 0.5 * (edges[1:] + edges[:-1])
     in_fit = (r_mid >= opt.fit_r_min_mpc) & (r_mid < opt.fit_r_max_mpc)
@@ -302,7 +337,10 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     row = {"n_tracers": int(ra.size), "n_jk": n_jk, "z_eff": z_eff}
     # "" : the pipeline's jackknife on the measured temperatures; "signal_": same on the noiseless kSZ;
     # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones
-    for label, k, samples in (("", 0, pr.p_jk[0]), ("signal_", 1, pr.p_jk[1]), ("objsplit_", 0, p_obj_jk[0])):
+    cases = [("", 0, pr.p_jk[0]), ("signal_", 1, pr.p_jk[1])]
+    if opt.diagnostics:
+        cases += [("objsplit_", 0, p_obj_jk[0]), ("retrend_", 0, pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk)]
+    for label, k, samples in cases:
         cov = jackknife_covariance(samples)
         if label == "signal_" and opt.tau_mean == 0:  # no signal to fit: keep the columns, fill with nan
             nan = float("nan")
@@ -313,7 +351,7 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
         f = fit_amplitude(pr.p[k], template, cov, n_samples=n_jk, use=in_fit, likelihood=opt.likelihood)
         row.update({f"{label}tau_hat": f.amplitude, f"{label}tau_err": f.error, f"{label}lower_68": f.lower_68,
                     f"{label}upper_68": f.upper_68, f"{label}chi2_min": f.chi2_min, f"{label}chi2_null": f.chi2_null})
-        if label != "objsplit_":
+        if label in ("", "signal_"):
             row[f"{label}p_uk"] = pr.p[k]
         row[f"{label}p_err_uk"] = np.sqrt(np.diag(cov))
     row["dof"] = int(in_fit.sum()) - 1
@@ -378,11 +416,24 @@ def summarise(rows: dict, opt: ValidationOptions) -> dict:
         sig = _calibration(rows["signal_tau_hat"], rows["signal_tau_err"], rows["signal_lower_68"],
                            rows["signal_upper_68"], truth)
         out["noiseless_signal"] = sig
+    if "objsplit_tau_hat" not in rows:
+        return _tail_summary(out, rows, opt)
     out["object_split_jackknife"] = _calibration(rows["objsplit_tau_hat"], rows["objsplit_tau_err"],
                                                  rows["objsplit_lower_68"], rows["objsplit_upper_68"], truth)
     out["per_bin_object_split_error_over_scatter"] = np.sqrt(np.mean(rows["objsplit_p_err_uk"] ** 2, axis=0) /
                                                              np.var(rows["p_uk"], axis=0, ddof=1)).tolist()
     out["object_split_chi2_min_mean"] = float(np.mean(rows["objsplit_chi2_min"]))
+    if opt.trend and opt.diagnostics:
+        out["retrend_jackknife"] = _calibration(rows["retrend_tau_hat"], rows["retrend_tau_err"],
+                                                rows["retrend_lower_68"], rows["retrend_upper_68"], truth)
+        out["per_bin_retrend_error_over_scatter"] = np.sqrt(np.mean(rows["retrend_p_err_uk"] ** 2, axis=0) /
+                                                            np.var(rows["p_uk"], axis=0, ddof=1)).tolist()
+        out["retrend_chi2_min_mean"] = float(np.mean(rows["retrend_chi2_min"]))
+    return _tail_summary(out, rows, opt)
+
+
+def _tail_summary(out: dict, rows: dict, opt: ValidationOptions) -> dict:
+    truth = opt.tau_mean
     chi2 = rows["chi2_min"]
     dof = rows["dof"]
     out["chi2_min_mean"] = float(np.mean(chi2))
@@ -544,13 +595,21 @@ def format_summary(result: ValidationResult) -> str:
             f"    jackknife error / scatter {c['error_ratio']:.3f} ± {c['error_ratio_se']:.3f} (target 0.85-1.15): "
             f"{mark[ok['error_ratio']]}",
         ]
-    o = s["object_split_jackknife"]
-    lines.append(f"  diagnostic, object-split jackknife on the measured curve: error / scatter {o['error_ratio']:.3f} "
-                 f"± {o['error_ratio_se']:.3f}, coverage {o['coverage_68']:.3f}, bias {o['bias_in_sigma']:+.3f} sigma, "
-                 f"mean chi2 {s['object_split_chi2_min_mean']:.2f}")
     lines.append(f"  mean best-fit chi2 {s['chi2_min_mean']:.2f} ± {s['chi2_min_mean_se']:.2f} for {s['dof']} dof")
     per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_jk_error_over_scatter"])
     lines.append(f"  per-bin jackknife error / scatter of p(r): {per_bin}")
-    per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_object_split_error_over_scatter"])
-    lines.append(f"  per-bin object-split jackknife error / scatter of p(r): {per_bin}")
+    o = s.get("object_split_jackknife")
+    if o is not None:
+        lines.append(f"  diagnostic, object-split jackknife on the measured curve: error / scatter {o['error_ratio']:.3f} "
+                     f"± {o['error_ratio_se']:.3f}, coverage {o['coverage_68']:.3f}, bias {o['bias_in_sigma']:+.3f} "
+                     f"sigma, mean chi2 {s['object_split_chi2_min_mean']:.2f}")
+        per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_object_split_error_over_scatter"])
+        lines.append(f"  per-bin object-split jackknife error / scatter of p(r): {per_bin}")
+    if "retrend_jackknife" in s:
+        o = s["retrend_jackknife"]
+        lines.append(f"  diagnostic, jackknife with the redshift trend re-estimated in each sample: error / scatter "
+                     f"{o['error_ratio']:.3f} ± {o['error_ratio_se']:.3f}, coverage {o['coverage_68']:.3f}, "
+                     f"bias {o['bias_in_sigma']:+.3f} sigma, mean chi2 {s['retrend_chi2_min_mean']:.2f}")
+        per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_retrend_error_over_scatter"])
+        lines.append(f"  per-bin re-trended jackknife error / scatter of p(r): {per_bin}")
     return "\n".join(lines)

@@ -136,7 +136,7 @@ def test_validate_with_a_map(tmp_path):
 def test_reduced_calibration_noise_dominated():
     """40 mocks, per-tracer noise dominating; tolerances from the sampling error of 40 mocks."""
     n = 40
-    opt = ValidationOptions(n_mocks=n, n_tracers=6000, seed=777, fit_r_min_mpc=40.0)
+    opt = ValidationOptions(n_mocks=n, n_tracers=6000, seed=777, fit_r_min_mpc=40.0, diagnostics=False)
     s = run_validation(opt).summary["measured"]
     # bias: the mean of n pulls has standard error ~1/sqrt(n) = 0.16; allow 3 of them (0.47)
     assert abs(s["bias_in_sigma"]) < 3 / math.sqrt(n)
@@ -145,3 +145,45 @@ def test_reduced_calibration_noise_dominated():
     # error ratio: the sample standard deviation of n values has relative error 1/sqrt(2 (n - 1)) = 0.11;
     # allow 3 of them (0.66-1.34)
     assert abs(s["error_ratio"] - 1.0) < 3 / math.sqrt(2 * (n - 1))
+
+
+# --- the two diagnostic jackknives against direct computations -------------------------------------
+
+def test_retrended_and_object_split_samples_match_direct_computations():
+    from pairvel.estimator import pairwise_momentum
+    from pairvel.validate import _pairs_and_object_split
+
+    rng = np.random.default_rng(11)
+    n, n_jk = 60, 4
+    pos = rng.uniform(-40, 40, (n, 3)) + np.array([800.0, 0.0, 0.0])
+    z = rng.uniform(0.2, 0.22, n)
+    regions = np.arange(n) % n_jk
+    sets = rng.normal(size=(2, n))
+    retrended = rng.normal(size=(n_jk, n))
+    edges = np.array([0.0, 30.0, 60.0, 90.0])
+    pr, p_obj, p_re = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended)
+    for k in range(n_jk):
+        out = regions != k
+        # re-trended sample k: the estimator on the tracers outside region k alone (internal consistency)
+        direct = pairwise_momentum(pos[out], retrended[k, out], edges).p
+        np.testing.assert_allclose(p_re[k], direct, rtol=1e-10)
+    # object-split sample k (slow numpy reference): numerator minus region k's share sum_{i in k} T_i w_i,
+    # denominator minus its share of the pairs touching k
+    d = pos[:, None, :] - pos[None, :, :]
+    r = np.linalg.norm(d, axis=-1)
+    rhat = d / np.where(r > 0, r, 1.0)[..., None]
+    u = pos / np.linalg.norm(pos, axis=1)[:, None]
+    c = np.einsum("ijk,ijk->ij", rhat, 0.5 * (u[:, None, :] + u[None, :, :]))
+    b = np.digitize(r, edges) - 1
+    for bin_ in range(edges.size - 1):
+        pair = (b == bin_) & (r > 0)
+        cb = np.where(pair, c, 0.0)
+        w = cb.sum(axis=1)                                    # w_i = sum_j c_ij (c_ji = -c_ij)
+        num = sets @ w                                         # sum_{i<j} (T_i - T_j) c_ij
+        den = 0.5 * np.sum(cb**2)
+        touch = np.array([0.5 * np.sum(cb[np.ix_(regions == k, regions == k)] ** 2)
+                          + np.sum(cb[np.ix_(regions == k, regions != k)] ** 2) for k in range(n_jk)])
+        share = touch * den / touch.sum()
+        for k in range(n_jk):
+            own = sets[:, regions == k] @ w[regions == k]
+            np.testing.assert_allclose(p_obj[:, k, bin_], -(num - own) / (den - share[k]), rtol=1e-9)
