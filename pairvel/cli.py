@@ -1,4 +1,4 @@
-"""Command line: ``pairvel run | demo | mock | keys``.
+"""Command line: ``pairvel run | demo | mock | validate | keys``.
 
 A thin layer over the library.  Every :class:`~pairvel.errors.PairvelError` becomes one line on
 stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.
@@ -64,6 +64,8 @@ def _parser() -> argparse.ArgumentParser:
     unblind.add_argument("--key", required=True, help="blinding key JSON written by the blinded run")
     unblind.add_argument("--out", help="new output folder (default: <folder>-unblinded)")
     common(unblind)
+
+    _add_validate_parser(sub, common)
 
     keys = sub.add_parser("keys", help="list every config key with its type, default and meaning")
     keys.add_argument("--markdown", action="store_true", help="print a Markdown table")
@@ -149,6 +151,68 @@ def _cmd_mock(args) -> int:
     return EXIT_OK
 
 
+def _add_validate_parser(sub, common) -> None:
+    from .validate import ValidationOptions
+
+    d = ValidationOptions()
+    val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
+                         description="Make many cheap mock light cones with linear-theory velocities and a known "
+                                     "optical depth, push each through the pipeline's estimator, jackknife and fit, "
+                                     "and report the bias, the 68%% coverage and the jackknife error / scatter ratio.")
+    val.add_argument("out", help="new output folder (mocks.ecsv, summary.json, calibration.png)")
+    val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks})")
+    val.add_argument("--seed", type=int, default=d.seed, help=f"master seed (default {d.seed})")
+    val.add_argument("--n-tracers", type=int, default=d.n_tracers, help=f"tracers per mock (default {d.n_tracers})")
+    val.add_argument("--tau-mean", type=float, default=d.tau_mean, help=f"injected optical depth (default {d.tau_mean:g})")
+    val.add_argument("--noise-uk", type=float, default=d.noise_uk,
+                     help=f"per-tracer temperature noise in uK, without a map (default {d.noise_uk:g})")
+    val.add_argument("--map", action="store_true", help="paint the kSZ onto a HEALPix map with white noise and "
+                                                         "measure apertures instead of adding per-tracer noise")
+    val.add_argument("--noise-uk-arcmin", type=float, default=d.noise_uk_arcmin,
+                     help=f"map white noise, uK-arcmin (default {d.noise_uk_arcmin:g})")
+    val.add_argument("--nside", type=int, default=d.nside, help=f"map nside (default {d.nside})")
+    val.add_argument("--regions", choices=("kmeans", "healpix"), default=d.regions,
+                     help=f"jackknife regions (default {d.regions})")
+    val.add_argument("--n-regions", type=int, default=d.n_regions,
+                     help=f"k-means jackknife regions (default {d.n_regions})")
+    val.add_argument("--healpix-nside", type=int, default=d.healpix_nside,
+                     help=f"nside of HEALPix jackknife regions (default {d.healpix_nside})")
+    val.add_argument("--r-max", type=float, default=d.r_max_mpc,
+                     help=f"largest separation, Mpc; bins start at 0 (default {d.r_max_mpc:g})")
+    val.add_argument("--bin-width", type=float, default=d.bin_width_mpc,
+                     help=f"separation bin width, Mpc (default {d.bin_width_mpc:g})")
+    val.add_argument("--no-trend", action="store_true", help="skip the redshift-trend removal")
+    val.add_argument("--fit-r-min", type=float, default=d.fit_r_min_mpc, help="fit bins with centre >= this, Mpc")
+    val.add_argument("--fit-r-max", type=float, default=d.fit_r_max_mpc, help="fit bins with centre < this, Mpc")
+    val.add_argument("--likelihood", choices=("hartlap", "sellentin-heavens"), default=d.likelihood,
+                     help=f"likelihood of the amplitude fit (default {d.likelihood})")
+    val.add_argument("--cell-mpc", type=float, default=d.cell_mpc,
+                     help=f"cell of the mocks' Gaussian field, Mpc (default {d.cell_mpc:g})")
+    val.add_argument("--no-diagnostics", action="store_true",
+                     help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
+    val.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    common(val)
+
+
+def _cmd_validate(args) -> int:
+    from .outputs import prepare_output_dir
+    from .validate import ValidationOptions, format_summary, run_validation, write_validation
+
+    opt = ValidationOptions(n_mocks=args.n_mocks, seed=args.seed, n_tracers=args.n_tracers, tau_mean=args.tau_mean,
+                            noise_uk=args.noise_uk, with_map=args.map, noise_uk_arcmin=args.noise_uk_arcmin,
+                            nside=args.nside, regions=args.regions, n_regions=args.n_regions,
+                            healpix_nside=args.healpix_nside, trend=not args.no_trend, r_max_mpc=args.r_max,
+                            bin_width_mpc=args.bin_width, fit_r_min_mpc=args.fit_r_min,
+                            fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
+                            diagnostics=not args.no_diagnostics)
+    prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
+    result = run_validation(opt, progress=None if args.quiet else _say)
+    out = write_validation(result, args.out, force=args.force)
+    print(format_summary(result))
+    print(f"  outputs: {out}")
+    return EXIT_OK
+
+
 def _say(text: str) -> None:
     print(text, file=sys.stderr, flush=True)
 
@@ -176,6 +240,8 @@ def main(argv=None) -> int:
                 return _cmd_mock(args)
             if args.command == "unblind":
                 return _cmd_unblind(args)
+            if args.command == "validate":
+                return _cmd_validate(args)
             return _cmd_keys(args)
         except PairvelError as err:
             if debug:

@@ -8,7 +8,7 @@ a user made is ever deleted.
 
 from __future__ import annotations
 
-__all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir"]
+__all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir", "write_folder_atomically"]
 
 import json
 import math
@@ -449,6 +449,33 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         _plot_correlation(result, tmp / "correlation.png")
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
+        (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
+        if out.exists():  # force: only reached for a folder that pairvel wrote
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+            os.rename(out, old / out.name)
+            os.rename(tmp, out)
+            shutil.rmtree(old)
+        else:
+            os.rename(tmp, out)
+    except OSError as err:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"output folder {out}: cannot be written ({err.strerror or err})", path=out) from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def write_folder_atomically(out_dir, fill, *, force: bool = False) -> Path:
+    """Call ``fill(tmp_folder)`` on a hidden temporary folder and rename it to ``out_dir``.
+
+    The same all-or-nothing rules as :func:`write_outputs`: an existing folder is replaced only
+    with ``force`` and only when it carries :data:`OUTPUT_MARKER`; on failure nothing is left.
+    """
+    out = prepare_output_dir(out_dir, force=force)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        fill(tmp)
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
         if out.exists():  # force: only reached for a folder that pairvel wrote
             old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
