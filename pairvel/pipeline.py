@@ -34,6 +34,7 @@ from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
 from .joint import fit_velocity_scale
+from .radii import aperture_radii, fit_radii, radius_report
 from .subsamples import fit_proxy_bins
 from .template import load_power, template_for_run
 from .trend import remove_redshift_trend
@@ -98,9 +99,11 @@ def package_versions() -> dict:
 
 
 def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str):
-    res = measure_apertures(skymap, ra, dec, cfg.aperture.radius_arcmin,
-                            max_masked_fraction=cfg.map.max_masked_fraction, progress=progress.counter(label))
-    return res.temperatures[0], res.usable
+    """Aperture temperatures (n_radii, N), primary radius first, and which tracers are usable at every radius."""
+    ap = cfg.aperture
+    res = measure_apertures(skymap, ra, dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
+                            progress=progress.counter(label), pixel_weighting=ap.pixel_weighting, method=ap.method)
+    return res.temperatures, res.usable
 
 
 def _trend(temps, z, cfg: Config):
@@ -147,13 +150,15 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
     with progress.stage("sky map"):
         skymap = read_map(cfg.map.path, field=cfg.map.field, unit=cfg.map.unit,
-                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
+                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
+                          coordsys=cfg.map.coordsys)
         if cfg.map.mask_path is not None:
             mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
-                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
+                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
+                             coordsys=skymap.coordsys)
             skymap = skymap.with_mask(mask)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        temps, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
+        temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
         n_masked = int((~usable).sum())
         if n_masked:
             warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
@@ -162,11 +167,13 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             raise InputError(f"map {cfg.map.path}: fewer than 2 tracers have usable apertures "
                              f"({n_masked} of {len(cat)} masked or outside the map)", path=cfg.map.path)
         cat = cat.subset(usable)
-        temps = temps[usable]
+        temps_radii = temps_radii[:, usable]
+        temps = temps_radii[0]
     selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
 
     with progress.stage("redshift-trend correction"):
         temps = _trend(temps, cat.z, cfg)
+        radius_sets = np.array([_trend(t, cat.z, cfg) for t in temps_radii[1:]]).reshape(-1, len(cat))
     with progress.stage("geometry and jackknife regions"):
         positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
         cc = cfg.covariance
@@ -184,7 +191,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         null_sets = []
         for k in range(n_null):
             _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
-                                                 max_masked_fraction=cfg.map.max_masked_fraction)
+                                                 max_masked_fraction=cfg.map.max_masked_fraction,
+                                                 pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method)
             null_sets.append(_trend(t_r[0], cat.z, cfg))
             progress.say(f"      null set {k + 1}/{n_null}")
 
@@ -192,7 +200,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
                  "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
                  "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)}
-    stacked = np.vstack([temps[None, :]] + list(null_sets.values()))
+    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [radius_sets])
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
@@ -225,8 +233,14 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                 rows = slice(row, row + sets.shape[0])
                 nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold))
                 row += sets.shape[0]
+        radius_rows = [0] + list(range(row, row + radius_sets.shape[0]))  # the extra radii are the last rows
+        radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[radius_rows], pr.p_jk[radius_rows], template,
+                                n_jk=n_jk, in_fit=in_fit, likelihood=cfg.theory.likelihood)
 
     extra = {"template": template_info}
+    if len(radius_fits) > 1:
+        extra["radius_fits"] = radius_fits
+        extra["report_sections"] = {"Signal against aperture radius": radius_report(radius_fits)}
     extra.update(_extra_fits(cfg, fit, template_info, n_jk, cat=cat, positions=positions, temps=temps,
                              regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress))
     provenance = {
