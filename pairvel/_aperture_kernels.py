@@ -60,23 +60,23 @@ def _lookup(p, held, full, values, weight):
 def aperture_sums(nside, vec, c_in, c_out, half_ramp, held, full, values, weight, sums):
     """Accumulate disc and annulus sums for every position and radius.
 
-    vec (N, 3) unit vectors in the map frame; c_in, c_out (R,) chord radii; half_ramp: 0 for whole
+    vec (N, 3) unit vectors in the map frame; c_in, c_out (R, N) chord radii per radius and position; half_ramp: 0 for whole
     pixels, else the chord half-width of the linear ramp that gives a pixel near an edge a fraction
     of its weight; held: sorted RING pixel indices of a partial map (ignored when full); values,
     weight: map values and usable weights (RING order, or aligned with held).  sums (6, R, N),
     zeroed by the caller: [disc pixel count, disc weight, disc weighted sum, same for the annulus].
     """
     n = vec.shape[0]
-    nr_rad = c_in.size
-    c_reach = 0.0
-    for r in range(nr_rad):
-        c_reach = max(c_reach, c_out[r] + half_ramp)
-    c_reach = min(c_reach, 2.0)
-    reach2 = c_reach * c_reach
-    ang_reach = 2.0 * math.asin(0.5 * c_reach)
-    cos_reach = math.cos(ang_reach)
+    nr_rad = c_in.shape[0]
     n_rings = 4 * nside - 1
     for t in numba.prange(n):
+        c_reach = 0.0
+        for r in range(nr_rad):
+            c_reach = max(c_reach, c_out[r, t] + half_ramp)
+        c_reach = min(c_reach, 2.0)
+        reach2 = c_reach * c_reach
+        ang_reach = 2.0 * math.asin(0.5 * c_reach)
+        cos_reach = math.cos(ang_reach)
         x0, y0, z0 = vec[t, 0], vec[t, 1], vec[t, 2]
         th0 = math.acos(min(1.0, max(-1.0, z0)))
         ph0 = math.atan2(y0, x0)
@@ -117,12 +117,12 @@ def aperture_sums(nside, vec, c_in, c_out, half_ramp, held, full, values, weight
                 d = math.sqrt(d2) if half_ramp > 0 else 0.0
                 for r in range(nr_rad):
                     if half_ramp > 0:
-                        fd = min(1.0, max(0.0, (c_in[r] + half_ramp - d) / (2.0 * half_ramp)))
-                        fo = min(1.0, max(0.0, (c_out[r] + half_ramp - d) / (2.0 * half_ramp)))
+                        fd = min(1.0, max(0.0, (c_in[r, t] + half_ramp - d) / (2.0 * half_ramp)))
+                        fo = min(1.0, max(0.0, (c_out[r, t] + half_ramp - d) / (2.0 * half_ramp)))
                         fa = fo - fd
                     else:
-                        fd = 1.0 if d2 <= c_in[r] * c_in[r] else 0.0
-                        fa = 1.0 if (fd == 0.0 and d2 <= c_out[r] * c_out[r]) else 0.0
+                        fd = 1.0 if d2 <= c_in[r, t] * c_in[r, t] else 0.0
+                        fa = 1.0 if (fd == 0.0 and d2 <= c_out[r, t] * c_out[r, t]) else 0.0
                     if fd > 0:
                         sums[0, r, t] += fd
                         sums[1, r, t] += fd * w

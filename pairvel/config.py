@@ -92,6 +92,10 @@ class ApertureConfig:
                                                         "2.5, 3.0, 3.5]); tau_mean is fitted per radius, the main "
                                                         "result stays radius_arcmin; a tracer is kept only when usable at "
                                                         "every radius", bounds=(0.05, 60.0))
+    radius_kpc: float | None = _key(None, "fixed physical disc radius in kpc, shrinking with each tracer's redshift; "
+                                          "radius_arcmin and radii_arcmin then only set the ratios of the radii",
+                                    bounds=(1.0, 1e5))
+    radius_kpc_kind: str = _key("proper", "radius_kpc is proper or comoving", choices=("proper", "comoving"))
     pixel_weighting: str = _key("centre", "how pixels count in disc and annulus: centre (whole pixels by their centre), "
                                 "fraction (linear ramp one pixel wide across each edge) or subsample (sub-pixel centres)",
                                 choices=("centre", "fraction", "subsample"))

@@ -132,8 +132,8 @@ def _region_fractions(d2, c2_in, c2_out, weighting, nside, half):
         fd = (d2 <= c2_in).astype(np.float64)
         return fd, ((d2 > c2_in) & (d2 <= c2_out)).astype(np.float64)
     d = np.sqrt(d2)
-    fd = np.clip((math.sqrt(c2_in) + half - d) / (2.0 * half), 0.0, 1.0)
-    fo = np.clip((math.sqrt(c2_out) + half - d) / (2.0 * half), 0.0, 1.0)
+    fd = np.clip((np.sqrt(c2_in) + half - d) / (2.0 * half), 0.0, 1.0)
+    fo = np.clip((np.sqrt(c2_out) + half - d) / (2.0 * half), 0.0, 1.0)
     return fd, fo - fd
 
 
@@ -141,7 +141,7 @@ def _subsample_fractions(nside, pix_ring, vb, owner, d2, c2_in, c2_out, level):
     """Fractions in disc and annulus from 4^level sub-pixel centres, for pixels near an edge only."""
     edge_c = 2.0 * hp.max_pixrad(nside)  # a pixel whose centre is farther than this from an edge is whole
     d = np.sqrt(d2)
-    near = (np.abs(d - math.sqrt(c2_in)) < edge_c) | (np.abs(d - math.sqrt(c2_out)) < edge_c)
+    near = (np.abs(d - np.sqrt(c2_in)) < edge_c) | (np.abs(d - np.sqrt(c2_out)) < edge_c)
     fd = (d2 <= c2_in).astype(np.float64)
     fo = (d2 <= c2_out).astype(np.float64)
     idx = np.flatnonzero(near)
@@ -152,14 +152,14 @@ def _subsample_fractions(nside, pix_ring, vb, owner, d2, c2_in, c2_out, level):
         cx, cy, cz = hp.pix2vec(nside << level, children, nest=True)
         o = np.repeat(owner[part], n_child)
         cd2 = (cx - vb[o, 0]) ** 2 + (cy - vb[o, 1]) ** 2 + (cz - vb[o, 2]) ** 2
-        fd[part] = (cd2 <= c2_in).reshape(-1, n_child).mean(axis=1)
-        fo[part] = (cd2 <= c2_out).reshape(-1, n_child).mean(axis=1)
+        fd[part] = (cd2 <= np.repeat(c2_in[part], n_child)).reshape(-1, n_child).mean(axis=1)
+        fo[part] = (cd2 <= np.repeat(c2_out[part], n_child)).reshape(-1, n_child).mean(axis=1)
     return fd, fo - fd
 
 
 def _sums_direct(skymap, vec, c2_in, c2_out, weighting, level, progress):
-    """(6, R, N) region sums with one healpy.query_disc per position and numpy for the rest."""
-    n, nr = vec.shape[0], c2_in.size
+    """(6, R, N) region sums with one healpy.query_disc per position and numpy for the rest; c2_in, c2_out (R, N)."""
+    n, nr = vec.shape[0], c2_in.shape[0]
     nside = skymap.nside
     half = _half_ramp(nside)
     pad = {"centre": 0.0, "fraction": half, "subsample": 2.0 * hp.max_pixrad(nside)}[weighting]
@@ -181,10 +181,11 @@ def _sums_direct(skymap, vec, c2_in, c2_out, weighting, level, progress):
         w = w.astype(np.float64)
         wv = np.where(w > 0, vals, 0.0) * w
         for r in range(nr):
+            ci, co = c2_in[r, b0:b1][owner], c2_out[r, b0:b1][owner]
             if weighting == "subsample":
-                fd, fa = _subsample_fractions(nside, pix_ring, vb, owner, d2, c2_in[r], c2_out[r], level)
+                fd, fa = _subsample_fractions(nside, pix_ring, vb, owner, d2, ci, co, level)
             else:
-                fd, fa = _region_fractions(d2, c2_in[r], c2_out[r], weighting, nside, half)
+                fd, fa = _region_fractions(d2, ci, co, weighting, nside, half)
             for k, f in enumerate((fd, fd * w, fd * wv, fa, fa * w, fa * wv)):
                 sums[k, r, b0:b1] = np.bincount(owner, weights=f, minlength=m)
         if progress is not None:
@@ -201,25 +202,29 @@ def _sums_kernel(skymap, vec, c2_in, c2_out, weighting, progress):
     held = np.zeros(0, np.int64) if full else ring.pixels
     values = ring.values if ring.values.dtype in (np.float32, np.float64) else ring.values.astype(np.float64)
     half = _half_ramp(skymap.nside) if weighting == "fraction" else 0.0
-    n, nr = vec.shape[0], c2_in.size
+    n, nr = vec.shape[0], c2_in.shape[0]
+    # visit positions in RING pixel order of the map, so neighbouring apertures read neighbouring memory
+    order = np.argsort(hp.vec2pix(skymap.nside, vec[:, 0], vec[:, 1], vec[:, 2]), kind="stable")
+    vec_sorted = vec[order]
     sums = np.zeros((6, nr, n))
     step = _CHUNK
     for b0 in range(0, n, step):
         b1 = min(b0 + step, n)
         part = np.zeros((6, nr, b1 - b0))
-        aperture_sums(skymap.nside, np.ascontiguousarray(vec[b0:b1]), np.sqrt(c2_in), np.sqrt(c2_out), half,
-                      held, full, values, ring.weight, part)
-        sums[:, :, b0:b1] = part
+        rows = order[b0:b1]
+        aperture_sums(skymap.nside, np.ascontiguousarray(vec_sorted[b0:b1]), np.sqrt(c2_in[:, rows]),
+                      np.sqrt(c2_out[:, rows]), half, held, full, values, ring.weight, part)
+        sums[:, :, order[b0:b1]] = part
         if progress is not None:
             progress(b1, n)
     return sums
 
 
 def _measure(skymap: SkyMap, ra, dec, radii, max_masked_fraction, progress, *, weighting="centre", method="auto",
-             level=3) -> ApertureResult:
+             level=3, scale=None) -> ApertureResult:
     """Validated inputs (positions already in the map's frame) in, ApertureResult out (see measure_apertures)."""
     vec = _ang2vec(ra, dec)
-    theta = radii * ARCMIN_RAD
+    theta = radii[:, None] * ARCMIN_RAD * (np.ones(ra.size) if scale is None else scale)[None, :]  # (R, N)
     c2_in = _chord2(theta)
     c2_out = _chord2(math.sqrt(2.0) * theta)
     use_kernel = method == "kernel" or (method == "auto" and weighting != "subsample")
@@ -250,6 +255,20 @@ def _to_map_frame(skymap: SkyMap, ra, dec, *, inverse=False):
     return lon, np.clip(lat, -90.0, 90.0)
 
 
+def _check_scale(radius_scale, n):
+    if radius_scale is None:
+        return None
+    scale = np.asarray(radius_scale, dtype=np.float64)
+    bad = ~(np.isfinite(scale) & (scale > 0)) if scale.shape == (n,) else None
+    if bad is None:
+        raise InputError(f"radius_scale must be a 1-D array with one value per position ({n}); got shape {scale.shape}")
+    if bad.any():
+        first = int(np.flatnonzero(bad)[0])
+        raise InputError(f"radius_scale must be finite and > 0; {int(bad.sum())} values are not "
+                         f"(first: row {first}, {float(scale[first])})")
+    return scale
+
+
 def _check_choice(value, choices, name):
     if value not in choices:
         raise InputError(f"{name} must be one of {', '.join(choices)}; got {value!r}")
@@ -257,7 +276,8 @@ def _check_choice(value, choices, name):
 
 
 def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_masked_fraction=0.1,
-                      progress=None, pixel_weighting="centre", method="auto", subsample_level=3) -> ApertureResult:
+                      progress=None, pixel_weighting="centre", method="auto", subsample_level=3,
+                      radius_scale=None) -> ApertureResult:
     """Compensated top-hat aperture temperatures at every position, for one or several radii.
 
     Parameters
@@ -285,6 +305,9 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
         ``pixel_weighting`` is "subsample".  Both give the same sums (tests compare them).
     subsample_level : int, default 3
         Sub-pixels per pixel side = 2^level for "subsample".
+    radius_scale : ndarray of shape (N,), optional
+        Per-position factor on every radius (e.g. a fixed physical size at each redshift, see
+        :func:`pairvel.radii.angular_radius_arcmin`); ``radius_arcmin`` are then the radii at scale 1.
 
     Returns
     -------
@@ -312,14 +335,19 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
     if isinstance(subsample_level, bool) or not isinstance(subsample_level, (int, np.integer)) \
             or not 1 <= subsample_level <= 6:
         raise InputError(f"subsample_level must be an integer in [1, 6]; got {subsample_level!r}")
-    expected = math.pi * radii.min() ** 2 / skymap.pixel_area_arcmin2
+    scale = _check_scale(radius_scale, ra.size)
+    smallest = radii.min() * (1.0 if scale is None else float(scale.min(initial=1.0)))
+    if scale is not None and radii.max() * scale.max(initial=0.0) > _MAX_RADIUS_ARCMIN:
+        raise InputError(f"radius_arcmin x radius_scale must be at most {_MAX_RADIUS_ARCMIN:g} arcmin; got up to "
+                         f"{radii.max() * scale.max():g}")
+    expected = math.pi * smallest ** 2 / skymap.pixel_area_arcmin2
     if expected < 3.0:
-        warnings.warn(f"aperture radius {radii.min():g} arcmin holds only ~{expected:.1f} pixel centres at nside "
+        warnings.warn(f"aperture radius {smallest:g} arcmin holds only ~{expected:.1f} pixel centres at nside "
                       f"{skymap.nside} (pixel size {skymap.pixel_size_arcmin:.2f} arcmin); the aperture temperature "
                       f"is dominated by pixelisation", PairvelWarning, stacklevel=2)
     ra, dec = _to_map_frame(skymap, ra, dec)
     return _measure(skymap, ra, dec, radii, fmax, progress, weighting=pixel_weighting, method=method,
-                    level=int(subsample_level))
+                    level=int(subsample_level), scale=scale)
 
 
 def aperture_temperatures(hpx_map, ra_deg, dec_deg, radius_arcmin, *, nest=False):
@@ -366,7 +394,7 @@ def _candidates(skymap: SkyMap, usable_pix: np.ndarray, k: int, rng: np.random.G
     return hp.pix2ang(nside * 2 ** levels, child, nest=True, lonlat=True)
 
 
-def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto"):
+def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto", scale=None):
     usable_pix = skymap.usable_pixels()
     if usable_pix.size == 0:
         raise MapError(f"map {skymap.path}: no usable pixels to place random apertures on", path=skymap.path)
@@ -380,7 +408,8 @@ def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting=
         rate = max((accepted + 1) / (drawn + 1), 0.01)
         k = int(min(max((n - have) / rate * 1.2 + 64, 256), 1 << 20, max_draws - drawn))
         ra, dec = _candidates(skymap, usable_pix, k, rng)
-        res = _measure(skymap, ra, dec, radii, fmax, None, weighting=weighting, method=method)
+        cand_scale = None if scale is None else scale[rng.integers(0, scale.size, k)]
+        res = _measure(skymap, ra, dec, radii, fmax, None, weighting=weighting, method=method, scale=cand_scale)
         ok = np.flatnonzero(res.usable)
         drawn += k
         accepted += ok.size
@@ -431,7 +460,7 @@ def random_positions_in_footprint(skymap: SkyMap, n, *, seed, radius_arcmin, max
 
 
 def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_masked_fraction=0.1, max_draws=None,
-                             pixel_weighting="centre", method="auto"):
+                             pixel_weighting="centre", method="auto", radius_scale=None):
     """Random usable positions (see :func:`random_positions_in_footprint`) and their aperture temperatures.
 
     Returns
@@ -440,6 +469,12 @@ def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_mask
     temperatures : ndarray of shape (n_radii, n), uK
         The same values :func:`measure_apertures` gives at those positions (with the same
         ``pixel_weighting`` and ``method``).
+
+    Notes
+    -----
+    With ``radius_scale`` (any length), each candidate position takes a scale drawn at random from
+    it, so the random apertures follow the tracers' radius distribution (up to the acceptance,
+    which favours small apertures where the footprint is fragmented).
     """
     if not isinstance(skymap, SkyMap):
         raise InputError(f"skymap must be a pairvel SkyMap (see read_map); got {type(skymap).__name__}")
@@ -450,4 +485,5 @@ def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_mask
     limit = max(100 * n, 100_000) if max_draws is None else _check_n(max_draws)
     _check_choice(pixel_weighting, _WEIGHTINGS, "pixel_weighting")
     _check_choice(method, _METHODS, "method")
-    return _draw_usable(skymap, n, rng, radii, fmax, limit, pixel_weighting, method)
+    scale = None if radius_scale is None else _check_scale(radius_scale, np.size(radius_scale))
+    return _draw_usable(skymap, n, rng, radii, fmax, limit, pixel_weighting, method, scale)

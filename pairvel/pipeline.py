@@ -34,7 +34,7 @@ from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_map, read_mask
 from .joint import fit_velocity_scale
-from .radii import aperture_radii, fit_radii, radius_report
+from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
 from .template import load_power, template_for_run
 from .trend import remove_redshift_trend
@@ -98,11 +98,12 @@ def package_versions() -> dict:
     return out
 
 
-def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str):
+def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str, scale=None):
     """Aperture temperatures (n_radii, N), primary radius first, and which tracers are usable at every radius."""
     ap = cfg.aperture
     res = measure_apertures(skymap, ra, dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
-                            progress=progress.counter(label), pixel_weighting=ap.pixel_weighting, method=ap.method)
+                            progress=progress.counter(label), pixel_weighting=ap.pixel_weighting, method=ap.method,
+                            radius_scale=scale)
     return res.temperatures, res.usable
 
 
@@ -158,7 +159,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                              coordsys=skymap.coordsys)
             skymap = skymap.with_mask(mask)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
+        scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # None for fixed angular radii
+        temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures", scale)
         n_masked = int((~usable).sum())
         if n_masked:
             warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
@@ -169,7 +171,12 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         cat = cat.subset(usable)
         temps_radii = temps_radii[:, usable]
         temps = temps_radii[0]
+        scale = None if scale is None else scale[usable]
     selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
+    if scale is not None:
+        theta = cfg.aperture.radius_arcmin * scale
+        selection["aperture_radius_arcmin_range"] = (f"{theta.min():.3g}-{theta.max():.3g} (median {np.median(theta):.3g}) "
+                                                     f"for {cfg.aperture.radius_kpc:g} kpc {cfg.aperture.radius_kpc_kind}")
 
     with progress.stage("redshift-trend correction"):
         temps = _trend(temps, cat.z, cfg)
@@ -192,7 +199,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         for k in range(n_null):
             _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
                                                  max_masked_fraction=cfg.map.max_masked_fraction,
-                                                 pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method)
+                                                 pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method,
+                                                 radius_scale=scale)
             null_sets.append(_trend(t_r[0], cat.z, cfg))
             progress.say(f"      null set {k + 1}/{n_null}")
 

@@ -504,7 +504,29 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None) -> SkyMap:
     if bad.all():
         raise MapError(f"{what}: every pixel is UNSEEN or NaN", path=path)
     weight = np.where(bad, np.float32(0.0), np.float32(1.0))
+    _check_scale(values, bad, what, raw.unit if unit is None else unit)
     return SkyMap(raw.nside, raw.nest, raw.pixels, values, weight, path=str(path), coordsys=raw.coordsys)
+
+
+# A CMB temperature map (sky, noise, or both, filtered or not) has an rms between about 1 uK and a few mK
+# [common practice]; far outside [1e-2 uK, 1e5 uK] the unit is almost surely wrong (K read as uK, or
+# the reverse).
+_RMS_RANGE_UK = (1e-2, 1e5)
+
+
+def _check_scale(values, bad, what, unit):
+    """Warn when the rms of the usable pixels (after conversion to uK) points at a wrong unit."""
+    good = values[~bad]
+    if good.size == 0:
+        return
+    step = max(1, good.size // 1_000_000)  # a strided sample is enough for an order of magnitude
+    rms = float(np.std(good[::step], dtype=np.float64))
+    lo, hi = _RMS_RANGE_UK
+    if rms == 0.0 or lo <= rms <= hi:
+        return
+    guess = "K_CMB" if rms < lo else "a smaller unit (mK or uK)"
+    warnings.warn(f"{what}: pixel rms is {rms:.3g} uK after reading it as {unit!r}, outside the {lo:g}-{hi:g} uK "
+                  f"of CMB maps; is the unit really {guess}? Check map.unit", PairvelWarning, stacklevel=3)
 
 
 def read_mask(path, *, nside, nest=None, coordsys=None) -> SkyMap:

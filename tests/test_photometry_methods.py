@@ -202,3 +202,20 @@ def test_bad_method_choices():
         measure_apertures(sm, [1.0], [1.0], 300.0, pixel_weighting="subsample", method="kernel")
     with pytest.raises(InputError, match=r"subsample_level must be an integer in \[1, 6\]; got 0"):
         measure_apertures(sm, [1.0], [1.0], 300.0, pixel_weighting="subsample", subsample_level=0)
+
+
+@pytest.mark.parametrize("declared, values, warns", [("uK_CMB", 1e-4, True), ("K_CMB", 100.0, True),
+                                                      ("K_CMB", 1e-4, False), ("mK_CMB", 0.1, False)])
+def test_wrong_looking_unit_warns(tmp_path, declared, values, warns):
+    import warnings as _w
+
+    from pairvel.errors import PairvelWarning
+
+    v = (np.random.default_rng(1).normal(0, 1, 12 * 16 ** 2) * values).astype(np.float32)
+    path = write_partial_map(tmp_path / "m.fits", np.arange(v.size), v, nside=16, unit=declared)
+    with _w.catch_warnings(record=True) as caught:
+        _w.simplefilter("always")
+        read_map(path)
+    msgs = [str(w.message) for w in caught if issubclass(w.category, PairvelWarning)]
+    # common practice: CMB maps have an rms between ~1 uK and a few mK
+    assert any("outside the 0.01-100000 uK of CMB maps" in m for m in msgs) == warns, msgs
