@@ -80,6 +80,8 @@ class MapConfig:
                                       "or E (ecliptic); tracer positions are rotated into it",
                                 choices=(None, "C", "G", "E"))
     mask_path: Path | None = _key(None, "optional HEALPix mask (1 = use, 0 = masked) of the map's nside")
+    remove_dipole: bool = _key(False, "fit and subtract a monopole and dipole over the usable (unmasked) pixels before "
+                                      "photometry")
     max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",
                                       bounds=(0.0, 1.0))
 

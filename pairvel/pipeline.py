@@ -32,7 +32,7 @@ from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
 from .nulltests import evaluate_null, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
-from .skymap import read_map, read_mask
+from .skymap import read_map, read_mask, remove_monopole_dipole
 from .joint import fit_velocity_scale
 from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
@@ -158,6 +158,11 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                              nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
                              coordsys=skymap.coordsys)
             skymap = skymap.with_mask(mask)
+        dipole_fit = None
+        if cfg.map.remove_dipole:
+            skymap, dipole_fit = remove_monopole_dipole(skymap)
+            progress.say(f"      removed monopole {dipole_fit[0]:.4g} uK and dipole |d| = "
+                         f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
         scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # None for fixed angular radii
         temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures", scale)
@@ -173,6 +178,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         temps = temps_radii[0]
         scale = None if scale is None else scale[usable]
     selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
+    if dipole_fit is not None:
+        selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in dipole_fit]
     if scale is not None:
         theta = cfg.aperture.radius_arcmin * scale
         selection["aperture_radius_arcmin_range"] = (f"{theta.min():.3g}-{theta.max():.3g} (median {np.median(theta):.3g}) "

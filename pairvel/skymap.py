@@ -14,7 +14,8 @@ full-sky map stored in pixel order, EXPLICIT for a partial map with a PIXEL colu
 
 from __future__ import annotations
 
-__all__ = ["SkyMap", "read_map", "read_mask", "write_partial_map", "footprint_fraction", "unit_to_uk"]
+__all__ = ["SkyMap", "read_map", "read_mask", "write_partial_map", "footprint_fraction", "unit_to_uk",
+           "remove_monopole_dipole"]
 
 import math
 import warnings
@@ -639,3 +640,50 @@ def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB",
     except OSError as err:
         raise OutputError(f"map file {path} cannot be written ({err})", path=path) from None
     return path
+
+
+def remove_monopole_dipole(skymap: SkyMap, *, pixels_per_fit=4_000_000) -> tuple[SkyMap, np.ndarray]:
+    """Fit and subtract a monopole and a dipole over the usable pixels, full or partial sky.
+
+    A weighted least-squares fit of T(n) = a0 + a . n (n the pixel-centre unit vector, weights the
+    usable weights) over the held pixels with weight > 0, subtracted from every held pixel; masked
+    pixels keep weight 0.  Same model as ``healpy.remove_dipole``, without building a full-sky array.
+
+    Parameters
+    ----------
+    skymap : SkyMap
+    pixels_per_fit : int, default 4e6
+        Usable pixels used in the fit (a regular stride through them when there are more).
+
+    Returns
+    -------
+    SkyMap
+        A new map (values copied, same dtype).
+    coefficients : ndarray of shape (4,), uK
+        Monopole a0 and dipole vector (a_x, a_y, a_z) in the map's frame.
+    """
+    usable = np.flatnonzero(skymap.weight > 0)
+    if usable.size < 4:
+        raise MapError(f"map {skymap.path}: a monopole and dipole need at least 4 usable pixels; got {usable.size}",
+                       path=skymap.path)
+    step = max(1, usable.size // int(pixels_per_fit))
+    fit_idx = usable[::step]
+    pix = fit_idx if skymap.pixels is None else skymap.pixels[fit_idx]
+    x, y, z = hp.pix2vec(skymap.nside, pix, nest=skymap.nest)
+    design = np.column_stack([np.ones_like(x), x, y, z])
+    w = skymap.weight[fit_idx].astype(np.float64)
+    lhs = design.T @ (design * w[:, None])
+    rhs = design.T @ (w * skymap.values[fit_idx].astype(np.float64))
+    try:
+        coef = np.linalg.solve(lhs, rhs)
+    except np.linalg.LinAlgError:
+        raise MapError(f"map {skymap.path}: the usable pixels do not constrain a dipole (footprint too symmetric "
+                       f"or too small)", path=skymap.path) from None
+    values = skymap.values.copy()
+    for c0 in range(0, values.size, 1 << 22):
+        c1 = min(c0 + (1 << 22), values.size)
+        p = np.arange(c0, c1) if skymap.pixels is None else skymap.pixels[c0:c1]
+        vx, vy, vz = hp.pix2vec(skymap.nside, p, nest=skymap.nest)
+        values[c0:c1] -= (coef[0] + coef[1] * vx + coef[2] * vy + coef[3] * vz).astype(values.dtype)
+    return (SkyMap(skymap.nside, skymap.nest, skymap.pixels, values, skymap.weight, path=skymap.path,
+                   coordsys=skymap.coordsys), coef)

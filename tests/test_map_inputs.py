@@ -66,3 +66,12 @@ def test_map_without_ordering_needs_the_config_key(tiny_survey, capsys):
     cfg = tiny_survey / "run.toml"
     cfg.write_text(cfg.read_text().replace('path = "map.fits"', 'path = "map.fits"\nordering = "RING"'))
     assert run(tiny_survey) == 0
+
+
+def test_dipole_removal_is_recorded(tiny_survey):
+    cfg = tiny_survey / "run.toml"
+    cfg.write_text(cfg.read_text().replace('path = "map.fits"', 'path = "map.fits"\nremove_dipole = true'))
+    assert run(tiny_survey) == 0
+    summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
+    assert len(summary["selection"]["map_monopole_dipole_removed_uk"]) == 4
+    assert summary["config"]["map"]["remove_dipole"] is True

@@ -219,3 +219,25 @@ def test_wrong_looking_unit_warns(tmp_path, declared, values, warns):
     msgs = [str(w.message) for w in caught if issubclass(w.category, PairvelWarning)]
     # common practice: CMB maps have an rms between ~1 uK and a few mK
     assert any("outside the 0.01-100000 uK of CMB maps" in m for m in msgs) == warns, msgs
+
+
+def test_monopole_dipole_removal_matches_healpy_on_a_masked_map():
+    from pairvel.skymap import remove_monopole_dipole
+
+    nside = 32
+    rng = np.random.default_rng(4)
+    x, y, z = hp.pix2vec(nside, np.arange(12 * nside ** 2))
+    m = 40.0 + 3000.0 * x - 1200.0 * y + 500.0 * z + rng.normal(0, 80, x.size)
+    m[np.abs(z) < 0.3] = hp.UNSEEN  # a Galactic-plane-like cut
+    full = SkyMap.from_array(m)
+    cleaned, coef = remove_monopole_dipole(full)
+    _, mono, dip = hp.remove_dipole(m, fitval=True, verbose=False) if "verbose" in hp.remove_dipole.__code__.co_varnames \
+        else hp.remove_dipole(m, fitval=True)
+    # computed with healpy.remove_dipole (the same weighted least-squares model over unmasked pixels)
+    np.testing.assert_allclose(coef, [mono, *dip], rtol=1e-6, atol=1e-6)
+    good = cleaned.weight > 0
+    assert abs(np.mean(cleaned.values[good])) < 1.0 and np.all(cleaned.weight[~good] == 0)
+    # partial map of the usable pixels gives the same fit (internal equivalence)
+    pix = np.flatnonzero(good)
+    _, coef_partial = remove_monopole_dipole(SkyMap(nside, False, pix, m[pix]))
+    np.testing.assert_allclose(coef_partial, coef, rtol=1e-10)
