@@ -77,7 +77,12 @@ class MapConfig:
     unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
     ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
                                 choices=(None, "RING", "NESTED"))
+    coordsys: str | None = _key(None, "frame of the map when the header has no COORDSYS: C (equatorial), G (Galactic) "
+                                      "or E (ecliptic); tracer positions are rotated into it",
+                                choices=(None, "C", "G", "E"))
     mask_path: Path | None = _key(None, "optional HEALPix mask (1 = use, 0 = masked) of the map's nside")
+    remove_dipole: bool = _key(False, "fit and subtract a monopole and dipole over the usable (unmasked) pixels before "
+                                      "photometry")
     max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",
                                       bounds=(0.0, 1.0))
 
@@ -86,6 +91,19 @@ class MapConfig:
 class ApertureConfig:
     radius_arcmin: float = _key(2.1, "compensated aperture: disc radius theta, annulus theta..sqrt(2) theta",
                                 bounds=(0.05, 60.0))
+    radii_arcmin: tuple[float, ...] | None = _key(None, "more disc radii measured in the same run (e.g. [1.0, 1.5, 2.0, "
+                                                        "2.5, 3.0, 3.5]); tau_mean is fitted per radius, the main "
+                                                        "result stays radius_arcmin; a tracer is kept only when usable at "
+                                                        "every radius", bounds=(0.05, 60.0))
+    radius_kpc: float | None = _key(None, "fixed physical disc radius in kpc, shrinking with each tracer's redshift; "
+                                          "radius_arcmin and radii_arcmin then only set the ratios of the radii",
+                                    bounds=(1.0, 1e5))
+    radius_kpc_kind: str = _key("proper", "radius_kpc is proper or comoving", choices=("proper", "comoving"))
+    pixel_weighting: str = _key("centre", "how pixels count in disc and annulus: centre (whole pixels by their centre), "
+                                "fraction (linear ramp one pixel wide across each edge) or subsample (sub-pixel centres)",
+                                choices=("centre", "fraction", "subsample"))
+    method: str = _key("auto", "photometry path: kernel (compiled, no Python loop over tracers), direct (one disc "
+                       "query per tracer) or auto (kernel unless subsample)", choices=("auto", "kernel", "direct"))
 
 
 @dataclass(frozen=True)
@@ -399,6 +417,11 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
     if th.power_table_path is None and (th.power_table_renormalise or th.power_table_z != 0):
         bad("theory.power_table_path", "is required when power_table_z or power_table_renormalise is set")
+    ap = cfg.aperture
+    if ap.method == "kernel" and ap.pixel_weighting == "subsample":
+        bad("aperture.method", "kernel supports pixel_weighting centre and fraction; use direct or auto for subsample")
+    if ap.radii_arcmin is not None and len(set(ap.radii_arcmin)) != len(ap.radii_arcmin):
+        bad("aperture.radii_arcmin", f"must not repeat a radius; got {list(ap.radii_arcmin)}")
     if th.tau_prior_mean is not None and not th.fit_velocity_scale:
         bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
 

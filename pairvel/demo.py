@@ -83,5 +83,6 @@ def attach_truth_check(result):
         f"\n\nThe measured aperture response of the mock (pixelised aperture on a noiseless kSZ-only map) is "
         f"{response:.3f}, so the expected recovered value is about {tau_true * response:.3e}.")
     extra = dict(result.extra, demo_check=check, plot_curves=curves,
-                 report_sections={"Demo: comparison with the injected truth": section})
+                 report_sections={**result.extra.get("report_sections", {}),
+                                  "Demo: comparison with the injected truth": section})
     return dataclasses.replace(result, extra=extra)

@@ -137,6 +137,8 @@ def summary_dict(result) -> dict:
     if "template" in result.extra:
         out["template"].update(result.extra["template"])
     out.update(theory_summary(result))
+    if "radius_fits" in result.extra:
+        out["aperture_radii"] = [f.as_dict() for f in result.extra["radius_fits"]]
     if result.fit.likelihood == "sellentin-heavens":
         out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
                                                      "enters only the reported chi2 values)")
@@ -447,6 +449,10 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
             _plot_nulls(result, tmp / "nulls.png")
         _write_theory_outputs(result, tmp)
         _plot_correlation(result, tmp / "correlation.png")
+        if "radius_fits" in result.extra:
+            from .radii import write_radius_outputs
+
+            write_radius_outputs(result.extra["radius_fits"], tmp)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")

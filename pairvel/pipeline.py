@@ -35,8 +35,9 @@ from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
 from .nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
-from .skymap import read_map, read_mask
+from .skymap import read_map, read_mask, remove_monopole_dipole
 from .joint import fit_velocity_scale
+from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
 from .template import load_power, template_for_run
 from .trend import remove_redshift_trend
@@ -100,16 +101,26 @@ def package_versions() -> dict:
     return out
 
 
-def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str):
-    res = measure_apertures(skymap, ra, dec, cfg.aperture.radius_arcmin,
-                            max_masked_fraction=cfg.map.max_masked_fraction, progress=progress.counter(label))
-    return res.temperatures[0], res.usable
+def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str, scale=None):
+    """Aperture temperatures (n_radii, N), primary radius first, and which tracers are usable at every radius."""
+    ap = cfg.aperture
+    res = measure_apertures(skymap, ra, dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
+                            progress=progress.counter(label), pixel_weighting=ap.pixel_weighting, method=ap.method,
+                            radius_scale=scale)
+    return res.temperatures, res.usable
 
 
 def _trend(temps, z, cfg: Config):
     if not cfg.trend.enabled:
         return temps
     return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
+
+
+def _retrend(sets, z, cfg: Config):
+    """The redshift-trend correction applied again to each shuffled set, as it was to the data:
+    a shuffle mixes tracers of different redshifts, so without it a shuffled set keeps a residual
+    trend the data do not have, and its curve scatters more at large separations."""
+    return np.array([_trend(t, z, cfg) for t in sets]).reshape(sets.shape)
 
 
 def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps, regions, edges, in_fit, power,
@@ -179,13 +190,21 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
     with progress.stage("sky map"):
         skymap = read_map(cfg.map.path, field=cfg.map.field, unit=cfg.map.unit,
-                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
+                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
+                          coordsys=cfg.map.coordsys)
         if cfg.map.mask_path is not None:
             mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
-                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED")
+                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
+                             coordsys=skymap.coordsys)
             skymap = skymap.with_mask(mask)
+        dipole_fit = None
+        if cfg.map.remove_dipole:
+            skymap, dipole_fit = remove_monopole_dipole(skymap)
+            progress.say(f"      removed monopole {dipole_fit[0]:.4g} uK and dipole |d| = "
+                         f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        temps, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures")
+        scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # None for fixed angular radii
+        temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures", scale)
         n_masked = int((~usable).sum())
         if n_masked:
             warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
@@ -194,11 +213,20 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             raise InputError(f"map {cfg.map.path}: fewer than 2 tracers have usable apertures "
                              f"({n_masked} of {len(cat)} masked or outside the map)", path=cfg.map.path)
         cat = cat.subset(usable)
-        temps = temps[usable]
+        temps_radii = temps_radii[:, usable]
+        temps = temps_radii[0]
+        scale = None if scale is None else scale[usable]
     selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
+    if dipole_fit is not None:
+        selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in dipole_fit]
+    if scale is not None:
+        theta = cfg.aperture.radius_arcmin * scale
+        selection["aperture_radius_arcmin_range"] = (f"{theta.min():.3g}-{theta.max():.3g} (median {np.median(theta):.3g}) "
+                                                     f"for {cfg.aperture.radius_kpc:g} kpc {cfg.aperture.radius_kpc_kind}")
 
     with progress.stage("redshift-trend correction"):
         temps = _trend(temps, cat.z, cfg)
+        radius_sets = np.array([_trend(t, cat.z, cfg) for t in temps_radii[1:]]).reshape(-1, len(cat))
     with progress.stage("geometry and jackknife regions"):
         positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
         cc = cfg.covariance
@@ -216,7 +244,9 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         null_sets = []
         for k in range(n_null):
             _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
-                                                 max_masked_fraction=cfg.map.max_masked_fraction)
+                                                 max_masked_fraction=cfg.map.max_masked_fraction,
+                                                 pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method,
+                                                 radius_scale=scale)
             null_sets.append(_trend(t_r[0], cat.z, cfg))
             progress.say(f"      null set {k + 1}/{n_null}")
 
@@ -227,14 +257,16 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                                      min_usable_fraction=nc.rotation_min_usable)
         rot = np.array([_trend(t, cat.z, cfg) for t in rot]).reshape(rot.shape)
     null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
-                 "shuffled": shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng),
-                 "shuffled_in_z": shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width),
+                 "shuffled": _retrend(shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng), cat.z, cfg),
+                 "shuffled_in_z": _retrend(shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng,
+                                                         z_slice_width=nc.z_slice_width), cat.z, cfg),
                  "rotated": rot}
     sims = np.zeros((0, len(cat)))
     if cc.estimator == "simulations":
         with progress.stage(f"simulated maps: {cc.n_sim} Gaussian skies at nside {skymap.nside}"):
             sims = _simulated_sets(skymap, cat, cfg, rng, progress)
-    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [sims])
+    # rows: data, null realisations, extra aperture radii, simulated maps (last)
+    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [radius_sets, sims])
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
         if cfg.compute.scheduler_address:
@@ -281,13 +313,20 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                 nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold,
                                            **({"covariance": cov, "n_samples": n_cov} if sims.shape[0] else {})))
                 row += sets.shape[0]
+        radius_rows = [0] + list(range(row, row + radius_sets.shape[0]))  # the extra radii are the last rows
+        radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[radius_rows], pr.p_jk[radius_rows], template,
+                                n_jk=n_jk, in_fit=in_fit, likelihood=cfg.theory.likelihood)
 
     extra = {"template": template_info}
+    if len(radius_fits) > 1:
+        extra["radius_fits"] = radius_fits
+        extra["report_sections"] = {"Signal against aperture radius": radius_report(radius_fits)}
     extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
                              regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress))
     extra.update({"covariance_diagnostics": diag,
                   "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rot_kept],
-                  "report_sections": {"Covariance diagnostics": diagnostics_markdown(diag, edges)}})
+                  "report_sections": {**extra.get("report_sections", {}),
+                                      "Covariance diagnostics": diagnostics_markdown(diag, edges)}})
     provenance = {
         "pairvel_version": __version__,
         "started_utc": started,

@@ -14,7 +14,8 @@ full-sky map stored in pixel order, EXPLICIT for a partial map with a PIXEL colu
 
 from __future__ import annotations
 
-__all__ = ["SkyMap", "read_map", "read_mask", "write_partial_map", "footprint_fraction", "unit_to_uk"]
+__all__ = ["SkyMap", "read_map", "read_mask", "write_partial_map", "footprint_fraction", "unit_to_uk",
+           "remove_monopole_dipole"]
 
 import math
 import warnings
@@ -39,6 +40,9 @@ _UNIT_TO_UK = {
 _ACCEPTED_UNITS = "K_CMB, mK_CMB or uK_CMB"
 _UNIT_KEYS = ("BUNIT", "UNIT", "UNITS")
 _EQUATORIAL = ("C", "Q", "CELESTIAL", "EQUATORIAL", "ICRS", "FK5")
+# COORDSYS spellings pairvel accepts, to healpy's one-letter frame codes (equatorial C, Galactic G, ecliptic E).
+_FRAMES = {**{k: "C" for k in _EQUATORIAL}, "G": "G", "GAL": "G", "GALACTIC": "G", "E": "E", "ECL": "E",
+           "ECLIPTIC": "E"}
 
 
 def _is_power_of_two(n: int) -> bool:
@@ -70,6 +74,9 @@ class SkyMap:
         infinite or UNSEEN get weight 0 whatever is passed.
     path : str, optional
         File the map was read from, for messages and provenance.
+    coordsys : str, default "C"
+        Frame of the pixel grid: "C" equatorial, "G" Galactic or "E" ecliptic.  Photometry rotates
+        tracer positions (always equatorial RA, Dec) into this frame; the map is never rotated.
 
     Notes
     -----
@@ -83,9 +90,15 @@ class SkyMap:
     values: np.ndarray
     weight: np.ndarray | None = None
     path: str | None = field(default=None)
+    coordsys: str = "C"
 
     def __post_init__(self):
         what = "sky map" if self.path is None else f"map {self.path}"
+        frame = _FRAMES.get(str(self.coordsys).strip().upper())
+        if frame is None:
+            raise MapError(f"{what}: coordsys must be C (equatorial), G (Galactic) or E (ecliptic); got "
+                           f"{self.coordsys!r}", path=self.path, key="COORDSYS")
+        object.__setattr__(self, "coordsys", frame)
         nside = self.nside
         if isinstance(nside, bool) or not isinstance(nside, (int, np.integer)) or not _is_power_of_two(int(nside)):
             raise MapError(f"{what}: nside must be a power of 2 between 1 and 2^29; got {nside!r}", path=self.path)
@@ -134,13 +147,13 @@ class SkyMap:
         object.__setattr__(self, "weight", weight)
 
     @classmethod
-    def from_array(cls, hpx_map, *, nest=False, path=None) -> "SkyMap":
+    def from_array(cls, hpx_map, *, nest=False, path=None, coordsys="C") -> "SkyMap":
         """Wrap a full-sky HEALPix array in uK (not copied); UNSEEN and NaN pixels get weight 0."""
         values = np.asarray(hpx_map)
         if values.ndim != 1 or not hp.isnpixok(values.size):
             raise MapError(f"hpx_map must be a 1-D full-sky HEALPix array of 12 nside^2 values; got shape "
                            f"{values.shape}", path=path)
-        return cls(hp.npix2nside(values.size), bool(nest), None, values, path=path)
+        return cls(hp.npix2nside(values.size), bool(nest), None, values, path=path, coordsys=coordsys)
 
     # ------------------------------------------------------------------ basic properties
     @property
@@ -215,11 +228,13 @@ class SkyMap:
         if self.pixels is None:
             new_index = np.arange(self.npix, dtype=np.int64)
             idx = hp.nest2ring(self.nside, new_index) if nest else hp.ring2nest(self.nside, new_index)  # old index
-            return SkyMap(self.nside, bool(nest), None, self.values[idx], self.weight[idx], path=self.path)
+            return SkyMap(self.nside, bool(nest), None, self.values[idx], self.weight[idx], path=self.path,
+                          coordsys=self.coordsys)
         convert = hp.ring2nest if nest else hp.nest2ring
         new = convert(self.nside, self.pixels)
         order = np.argsort(new, kind="stable")
-        return SkyMap(self.nside, bool(nest), new[order], self.values[order], self.weight[order], path=self.path)
+        return SkyMap(self.nside, bool(nest), new[order], self.values[order], self.weight[order], path=self.path,
+                      coordsys=self.coordsys)
 
     def with_mask(self, mask: "SkyMap") -> "SkyMap":
         """This map with its weights multiplied by a mask of the same nside.
@@ -240,10 +255,15 @@ class SkyMap:
         if mask.nside != self.nside:
             name = "mask" if mask.path is None else f"mask {mask.path}"
             raise MapError(f"{name} has nside {mask.nside} but the map has nside {self.nside}", path=mask.path)
+        if mask.coordsys != self.coordsys:
+            name = "mask" if mask.path is None else f"mask {mask.path}"
+            raise MapError(f"{name} is in frame {mask.coordsys} but the map is in frame {self.coordsys} "
+                           f"(COORDSYS); pairvel does not rotate masks", path=mask.path, key="COORDSYS")
         mask = mask.reordered(nest=self.nest)
         mvals, mweight = mask.lookup(self.held_pixels())
         factor = np.where(mweight > 0, np.clip(np.nan_to_num(mvals), 0.0, 1.0), 0.0).astype(np.float32)
-        return SkyMap(self.nside, self.nest, self.pixels, self.values, self.weight * factor, path=self.path)
+        return SkyMap(self.nside, self.nest, self.pixels, self.values, self.weight * factor, path=self.path,
+                      coordsys=self.coordsys)
 
 
 def footprint_fraction(skymap: SkyMap) -> float:
@@ -285,6 +305,7 @@ class _RawTable:
     pixels: np.ndarray | None
     values: np.ndarray
     unit: str | None
+    coordsys: str = "C"
 
 
 def _native(a: np.ndarray) -> np.ndarray:
@@ -294,7 +315,7 @@ def _native(a: np.ndarray) -> np.ndarray:
     return a.astype(np.float64 if a.dtype.kind in "iub" else a.dtype)
 
 
-def _read_table(path, *, field_index: int, nest, kind: str) -> _RawTable:
+def _read_table(path, *, field_index: int, nest, kind: str, coordsys=None) -> _RawTable:
     """Read one column of a HEALPix FITS table; shared by the map and mask readers."""
     spath = str(path)
     what = f"{kind} {spath}"
@@ -315,7 +336,7 @@ def _read_table(path, *, field_index: int, nest, kind: str) -> _RawTable:
             if pixtype != "HEALPIX" and "NSIDE" not in hdr:
                 raise MapError(f"{what} is not a HEALPix FITS map: its table has neither PIXTYPE = 'HEALPIX' "
                                f"nor NSIDE", path=spath)
-            _check_coordsys(hdr, what, spath)
+            frame = _frame(hdr, coordsys, what, spath)
             nest_hdr = _ordering(hdr, nest, what, spath)
             names = list(hdu.columns.names)
             scheme = str(hdr.get("INDXSCHM", "")).strip().upper()
@@ -349,17 +370,32 @@ def _read_table(path, *, field_index: int, nest, kind: str) -> _RawTable:
             raise
         except (OSError, ValueError, TypeError, KeyError, IndexError) as err:
             raise MapError(f"{what} cannot be read as a HEALPix map ({err})", path=spath) from None
-    return _RawTable(nside, nest_hdr, pixels, values, unit)
+    return _RawTable(nside, nest_hdr, pixels, values, unit, frame)
 
 
-def _check_coordsys(hdr, what, spath):
+def _frame(hdr, coordsys, what, spath) -> str:
+    """The map's frame letter (C, G or E) from COORDSYS, else from ``coordsys``, else equatorial with a warning."""
+    requested = None
+    if coordsys is not None:
+        requested = _FRAMES.get(str(coordsys).strip().upper())
+        if requested is None:
+            raise MapError(f"{what}: requested coordsys must be C (equatorial), G (Galactic) or E (ecliptic); "
+                           f"got {coordsys!r}", path=spath, key="coordsys")
     coord = str(hdr.get("COORDSYS", "")).strip().upper()
     if not coord:
-        warnings.warn(f"{what} has no COORDSYS keyword; assuming equatorial coordinates (RA, Dec)",
-                      PairvelWarning, stacklevel=4)
-    elif coord not in _EQUATORIAL:
-        raise MapError(f"{what} must be in equatorial coordinates (COORDSYS = 'C'); got COORDSYS = {coord!r}",
+        if requested is None:
+            warnings.warn(f"{what} has no COORDSYS keyword; assuming equatorial coordinates (RA, Dec) "
+                          f"(set map.coordsys to say otherwise)", PairvelWarning, stacklevel=4)
+            return "C"
+        return requested
+    frame = _FRAMES.get(coord)
+    if frame is None:
+        raise MapError(f"{what}: COORDSYS must be C (equatorial), G (Galactic) or E (ecliptic); got {coord!r}",
                        path=spath, key="COORDSYS")
+    if requested is not None and requested != frame:
+        warnings.warn(f"{what}: header COORDSYS = {coord} overrides the frame requested ({requested})",
+                      PairvelWarning, stacklevel=4)
+    return frame
 
 
 def _ordering(hdr, nest, what, spath) -> bool:
@@ -415,7 +451,7 @@ def _sorted_unique(pixels, values, nside, what, spath):
     return pixels, values
 
 
-def read_map(path, *, field=0, unit=None, nest=None) -> SkyMap:
+def read_map(path, *, field=0, unit=None, nest=None, coordsys=None) -> SkyMap:
     """Read a HEALPix temperature map from FITS, full sky or partial sky, into uK_CMB.
 
     Parameters
@@ -432,6 +468,9 @@ def read_map(path, *, field=0, unit=None, nest=None) -> SkyMap:
     nest : bool, optional
         Ordering to assume when the header has no ORDERING (True = NESTED).  The header wins when
         both are present (with a warning if they differ).
+    coordsys : {"C", "G", "E"}, optional
+        Frame to assume when the header has no COORDSYS (equatorial, Galactic, ecliptic); without
+        either, equatorial with a warning.  The header wins when both are present.
 
     Returns
     -------
@@ -442,11 +481,11 @@ def read_map(path, *, field=0, unit=None, nest=None) -> SkyMap:
     ------
     MapError
         Unreadable or non-HEALPix file, missing ORDERING (and no ``nest``), bad NSIDE, pixel
-        count inconsistent with NSIDE, unknown or missing unit, non-equatorial COORDSYS.
+        count inconsistent with NSIDE, unknown or missing unit, unknown COORDSYS.
     """
     if isinstance(field, bool) or not isinstance(field, (int, np.integer)):
         raise MapError(f"map {path}: field must be a non-negative integer; got {field!r}", path=path, key="field")
-    raw = _read_table(path, field_index=int(field), nest=nest, kind="map")
+    raw = _read_table(path, field_index=int(field), nest=nest, kind="map", coordsys=coordsys)
     what = f"map {path}"
     if raw.unit is None and unit is None:
         raise MapError(f"{what} names no unit (no TUNITn, BUNIT or UNIT keyword); set map.unit in the config "
@@ -466,10 +505,32 @@ def read_map(path, *, field=0, unit=None, nest=None) -> SkyMap:
     if bad.all():
         raise MapError(f"{what}: every pixel is UNSEEN or NaN", path=path)
     weight = np.where(bad, np.float32(0.0), np.float32(1.0))
-    return SkyMap(raw.nside, raw.nest, raw.pixels, values, weight, path=str(path))
+    _check_scale(values, bad, what, raw.unit if unit is None else unit)
+    return SkyMap(raw.nside, raw.nest, raw.pixels, values, weight, path=str(path), coordsys=raw.coordsys)
 
 
-def read_mask(path, *, nside, nest=None) -> SkyMap:
+# A CMB temperature map (sky, noise, or both, filtered or not) has an rms between about 1 uK and a few mK
+# [common practice]; far outside [1e-2 uK, 1e5 uK] the unit is almost surely wrong (K read as uK, or
+# the reverse).
+_RMS_RANGE_UK = (1e-2, 1e5)
+
+
+def _check_scale(values, bad, what, unit):
+    """Warn when the rms of the usable pixels (after conversion to uK) points at a wrong unit."""
+    good = values[~bad]
+    if good.size == 0:
+        return
+    step = max(1, good.size // 1_000_000)  # a strided sample is enough for an order of magnitude
+    rms = float(np.std(good[::step], dtype=np.float64))
+    lo, hi = _RMS_RANGE_UK
+    if rms == 0.0 or lo <= rms <= hi:
+        return
+    guess = "K_CMB" if rms < lo else "a smaller unit (mK or uK)"
+    warnings.warn(f"{what}: pixel rms is {rms:.3g} uK after reading it as {unit!r}, outside the {lo:g}-{hi:g} uK "
+                  f"of CMB maps; is the unit really {guess}? Check map.unit", PairvelWarning, stacklevel=3)
+
+
+def read_mask(path, *, nside, nest=None, coordsys=None) -> SkyMap:
     """Read a HEALPix mask (1 = use, 0 = masked, values in [0, 1]) for a map of the given nside.
 
     Parameters
@@ -480,6 +541,8 @@ def read_mask(path, *, nside, nest=None) -> SkyMap:
         Resolution of the map the mask is for; the mask must have the same.
     nest : bool, optional
         Ordering to assume when the header has no ORDERING.
+    coordsys : {"C", "G", "E"}, optional
+        Frame to assume when the header has no COORDSYS (pass the map's frame).
 
     Returns
     -------
@@ -487,7 +550,7 @@ def read_mask(path, *, nside, nest=None) -> SkyMap:
         ``values`` and ``weight`` both the mask (NaN and UNSEEN read as 0); pass it to
         :meth:`SkyMap.with_mask`.
     """
-    raw = _read_table(path, field_index=0, nest=nest, kind="mask")
+    raw = _read_table(path, field_index=0, nest=nest, kind="mask", coordsys=coordsys)
     if raw.nside != int(nside):
         raise MapError(f"mask {path} has nside {raw.nside} but the map has nside {int(nside)}", path=path, key="NSIDE")
     values = raw.values.astype(np.float32)
@@ -499,7 +562,7 @@ def read_mask(path, *, nside, nest=None) -> SkyMap:
         pix = first if raw.pixels is None else int(raw.pixels[first])
         raise MapError(f"mask {path} must hold values in [0, 1]; {int(out.sum())} pixels do not "
                        f"(first: pixel {pix}, value {values[first]:g})", path=path)
-    return SkyMap(raw.nside, raw.nest, raw.pixels, values, values.copy(), path=str(path))
+    return SkyMap(raw.nside, raw.nest, raw.pixels, values, values.copy(), path=str(path), coordsys=raw.coordsys)
 
 
 # ---------------------------------------------------------------------- writing
@@ -507,7 +570,8 @@ _RESERVED = {"PIXTYPE", "ORDERING", "INDXSCHM", "NSIDE", "FIRSTPIX", "LASTPIX", 
              "XTENSION", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "PCOUNT", "GCOUNT", "TFIELDS"}
 
 
-def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB", extra_header=None) -> Path:
+def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB", extra_header=None,
+                      coordsys="C") -> Path:
     """Write a partial-sky HEALPix map (explicit pixel indexing) as a FITS binary table.
 
     Parameters
@@ -527,11 +591,13 @@ def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB",
     extra_header : dict, optional
         More header cards, ``{key: value}`` or ``{key: (value, comment)}``; the HEALPix structure
         keys cannot be set this way.
+    coordsys : {"C", "G", "E"}, default "C"
+        Frame of the pixel grid, written as COORDSYS.
 
     Returns
     -------
     Path
-        The file written (equatorial COORDSYS 'C', OBJECT 'PARTIAL', INDXSCHM 'EXPLICIT').
+        The file written (OBJECT 'PARTIAL', INDXSCHM 'EXPLICIT').
     """
     path = Path(path)
     if path.exists():
@@ -554,7 +620,10 @@ def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB",
     hdr = hdu.header
     hdr["PIXTYPE"] = ("HEALPIX", "HEALPIX pixelisation")
     hdr["ORDERING"] = ("NESTED" if nest else "RING", "pixel ordering scheme")
-    hdr["COORDSYS"] = ("C", "equatorial (celestial) coordinates")
+    frame = _FRAMES.get(str(coordsys).strip().upper())
+    if frame is None:
+        raise MapError(f"coordsys must be C (equatorial), G (Galactic) or E (ecliptic); got {coordsys!r}", key="coordsys")
+    hdr["COORDSYS"] = (frame, {"C": "equatorial", "G": "Galactic", "E": "ecliptic"}[frame] + " coordinates")
     hdr["NSIDE"] = (nside, "resolution parameter")
     hdr["INDXSCHM"] = ("EXPLICIT", "pixel indices listed in the PIXEL column")
     hdr["OBJECT"] = ("PARTIAL", "sky coverage")
@@ -571,3 +640,50 @@ def write_partial_map(path, pixels, values, *, nside, nest=False, unit="uK_CMB",
     except OSError as err:
         raise OutputError(f"map file {path} cannot be written ({err})", path=path) from None
     return path
+
+
+def remove_monopole_dipole(skymap: SkyMap, *, pixels_per_fit=4_000_000) -> tuple[SkyMap, np.ndarray]:
+    """Fit and subtract a monopole and a dipole over the usable pixels, full or partial sky.
+
+    A weighted least-squares fit of T(n) = a0 + a . n (n the pixel-centre unit vector, weights the
+    usable weights) over the held pixels with weight > 0, subtracted from every held pixel; masked
+    pixels keep weight 0.  Same model as ``healpy.remove_dipole``, without building a full-sky array.
+
+    Parameters
+    ----------
+    skymap : SkyMap
+    pixels_per_fit : int, default 4e6
+        Usable pixels used in the fit (a regular stride through them when there are more).
+
+    Returns
+    -------
+    SkyMap
+        A new map (values copied, same dtype).
+    coefficients : ndarray of shape (4,), uK
+        Monopole a0 and dipole vector (a_x, a_y, a_z) in the map's frame.
+    """
+    usable = np.flatnonzero(skymap.weight > 0)
+    if usable.size < 4:
+        raise MapError(f"map {skymap.path}: a monopole and dipole need at least 4 usable pixels; got {usable.size}",
+                       path=skymap.path)
+    step = max(1, usable.size // int(pixels_per_fit))
+    fit_idx = usable[::step]
+    pix = fit_idx if skymap.pixels is None else skymap.pixels[fit_idx]
+    x, y, z = hp.pix2vec(skymap.nside, pix, nest=skymap.nest)
+    design = np.column_stack([np.ones_like(x), x, y, z])
+    w = skymap.weight[fit_idx].astype(np.float64)
+    lhs = design.T @ (design * w[:, None])
+    rhs = design.T @ (w * skymap.values[fit_idx].astype(np.float64))
+    try:
+        coef = np.linalg.solve(lhs, rhs)
+    except np.linalg.LinAlgError:
+        raise MapError(f"map {skymap.path}: the usable pixels do not constrain a dipole (footprint too symmetric "
+                       f"or too small)", path=skymap.path) from None
+    values = skymap.values.copy()
+    for c0 in range(0, values.size, 1 << 22):
+        c1 = min(c0 + (1 << 22), values.size)
+        p = np.arange(c0, c1) if skymap.pixels is None else skymap.pixels[c0:c1]
+        vx, vy, vz = hp.pix2vec(skymap.nside, p, nest=skymap.nest)
+        values[c0:c1] -= (coef[0] + coef[1] * vx + coef[2] * vy + coef[3] * vz).astype(values.dtype)
+    return (SkyMap(skymap.nside, skymap.nest, skymap.pixels, values, skymap.weight, path=skymap.path,
+                   coordsys=skymap.coordsys), coef)

@@ -124,8 +124,10 @@ def test_header_errors_name_the_file(tmp_path):
         read_map(table_file(tmp_path / "badn.fits", v, nside=32))
     with pytest.raises(MapError, match=r"pow\.fits: NSIDE must be a power of 2 between 1 and 2\^29; got 12"):
         read_map(table_file(tmp_path / "pow.fits", np.zeros(12 * 144, np.float32), nside=12))
-    with pytest.raises(MapError, match=r"gal\.fits must be in equatorial coordinates \(COORDSYS = 'C'\); got COORDSYS = 'G'"):
-        read_map(table_file(tmp_path / "gal.fits", v, coordsys="G"))
+    assert read_map(table_file(tmp_path / "gal.fits", v, coordsys="G")).coordsys == "G"
+    assert read_map(table_file(tmp_path / "ecl.fits", v, coordsys="ECLIPTIC")).coordsys == "E"
+    with pytest.raises(MapError, match=r"odd\.fits: COORDSYS must be C \(equatorial\), G \(Galactic\) or E \(ecliptic\); got 'X'"):
+        read_map(table_file(tmp_path / "odd.fits", v, coordsys="X"))
     with pytest.warns(PairvelWarning, match="has no COORDSYS keyword; assuming equatorial"):
         read_map(table_file(tmp_path / "nocoord.fits", v, coordsys=None))
     with pytest.raises(MapError, match=r"field must be in \[0, 0\] \(columns \['TEMPERATURE'\]\); got 2"):
