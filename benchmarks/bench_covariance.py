@@ -45,7 +45,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--n", type=float, default=1e5)
     ap.add_argument("--null-sets", type=int, default=1000)
-    ap.add_argument("--chunk", type=int, default=250)
+    ap.add_argument("--chunk", type=int, default=1000)
     ap.add_argument("--sims", type=int, default=100)
     ap.add_argument("--nside", type=int, default=2048)
     ap.add_argument("--radius-arcmin", type=float, default=2.1)

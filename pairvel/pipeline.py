@@ -161,7 +161,7 @@ def _simulated_sets(skymap, cat, cfg: Config, rng, progress) -> np.ndarray:
                                           seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
                                           white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin, noise_cl=noise_cl,
                                           max_masked_fraction=cfg.map.max_masked_fraction,
-                                          n_threads=cfg.compute.n_threads or 1,
+                                          n_threads=cfg.compute.n_threads,
                                           progress=progress.counter("simulated maps"))
     out = np.empty_like(sims)
     for k, t in enumerate(sims):

@@ -3,15 +3,16 @@
 A full-sky synthesis per realisation at nside 2048 costs far more than the photometry needs.  The
 apertures read only the pixels within sqrt(2) theta of a tracer, so each realisation evaluates the
 beam-smoothed harmonic field at exactly those pixel centres (point values: no pixel window) (``ducc0``'s
-synthesis at arbitrary positions), adds white pixel noise, and hands a partial map of those pixels to
+synthesis on the rings holding them), adds white pixel noise, and hands a partial map of those pixels to
 the same aperture photometry, trend removal and many-set pair pass as the data.
 """
 
 from __future__ import annotations
 
-__all__ = ["aperture_pixels", "simulate_aperture_temperatures", "simulation_covariance"]
+__all__ = ["aperture_pixels", "simulate_aperture_temperatures", "simulation_covariance", "synthesise_pixels"]
 
 import math
+import os
 
 import numpy as np
 
@@ -29,6 +30,48 @@ def aperture_pixels(nside: int, ra_deg, dec_deg, radius_arcmin: float) -> np.nda
     chunks = [np.unique(np.concatenate([hp.query_disc(nside, v, r) for v in vec[a:a + 4096]]))
               for a in range(0, len(vec), 4096)]
     return np.unique(np.concatenate(chunks)) if chunks else np.zeros(0, np.int64)
+
+
+def _ring_geometry(nside: int, pixels_ring: np.ndarray):
+    """The HEALPix rings holding ``pixels_ring`` as a reduced ring geometry for ducc0, and each
+    pixel's index in a map over those rings only."""
+    import ducc0
+
+    info = ducc0.healpix.Healpix_Base(nside, "RING").sht_info()
+    start = info["ringstart"].astype(np.int64)
+    ring = np.searchsorted(start, pixels_ring, side="right") - 1
+    rings, inv = np.unique(ring, return_inverse=True)
+    nphi = info["nphi"][rings].astype(np.int64)
+    sub_start = np.concatenate([[0], np.cumsum(nphi)[:-1]]).astype(np.int64)
+    where = sub_start[inv.ravel()] + (pixels_ring - start[ring])
+    geom = {"theta": np.ascontiguousarray(info["theta"][rings]), "phi0": np.ascontiguousarray(info["phi0"][rings]),
+            "nphi": nphi.astype(np.uintp), "ringstart": sub_start.astype(np.uintp)}
+    return geom, where
+
+
+def synthesise_pixels(alm, nside: int, lmax: int, pixels_ring, *, geometry=None, n_threads=None) -> np.ndarray:
+    """The band-limited field sum a_lm Y_lm at HEALPix RING pixel centres.
+
+    The synthesis runs on the rings that hold the pixels only (``ducc0.sht.synthesis`` on a reduced
+    ring geometry: a ring's FFT is cheap, and the Legendre work scales with the number of rings),
+    and equals ``healpy.alm2map(alm, nside)[pixels_ring]`` to rounding.
+
+    Parameters
+    ----------
+    alm : ndarray of shape (nalm,), complex (healpy layout)
+    nside, lmax : int
+    pixels_ring : ndarray of int
+    geometry : tuple, optional
+        ``_ring_geometry(nside, pixels_ring)``, when it is reused.
+    n_threads : int, optional
+        Default: all cores.
+    """
+    import ducc0
+
+    geom, where = _ring_geometry(nside, np.asarray(pixels_ring, np.int64)) if geometry is None else geometry
+    nthreads = int(n_threads or os.cpu_count() or 1)
+    maps = ducc0.sht.synthesis(alm=np.asarray(alm)[None, :], lmax=int(lmax), spin=0, nthreads=nthreads, **geom)
+    return maps[0][where]
 
 
 def _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl):
@@ -59,7 +102,7 @@ def _draw_alm(amp, m0, rng) -> np.ndarray:
 def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: float, n_sim: int, *, seed=None,
                                    cmb_cl=None, beam_fwhm_arcmin: float = 0.0, white_noise_uk_arcmin: float = 0.0,
                                    noise_cl=None, lmax: int | None = None, max_masked_fraction: float = 0.1,
-                                   n_threads: int = 1, progress=None) -> np.ndarray:
+                                   n_threads: int | None = None, progress=None) -> np.ndarray:
     """Aperture temperatures of ``n_sim`` Gaussian sky realisations at the tracers.
 
     Parameters
@@ -87,7 +130,6 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
         NaN for tracers whose aperture is not usable (the data's own cut is applied beforehand by
         the caller; here all pixels are present, so this happens only at map edges).
     """
-    import ducc0
     import healpy as hp
 
     from .photometry import measure_apertures
@@ -98,8 +140,7 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
     rng = as_generator(seed)
     lmax = 3 * nside - 1 if lmax is None else int(lmax)
     pix = aperture_pixels(nside, ra_deg, dec_deg, radius_arcmin)
-    theta, phi = hp.pix2ang(nside, pix)
-    loc = np.ascontiguousarray(np.column_stack([theta, phi]))
+    geometry = _ring_geometry(nside, pix)
     spec = _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl)
     harmonic = bool(np.any(spec > 0))
     sigma_pix = white_noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
@@ -111,8 +152,7 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
         values = np.zeros(pix.size)
         if harmonic:
             alm = _draw_alm(amp, m0, rng)
-            values += ducc0.sht.experimental.synthesis_general(alm=alm[None, :], spin=0, lmax=lmax, loc=loc,
-                                                               epsilon=1e-6, nthreads=n_threads)[0]
+            values += synthesise_pixels(alm, nside, lmax, pix, geometry=geometry, n_threads=n_threads)
         if sigma_pix > 0:
             values += sigma_pix * rng.standard_normal(pix.size)
         sky = SkyMap(nside=nside, nest=False, pixels=pix, values=values)
