@@ -92,9 +92,8 @@ def test_jackknife_and_bootstrap_agree_with_iid_variance_of_a_ratio_mean():
     np.testing.assert_allclose(np.mean(bs), truth * (n - 1) / n, rtol=0.08)
 
 
-def test_region_half_sums_add_up_and_match_the_jackknife_sums():
-    """Internal consistency: the shares add to the full sums, and full minus touching equals the
-    engine's delete-one sums (checked through its jackknife curves)."""
+def test_region_shares_add_up_and_match_a_pair_list():
+    """The shares add to the full sums, and region 0's shares equal a numpy pair-list sum."""
     from pairvel.covariance import bootstrap_samples, region_half_sums
     from pairvel.estimator import pairwise_momentum
 
@@ -118,8 +117,34 @@ def test_region_half_sums_add_up_and_match_the_jackknife_sums():
     inbin = (r >= edges[0]) & (r < edges[1])
     share = 0.5 * ((reg[i] == 0).astype(float) + (reg[j] == 0))
     np.testing.assert_allclose(den_k[0, 0], np.sum((c**2 * share)[inbin]), rtol=1e-10)
-    np.testing.assert_allclose(num_k[0, 1, 0], np.sum(((temps[1, i] - temps[1, j]) * c * share)[inbin]), rtol=1e-10)
+    # numerator share of region 0: sum over pairs of (T_i 1[i in 0] - T_j 1[j in 0]) c_ij, T about its mean
+    t = temps[1] - temps[1].mean()
+    own = np.where(reg == 0, t, 0.0)
+    np.testing.assert_allclose(num_k[0, 1, 0], np.sum(((own[i] - own[j]) * c)[inbin]), rtol=1e-10)
     boot = bootstrap_samples(num_k, den_k, 50, seed=1)
     assert boot.shape == (2, 50, 3) and np.all(np.isfinite(boot))
     with pytest.raises(InputError, match="n_bootstrap must be >= 2"):
         bootstrap_samples(num_k, den_k, 1)
+
+
+@pytest.mark.slow
+def test_region_bootstrap_variance_on_white_noise_matches_the_scatter():
+    """300 independent white-noise sets on one geometry: the bootstrap variance of p per bin is
+    within 0.7-1.3 of the scatter across sets (analytic truth: the scatter itself)."""
+    from pairvel.covariance import bootstrap_covariance, bootstrap_samples, kmeans_regions, region_half_sums
+    from pairvel.estimator import pairwise_momentum
+    from pairvel.geometry import comoving_positions
+
+    rng = np.random.default_rng(3)
+    n = 8000
+    ra, dec = rng.uniform(0, 40, n), np.degrees(np.arcsin(rng.uniform(-0.3, 0.3, n)))
+    pos = comoving_positions(ra, dec, rng.uniform(0.1, 0.4, n))
+    reg = kmeans_regions(ra, dec, 30, seed=1)
+    edges = np.linspace(0, 200, 6)
+    temps = rng.normal(0, 20, (300, n))
+    true_var = pairwise_momentum(pos, temps, edges).p.var(axis=0, ddof=1)
+    num_k, den_k = region_half_sums(pos, temps[:30], edges, reg)
+    boot = np.mean([np.diag(bootstrap_covariance(bootstrap_samples(num_k[:, m], den_k, 400, seed=m)))
+                    for m in range(30)], axis=0)
+    ratio = boot / true_var
+    assert np.all((ratio > 0.7) & (ratio < 1.3)), ratio
