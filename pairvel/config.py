@@ -138,6 +138,9 @@ class CovarianceConfig:
     estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region), bootstrap "
                                        "(regions drawn with replacement) or simulations (Gaussian sky maps)",
                           choices=("jackknife", "bootstrap", "simulations"))
+    jackknife_retrend: bool = _key(True, "re-estimate the redshift trend without region k for jackknife sample k "
+                                         "(the whole chain deleted-one; false: trend from all tracers, which "
+                                         "inflates large-separation errors)")
     n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
     n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
     sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")
