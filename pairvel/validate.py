@@ -24,13 +24,14 @@ noiseless kSZ curve (same pairs, same regions), which isolates the sample-varian
 per-bin ratio of the mean jackknife variance to the variance of p(r) across mocks is kept, which
 shows at which separations the jackknife is off.
 
-Two alternative jackknives are computed beside the pipeline's as diagnostics (``diagnostics``,
-on by default), to find out why the pipeline's per-bin errors are too large at large separations:
+The measured curve's jackknife is the pipeline's: sample k has the redshift trend re-estimated
+without region k (``covariance.jackknife_retrend``).  The noiseless kSZ curve uses the plain
+delete-one jackknife.  Two alternative jackknives are computed beside it as diagnostics
+(``diagnostics``, on by default):
 
-- **re-trended**: sample k is the pipeline's delete-one sample, but with the redshift trend of the
-  temperatures re-estimated without region k (the pipeline removes the trend once, from all
-  tracers, so deleting a region leaves the remaining temperatures with a non-zero trend that the
-  full sample does not have);
+- **plain**: the trend removed once from all tracers (the pipeline before this option), so
+  deleting a region leaves the remaining temperatures with a non-zero trend that the full sample
+  does not have - it inflates the large-separation errors;
 - **object-split**: sample k removes only region k's own share of the numerator,
   sum_{i in k} T_i sum_j c_ij, instead of every pair touching region k (which also takes out the
   partners' temperatures).
@@ -317,7 +318,7 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
         regions = kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
     n_jk = int(regions.max()) + 1
     retrended = None
-    if opt.trend and opt.diagnostics:  # jackknife sample k with the trend re-estimated without region k (a diagnostic)
+    if opt.trend:  # jackknife sample k with the trend re-estimated without region k, as the pipeline does
         retrended = np.zeros((n_jk, ra.size))
         for k in range(n_jk):
             out = regions != k
@@ -337,9 +338,9 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     row = {"n_tracers": int(ra.size), "n_jk": n_jk, "z_eff": z_eff}
     # "" : the pipeline's jackknife on the measured temperatures; "signal_": same on the noiseless kSZ;
     # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones
-    cases = [("", 0, pr.p_jk[0]), ("signal_", 1, pr.p_jk[1])]
+    cases = [("", 0, pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk), ("signal_", 1, pr.p_jk[1])]
     if opt.diagnostics:
-        cases += [("objsplit_", 0, p_obj_jk[0]), ("retrend_", 0, pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk)]
+        cases += [("objsplit_", 0, p_obj_jk[0]), ("plainjk_", 0, pr.p_jk[0])]
     for label, k, samples in cases:
         cov = jackknife_covariance(samples)
         if label == "signal_" and opt.tau_mean == 0:  # no signal to fit: keep the columns, fill with nan
@@ -424,11 +425,11 @@ def summarise(rows: dict, opt: ValidationOptions) -> dict:
                                                              np.var(rows["p_uk"], axis=0, ddof=1)).tolist()
     out["object_split_chi2_min_mean"] = float(np.mean(rows["objsplit_chi2_min"]))
     if opt.trend and opt.diagnostics:
-        out["retrend_jackknife"] = _calibration(rows["retrend_tau_hat"], rows["retrend_tau_err"],
-                                                rows["retrend_lower_68"], rows["retrend_upper_68"], truth)
-        out["per_bin_retrend_error_over_scatter"] = np.sqrt(np.mean(rows["retrend_p_err_uk"] ** 2, axis=0) /
-                                                            np.var(rows["p_uk"], axis=0, ddof=1)).tolist()
-        out["retrend_chi2_min_mean"] = float(np.mean(rows["retrend_chi2_min"]))
+        out["plain_jackknife"] = _calibration(rows["plainjk_tau_hat"], rows["plainjk_tau_err"],
+                                              rows["plainjk_lower_68"], rows["plainjk_upper_68"], truth)
+        out["per_bin_plain_error_over_scatter"] = np.sqrt(np.mean(rows["plainjk_p_err_uk"] ** 2, axis=0) /
+                                                          np.var(rows["p_uk"], axis=0, ddof=1)).tolist()
+        out["plain_chi2_min_mean"] = float(np.mean(rows["plainjk_chi2_min"]))
     return _tail_summary(out, rows, opt)
 
 
@@ -605,11 +606,11 @@ def format_summary(result: ValidationResult) -> str:
                      f"sigma, mean chi2 {s['object_split_chi2_min_mean']:.2f}")
         per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_object_split_error_over_scatter"])
         lines.append(f"  per-bin object-split jackknife error / scatter of p(r): {per_bin}")
-    if "retrend_jackknife" in s:
-        o = s["retrend_jackknife"]
-        lines.append(f"  diagnostic, jackknife with the redshift trend re-estimated in each sample: error / scatter "
+    if "plain_jackknife" in s:
+        o = s["plain_jackknife"]
+        lines.append(f"  diagnostic, plain jackknife (trend removed once from all tracers): error / scatter "
                      f"{o['error_ratio']:.3f} ± {o['error_ratio_se']:.3f}, coverage {o['coverage_68']:.3f}, "
-                     f"bias {o['bias_in_sigma']:+.3f} sigma, mean chi2 {s['retrend_chi2_min_mean']:.2f}")
-        per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_retrend_error_over_scatter"])
-        lines.append(f"  per-bin re-trended jackknife error / scatter of p(r): {per_bin}")
+                     f"bias {o['bias_in_sigma']:+.3f} sigma, mean chi2 {s['plain_chi2_min_mean']:.2f}")
+        per_bin = ", ".join(f"{v:.2f}" for v in s["per_bin_plain_error_over_scatter"])
+        lines.append(f"  per-bin plain jackknife error / scatter of p(r): {per_bin}")
     return "\n".join(lines)
