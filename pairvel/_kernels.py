@@ -149,13 +149,17 @@ def _bin_of(r, edges, uniform, inv_width):
 
 
 @nb.njit(inline="always")
-def _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
-    """Object ranges of every neighbour row of ``cell`` (itself included); return how many."""
+def _neighbour_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
+    """Object ranges of the forward neighbour rows of ``cell``; return how many.
+
+    The last range is the cell itself followed by its +z neighbours (start to be set to i + 1).
+    """
     cz = cell % dims[2]
     cy = (cell // dims[2]) % dims[1]
     cx = cell // (dims[1] * dims[2])
     nn = 0
-    for k in range(rows.shape[0]):
+    n_rows = rows.shape[0]
+    for k in range(n_rows - 1):
         jx = cx + rows[k, 0]
         jy = cy + rows[k, 1]
         if jx < 0 or jy < 0 or jx >= dims[0] or jy >= dims[1]:
@@ -169,18 +173,6 @@ def _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
             nbr_lo[nn] = start[base + z0]
             nbr_hi[nn] = start[base + z1 + 1]
             nn += 1
-    return nn
-
-
-@nb.njit(inline="always")
-def _neighbour_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
-    """Object ranges of the forward neighbour rows of ``cell``; return how many.
-
-    The last range is the cell itself followed by its +z neighbours (start to be set to i + 1).
-    """
-    n_rows = rows.shape[0]
-    nn = _all_ranges(cell, dims, start, rows[:n_rows - 1], nbr_lo, nbr_hi)
-    cz = cell % dims[2]
     nbr_hi[nn] = start[cell - cz + min(cz + rows[n_rows - 1, 3], dims[2] - 1) + 1]
     return nn
 
@@ -408,6 +400,30 @@ def all_rows(n_sub: int) -> np.ndarray:
             raise RuntimeError("cell offsets are not contiguous in z")
         rows.append((dx, dy, dz[0], dz[-1]))
     return np.array(rows, dtype=np.int64)
+
+
+@nb.njit(inline="always")
+def _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi):
+    """Object ranges of every neighbour row of ``cell`` (itself included); return how many."""
+    cz = cell % dims[2]
+    cy = (cell // dims[2]) % dims[1]
+    cx = cell // (dims[1] * dims[2])
+    nn = 0
+    for k in range(rows.shape[0]):
+        jx = cx + rows[k, 0]
+        jy = cy + rows[k, 1]
+        if jx < 0 or jy < 0 or jx >= dims[0] or jy >= dims[1]:
+            continue
+        z0 = max(cz + rows[k, 2], 0)
+        z1 = min(cz + rows[k, 3], dims[2] - 1)
+        if z0 > z1:
+            continue
+        base = (jx * dims[1] + jy) * dims[2]
+        if start[base + z0] < start[base + z1 + 1]:
+            nbr_lo[nn] = start[base + z0]
+            nbr_hi[nn] = start[base + z1 + 1]
+            nn += 1
+    return nn
 
 
 @nb.njit(cache=True)
