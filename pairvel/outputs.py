@@ -439,10 +439,9 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
     OutputError
         The folder exists (without ``force``), is not a pairvel output, or cannot be written.
     """
-    out = prepare_output_dir(out_dir, force=force)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    try:
-        summary = summary_dict(result)
+    summary = summary_dict(result)
+
+    def fill(tmp: Path) -> None:
         _write_tables(result, tmp)
         _plot(result, tmp / "pairwise.png")
         if result.nulls:
@@ -455,21 +454,8 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
             write_radius_outputs(result.extra["radius_fits"], tmp)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
-        (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
-        if out.exists():  # force: only reached for a folder that pairvel wrote
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
-            os.rename(out, old / out.name)
-            os.rename(tmp, out)
-            shutil.rmtree(old)
-        else:
-            os.rename(tmp, out)
-    except OSError as err:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise OutputError(f"output folder {out}: cannot be written ({err.strerror or err})", path=out) from None
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return out
+
+    return write_folder_atomically(out_dir, fill, force=force)
 
 
 def write_folder_atomically(out_dir, fill, *, force: bool = False) -> Path:
