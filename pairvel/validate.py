@@ -53,6 +53,7 @@ from .config import CovarianceConfig, TheoryConfig, TrendConfig
 from .constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
 from .cosmology import DEFAULT_COSMOLOGY
 from .errors import InputError
+from .mock import _plain
 
 #: Targets stated in the issue; never tuned to the results.
 TARGETS = {"bias_in_sigma_abs_max": 0.1, "coverage_68": (0.63, 0.73), "error_ratio": (0.85, 1.15)}
@@ -491,20 +492,6 @@ def run_validation(opt: ValidationOptions, *, progress=None) -> ValidationResult
     provenance = {"pairvel_version": __version__, "seed": opt.seed, "versions": package_versions(),
                   "options": _plain(asdict(opt))}
     return ValidationResult(opt, edges, rows, summary, provenance)
-
-
-def _plain(obj):
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    return obj
 
 
 def _plot(result: ValidationResult, path) -> None:
