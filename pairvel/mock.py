@@ -30,6 +30,7 @@ __all__ = ["MockTruth", "make_mock_survey", "load_cmb_cl", "SURVEY_NAME", "TELES
 
 import json
 import math
+import os
 import time
 import warnings
 from dataclasses import asdict, dataclass, field
@@ -185,12 +186,27 @@ def _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, margin, frame=None
     return pts.min(axis=0) - margin, pts.max(axis=0) + margin
 
 
+def _power_at(k, cosmo):
+    """Linear P(k, z = 0) at every k > 0 of a grid, interpolated in log-log from 4096 log-spaced
+    evaluations (relative error below 1e-5; evaluating the transfer function at every mode of a
+    large grid costs seconds).  Zero where k = 0."""
+    from .theory import linear_power
+
+    k = np.asarray(k, np.float64)
+    pos = k[k > 0]
+    out = np.zeros_like(k)
+    if pos.size:
+        nodes = np.geomspace(pos.min(), pos.max(), 4096)
+        logp = np.log(linear_power(nodes, 0.0, cosmo=cosmo))
+        out[k > 0] = np.exp(np.interp(np.log(pos), np.log(nodes), logp))
+    return out
+
+
 def _gaussian_fields(shape, cell, cosmo, rng):
     """delta_0(x) and the velocity potential gradient u_0(x) = IFFT[i delta_0(k) k / k^2] (Mpc).
 
     The z = 0 linear velocity is a H0 f(0) u_0; at redshift z it is a H(z) f(z) D(z) u_0.
     """
-    from .theory import linear_power
 
     kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
     ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
@@ -198,7 +214,7 @@ def _gaussian_fields(shape, cell, cosmo, rng):
     k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
     k2[0, 0, 0] = 1.0
     white = np.fft.rfftn(rng.standard_normal(shape))
-    amp = np.sqrt(linear_power(np.sqrt(k2), 0.0, cosmo=cosmo) / cell**3)
+    amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
     amp[0, 0, 0] = 0.0
     dk = white * amp
     delta = np.fft.irfftn(dk, s=shape, axes=(0, 1, 2)).astype(np.float32)
@@ -206,6 +222,62 @@ def _gaussian_fields(shape, cell, cosmo, rng):
     for kk in (kx[:, None, None], ky[None, :, None], kz[None, None, :]):
         u.append(np.fft.irfftn(1j * dk * kk / k2, s=shape, axes=(0, 1, 2)).astype(np.float32))
     return delta, u
+
+
+def _gaussian_fields_at(points, lo, shape, cell, cosmo, rng, *, epsilon=1e-7):
+    """delta_0 and u_0 (as in :func:`_gaussian_fields`) evaluated exactly at arbitrary points.
+
+    The same Fourier modes as ``_gaussian_fields(shape, cell, cosmo, rng)`` (the same white-noise
+    draw), summed at each point by a type-2 non-uniform FFT (``ducc0.nufft.u2nu``) instead of
+    being read at the nearest grid node.  Nearest-node lookup makes the fields piecewise constant,
+    which multiplies their power by the cell window prod_i sinc^2(k_i cell / 2) and lowers the
+    pairwise velocity of close pairs (about 12% in the 0-20 Mpc bin with 8 Mpc cells); the band-
+    limited field evaluated at the points only lacks the modes beyond the grid's Nyquist
+    frequency.  The Nyquist planes of an even-sized grid are left out (their gradient has no real
+counterpart).  A test checks the sum against a direct evaluation of the Fourier series.
+
+    Parameters
+    ----------
+    points : ndarray of shape (N, 3), Mpc
+        Positions in the grid frame.
+    lo : ndarray of shape (3,), Mpc
+        Position of grid node (0, 0, 0); the box is periodic with side ``shape * cell``.
+
+    Returns
+    -------
+    delta : ndarray of shape (N,)
+    u : ndarray of shape (N, 3), Mpc
+    """
+    import ducc0
+
+    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
+    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
+    kz = 2 * np.pi * np.fft.fftfreq(shape[2], d=cell)
+    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
+    k2[0, 0, 0] = 1.0
+    dk = np.fft.fftn(rng.standard_normal(shape))
+    amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
+    amp[0, 0, 0] = 0.0
+    dk *= amp
+    del amp
+    for axis, n in enumerate(shape):  # a Nyquist mode has no partner of opposite k: drop it so the fields stay real
+        if n % 2 == 0:
+            dk[(slice(None),) * axis + (n // 2,)] = 0.0
+    n_cells = shape[0] * shape[1] * shape[2]
+    grids = np.empty((4,) + tuple(shape), np.complex128)
+    grids[0] = dk
+    del dk
+    inv_k2 = 1.0 / k2
+    del k2
+    for i, kk in enumerate((kx[:, None, None], ky[None, :, None], kz[None, None, :])):
+        np.multiply(grids[0], inv_k2, out=grids[i + 1])
+        grids[i + 1] *= 1j * kk
+    del inv_k2
+    coord = np.ascontiguousarray(np.asarray(points, np.float64) - np.asarray(lo, np.float64))
+    values = ducc0.nufft.u2nu(grid=grids, coord=coord, forward=False, epsilon=epsilon, nthreads=os.cpu_count() or 1,
+                              periodicity=[float(s * cell) for s in shape], fft_order=True)
+    values = values.real / n_cells
+    return values[0], values[1:].T.copy()
 
 
 def _gaussian_alm(cl, lmax, rng):
