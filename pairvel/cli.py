@@ -188,6 +188,13 @@ def _add_validate_parser(sub, common) -> None:
                      help=f"likelihood of the amplitude fit (default {d.likelihood})")
     val.add_argument("--cell-mpc", type=float, default=d.cell_mpc,
                      help=f"cell of the mocks' Gaussian field, Mpc (default {d.cell_mpc:g})")
+    val.add_argument("--grid-fields", action="store_true",
+                     help="read the mocks' fields at the nearest grid node instead of summing them at each tracer "
+                          "(faster, smooths the close-pair signal)")
+    val.add_argument("--box-padding", type=float, default=d.box_padding,
+                     help=f"periodic field box over the cone's bounding box, per side (default {d.box_padding:g})")
+    val.add_argument("--no-trend-model", action="store_true",
+                     help="fit the plain template, without the predicted signal loss of the trend removal")
     val.add_argument("--no-diagnostics", action="store_true",
                      help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
     val.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
@@ -204,7 +211,8 @@ def _cmd_validate(args) -> int:
                             healpix_nside=args.healpix_nside, trend=not args.no_trend, r_max_mpc=args.r_max,
                             bin_width_mpc=args.bin_width, fit_r_min_mpc=args.fit_r_min,
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
-                            diagnostics=not args.no_diagnostics)
+                            exact_fields=not args.grid_fields, box_padding=args.box_padding,
+                            trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics)
     prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
     result = run_validation(opt, progress=None if args.quiet else _say)
     out = write_validation(result, args.out, force=args.force)

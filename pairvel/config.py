@@ -173,6 +173,9 @@ class TheoryConfig:
     photoz_model: str = _key("convolution", "photo-z damping: convolution (line-of-sight smearing of the pair "
                              "separation) or exponential (1 - exp(-r^2 / 2 sigma_r^2))",
                              choices=("convolution", "exponential"))
+    model_trend_loss: bool = _key(True, "with trend.enabled, multiply the template by the linear-theory fraction of "
+                                        "the pairwise signal that survives the redshift-trend removal, computed on "
+                                        "the run's own geometry (false: the plain template, biased low by the loss)")
     likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
                            "or sellentin-heavens (marginalised over the jackknife covariance)",
                            choices=("hartlap", "sellentin-heavens"))

@@ -224,6 +224,21 @@ def _gaussian_fields(shape, cell, cosmo, rng):
     return delta, u
 
 
+def _field_variance(shape, cell, cosmo, *, drop_nyquist: bool) -> float:
+    """Variance of the z = 0 grid field delta_0 of :func:`_gaussian_fields` (or, with ``drop_nyquist``,
+    of :func:`_gaussian_fields_at`): the mean over the grid's modes of P(k) / cell^3, k = 0 excluded."""
+    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
+    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
+    kz = 2 * np.pi * np.fft.fftfreq(shape[2], d=cell)
+    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
+    power = _power_at(np.sqrt(k2), cosmo) / cell**3
+    if drop_nyquist:
+        for axis, n in enumerate(shape):
+            if n % 2 == 0:
+                power[(slice(None),) * axis + (n // 2,)] = 0.0
+    return float(power.sum() / power.size)
+
+
 def _gaussian_fields_at(points, lo, shape, cell, cosmo, rng, *, epsilon=1e-7):
     """delta_0 and u_0 (as in :func:`_gaussian_fields`) evaluated exactly at arbitrary points.
 

@@ -227,6 +227,16 @@ def _theory_report(result) -> list:
                    f"{info.get('separation_weighting')}"),
                   "- photo-z damping: " + ("none (spectroscopic redshifts)" if not info.get("photoz_model") else
                                             f"{info['photoz_model']}, sigma_z = {info['photoz_sigma_z0']:g} (1 + z)")]
+        loss = info.get("trend_loss_model")
+        if loss:
+            kept = loss["kept_fraction"]
+            lines.append(f"- redshift-trend removal: the template is multiplied by the linear-theory fraction of the "
+                         f"signal the removal keeps on this catalogue, {kept[0]:.3f} in the first bin to "
+                         f"{kept[-1]:.3f} in the last (Monte Carlo over {loss['pairs_per_bin']} pairs per bin; "
+                         f"column trend_kept of the table)")
+        elif result.config.trend.enabled:
+            lines.append("- redshift-trend removal: its signal loss is not modelled (theory.model_trend_loss = false); "
+                         "tau_mean is biased low by it")
     if f.likelihood == "sellentin-heavens":
         lines.append(f"- likelihood: Sellentin & Heavens (2016), {result.n_jk} jackknife regions; 68% interval of "
                      f"tau_mean [{f.lower_68:.4e}, {f.upper_68:.4e}]")
@@ -276,12 +286,16 @@ def _write_tables(result, folder: Path) -> None:
     table["n_pairs"] = result.pair_counts.astype(np.int64)
     table["z_pair"] = result.z_eff_bins
     table["v12_lin_km_s"] = result.v12_template
+    loss = result.extra.get("template", {}).get("trend_loss_model")
+    table["trend_kept"] = np.asarray(loss["kept_fraction"]) if loss else np.ones(nb)
     table["model_uK"] = result.model_uk
     table["in_fit"] = result.in_fit
     for name in ("r_min", "r_max", "r_mid"):
         table[name].unit = "Mpc"
     table["p_uK"].unit = table["p_err_uK"].unit = table["model_uK"].unit = "uK"
     table["v12_lin_km_s"].unit = "km / s"
+    table["v12_lin_km_s"].description = "linear-theory pairwise velocity times trend_kept"
+    table["trend_kept"].description = "predicted fraction of the signal the redshift-trend removal keeps (1: not modelled)"
     table.meta["description"] = "mean pairwise kSZ momentum (Ferreira et al. 1999 estimator) against comoving separation"
     table.meta["tau_mean"] = float(result.fit.amplitude)
     table.meta["tau_mean_error"] = float(result.fit.error)

@@ -40,6 +40,7 @@ from .joint import fit_velocity_scale
 from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
 from .template import load_power, template_for_run
+from .trendmodel import trend_transfer
 from .trend import remove_redshift_trend
 
 _DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
@@ -144,8 +145,31 @@ def _retrend(sets, z, cfg: Config):
     return np.array([_trend(t, z, cfg) for t in sets]).reshape(sets.shape)
 
 
+def _trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:
+    """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled).
+
+    Records the fraction, its Monte Carlo error and the draws in ``template_info``.
+    """
+    nbins = edges.size - 1
+    if not (cfg.trend.enabled and cfg.theory.model_trend_loss):
+        template_info["trend_loss_model"] = None
+        return np.ones(nbins)
+    tr = trend_transfer(positions, z, edges, cfg.trend.sigma_z, seed=rng, cosmo=cfg.cosmology,
+                        wiggles=cfg.theory.wiggles, power=power)
+    factor = np.where(np.isfinite(tr.ratio), tr.ratio, 1.0)
+    template_info["trend_loss_model"] = {
+        "kept_fraction": [round(float(x), 5) for x in factor],
+        "kept_fraction_error": [round(float(x), 5) if np.isfinite(x) else None for x in tr.error],
+        "pairs_per_bin": tr.n_pairs, "shell_tracers": tr.n_shell,
+        "bins_without_pairs_set_to_1": int(np.sum(~np.isfinite(tr.ratio))),
+    }
+    progress.say(f"      template x signal kept by the trend removal: {factor.min():.3f}-{factor.max():.3f} "
+                 f"(first bin {factor[0]:.3f}, last {factor[-1]:.3f})")
+    return factor
+
+
 def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps, regions, edges, in_fit, power,
-                progress) -> dict:
+                progress, trend_factor=None) -> dict:
     """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
     out = {}
     th = cfg.theory
@@ -154,7 +178,7 @@ def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps,
         out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
                                            temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
                                            in_fit=in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
-                                           n_threads=cfg.compute.n_threads)
+                                           n_threads=cfg.compute.n_threads, template_factor=trend_factor)
     if th.fit_velocity_scale:
         prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
         out["velocity_scale_fit"] = fit_velocity_scale(fit, template_info["f_sigma8_template"], n_samples=n_jk,
@@ -331,6 +355,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
         v12, template_info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
                                               z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
+        trend_factor = _trend_loss(positions, cat.z, edges, cfg, rng, power, template_info, progress)
+        v12 = v12 * trend_factor
         template = T_CMB_UK * v12 / C_KM_S
         fit = fit_amplitude(p, template, cov, n_samples=n_cov, use=in_fit, likelihood=cfg.theory.likelihood)
         covs = {"jackknife": cov_jk, cc.estimator: cov}
@@ -352,7 +378,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         extra["radius_fits"] = radius_fits
         extra["report_sections"] = {"Signal against aperture radius": radius_report(radius_fits)}
     extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
-                             regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress))
+                             regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress,
+                             trend_factor=trend_factor))
     extra.update({"covariance_diagnostics": diag,
                   "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rot_kept],
                   "report_sections": {**extra.get("report_sections", {}),

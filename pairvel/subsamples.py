@@ -51,7 +51,7 @@ class ProxyBinFit:
 
 
 def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, regions, edges, in_fit,
-                   theory_cfg, cosmo, power=None, n_threads=None) -> tuple:
+                   theory_cfg, cosmo, power=None, n_threads=None, template_factor=None) -> tuple:
     """Fit tau_mean separately in each bin [lo, hi) of the proxy.
 
     Parameters
@@ -67,6 +67,10 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
     theory_cfg : pairvel.config.TheoryConfig
     cosmo : Cosmology
     power : TabulatedPower, optional
+    template_factor : ndarray of shape (nbins,), optional
+        Per-bin factor on every bin's template: the whole run's signal fraction kept by the
+        redshift-trend removal (the trend is removed once from the whole sample, so its shells are
+        the same for every proxy bin).
 
     Returns
     -------
@@ -103,6 +107,8 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
                                   z_eff=z_eff, power=power)
         cov = jackknife_covariance(np.where(np.isfinite(pr.p_jk), pr.p_jk, 0.0))
         try:
+            if template_factor is not None:
+                v12 = v12 * template_factor
             fit = fit_amplitude(np.where(ok, pr.p, 0.0), T_CMB_UK * v12 / C_KM_S, cov, n_samples=n_reg,
                                 use=in_fit, likelihood=theory_cfg.likelihood)
         except PairvelError as err:  # too few regions for the bins, singular covariance: report, go on

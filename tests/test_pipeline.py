@@ -37,6 +37,8 @@ def test_injected_tau_is_recovered(tmp_path):
     assert abs(pull) < 3, pull  # a fixed seed; the slow test below checks the distribution
     assert all(n.pte_mean > 0.001 for n in res.nulls)
     assert res.n_tracers > 5000 and res.pair_counts.sum() > 1e5
+    kept = np.array(res.extra["template"]["trend_loss_model"]["kept_fraction"])
+    assert kept.shape == (10,) and 0.95 < kept[0] <= 1.0 and kept[-1] < kept[0]
 
 
 @pytest.mark.slow

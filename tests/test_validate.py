@@ -51,7 +51,7 @@ def test_harness_catches_overestimated_errors_and_bias():
 
 def test_mock_catalogue_fills_the_cone_with_the_requested_number():
     opt = ValidationOptions(n_tracers=3000, ra_half_deg=10, dec_half_deg=8, z_min=0.2, z_max=0.3)
-    ra, dec, z, v_r = _draw_catalogue(opt, np.random.default_rng(2))
+    ra, dec, z, v_r, bias_eff = _draw_catalogue(opt, np.random.default_rng(2))
     # the kept fraction is <clip(1 + b D delta, 0, 3)> = 1 up to the rare clipped cells; Poisson scatter
     # sqrt(3000) = 55, plus the field's own large-scale fluctuation of the mean density: 10%
     assert ra.size == pytest.approx(3000, rel=0.1)
@@ -60,6 +60,23 @@ def test_mock_catalogue_fills_the_cone_with_the_requested_number():
     assert z.min() >= 0.2 and z.max() <= 0.3
     # linear-theory 1-D velocities of a few hundred km/s [common practice]; a zero or absurd field fails
     assert 100 < np.std(v_r) < 600
+    assert 0.9 * opt.bias < bias_eff < opt.bias  # the clipping lowers the bias by a few per cent
+
+
+def test_clipped_density_moments_and_stein_lemma():
+    """E[f], E[f'] of the clipped density against a Monte Carlo, and Stein's lemma (Stein 1981, Ann. Stat.
+    9, 1135): the slope of E[f(x) | y] regression, Cov(f(x), y) / Cov(x, y), equals E[f'(x)]."""
+    from pairvel.validate import _clipped_density_moments
+
+    rng = np.random.default_rng(4)
+    s, rho, n = 0.6, 0.5, 2_000_000
+    x = s * rng.standard_normal(n)
+    y = rho * x / s + math.sqrt(1 - rho**2) * rng.standard_normal(n)
+    f = np.clip(1.0 + x, 0.0, 3.0)
+    mean, slope = _clipped_density_moments(np.array([s]), 3.0)
+    assert mean[0] == pytest.approx(f.mean(), abs=3e-4)
+    assert slope[0] == pytest.approx(np.mean((x > -1) & (x < 2)), abs=1e-3)
+    assert np.cov(f, y)[0, 1] / np.cov(x, y)[0, 1] == pytest.approx(slope[0], abs=5e-3)
 
 
 def test_mocks_are_reproducible_from_the_seed():
