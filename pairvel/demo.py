@@ -60,7 +60,9 @@ def attach_truth_check(result):
     edges_truth = np.asarray(truth["edges_mpc"], dtype=float)
     if edges_truth.shape == result.edges.shape and np.allclose(edges_truth, result.edges):
         v_real = np.asarray(truth["v12_los_realised_km_s"], dtype=float)
-        t_real = T_CMB_UK * v_real / C_KM_S
+        loss = result.extra.get("template", {}).get("trend_loss_model")
+        kept = np.asarray(loss["kept_fraction"]) if loss else 1.0   # the trend removal acts on the realised signal too
+        t_real = T_CMB_UK * v_real * kept / C_KM_S
         real_fit = fit_amplitude(result.p, t_real, result.covariance,
                                  n_samples=result.n_jk, use=result.in_fit, likelihood=fit.likelihood)
         check["tau_mean_vs_realised_velocity"] = real_fit.amplitude
