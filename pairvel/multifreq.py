@@ -191,9 +191,11 @@ def pixel_difference_covariance(maps) -> tuple[np.ndarray, int]:
     Each usable pixel p with all 8 neighbours usable in every map gives d_i(p) = m_i(p) - mean of
     m_i over the neighbours.  For white noise var(d) = (1 + 1/8) sigma_pix^2, so the covariance of
     d divided by 9/8 and times the pixel area is the white-noise covariance in (uK arcmin)^2.
-    Signal smooth on the pixel scale (the beam-smoothed CMB) cancels in d; what is left of it is
-    common to every map and adds a multiple of 1 1^T, which does not change weights constrained
-    by sum w = 1.  At most 2,000,000 pixels (a regular subsample) are used.
+    Signal smooth on the pixel scale (the beam-smoothed CMB) mostly cancels in d; what is left of
+    it is common to every map and adds c 1 1^T.  Taking the noise of different maps as independent,
+    c is estimated as the mean off-diagonal element and subtracted (when positive).  A multiple of
+    1 1^T does not change weights constrained by sum w = 1, only the reported noise levels.  At
+    most 2,000,000 pixels (a regular subsample) are used.
 
     Returns
     -------
@@ -224,6 +226,10 @@ def pixel_difference_covariance(maps) -> tuple[np.ndarray, int]:
         diffs.append(v[sel][ok].astype(np.float64) - nv[:, ok].astype(np.float64).mean(axis=0))
     d = np.array(diffs)
     cov = d @ d.T / d.shape[1] - np.outer(d.mean(axis=1), d.mean(axis=1))
+    k = cov.shape[0]
+    common = (cov.sum() - np.trace(cov)) / (k * (k - 1))  # mean cross-covariance: signal shared by every map
+    common = min(common, 0.99 * float(np.diag(cov).min())) if common > 0 else 0.0
+    cov = cov - common
     return cov / (9.0 / 8.0) * first.pixel_area_arcmin2, int(ok.sum())
 
 
