@@ -153,6 +153,9 @@ def _cmd_mock(args) -> int:
     truth = make_mock_survey(args.out, **options, progress=None if args.quiet else _say)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
+    if args.extra_frequency:
+        print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
+              " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
     return EXIT_OK
 
 

@@ -138,7 +138,10 @@ def _common_support(maps):
     vals, wts = [], []
     for m in maps:
         m = m.reordered(nest=first.nest)
-        v, w = m.lookup(pix)
+        if first.pixels is None and m.pixels is None:
+            v, w = m.values, m.weight  # full sky in the same ordering: no copy
+        else:
+            v, w = m.lookup(pix)
         vals.append(v)
         wts.append(w)
     return pix, vals, np.minimum.reduce(wts)
@@ -315,7 +318,8 @@ def combination_markdown(info: dict) -> str:
         lines.append(f"| {m['path']} | {m['frequency_ghz']:g} | {m['f_tsz']:+.5f} | {m['weight']:+.4f} | "
                      f"{m['noise_uk_arcmin']:.3g} |")
     lines += ["", f"Noise of the combination: {info['noise_uk_arcmin']:.3g} uK arcmin, {info['noise_cost']:.3f} times "
-                  f"that of the least noisy single map ({info['best_single_map']})."]
+                  f"that of the least noisy single map ({info['best_single_map']}); with "
+                  f"covariance.estimator = simulations, set covariance.sim_white_noise_uk_arcmin to it."]
     return "\n".join(lines)
 
 

@@ -225,6 +225,10 @@ def test_read_input_map_errors_and_beam_warning(tmp_path):
     with pytest.warns(PairvelWarning, match="without reconvolution"):
         skymap, info = read_input_map(cfg)
     assert info["sum_weights"] == pytest.approx(1, abs=1e-12) and abs(info["tsz_response"]) < 1e-12
+    cfg = _cfg(tmp_path, map_paths=["a.fits", "b.fits"], frequencies_ghz=[90, 150], combination="minimum_variance")
+    skymap, info = read_input_map(cfg)  # no noise levels: measured from the maps (independent 50 uK pixel noise)
+    assert info["noise_model"] == "pixel_differences" and info["noise_pixels_used"] == hp.nside2npix(16) - 24
+    np.testing.assert_allclose([m["weight"] for m in info["maps"]], 0.5, atol=0.1)
 
 
 # ---------------------------------------------------------------------- end to end on mock maps
