@@ -236,9 +236,9 @@ class MultifrequencyConfig:
                                         "(sum w = 1, least noise) or weights (the list below)",
                             choices=("tsz_free", "minimum_variance", "weights"))
     weights: tuple[float, ...] | None = _key(None, "weight of each map when combination = weights; must sum to 1")
-    noise_model: str = _key("auto", "noise covariance of the maps: levels (diagonal, from noise_uk_arcmin), "
-                                    "pixel_differences (measured from pixel-minus-neighbour-mean differences of the "
-                                    "maps) or auto (levels when noise_uk_arcmin is set)",
+    noise_model: str = _key("auto", "noise covariance of the maps, diagonal: levels (from noise_uk_arcmin), "
+                                    "pixel_differences (measured from pixel-minus-neighbour-mean differences, less "
+                                    "the CMB and tSZ common to the maps) or auto (levels when noise_uk_arcmin is set)",
                             choices=("auto", "levels", "pixel_differences"))
 
 

@@ -188,23 +188,34 @@ def _check_compatible(maps):
                            f"{first.coordsys}; the frequency maps must share one frame", path=m.path, key="COORDSYS")
 
 
-def pixel_difference_covariance(maps) -> tuple[np.ndarray, int]:
-    """Noise covariance of the maps from pixel-minus-neighbour-mean differences, (uK arcmin)^2.
+def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
+    """Diagonal white-noise covariance of the maps from pixel-minus-neighbour-mean differences.
 
     Each usable pixel p with all 8 neighbours usable in every map gives d_i(p) = m_i(p) - mean of
-    m_i over the neighbours.  For white noise var(d) = (1 + 1/8) sigma_pix^2, so the covariance of
-    d divided by 9/8 and times the pixel area is the white-noise covariance in (uK arcmin)^2.
-    Signal smooth on the pixel scale (the beam-smoothed CMB) mostly cancels in d; what is left of
-    it is common to every map and adds c 1 1^T.  Taking the noise of different maps as independent,
-    c is estimated as the mean off-diagonal element and subtracted (when positive).  A multiple of
-    1 1^T does not change weights constrained by sum w = 1, only the reported noise levels.  At
-    most 2,000,000 pixels (a regular subsample) are used.
+    m_i over the neighbours.  For white noise var(d) = (1 + 1/8) sigma_pix^2, so the covariance D
+    of d divided by 9/8 and times the pixel area is in (uK arcmin)^2.  Signal is not fully smooth on
+    the pixel scale, and what is left of it in d is the CMB and kSZ, the same in every map (c 1 1^T),
+    and the tSZ, proportional to f (b f f^T).  Taking the noise of different maps as independent,
+    the off-diagonal elements D_ij = c + b f_i f_j are fitted by least squares (c alone for two
+    maps or without ``f_tsz``) and the noise variance of map i is D_ii - c - b f_i^2.  At most
+    2,000,000 pixels (a regular subsample) are used.
+
+    Parameters
+    ----------
+    maps : sequence of SkyMap
+    f_tsz : array_like of shape (len(maps),), optional
+        tSZ factor of each map.
 
     Returns
     -------
-    cov : ndarray of shape (k, k), (uK arcmin)^2
+    cov : ndarray of shape (k, k), diagonal, (uK arcmin)^2
     n_pixels : int
         Pixels that entered the estimate.
+
+    Raises
+    ------
+    MapError
+        Fewer than 100 usable pixels with usable neighbours, or a noise variance left <= 0.
     """
     _check_compatible(maps)
     pix, vals, weight = _common_support(maps)
@@ -228,12 +239,21 @@ def pixel_difference_covariance(maps) -> tuple[np.ndarray, int]:
     for v, nv in zip(vals, nb_vals):
         diffs.append(v[sel][ok].astype(np.float64) - nv[:, ok].astype(np.float64).mean(axis=0))
     d = np.array(diffs)
-    cov = d @ d.T / d.shape[1] - np.outer(d.mean(axis=1), d.mean(axis=1))
+    cov = (d @ d.T / d.shape[1] - np.outer(d.mean(axis=1), d.mean(axis=1))) / (9.0 / 8.0) * first.pixel_area_arcmin2
     k = cov.shape[0]
-    common = (cov.sum() - np.trace(cov)) / (k * (k - 1))  # mean cross-covariance: signal shared by every map
-    common = min(common, 0.99 * float(np.diag(cov).min())) if common > 0 else 0.0
-    cov = cov - common
-    return cov / (9.0 / 8.0) * first.pixel_area_arcmin2, int(ok.sum())
+    i, j = np.triu_indices(k, 1)
+    design = np.ones((i.size, 1))
+    f = None if f_tsz is None else np.asarray(f_tsz, dtype=float)
+    if f is not None and i.size >= 2 and np.linalg.matrix_rank(np.column_stack([design, f[i] * f[j]])) == 2:
+        design = np.column_stack([design, f[i] * f[j]])
+    coef = np.linalg.lstsq(design, cov[i, j], rcond=None)[0]
+    signal = coef[0] + (coef[1] * f**2 if design.shape[1] == 2 else 0.0)
+    noise_var = np.diag(cov) - signal
+    if np.any(noise_var <= 0):
+        raise MapError(f"map {first.path}: the noise of the maps cannot be measured from pixel differences (a "
+                       f"variance left <= 0 after removing the signal common to the maps); set "
+                       f"multifrequency.noise_uk_arcmin", path=first.path)
+    return np.diag(noise_var), int(ok.sum())
 
 
 def _read_each(cfg):
@@ -278,7 +298,7 @@ def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
     if model == "levels":
         cov = np.diag(np.square(np.asarray(mf.noise_uk_arcmin, dtype=float)))
     else:
-        cov, n_pix = pixel_difference_covariance(maps)
+        cov, n_pix = pixel_difference_covariance(maps, f)
     w = combination_weights(f, cov, combination=mf.combination, weights=mf.weights)
     label = f"{mf.combination} combination of " + ", ".join(str(p) for p in mf.map_paths)
     combined = combine_maps(maps, w, path=label)
