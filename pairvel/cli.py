@@ -55,6 +55,9 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--nside", type=int, default=2048, help="HEALPix nside of the map (default 2048)")
     mock.add_argument("--tau-mean", type=float, default=None, help="injected mean aperture optical depth")
     mock.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
+                      help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
+                           "noise); repeat for several")
     common(mock)
 
     unblind = sub.add_parser("unblind", help="apply a blinding key to a blinded output folder, writing a new folder",
@@ -145,9 +148,14 @@ def _cmd_mock(args) -> int:
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
         options["tau_mean"] = args.tau_mean
+    if args.extra_frequency:
+        options["extra_frequencies_ghz"] = args.extra_frequency
     truth = make_mock_survey(args.out, **options, progress=None if args.quiet else _say)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
+    if args.extra_frequency:
+        print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
+              " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
     return EXIT_OK
 
 

@@ -24,6 +24,7 @@ __all__ = [
     "load_config",
     "config_from_dict",
     "iter_config_keys",
+    "MultifrequencyConfig",
 ]
 
 import dataclasses
@@ -220,6 +221,31 @@ class ComputeConfig:
 
 
 @dataclass(frozen=True)
+class MultifrequencyConfig:
+    map_paths: tuple[Path, ...] | None = _key(None, "several HEALPix maps (uK_CMB after reading) of one nside combined "
+                                                    "pixel-wise into the temperature input, replacing map.path; "
+                                                    "map.field/unit/ordering/coordsys apply to each, map.mask_path "
+                                                    "to the combination")
+    frequencies_ghz: tuple[float, ...] | None = _key(None, "observing frequency of each map, GHz (required with "
+                                                          "map_paths)", bounds=(1.0, 3000.0))
+    noise_uk_arcmin: tuple[float, ...] | None = _key(None, "white-noise level of each map, uK arcmin (noise_model "
+                                                          "levels)", bounds=(1e-6, 1e6))
+    beam_fwhm_arcmin: tuple[float, ...] | None = _key(None, "beam FWHM of each map, arcmin; unequal beams are refused "
+                                                           "unless allow_beam_mismatch (unset: assumed equal)",
+                                                      bounds=(0.0, 600.0))
+    allow_beam_mismatch: bool = _key(False, "combine maps of different beam_fwhm_arcmin anyway, with a warning (no "
+                                            "reconvolution)")
+    combination: str = _key("tsz_free", "tsz_free (sum w = 1, sum w f_tSZ = 0, least noise), minimum_variance "
+                                        "(sum w = 1, least noise) or weights (the list below)",
+                            choices=("tsz_free", "minimum_variance", "weights"))
+    weights: tuple[float, ...] | None = _key(None, "weight of each map when combination = weights; must sum to 1")
+    noise_model: str = _key("auto", "noise covariance of the maps, diagonal: levels (from noise_uk_arcmin), "
+                                    "pixel_differences (measured from pixel-minus-neighbour-mean differences, less "
+                                    "the CMB and tSZ common to the maps) or auto (levels when noise_uk_arcmin is set)",
+                            choices=("auto", "levels", "pixel_differences"))
+
+
+@dataclass(frozen=True)
 class Config:
     """A whole run configuration; ``source`` is the file it came from (None when built in code)."""
 
@@ -235,6 +261,7 @@ class Config:
     nulls: NullConfig = field(default_factory=NullConfig)
     compute: ComputeConfig = field(default_factory=ComputeConfig)
     blinding: BlindingConfig = field(default_factory=BlindingConfig)
+    multifrequency: MultifrequencyConfig = field(default_factory=MultifrequencyConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:
@@ -391,8 +418,8 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
 
     if cfg.catalogue.path is None:
         bad("catalogue.path", "is required")
-    if cfg.map.path is None:
-        bad("map.path", "is required")
+    if cfg.map.path is None and not cfg.multifrequency.map_paths:
+        bad("map.path", "is required (or multifrequency.map_paths)")
     if not cfg.catalogue.z_min < cfg.catalogue.z_max:
         bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
     if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
@@ -430,6 +457,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("aperture.radii_arcmin", f"must not repeat a radius; got {list(ap.radii_arcmin)}")
     if th.tau_prior_mean is not None and not th.fit_velocity_scale:
         bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
+    from .multifreq import check_config as _check_multifrequency  # several frequency maps
+
+    _check_multifrequency(cfg, bad)
 
 
 def load_config(path) -> Config:

@@ -26,7 +26,7 @@ config key of the measurement).
 
 from __future__ import annotations
 
-__all__ = ["MockTruth", "make_mock_survey", "load_cmb_cl", "SURVEY_NAME", "TELESCOPE_NAME"]
+__all__ = ["MockTruth", "make_mock_survey", "load_cmb_cl", "SURVEY_NAME", "TELESCOPE_NAME", "extra_map_file"]
 
 import json
 import math
@@ -371,11 +371,48 @@ def _plain(obj):
     return obj
 
 
+def extra_map_file(freq_ghz) -> str:
+    """File name of the mock map at another frequency."""
+    return f"skerry_{freq_ghz:g}ghz_partial.fits"
+
+
+def _check_extra_frequencies(freqs, noise, default_noise) -> dict:
+    """{frequency: noise level} of the extra maps, or a one-line InputError."""
+    freqs = list(freqs or ())
+    ok = all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool) and math.isfinite(v)
+             and 1.0 <= v <= 3000.0 and v != 150 for v in freqs) and len(set(freqs)) == len(freqs)
+    if not ok:
+        raise InputError(f"mock option 'extra_frequencies_ghz' must be distinct frequencies in [1, 3000] GHz other "
+                         f"than 150; got {freqs!r}", key="extra_frequencies_ghz")
+    noise = [default_noise] * len(freqs) if noise is None else list(noise)
+    if len(noise) != len(freqs) or not all(isinstance(v, (int, float)) and math.isfinite(v) and v >= 0
+                                           for v in noise):
+        raise InputError(f"mock option 'extra_noise_uk_arcmin' must be one number >= 0 per extra frequency "
+                         f"({len(freqs)}); got {noise!r}", key="extra_noise_uk_arcmin")
+    return {float(f): float(n) for f, n in zip(freqs, noise)}
+
+
+def _frequency_map(nu, foot, cmb_values, ksz, tsz, noise_uk_arcmin, nside, rng):
+    """CMB + kSZ + tSZ scaled from 150 GHz to ``nu`` + white noise, on the footprint pixels."""
+    import healpy as hp
+
+    from .multifreq import tsz_spectrum
+
+    scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz map's tSZ is _TSZ_F150 times the amplitude
+    values = cmb_values.copy()
+    for (pix, val), factor in ((ksz, 1.0), (tsz, scale)):
+        idx = np.searchsorted(foot, pix)
+        ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
+        np.add.at(values, idx[ok], factor * val[ok])
+    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
+    return values + rng.normal(0.0, sigma_pix, foot.size)
+
+
 def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_max=20.0, dec_min=-10.0,
                      dec_max=10.0, z_min=0.15, z_max=0.55, tau_mean=2.0e-3, bias=0.4, cell_mpc=6.0,
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
-                     progress=None) -> MockTruth:
+                     progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json) into a new folder.
 
     Parameters
@@ -416,6 +453,12 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         None draws fresh entropy, which is recorded in the truth.
     progress : callable(str), optional
         Receives one-line progress messages.
+    extra_frequencies_ghz : sequence of float, GHz, default ()
+        Also write a map at each of these frequencies (``skerry_<nu>ghz_partial.fits``): the same
+        CMB, kSZ and beam, the tSZ scaled by f(nu) / f(150 GHz) (:func:`pairvel.multifreq.tsz_spectrum`)
+        and independent white noise.  Drawn after everything else, so the 150 GHz map does not change.
+    extra_noise_uk_arcmin : sequence of float, uK-arcmin, optional
+        White noise of each extra map (default: ``noise_uk_arcmin`` for all).
 
     Returns
     -------
@@ -459,6 +502,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                         beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
                         aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
                         tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo, progress=progress))
+    extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     if seed is None:
         seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
     rng = as_generator(seed)
@@ -553,6 +597,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         say(f"mock: primary CMB at nside {nside}, lmax {lmax}")
         values += hp.alm2map(alm, nside, lmax=lmax)[foot]
         del alm
+    cmb_values = values.copy() if extra_noise else None  # the blackbody part, shared by the extra frequencies
     timings["cmb"] = time.perf_counter() - t0 - sum(timings.values())
     pix_k, val_k = _paint(nside, ra, dec, dt_ksz * area, beam_fwhm_arcmin)
     pix_t, val_t = _paint(nside, ra, dec, tsz * area, beam_fwhm_arcmin)
@@ -562,6 +607,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         np.add.at(values, idx[ok], val[ok])
     sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
     values += rng.normal(0.0, sigma_pix, foot.size)
+    extra_maps = {}
+    for nu, noise_nu in extra_noise.items():  # several frequencies: drawn after the 150 GHz map
+        extra_maps[nu] = _frequency_map(nu, foot, cmb_values, (pix_k, val_k), (pix_t, val_t), noise_nu, nside, rng)
     timings["map"] = time.perf_counter() - t0 - sum(timings.values())
 
     # truth: realised pairwise velocities, linear theory, aperture response
@@ -592,11 +640,18 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     write_partial_map(out / MAP_FILE, foot, values.astype(np.float32), nside=nside, nest=False, unit="uK_CMB",
                       extra_header={"TELESCOP": TELESCOPE_NAME, "FREQ": ("150 GHz", "observing frequency"),
                                     "BEAMFWHM": (beam_fwhm_arcmin, "arcmin")})
+    for nu, vals in extra_maps.items():
+        write_partial_map(out / extra_map_file(nu), foot, vals.astype(np.float32), nside=nside, nest=False,
+                          unit="uK_CMB", extra_header={"TELESCOP": TELESCOPE_NAME,
+                                                       "FREQ": (f"{nu:g} GHz", "observing frequency"),
+                                                       "BEAMFWHM": (beam_fwhm_arcmin, "arcmin")})
     options = {"n_tracers": n_tracers, "nside": nside, "ra_min": ra_min, "ra_max": ra_max, "dec_min": dec_min,
                "dec_max": dec_max, "z_min": z_min, "z_max": z_max, "tau_mean": tau_mean, "bias": bias,
                "cell_mpc": cell_mpc, "beam_fwhm_arcmin": beam_fwhm_arcmin, "noise_uk_arcmin": noise_uk_arcmin,
                "aperture_radius_arcmin": aperture_radius_arcmin, "include_cmb": include_cmb,
                "tsz_amplitude_uk": tsz_amplitude_uk, "cosmology": asdict(cosmo)}
+    if extra_noise:
+        options["extra_frequencies_ghz"] = {f"{nu:g}": noise_nu for nu, noise_nu in extra_noise.items()}
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = los.p / v_lin
     truth = MockTruth(
@@ -605,7 +660,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         options=_plain(options), edges_mpc=edges.tolist(), v12_3d_realised_km_s=v3d.tolist(),
         v12_los_realised_km_s=los.p.tolist(), v12_linear_km_s=v_lin.tolist(), z_eff=z_eff,
         aperture_response=response, clipped_cell_fraction=clipped / max(total, 1),
-        files={"catalogue": CATALOGUE_FILE, "map": MAP_FILE}, timings_s={k: round(v, 2) for k, v in timings.items()},
+        files={"catalogue": CATALOGUE_FILE, "map": MAP_FILE,
+               **{f"map_{nu:g}ghz": extra_map_file(nu) for nu in extra_maps}}, timings_s={k: round(v, 2) for k, v in timings.items()},
         position_roundtrip_mpc=roundtrip)
     record = asdict(truth)
     record.update({

@@ -146,6 +146,8 @@ def summary_dict(result) -> dict:
         out["null_rotations_used"] = result.extra["rotations_used"]
     if "covariance_diagnostics" in result.extra:
         out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
+    if "multifrequency" in result.extra:  # several frequency maps: weights, f_tSZ, noise cost
+        out["multifrequency"] = result.extra["multifrequency"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 

@@ -35,8 +35,9 @@ from .fit import AmplitudeFit, fit_amplitude
 from .geometry import comoving_positions
 from .nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
-from .skymap import read_map, read_mask, remove_monopole_dipole
+from .skymap import read_mask, remove_monopole_dipole
 from .joint import fit_velocity_scale
+from .multifreq import combination_markdown, map_provenance, read_input_map
 from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
 from .template import load_power, template_for_run
@@ -234,9 +235,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         cat: Catalogue = load_catalogue(cfg.catalogue)
         progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
     with progress.stage("sky map"):
-        skymap = read_map(cfg.map.path, field=cfg.map.field, unit=cfg.map.unit,
-                          nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
-                          coordsys=cfg.map.coordsys)
+        skymap, combination_info = read_input_map(cfg)  # one map, or the combination of [multifrequency]
         if cfg.map.mask_path is not None:
             mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
                              nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
@@ -255,8 +254,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
                           f"{cfg.map.max_masked_fraction:.0%} masked or outside the map", PairvelWarning, stacklevel=2)
         if usable.sum() < 2:
-            raise InputError(f"map {cfg.map.path}: fewer than 2 tracers have usable apertures "
-                             f"({n_masked} of {len(cat)} masked or outside the map)", path=cfg.map.path)
+            raise InputError(f"map {skymap.path}: fewer than 2 tracers have usable apertures "
+                             f"({n_masked} of {len(cat)} masked or outside the map)", path=skymap.path)
         cat = cat.subset(usable)
         temps_radii = temps_radii[:, usable]
         temps = temps_radii[0]
@@ -380,6 +379,10 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
                              regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress,
                              trend_factor=trend_factor))
+    if combination_info is not None:  # several frequency maps
+        extra["multifrequency"] = combination_info
+        extra["report_sections"] = {**extra.get("report_sections", {}),
+                                    "Several frequency maps": combination_markdown(combination_info)}
     extra.update({"covariance_diagnostics": diag,
                   "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rot_kept],
                   "report_sections": {**extra.get("report_sections", {}),
@@ -390,7 +393,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         "config_file": None if cfg.source is None else str(cfg.source),
         "config_sha256": None if cfg.source is None else file_sha256(cfg.source),
         "catalogue": {"path": cat.path, "sha256": cat.sha256},
-        "map": {"path": str(cfg.map.path), "sha256": file_sha256(cfg.map.path)},
+        "map": map_provenance(cfg),
+        "multifrequency": combination_info,
         "mask": None if cfg.map.mask_path is None else {"path": str(cfg.map.mask_path),
                                                          "sha256": file_sha256(cfg.map.mask_path)},
         "seed": cfg.run.seed,
