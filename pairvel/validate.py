@@ -104,8 +104,11 @@ class ValidationOptions:
     exact_fields : bool, default True
         Evaluate the Gaussian fields exactly at each tracer (non-uniform FFT) instead of at the
         nearest grid node (which smooths them by the cell and lowers the close-pair signal).
-    box_padding : float, default 1.5
-        Side of the periodic field box over the side of the cone's bounding box.
+    box_padding : float, default 2.5
+        Side of the periodic field box over the side of the cone's bounding box.  The field is
+        periodic, so each tracer also feels the images of its neighbours one box away; with 1.5
+        the noiseless amplitude came out 3% low (0.970 +- 0.011 over 200 mocks), with 2.5 it is
+        0.996 +- 0.011 (at 4 times the run time and ~3 GB).
     trend_model : bool, default True
         With ``trend``, multiply the template by the linear-theory signal fraction that survives
         the trend removal (:mod:`pairvel.trendmodel`), as the pipeline does.
@@ -139,7 +142,7 @@ class ValidationOptions:
     z_max: float = 0.4
     cell_mpc: float = 8.0
     exact_fields: bool = True
-    box_padding: float = 1.5
+    box_padding: float = 2.5
     trend_model: bool = True
     diagnostics: bool = True
 
