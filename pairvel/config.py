@@ -25,6 +25,7 @@ __all__ = [
     "config_from_dict",
     "iter_config_keys",
     "MultifrequencyConfig",
+    "PrefilterConfig",
 ]
 
 import dataclasses
@@ -246,6 +247,30 @@ class MultifrequencyConfig:
 
 
 @dataclass(frozen=True)
+class PrefilterConfig:
+    kind: str = _key("none", "harmonic-space filter of the map before the photometry: none, highpass (cosine "
+                             "taper in ell), matched (B_l / (C_l B_l^2 + N_l)) or wiener (the map minus its Wiener "
+                             "estimate of the primary CMB, N_l / (C_l B_l^2 + N_l))",
+                     choices=("none", "highpass", "matched", "wiener"))
+    highpass_ell: float = _key(300.0, "highpass: F_l = 1 from this multipole up", bounds=(2.0, 1e5))
+    highpass_width: float = _key(100.0, "highpass: width of the cosine taper below highpass_ell (F_l = 0 below "
+                                        "highpass_ell - highpass_width)", bounds=(0.0, 1e5))
+    beam_fwhm_arcmin: float | None = _key(None, "Gaussian beam FWHM of the map, arcmin (or beam_path): required by "
+                                                "matched/wiener, shapes the test sources of normalise = injected",
+                                          bounds=(0.0, 600.0))
+    beam_path: Path | None = _key(None, "beam table of the map, two text columns ell (from 0) and B_l")
+    cl_path: Path | None = _key(None, "matched/wiener: CMB C_l table, two text columns ell and C_l in uK^2 before "
+                                      "the beam (default: the lensed CMB spectrum pairvel ships)")
+    noise_uk_arcmin: float | None = _key(None, "matched/wiener: white-noise level of the map, uK arcmin",
+                                         bounds=(1e-6, 1e6))
+    lmax: int | None = _key(None, "largest multipole of the filtering (default 3 nside - 1, at most 16384)",
+                            bounds=(16, 16384))
+    normalise: str = _key("injected", "divide the filtered map by the aperture response to a beam-shaped source: "
+                                      "injected (measured on painted sources), aperture (analytic) or none",
+                          choices=("injected", "aperture", "none"))
+
+
+@dataclass(frozen=True)
 class Config:
     """A whole run configuration; ``source`` is the file it came from (None when built in code)."""
 
@@ -262,6 +287,7 @@ class Config:
     compute: ComputeConfig = field(default_factory=ComputeConfig)
     blinding: BlindingConfig = field(default_factory=BlindingConfig)
     multifrequency: MultifrequencyConfig = field(default_factory=MultifrequencyConfig)
+    prefilter: PrefilterConfig = field(default_factory=PrefilterConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:
@@ -460,6 +486,16 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
     from .multifreq import check_config as _check_multifrequency  # several frequency maps
 
     _check_multifrequency(cfg, bad)
+    pf = cfg.prefilter
+    if pf.kind in ("matched", "wiener"):
+        if pf.noise_uk_arcmin is None:
+            bad("prefilter.noise_uk_arcmin", f"is required for kind = '{pf.kind}'")
+        if pf.beam_fwhm_arcmin is None and pf.beam_path is None:
+            bad("prefilter.beam_fwhm_arcmin", f"or prefilter.beam_path is required for kind = '{pf.kind}'")
+    if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
+        bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
+    if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
+        bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
 
 
 def load_config(path) -> Config:

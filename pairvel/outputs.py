@@ -148,6 +148,8 @@ def summary_dict(result) -> dict:
         out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
     if "multifrequency" in result.extra:  # several frequency maps: weights, f_tSZ, noise cost
         out["multifrequency"] = result.extra["multifrequency"]
+    if "prefilter" in result.extra:  # harmonic-space filter of the map
+        out["prefilter"] = result.extra["prefilter"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -464,6 +466,10 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
             _plot_nulls(result, tmp / "nulls.png")
         _write_theory_outputs(result, tmp)
         _plot_correlation(result, tmp / "correlation.png")
+        if "prefilter_transfer" in result.extra:
+            from .mapfilter import plot_transfer
+
+            plot_transfer(result.extra["prefilter_transfer"], result.extra["prefilter"], tmp / "prefilter.png")
         if "radius_fits" in result.extra:
             from .radii import write_radius_outputs
 

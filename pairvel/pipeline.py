@@ -37,6 +37,7 @@ from .nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_mask, remove_monopole_dipole
 from .joint import fit_velocity_scale
+from .mapfilter import apply_prefilter, prefilter_markdown
 from .multifreq import combination_markdown, map_provenance, read_input_map
 from .radii import aperture_radii, fit_radii, radius_report, radius_scale
 from .subsamples import fit_proxy_bins
@@ -187,7 +188,7 @@ def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps,
     return out
 
 
-def _simulated_sets(skymap, cat, cfg: Config, rng, progress) -> np.ndarray:
+def _simulated_sets(skymap, cat, cfg: Config, rng, progress, prefilter=None) -> np.ndarray:
     """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
     cc = cfg.covariance
     cmb_cl = noise_cl = None
@@ -208,7 +209,8 @@ def _simulated_sets(skymap, cat, cfg: Config, rng, progress) -> np.ndarray:
                                           white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin, noise_cl=noise_cl,
                                           max_masked_fraction=cfg.map.max_masked_fraction,
                                           n_threads=cfg.compute.n_threads,
-                                          progress=progress.counter("simulated maps"))
+                                          progress=progress.counter("simulated maps"),
+                                          transfer=None if prefilter is None else prefilter.transfer / prefilter.response)
     out = np.empty_like(sims)
     for k, t in enumerate(sims):
         ok = np.isfinite(t)
@@ -246,6 +248,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
             skymap, dipole_fit = remove_monopole_dipole(skymap)
             progress.say(f"      removed monopole {dipole_fit[0]:.4g} uK and dipole |d| = "
                          f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
+        skymap, prefilter = apply_prefilter(skymap, cfg.prefilter, radius_arcmin=cfg.aperture.radius_arcmin,
+                                            seed=cfg.run.seed, progress=progress.say)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
         scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # None for fixed angular radii
         temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures", scale)
@@ -310,7 +314,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     sims = np.zeros((0, len(cat)))
     if cc.estimator == "simulations":
         with progress.stage(f"simulated maps: {cc.n_sim} Gaussian skies at nside {skymap.nside}"):
-            sims = _simulated_sets(skymap, cat, cfg, rng, progress)
+            sims = _simulated_sets(skymap, cat, cfg, rng, progress, prefilter)
     # rows: data, null realisations, extra aperture radii, re-trended jackknife sets, simulated maps (last)
     rt0 = 1 + sum(v.shape[0] for v in null_sets.values()) + radius_sets.shape[0]
     stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [radius_sets, retrended, sims])
@@ -379,6 +383,11 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
                              regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress,
                              trend_factor=trend_factor))
+    if prefilter is not None:  # harmonic-space filter of the map
+        extra["prefilter"] = prefilter.info()
+        extra["prefilter_transfer"] = prefilter.transfer
+        extra["report_sections"] = {**extra.get("report_sections", {}),
+                                    "Map pre-filter": prefilter_markdown(extra["prefilter"])}
     if combination_info is not None:  # several frequency maps
         extra["multifrequency"] = combination_info
         extra["report_sections"] = {**extra.get("report_sections", {}),

@@ -102,7 +102,7 @@ def _draw_alm(amp, m0, rng) -> np.ndarray:
 def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: float, n_sim: int, *, seed=None,
                                    cmb_cl=None, beam_fwhm_arcmin: float = 0.0, white_noise_uk_arcmin: float = 0.0,
                                    noise_cl=None, lmax: int | None = None, max_masked_fraction: float = 0.1,
-                                   n_threads: int | None = None, progress=None) -> np.ndarray:
+                                   n_threads: int | None = None, progress=None, transfer=None) -> np.ndarray:
     """Aperture temperatures of ``n_sim`` Gaussian sky realisations at the tracers.
 
     Parameters
@@ -122,7 +122,11 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
     noise_cl : ndarray, uK^2, optional
         Noise power spectrum (not beam-convolved), synthesised with the sky.
     lmax : int, optional
-        Default 3 nside - 1.
+        Default 3 nside - 1 (the length of ``transfer`` minus one when that is given).
+    transfer : ndarray of shape (lmax + 1,), optional
+        Harmonic filter applied to the whole simulated sky, as the data map's pre-filter
+        (:mod:`pairvel.mapfilter`, including its response division); the white noise is then
+        synthesised in harmonic space, N_l = (level in uK rad)^2, so that it is filtered too.
 
     Returns
     -------
@@ -138,12 +142,18 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
     if int(n_sim) < 1:
         raise InputError(f"number of simulated maps must be >= 1; got {n_sim}")
     rng = as_generator(seed)
+    if transfer is not None:
+        transfer = np.asarray(transfer, dtype=float)
+        lmax = transfer.size - 1
     lmax = 3 * nside - 1 if lmax is None else int(lmax)
     pix = aperture_pixels(nside, ra_deg, dec_deg, radius_arcmin)
     geometry = _ring_geometry(nside, pix)
     spec = _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl)
-    harmonic = bool(np.any(spec > 0))
     sigma_pix = white_noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
+    if transfer is not None:
+        spec = (spec + (white_noise_uk_arcmin * math.pi / 10800.0) ** 2) * transfer**2
+        sigma_pix = 0.0
+    harmonic = bool(np.any(spec > 0))
     ell, m = hp.Alm.getlm(lmax)
     amp = np.sqrt(spec[ell])
     m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries in healpy ordering

@@ -129,3 +129,17 @@ def test_ring_synthesis_equals_healpy_alm2map_at_the_pixels():
     full = hp.alm2map(alm, nside, lmax=lmax)
     got = synthesise_pixels(alm, nside, lmax, pix)
     np.testing.assert_allclose(got, full[pix], rtol=0, atol=1e-10 * np.abs(full).max())
+
+
+def test_prefilter_transfer_scales_the_simulated_sky():
+    """With a harmonic filter the whole simulated sky (CMB and white noise) goes through F_l: F_l = 1/2 halves
+    every aperture temperature of the same draws."""
+    from pairvel.mock import load_cmb_cl
+
+    ra, dec = np.array([10.0, 40.0, 200.0]), np.array([-5.0, 20.0, 60.0])
+    kw = dict(cmb_cl=load_cmb_cl()[1], beam_fwhm_arcmin=20.0, white_noise_uk_arcmin=30.0)
+    lmax = 3 * 64 - 1
+    one = simulate_aperture_temperatures(64, ra, dec, 90.0, 3, seed=5, transfer=np.ones(lmax + 1), **kw)
+    half = simulate_aperture_temperatures(64, ra, dec, 90.0, 3, seed=5, transfer=np.full(lmax + 1, 0.5), **kw)
+    np.testing.assert_allclose(half, 0.5 * one, rtol=1e-10)
+    assert np.all(np.isfinite(one)) and np.std(one) > 0
