@@ -292,7 +292,10 @@ def apply_prefilter(skymap, pc, *, radius_arcmin: float, seed=None, progress=Non
         response = analytic
     else:
         response = 1.0
-    if not (math.isfinite(response) and abs(response) > 1e-6):
+    if not math.isfinite(response):
+        raise InputError(f"prefilter: the aperture response could not be measured (no usable {radius_arcmin:g} arcmin "
+                         f"aperture around the test sources at nside {skymap.nside})", key="prefilter.normalise")
+    if abs(response) <= 1e-6:
         raise InputError(f"prefilter: the aperture response of the {pc.kind} filter is {response:g}; the filter removes "
                          f"the scales the {radius_arcmin:g} arcmin aperture measures", key="prefilter.kind")
     if progress is not None:
