@@ -202,24 +202,31 @@ def _power_at(k, cosmo):
     return out
 
 
+def _grid_wavevectors(shape, cell, *, half=False):
+    """Broadcastable kx, ky, kz (1/Mpc) of an FFT grid (kz of a real FFT with ``half``) and k^2 with
+    k^2 = 1 at k = 0 (so divisions by it stay finite)."""
+    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)[:, None, None]
+    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)[None, :, None]
+    kz = 2 * np.pi * (np.fft.rfftfreq if half else np.fft.fftfreq)(shape[2], d=cell)[None, None, :]
+    k2 = kx**2 + ky**2 + kz**2
+    k2[0, 0, 0] = 1.0
+    return kx, ky, kz, k2
+
+
 def _gaussian_fields(shape, cell, cosmo, rng):
     """delta_0(x) and the velocity potential gradient u_0(x) = IFFT[i delta_0(k) k / k^2] (Mpc).
 
     The z = 0 linear velocity is a H0 f(0) u_0; at redshift z it is a H(z) f(z) D(z) u_0.
     """
 
-    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
-    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
-    kz = 2 * np.pi * np.fft.rfftfreq(shape[2], d=cell)
-    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
-    k2[0, 0, 0] = 1.0
+    kx, ky, kz, k2 = _grid_wavevectors(shape, cell, half=True)
     white = np.fft.rfftn(rng.standard_normal(shape))
     amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
     amp[0, 0, 0] = 0.0
     dk = white * amp
     delta = np.fft.irfftn(dk, s=shape, axes=(0, 1, 2)).astype(np.float32)
     u = []
-    for kk in (kx[:, None, None], ky[None, :, None], kz[None, None, :]):
+    for kk in (kx, ky, kz):
         u.append(np.fft.irfftn(1j * dk * kk / k2, s=shape, axes=(0, 1, 2)).astype(np.float32))
     return delta, u
 
@@ -227,10 +234,8 @@ def _gaussian_fields(shape, cell, cosmo, rng):
 def _field_variance(shape, cell, cosmo, *, drop_nyquist: bool) -> float:
     """Variance of the z = 0 grid field delta_0 of :func:`_gaussian_fields` (or, with ``drop_nyquist``,
     of :func:`_gaussian_fields_at`): the mean over the grid's modes of P(k) / cell^3, k = 0 excluded."""
-    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
-    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
-    kz = 2 * np.pi * np.fft.fftfreq(shape[2], d=cell)
-    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
+    *_, k2 = _grid_wavevectors(shape, cell)
+    k2[0, 0, 0] = 0.0
     power = _power_at(np.sqrt(k2), cosmo) / cell**3
     if drop_nyquist:
         for axis, n in enumerate(shape):
@@ -265,11 +270,7 @@ counterpart).  A test checks the sum against a direct evaluation of the Fourier 
     """
     import ducc0
 
-    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)
-    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)
-    kz = 2 * np.pi * np.fft.fftfreq(shape[2], d=cell)
-    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
-    k2[0, 0, 0] = 1.0
+    kx, ky, kz, k2 = _grid_wavevectors(shape, cell)
     dk = np.fft.fftn(rng.standard_normal(shape))
     amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
     amp[0, 0, 0] = 0.0
@@ -284,7 +285,7 @@ counterpart).  A test checks the sum against a direct evaluation of the Fourier 
     del dk
     inv_k2 = 1.0 / k2
     del k2
-    for i, kk in enumerate((kx[:, None, None], ky[None, :, None], kz[None, None, :])):
+    for i, kk in enumerate((kx, ky, kz)):
         np.multiply(grids[0], inv_k2, out=grids[i + 1])
         grids[i + 1] *= 1j * kk
     del inv_k2

@@ -25,7 +25,7 @@ from .constants import T_CMB_K
 from .errors import ConfigError, MapError, PairvelWarning
 from .skymap import SkyMap, read_map
 
-# Planck and Boltzmann constants, exact in the 2019 SI.
+# h and k_B, exact in the 2019 SI.
 _H_J_S = 6.62607015e-34
 _K_J_K = 1.380649e-23
 COMBINATIONS = ("tsz_free", "minimum_variance", "weights")
