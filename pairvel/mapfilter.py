@@ -38,13 +38,12 @@ __all__ = ["PrefilterResult", "filter_transfer", "aperture_window", "aperture_re
 
 import math
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 
+from .constants import ARCMIN_RAD
 from .errors import ConfigError, InputError
 
-ARCMIN_RAD = math.pi / (180.0 * 60.0)
 _MAX_LMAX = 16384
 
 
@@ -192,7 +191,7 @@ def aperture_response(transfer, beam, radius_arcmin: float, nside: int | None = 
     return float(np.sum(weights * transfer) / np.sum(weights))
 
 
-def _full_sky(skymap):
+def _full_sky(skymap) -> np.ndarray:
     """Ring-ordered full-sky float64 array: usable values, the mean of the usable ones elsewhere."""
     import healpy as hp
 
@@ -206,7 +205,7 @@ def _full_sky(skymap):
     if skymap.nest:
         pix = hp.nest2ring(skymap.nside, pix)
     full[pix] = vals[usable]
-    return full, mean
+    return full
 
 
 def _filter_array(full, nside, transfer, n_iter=3):
@@ -301,20 +300,12 @@ def apply_prefilter(skymap, pc, *, radius_arcmin: float, seed=None, progress=Non
     if progress is not None:
         progress(f"      {pc.kind} filter to lmax {lmax}: aperture response {response:.4f} "
                  f"(analytic {analytic:.4f}, normalise = {pc.normalise})")
-    full, _ = _full_sky(skymap)
+    full = _full_sky(skymap)
     filtered = _filter_array(full, skymap.nside, transfer / response)
     del full
     values = _held_values(skymap, filtered)
     out = dataclasses.replace(skymap, values=values)
     return out, PrefilterResult(pc.kind, lmax, transfer, response, pc.normalise, analytic)
-
-
-def check_paths(pc) -> None:
-    """Fail early on unreadable filter files (before the map is read)."""
-    for key in ("beam_path", "cl_path"):
-        p = getattr(pc, key)
-        if p is not None and not Path(p).is_file():
-            raise InputError(f"prefilter.{key} {p}: file not found", path=p)
 
 
 def prefilter_markdown(info: dict) -> str:

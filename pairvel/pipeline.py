@@ -158,7 +158,7 @@ def _trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dic
         return np.ones(nbins)
     tr = trend_transfer(positions, z, edges, cfg.trend.sigma_z, seed=rng, cosmo=cfg.cosmology,
                         wiggles=cfg.theory.wiggles, power=power)
-    factor = np.where(np.isfinite(tr.ratio), tr.ratio, 1.0)
+    factor = tr.factor
     template_info["trend_loss_model"] = {
         "kept_fraction": [round(float(x), 5) for x in factor],
         "kept_fraction_error": [round(float(x), 5) if np.isfinite(x) else None for x in tr.error],

@@ -151,7 +151,7 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
     spec = _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl)
     sigma_pix = white_noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
     if transfer is not None:
-        spec = (spec + (white_noise_uk_arcmin * math.pi / 10800.0) ** 2) * transfer**2
+        spec = (spec + (white_noise_uk_arcmin * ARCMIN_RAD) ** 2) * transfer**2
         sigma_pix = 0.0
     harmonic = bool(np.any(spec > 0))
     ell, m = hp.Alm.getlm(lmax)

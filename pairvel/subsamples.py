@@ -105,10 +105,10 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
         z_eff = float(np.sum(weight * np.nan_to_num(pr.z_eff)) / np.sum(weight))
         v12, _ = template_for_run(theory_cfg, cosmo, edges, pair_counts=pr.pair_counts, z_tracers=redshifts[sel],
                                   z_eff=z_eff, power=power)
+        if template_factor is not None:
+            v12 = v12 * template_factor
         cov = jackknife_covariance(np.where(np.isfinite(pr.p_jk), pr.p_jk, 0.0))
         try:
-            if template_factor is not None:
-                v12 = v12 * template_factor
             fit = fit_amplitude(np.where(ok, pr.p, 0.0), T_CMB_UK * v12 / C_KM_S, cov, n_samples=n_reg,
                                 use=in_fit, likelihood=theory_cfg.likelihood)
         except PairvelError as err:  # too few regions for the bins, singular covariance: report, go on

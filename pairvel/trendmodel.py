@@ -57,6 +57,7 @@ class TrendTransfer:
     Attributes
     ----------
     ratio : ndarray of shape (nbins,)
+        NaN in bins that drew fewer than 2 pairs.
     error : ndarray of shape (nbins,)
         Standard error from the spread of the per-pair terms (pairs drawn independently).
     n_pairs : int
@@ -69,6 +70,11 @@ class TrendTransfer:
     error: np.ndarray
     n_pairs: int
     n_shell: int
+
+    @property
+    def factor(self) -> np.ndarray:
+        """The ratio with 1 in bins that drew fewer than 2 pairs (no prediction: the template is kept)."""
+        return np.where(np.isfinite(self.ratio), self.ratio, 1.0)
 
 
 def _streaming_table(cosmo: Cosmology, wiggles: bool, power):

@@ -387,7 +387,7 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     row = {"n_tracers": int(ra.size), "n_jk": n_jk, "z_eff": z_eff, "bias_eff": bias_eff}
     if opt.trend and opt.trend_model:
         transfer = trend_transfer(pos, z, edges, trend_cfg.sigma_z, seed=rng, wiggles=theory_cfg.wiggles)
-        template = template * np.nan_to_num(transfer.ratio, nan=1.0)
+        template = template * transfer.factor
         row["trend_transfer"] = transfer.ratio
     # "" : the pipeline's jackknife on the measured temperatures; "signal_": same on the noiseless kSZ;
     # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones

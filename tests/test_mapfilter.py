@@ -8,7 +8,8 @@ import pytest
 
 from pairvel.config import PrefilterConfig, config_from_dict
 from pairvel.errors import ConfigError, InputError
-from pairvel.mapfilter import (ARCMIN_RAD, aperture_window, apply_prefilter, filter_transfer,
+from pairvel.constants import ARCMIN_RAD
+from pairvel.mapfilter import (aperture_window, apply_prefilter, filter_transfer,
                                read_beam_table)
 from pairvel.photometry import measure_apertures
 from pairvel.skymap import SkyMap
