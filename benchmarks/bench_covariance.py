@@ -24,12 +24,12 @@ import time
 
 import numpy as np
 
-from pairvel.covariance import kmeans_regions
-from pairvel.estimator import pairwise_momentum
-from pairvel.geometry import comoving_positions
-from pairvel.mock import load_cmb_cl
-from pairvel.nulltests import evaluate_null, shuffled_sets
-from pairvel.simcov import aperture_pixels, simulate_aperture_temperatures
+from pairvel.stats.covariance import kmeans_regions
+from pairvel.pairs.estimator import pairwise_momentum
+from pairvel.pairs.geometry import comoving_positions
+from pairvel.model.cmb import load_cmb_cl
+from pairvel.stats.nulltests import evaluate_null, shuffled_sets
+from pairvel.stats.simcov import aperture_pixels, simulate_aperture_temperatures
 
 
 def catalogue(n, seed=1):

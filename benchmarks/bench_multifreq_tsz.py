@@ -1,6 +1,6 @@
 """Benchmark the thermal-SZ-free combination: tau from the 150 GHz map alone against tsz_free.
 
-A handful of small mocks (``pairvel.mock``) with strong tSZ and maps at 90, 150 and 220 GHz (the
+A handful of small mocks (``pairvel.sims.mock``) with strong tSZ and maps at 90, 150 and 220 GHz (the
 same CMB, kSZ and beam, the tSZ scaled by f(nu)/f(150), independent white noise).  Each mock is
 measured twice through the whole pipeline, once on the 150 GHz map and once on the tsz_free
 combination of the three; the script prints the bias and scatter of tau over the mocks, the mean
@@ -22,10 +22,11 @@ from pathlib import Path
 
 import numpy as np
 
-from pairvel.config import config_from_dict
-from pairvel.errors import PairvelWarning
-from pairvel.mock import CATALOGUE_FILE, MAP_FILE, extra_map_file, make_mock_survey
-from pairvel.multifreq import combination_weights, noise_cost, read_input_map, tsz_spectrum
+from pairvel.input.config import config_from_dict
+from pairvel.core.errors import PairvelWarning
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, extra_map_file, make_mock_survey
+from pairvel.maps.multifreq import combination_weights, noise_cost, read_input_map
+from pairvel.model.sz import tsz_spectrum
 from pairvel.pipeline import run_pipeline
 
 FREQS = (90.0, 150.0, 220.0)

@@ -27,7 +27,7 @@ import tracemalloc
 import numpy as np
 from scipy.spatial import cKDTree
 
-from pairvel.estimator import pairwise_momentum
+from pairvel.pairs.estimator import pairwise_momentum
 
 
 def shell_quarter_sky(n, *, r_in_mpc=1000.0, r_out_mpc=2000.0, seed=1):

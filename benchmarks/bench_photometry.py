@@ -20,8 +20,8 @@ import time
 
 import numpy as np
 
-from pairvel.photometry import measure_apertures
-from pairvel.skymap import SkyMap
+from pairvel.maps.photometry import measure_apertures
+from pairvel.maps.skymap import SkyMap
 
 
 def main(argv=None):

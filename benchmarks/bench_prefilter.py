@@ -21,9 +21,9 @@ import time
 import healpy as hp
 import numpy as np
 
-from pairvel.config import PrefilterConfig
-from pairvel.mapfilter import apply_prefilter
-from pairvel.skymap import SkyMap
+from pairvel.input.config import PrefilterConfig
+from pairvel.maps.prefilter import apply_prefilter
+from pairvel.maps.skymap import SkyMap
 
 
 def main(argv=None):

@@ -1,6 +1,6 @@
 """Command line: ``pairvel run | demo | mock | validate | keys``.
 
-A thin layer over the library.  Every :class:`~pairvel.errors.PairvelError` becomes one line on
+A thin layer over the library.  Every :class:`~pairvel.core.errors.PairvelError` becomes one line on
 stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.
 """
 
@@ -15,8 +15,8 @@ import traceback
 import warnings
 from pathlib import Path
 
-from . import __version__
-from .errors import PairvelError
+from .core.provenance import __version__
+from .core.errors import PairvelError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
 
@@ -94,9 +94,9 @@ def _closing_summary(result, out: Path) -> str:
 
 
 def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
-    from ._progress import Progress
-    from .config import load_config
-    from .outputs import prepare_output_dir, write_outputs
+    from .core.progress import Progress
+    from .input.config import load_config
+    from .report.outputs import prepare_output_dir, write_outputs
     from .pipeline import run_pipeline
 
     cfg = load_config(config_path)
@@ -104,11 +104,11 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
     progress = Progress(10, quiet=args.quiet)
     result = run_pipeline(cfg, progress=progress)
     if demo:
-        from .demo import attach_truth_check
+        from .sims.demo import attach_truth_check
 
         result = attach_truth_check(result)
     if cfg.blinding.enabled:
-        from .blinding import blind_result, default_key_path
+        from .report.blinding import blind_result, default_key_path
 
         key_path = cfg.blinding.key_path or default_key_path(out)
         result, _ = blind_result(result, key_path)
@@ -123,7 +123,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
 
 
 def _cmd_unblind(args) -> int:
-    from .blinding import unblind_folder
+    from .report.blinding import unblind_folder
 
     folder = Path(args.folder).expanduser().resolve()
     out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded")
@@ -132,7 +132,7 @@ def _cmd_unblind(args) -> int:
 
 
 def _cmd_keys(args) -> int:
-    from .config import iter_config_keys
+    from .input.config import iter_config_keys
 
     if args.markdown:
         print("| key | type | default | meaning |\n|---|---|---|---|")
@@ -143,7 +143,7 @@ def _cmd_keys(args) -> int:
 
 
 def _cmd_mock(args) -> int:
-    from .mock import make_mock_survey
+    from .sims.mock import make_mock_survey
 
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
@@ -160,7 +160,7 @@ def _cmd_mock(args) -> int:
 
 
 def _add_validate_parser(sub, common) -> None:
-    from .validate import ValidationOptions
+    from .sims.validate import ValidationOptions
 
     d = ValidationOptions()
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
@@ -210,8 +210,8 @@ def _add_validate_parser(sub, common) -> None:
 
 
 def _cmd_validate(args) -> int:
-    from .outputs import prepare_output_dir
-    from .validate import ValidationOptions, format_summary, run_validation, write_validation
+    from .report.outputs import prepare_output_dir
+    from .sims.validate import ValidationOptions, format_summary, run_validation, write_validation
 
     opt = ValidationOptions(n_mocks=args.n_mocks, seed=args.seed, n_tracers=args.n_tracers, tau_mean=args.tau_mean,
                             noise_uk=args.noise_uk, with_map=args.map, noise_uk_arcmin=args.noise_uk_arcmin,
@@ -248,7 +248,7 @@ def main(argv=None) -> int:
             if args.command == "run":
                 return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), demo=False)
             if args.command == "demo":
-                from .demo import demo_config_path
+                from .sims.demo import demo_config_path
 
                 stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
                 return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", demo=True)

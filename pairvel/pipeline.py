@@ -11,98 +11,40 @@ from __future__ import annotations
 __all__ = ["RunResult", "run_pipeline", "package_versions"]
 
 import datetime as _dt
-import importlib.metadata
 import platform
 import warnings
-from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import __version__
-from ._progress import Progress
-from ._rng import as_generator
-from .catalogue import Catalogue, file_sha256, load_catalogue
-from .config import Config
-from .constants import C_KM_S, T_CMB_UK
-from .covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
+from .core.provenance import __version__
+from .core.progress import Progress
+from .core.rng import as_generator
+from .core.provenance import file_sha256, package_versions
+from .input.catalogue import Catalogue, load_catalogue
+from .input.config import Config
+from .report.result import RunResult
+from .core.constants import C_KM_S, T_CMB_UK
+from .stats.covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
                          kmeans_regions, region_half_sums)
-from .errors import InputError, PairvelWarning
-from .covdiag import covariance_diagnostics, diagnostics_markdown
-from .simcov import simulate_aperture_temperatures, simulation_covariance
-from .distributed import pairwise_momentum_units
-from .estimator import pairwise_momentum
-from .fit import AmplitudeFit, fit_amplitude
-from .geometry import comoving_positions
-from .nulltests import evaluate_null, rotated_sets, shuffled_sets
-from .photometry import measure_apertures, measure_random_apertures
-from .skymap import read_mask, remove_monopole_dipole
-from .joint import fit_velocity_scale
-from .mapfilter import apply_prefilter, prefilter_markdown
-from .multifreq import combination_markdown, map_provenance, read_input_map
-from .radii import aperture_radii, fit_radii, radius_report, radius_scale
-from .subsamples import fit_proxy_bins
-from .template import load_power, template_for_run
-from .trendmodel import trend_transfer
-from .trend import remove_redshift_trend
-
-_DEPENDENCIES = ("numpy", "scipy", "astropy", "healpy", "pandas", "scikit-learn", "numba", "matplotlib")
-
-
-@dataclass(frozen=True)
-class RunResult:
-    """Everything a run measured, with the provenance needed to reproduce it."""
-
-    config: Config
-    edges: np.ndarray
-    p: np.ndarray
-    covariance: np.ndarray
-    p_jk: np.ndarray
-    pair_counts: np.ndarray
-    z_eff_bins: np.ndarray
-    z_eff: float
-    v12_template: np.ndarray
-    in_fit: np.ndarray
-    fit: AmplitudeFit
-    nulls: tuple
-    n_tracers: int
-    selection: dict
-    provenance: dict
-    extra: dict = field(default_factory=dict)
-
-    @property
-    def r_mid(self) -> np.ndarray:
-        return 0.5 * (self.edges[1:] + self.edges[:-1])
-
-    @property
-    def n_jk(self) -> int:
-        """Number of jackknife regions used."""
-        return self.p_jk.shape[0]
-
-    @property
-    def p_err(self) -> np.ndarray:
-        return np.sqrt(np.diag(self.covariance))
-
-    @property
-    def template_uk(self) -> np.ndarray:
-        """Model curve per unit optical depth, uK: T_CMB v12 / c."""
-        return T_CMB_UK * self.v12_template / C_KM_S
-
-    @property
-    def model_uk(self) -> np.ndarray:
-        """Best-fit model curve, uK."""
-        return self.fit.amplitude * self.template_uk
-
-
-def package_versions() -> dict:
-    """Versions of Python, pairvel and its dependencies."""
-    out = {"python": platform.python_version(), "pairvel": __version__}
-    for name in _DEPENDENCIES:
-        try:
-            out[name] = importlib.metadata.version(name)
-        except importlib.metadata.PackageNotFoundError:
-            out[name] = None
-    return out
-
+from .core.errors import InputError, PairvelWarning
+from .stats.covdiag import covariance_diagnostics, diagnostics_markdown
+from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
+from .pairs.distributed import pairwise_momentum_units
+from .pairs.estimator import pairwise_momentum
+from .stats.fit import fit_amplitude
+from .pairs.geometry import comoving_positions
+from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
+from .maps.photometry import measure_apertures, measure_random_apertures
+from .maps.skymap import read_mask, remove_monopole_dipole
+from .stats.joint import fit_velocity_scale
+from .maps.prefilter import apply_prefilter, prefilter_markdown
+from .maps.multifreq import combination_markdown, map_provenance, read_input_map
+from .maps.radii import aperture_radii, radius_scale
+from .stats.radii import fit_radii, radius_report
+from .stats.subsamples import fit_proxy_bins
+from .model.template import load_power, template_for_run
+from .model.trendmodel import trend_transfer
+from .maps.trend import remove_redshift_trend
 
 def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str, scale=None):
     """Aperture temperatures (n_radii, N), primary radius first, and which tracers are usable at every radius."""
@@ -193,7 +135,7 @@ def _simulated_sets(skymap, cat, cfg: Config, rng, progress, prefilter=None) -> 
     cc = cfg.covariance
     cmb_cl = noise_cl = None
     if cc.sim_cmb:
-        from .mock import load_cmb_cl
+        from .model.cmb import load_cmb_cl
 
         cmb_cl = load_cmb_cl()[1]
     if cc.sim_noise_cl_path is not None:
@@ -224,7 +166,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     Parameters
     ----------
     cfg : Config
-        A validated configuration (see :func:`pairvel.config.load_config`).
+        A validated configuration (see :func:`pairvel.input.config.load_config`).
     progress : Progress, optional
         Where stage lines go; silent when None.
     """

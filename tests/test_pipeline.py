@@ -5,8 +5,8 @@ import json
 import numpy as np
 import pytest
 
-from pairvel.config import config_from_dict
-from pairvel.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
+from pairvel.input.config import config_from_dict
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
 from pairvel.pipeline import run_pipeline
 
 TAU = 1.0e-2
@@ -60,9 +60,9 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
     jackknife's (common practice: the two agree to tens of per cent for region resampling)."""
     import warnings
 
-    from pairvel.config import load_config
-    from pairvel.errors import PairvelWarning
-    from pairvel.outputs import write_outputs
+    from pairvel.input.config import load_config
+    from pairvel.core.errors import PairvelWarning
+    from pairvel.report.outputs import write_outputs
     from pairvel.pipeline import run_pipeline
 
     text = (tiny_survey / "run.toml").read_text().replace("n_regions = 12",
@@ -91,8 +91,8 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
 
 def test_too_few_samples_warns():
     """Common practice: a Hartlap factor below 0.8 means too few samples for the bins."""
-    from pairvel.covdiag import covariance_diagnostics
-    from pairvel.errors import PairvelWarning
+    from pairvel.stats.covdiag import covariance_diagnostics
+    from pairvel.core.errors import PairvelWarning
 
     cov = np.diag([1.0, 2.0, 4.0, 8.0])
     with pytest.warns(PairvelWarning, match="'jackknife' comes from 10 samples for 4 bins"):
@@ -106,10 +106,10 @@ def test_jackknife_sample_is_the_whole_chain_without_the_region():
     region k with the trend estimated from them alone (the delete-one definition, computed directly)."""
     from types import SimpleNamespace
 
-    from pairvel.estimator import pairwise_momentum
-    from pairvel.geometry import comoving_positions
+    from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.pairs.geometry import comoving_positions
     from pairvel.pipeline import _retrended_sets
-    from pairvel.trend import remove_redshift_trend
+    from pairvel.maps.trend import remove_redshift_trend
 
     rng = np.random.default_rng(12)
     n, n_jk = 1500, 5

@@ -4,7 +4,7 @@ import json
 
 import numpy as np
 
-from pairvel import theory as th
+from pairvel.model import theory as th
 from pairvel.cli import main
 
 

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from pairvel.config import config_from_dict
+from pairvel.input.config import config_from_dict
 from pairvel.pipeline import run_pipeline
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_data"

@@ -1,0 +1,206 @@
+"""Tracer catalogue: read a table, check every value, apply the redshift and proxy cuts.
+
+Reads FITS and ECSV (astropy), CSV and Parquet (pandas/pyarrow).  The input file is only ever
+read.  Rows with NaN or out-of-range positions or redshifts stop the run with the count and the
+first offending row, unless the config allows dropping them, in which case they are counted in
+the selection report and a warning is issued.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Catalogue", "load_catalogue", "read_table_columns"]
+
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..core.errors import CatalogueError, PairvelWarning
+from ..core.provenance import file_sha256
+
+_SUFFIX_FORMATS = {
+    ".fits": "fits", ".fit": "fits", ".fits.gz": "fits", ".fz": "fits",
+    ".ecsv": "ecsv", ".csv": "csv", ".csv.gz": "csv", ".parquet": "parquet", ".pq": "parquet",
+}
+
+
+@dataclass(frozen=True)
+class Catalogue:
+    """Tracers that passed validation and cuts.
+
+    Attributes
+    ----------
+    ra, dec : ndarray of shape (n,), degrees
+    z : ndarray of shape (n,)
+    proxy : ndarray of shape (n,) or None
+        Mass or luminosity proxy, when the config names its column.
+    weight : ndarray of shape (n,) or None
+        Per-tracer weight, when the config names its column.
+    row : ndarray of shape (n,), int
+        Row of each tracer in the input file (0-based), for tracing results back.
+    path : str
+        The file read.
+    sha256 : str
+        Checksum of the file read.
+    selection : dict
+        Counts at each step: rows read, invalid rows dropped, cut by z, cut by proxy, kept.
+    """
+
+    ra: np.ndarray
+    dec: np.ndarray
+    z: np.ndarray
+    proxy: np.ndarray | None
+    row: np.ndarray
+    path: str
+    sha256: str
+    selection: dict = field(default_factory=dict)
+    weight: np.ndarray | None = None
+
+    def __len__(self) -> int:
+        return self.ra.size
+
+    def subset(self, keep: np.ndarray) -> "Catalogue":
+        """The tracers where boolean ``keep`` is true (same provenance)."""
+        return Catalogue(self.ra[keep], self.dec[keep], self.z[keep],
+                         None if self.proxy is None else self.proxy[keep], self.row[keep],
+                         self.path, self.sha256, dict(self.selection),
+                         None if self.weight is None else self.weight[keep])
+
+
+def _format_of(path: Path, fmt: str) -> str:
+    if fmt != "auto":
+        return fmt
+    name = path.name.lower()
+    for suffix, kind in sorted(_SUFFIX_FORMATS.items(), key=lambda kv: -len(kv[0])):
+        if name.endswith(suffix):
+            return kind
+    raise CatalogueError(
+        f"catalogue {path}: cannot tell the format from the suffix; set catalogue.format to fits, ecsv, csv or parquet",
+        path=path, key="catalogue.format")
+
+
+def read_table_columns(path, columns, *, fmt="auto") -> dict:
+    """Read the named columns of a table file as float64 arrays.
+
+    Parameters
+    ----------
+    path : path-like
+        FITS, ECSV, CSV or Parquet file.
+    columns : dict of str -> str
+        Config key -> column name, e.g. ``{"catalogue.z_column": "Z"}``; the key names the setting
+        in error messages.
+    fmt : {"auto", "fits", "ecsv", "csv", "parquet"}
+
+    Returns
+    -------
+    dict of column name -> ndarray of float64
+    """
+    path = Path(path)
+    kind = _format_of(path, fmt)
+    if not path.is_file():
+        raise CatalogueError(f"catalogue {path}: file not found", path=path)
+    try:
+        if kind in ("fits", "ecsv"):
+            from astropy.table import Table
+
+            table = Table.read(path, format="fits" if kind == "fits" else "ascii.ecsv")
+            available = list(table.colnames)
+            getter = lambda name: table[name]  # noqa: E731
+        else:
+            import pandas as pd
+
+            frame = pd.read_csv(path) if kind == "csv" else pd.read_parquet(path)
+            available = [str(c) for c in frame.columns]
+            getter = lambda name: frame[name].to_numpy()  # noqa: E731
+    except CatalogueError:
+        raise
+    except Exception as err:  # any reader failure is an unreadable input, reported in one line
+        reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        raise CatalogueError(f"catalogue {path}: cannot be read as {kind} ({reason})", path=path) from None
+    out = {}
+    for key, name in columns.items():
+        if name not in available:
+            hint = ", ".join(available[:12]) + (" ..." if len(available) > 12 else "")
+            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) not found; columns are: {hint}",
+                                 path=path, key=key)
+        raw = getter(name)
+        if getattr(raw, "ndim", 1) != 1:
+            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be one number per row",
+                                 path=path, key=key)
+        values = np.ma.filled(np.ma.asarray(raw), np.nan) if np.ma.isMaskedArray(raw) else np.asarray(raw)
+        if values.dtype.kind not in "fiub":
+            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be numeric; got {values.dtype}",
+                                 path=path, key=key)
+        out[name] = values.astype(np.float64)
+    return out
+
+
+def _describe_invalid(name, values, ok) -> str:
+    """'12 rows are not (first: row 41, z=-0.3)' for the rows where ``ok`` is false."""
+    bad = np.flatnonzero(~ok)
+    return f"{bad.size} rows are not (first: row {bad[0]}, {name}={values[bad[0]]:.6g})"
+
+
+def load_catalogue(cfg) -> Catalogue:
+    """Read, validate and cut the catalogue described by a :class:`~pairvel.input.config.CatalogueConfig`.
+
+    Raises
+    ------
+    CatalogueError
+        File missing or unreadable, a column missing or not numeric, or invalid rows while
+        ``drop_invalid_rows`` is false.  The message names the file, the column and the first row.
+    """
+    path = Path(cfg.path)
+    columns = {"catalogue.ra_column": cfg.ra_column, "catalogue.dec_column": cfg.dec_column,
+               "catalogue.z_column": cfg.z_column}
+    if cfg.proxy_column is not None:
+        columns["catalogue.proxy_column"] = cfg.proxy_column
+    if cfg.weight_column is not None:
+        columns["catalogue.weight_column"] = cfg.weight_column
+    data = read_table_columns(path, columns, fmt=cfg.format)
+    ra, dec, z = data[cfg.ra_column], data[cfg.dec_column], data[cfg.z_column]
+    proxy = data[cfg.proxy_column] if cfg.proxy_column is not None else None
+    weight = data[cfg.weight_column] if cfg.weight_column is not None else None
+    n_read = ra.size
+    if n_read == 0:
+        raise CatalogueError(f"catalogue {path}: has no rows", path=path)
+
+    checks = [
+        (cfg.ra_column, ra, np.isfinite(ra) & (ra >= -360.0) & (ra <= 360.0), "finite and within [-360, 360] degrees"),
+        (cfg.dec_column, dec, np.isfinite(dec) & (np.abs(dec) <= 90.0), "finite and within [-90, 90] degrees"),
+        (cfg.z_column, z, np.isfinite(z) & (z > 0.0), "finite and > 0"),
+    ]
+    if proxy is not None:
+        checks.append((cfg.proxy_column, proxy, np.isfinite(proxy), "finite"))
+    if weight is not None:
+        checks.append((cfg.weight_column, weight, np.isfinite(weight) & (weight >= 0), "finite and >= 0"))
+    valid = np.ones(n_read, dtype=bool)
+    for name, values, ok, rule in checks:
+        if not ok.all():
+            message = f"catalogue {path}: column '{name}' must be {rule}; {_describe_invalid(name, values, ok)}"
+            if not cfg.drop_invalid_rows:
+                raise CatalogueError(message + " (set catalogue.drop_invalid_rows = true to drop them)",
+                                     path=path, key=name, row=int(np.flatnonzero(~ok)[0]))
+            warnings.warn(message + "; dropped", PairvelWarning, stacklevel=2)
+            valid &= ok
+    ra = np.mod(ra, 360.0)
+
+    in_z = (z >= cfg.z_min) & (z < cfg.z_max)
+    in_proxy = np.ones(n_read, dtype=bool) if proxy is None else (proxy >= cfg.proxy_min) & (proxy < cfg.proxy_max)
+    keep = valid & in_z & in_proxy
+    selection = {
+        "rows_read": int(n_read),
+        "invalid_dropped": int((~valid).sum()),
+        "outside_z_range": int((valid & ~in_z).sum()),
+        "outside_proxy_range": int((valid & in_z & ~in_proxy).sum()),
+        "kept": int(keep.sum()),
+    }
+    if selection["kept"] < 2:
+        raise CatalogueError(f"catalogue {path}: {selection['kept']} tracers left after cuts {selection}; need at least 2",
+                             path=path)
+    return Catalogue(
+        ra=ra[keep], dec=dec[keep], z=z[keep], proxy=None if proxy is None else proxy[keep],
+        row=np.flatnonzero(keep), path=str(path), sha256=file_sha256(path), selection=selection,
+        weight=None if weight is None else weight[keep],
+    )

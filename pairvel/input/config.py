@@ -1,0 +1,557 @@
+"""Run configuration: one TOML file validated into frozen, typed dataclasses.
+
+Every key is declared once, here, with its type, default and a one-line description (the field
+``metadata["doc"]``); configs/README.md lists them and a test keeps the two in step.  Unknown keys
+and wrong types are errors naming the file and the dotted key.  Relative paths resolve against
+the folder of the config file.  The file is read as data (:mod:`tomllib`); nothing in it runs.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "RunConfig",
+    "CatalogueConfig",
+    "MapConfig",
+    "ApertureConfig",
+    "TrendConfig",
+    "BinsConfig",
+    "CovarianceConfig",
+    "TheoryConfig",
+    "NullConfig",
+    "ComputeConfig",
+    "BlindingConfig",
+    "Config",
+    "load_config",
+    "config_from_dict",
+    "iter_config_keys",
+    "MultifrequencyConfig",
+    "PrefilterConfig",
+]
+
+import dataclasses
+import difflib
+import math
+import tomllib
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..model.cosmology import Cosmology
+from ..model.sz import tsz_spectrum
+from ..core.errors import ConfigError
+
+
+def _key(default, doc, **extra):
+    """A config field with a default and its documentation line."""
+    return field(default=default, metadata={"doc": doc, **extra})
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    name: str = _key("pairvel-run", "label written into every output")
+    seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs")
+
+
+@dataclass(frozen=True)
+class CatalogueConfig:
+    path: Path | None = _key(None, "tracer catalogue: FITS, ECSV, CSV or Parquet table (required)")
+    format: str = _key("auto", "auto (from the file suffix), fits, ecsv, csv or parquet",
+                       choices=("auto", "fits", "ecsv", "csv", "parquet"))
+    ra_column: str = _key("ra", "column with right ascension in degrees")
+    dec_column: str = _key("dec", "column with declination in degrees")
+    z_column: str = _key("z", "column with spectroscopic redshift")
+    proxy_column: str | None = _key(None, "optional column with a mass or luminosity proxy (used by proxy cuts)")
+    weight_column: str | None = _key(None, "optional column of per-tracer weights w >= 0; pairs are weighted by "
+                                           "w_i w_j in the estimator")
+    z_min: float = _key(0.0, "keep tracers with z >= z_min")
+    z_max: float = _key(math.inf, "keep tracers with z < z_max")
+    proxy_min: float = _key(-math.inf, "keep tracers with proxy >= proxy_min (needs proxy_column)")
+    proxy_max: float = _key(math.inf, "keep tracers with proxy < proxy_max (needs proxy_column)")
+    drop_invalid_rows: bool = _key(False, "drop rows with NaN or out-of-range ra/dec/z (counted) instead of stopping")
+
+
+@dataclass(frozen=True)
+class MapConfig:
+    path: Path | None = _key(None, "HEALPix temperature map, FITS, full or partial sky (required)")
+    field: int = _key(0, "which map column (0-based) to read")
+    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
+    ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
+                                choices=(None, "RING", "NESTED"))
+    coordsys: str | None = _key(None, "frame of the map when the header has no COORDSYS: C (equatorial), G (Galactic) "
+                                      "or E (ecliptic); tracer positions are rotated into it",
+                                choices=(None, "C", "G", "E"))
+    mask_path: Path | None = _key(None, "optional HEALPix mask (1 = use, 0 = masked) of the map's nside")
+    remove_dipole: bool = _key(False, "fit and subtract a monopole and dipole over the usable (unmasked) pixels before "
+                                      "photometry")
+    max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",
+                                      bounds=(0.0, 1.0))
+
+
+@dataclass(frozen=True)
+class ApertureConfig:
+    radius_arcmin: float = _key(2.1, "compensated aperture: disc radius theta, annulus theta..sqrt(2) theta",
+                                bounds=(0.05, 60.0))
+    radii_arcmin: tuple[float, ...] | None = _key(None, "more disc radii measured in the same run (e.g. [1.0, 1.5, 2.0, "
+                                                        "2.5, 3.0, 3.5]); tau_mean is fitted per radius, the main "
+                                                        "result stays radius_arcmin; a tracer is kept only when usable at "
+                                                        "every radius", bounds=(0.05, 60.0))
+    radius_kpc: float | None = _key(None, "fixed physical disc radius in kpc, shrinking with each tracer's redshift; "
+                                          "radius_arcmin and radii_arcmin then only set the ratios of the radii",
+                                    bounds=(1.0, 1e5))
+    radius_kpc_kind: str = _key("proper", "radius_kpc is proper or comoving", choices=("proper", "comoving"))
+    pixel_weighting: str = _key("centre", "how pixels count in disc and annulus: centre (whole pixels by their centre), "
+                                "fraction (linear ramp one pixel wide across each edge) or subsample (sub-pixel centres)",
+                                choices=("centre", "fraction", "subsample"))
+    method: str = _key("auto", "photometry path: kernel (compiled, no Python loop over tracers), direct (one disc "
+                       "query per tracer) or auto (kernel unless subsample)", choices=("auto", "kernel", "direct"))
+
+
+@dataclass(frozen=True)
+class TrendConfig:
+    enabled: bool = _key(True, "subtract the Gaussian-kernel redshift trend of the aperture temperatures")
+    sigma_z: float = _key(0.01, "width of the redshift kernel", bounds=(1e-5, 1.0))
+
+
+@dataclass(frozen=True)
+class BinsConfig:
+    r_min_mpc: float = _key(0.0, "lowest comoving separation, Mpc", bounds=(0.0, 1e4))
+    r_max_mpc: float = _key(300.0, "highest comoving separation, Mpc", bounds=(0.0, 1e4))
+    width_mpc: float = _key(20.0, "bin width, Mpc", bounds=(1e-3, 1e4))
+    edges_mpc: tuple[float, ...] | None = _key(None, "explicit increasing bin edges in Mpc (overrides the three above)")
+
+    def edges(self) -> np.ndarray:
+        """The separation bin edges in Mpc, (nbins + 1,)."""
+        if self.edges_mpc is not None:
+            return np.asarray(self.edges_mpc, dtype=float)
+        n = int(round((self.r_max_mpc - self.r_min_mpc) / self.width_mpc))
+        return self.r_min_mpc + self.width_mpc * np.arange(n + 1)
+
+
+@dataclass(frozen=True)
+class CovarianceConfig:
+    regions: str = _key("kmeans", "how the sky is cut into jackknife regions: kmeans or healpix",
+                        choices=("kmeans", "healpix"))
+    n_regions: int = _key(50, "number of k-means sky regions for the delete-one jackknife", bounds=(2, 100000))
+    healpix_nside: int = _key(8, "HEALPix nside of the pixel regions when regions = healpix", bounds=(1, 8192))
+    min_region_tracers: int = _key(20, "pixel regions with fewer tracers merge into the nearest pixel region",
+                                   bounds=(1, 10**9))
+    estimator: str = _key("jackknife", "covariance of the data curve: jackknife (delete one region), bootstrap "
+                                       "(regions drawn with replacement) or simulations (Gaussian sky maps)",
+                          choices=("jackknife", "bootstrap", "simulations"))
+    jackknife_retrend: bool = _key(True, "re-estimate the redshift trend without region k for jackknife sample k "
+                                         "(the whole chain deleted-one; false: trend from all tracers, which "
+                                         "inflates large-separation errors)")
+    n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
+    n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
+    sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")
+    sim_beam_fwhm_arcmin: float = _key(0.0, "Gaussian beam FWHM of the simulated CMB, arcmin (0: none)",
+                                       bounds=(0.0, 600.0))
+    sim_white_noise_uk_arcmin: float = _key(0.0, "white noise of the simulated maps, uK arcmin", bounds=(0.0, 1e6))
+    sim_noise_cl_path: Path | None = _key(None, "optional text table (ell, N_ell in uK^2) of map noise for the "
+                                                "simulations, added after the beam")
+
+
+@dataclass(frozen=True)
+class TheoryConfig:
+    bias: float = _key(1.0, "linear bias of the tracers in the pairwise-velocity template", bounds=(0.01, 20.0))
+    wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
+    fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
+    fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
+    power_table_path: Path | None = _key(None, "linear P(k) table to use instead of Eisenstein & Hu: two text columns "
+                                               "k [1/Mpc], P [Mpc^3], or ECSV with columns k, pk")
+    power_table_z: float = _key(0.0, "redshift of the P(k) table (scaled to other redshifts with D(z))", bounds=(0.0, 20.0))
+    power_table_renormalise: bool = _key(False, "rescale the P(k) table to cosmology.sigma_8 (false: keep its amplitude)")
+    growth_rate: str = _key("exact", "growth rate f(z): exact flat-LCDM value, or linder for Omega_m(z)^0.55",
+                            choices=("exact", "linder"))
+    redshift_weighting: str = _key("pair_distribution", "redshifts the template averages over: pair_distribution "
+                                   "((dN/dz)^2 / (dV/dz) of the catalogue) or effective (one pair-weighted z_eff)",
+                                   choices=("pair_distribution", "effective"))
+    separation_weighting: str = _key("pair_counts", "weighting of r inside each bin: pair_counts (measured) or volume",
+                                     choices=("pair_counts", "volume"))
+    photoz_sigma: float = _key(0.0, "photometric-redshift error sigma_z0 of the tracers, error sigma_z0 (1 + z); "
+                               "0 for spectroscopic redshifts", bounds=(0.0, 0.5))
+    photoz_model: str = _key("convolution", "photo-z damping: convolution (line-of-sight smearing of the pair "
+                             "separation) or exponential (1 - exp(-r^2 / 2 sigma_r^2))",
+                             choices=("convolution", "exponential"))
+    model_trend_loss: bool = _key(True, "with trend.enabled, multiply the template by the linear-theory fraction of "
+                                        "the pairwise signal that survives the redshift-trend removal, computed on "
+                                        "the run's own geometry (false: the plain template, biased low by the loss)")
+    likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
+                           "or sellentin-heavens (marginalised over the jackknife covariance)",
+                           choices=("hartlap", "sellentin-heavens"))
+    proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
+                                                    "with these increasing edges (needs catalogue.proxy_column)")
+    fit_velocity_scale: bool = _key(False, "also fit tau_mean and the velocity amplitude f sigma_8 jointly "
+                                           "(degenerate; see tau_prior_mean)")
+    tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
+    tau_prior_sigma: float | None = _key(None, "width of that prior (set both or neither)", bounds=(1e-12, math.inf))
+
+
+@dataclass(frozen=True)
+class NullConfig:
+    n_random: int = _key(10, "realisations of the null test with apertures at random unmasked sky positions",
+                         bounds=(0, 10000))
+    n_shuffle: int = _key(10, "realisations of the null test with temperatures shuffled among tracers",
+                          bounds=(0, 10000))
+    n_shuffle_z: int = _key(10, "realisations with temperatures shuffled within redshift slices", bounds=(0, 10000))
+    z_slice_width: float = _key(0.02, "width of the redshift slices for the within-slice shuffle", bounds=(1e-4, 1.0))
+    pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
+                                bounds=(0.0, 0.5))
+    rotation_deg: tuple[float, ...] = _key((90.0, 180.0, 270.0), "longitude rotations of the map (degrees) for the "
+                                           "rotated-map null; empty list: no such null")
+    rotation_min_usable: float = _key(0.5, "skip a rotation when fewer tracers than this fraction land on usable sky",
+                                      bounds=(0.0, 1.0))
+
+
+@dataclass(frozen=True)
+class BlindingConfig:
+    enabled: bool = _key(False, "multiply the curve, errors and amplitude by a hidden factor kept in a key file")
+    key_path: Path | None = _key(None, "blinding key JSON (reused when it exists); default: "
+                                       "<output folder>.blinding-key.json beside the output folder")
+
+
+@dataclass(frozen=True)
+class ComputeConfig:
+    n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
+    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
+                                               "the pair pass over; unset: run in this process")
+    n_units: int = _key(16, "spatial work units the pair pass is cut into when a scheduler is used",
+                        bounds=(1, 100000))
+
+
+@dataclass(frozen=True)
+class MultifrequencyConfig:
+    map_paths: tuple[Path, ...] | None = _key(None, "several HEALPix maps (uK_CMB after reading) of one nside combined "
+                                                    "pixel-wise into the temperature input, replacing map.path; "
+                                                    "map.field/unit/ordering/coordsys apply to each, map.mask_path "
+                                                    "to the combination")
+    frequencies_ghz: tuple[float, ...] | None = _key(None, "observing frequency of each map, GHz (required with "
+                                                          "map_paths)", bounds=(1.0, 3000.0))
+    noise_uk_arcmin: tuple[float, ...] | None = _key(None, "white-noise level of each map, uK arcmin (noise_model "
+                                                          "levels)", bounds=(1e-6, 1e6))
+    beam_fwhm_arcmin: tuple[float, ...] | None = _key(None, "beam FWHM of each map, arcmin; unequal beams are refused "
+                                                           "unless allow_beam_mismatch (unset: assumed equal)",
+                                                      bounds=(0.0, 600.0))
+    allow_beam_mismatch: bool = _key(False, "combine maps of different beam_fwhm_arcmin anyway, with a warning (no "
+                                            "reconvolution)")
+    combination: str = _key("tsz_free", "tsz_free (sum w = 1, sum w f_tSZ = 0, least noise), minimum_variance "
+                                        "(sum w = 1, least noise) or weights (the list below)",
+                            choices=("tsz_free", "minimum_variance", "weights"))
+    weights: tuple[float, ...] | None = _key(None, "weight of each map when combination = weights; must sum to 1")
+    noise_model: str = _key("auto", "noise covariance of the maps, diagonal: levels (from noise_uk_arcmin), "
+                                    "pixel_differences (measured from pixel-minus-neighbour-mean differences, less "
+                                    "the CMB and tSZ common to the maps) or auto (levels when noise_uk_arcmin is set)",
+                            choices=("auto", "levels", "pixel_differences"))
+
+
+@dataclass(frozen=True)
+class PrefilterConfig:
+    kind: str = _key("none", "harmonic-space filter of the map before the photometry: none, highpass (cosine "
+                             "taper in ell), matched (B_l / (C_l B_l^2 + N_l)) or wiener (the map minus its Wiener "
+                             "estimate of the primary CMB, N_l / (C_l B_l^2 + N_l))",
+                     choices=("none", "highpass", "matched", "wiener"))
+    highpass_ell: float = _key(300.0, "highpass: F_l = 1 from this multipole up", bounds=(2.0, 1e5))
+    highpass_width: float = _key(100.0, "highpass: width of the cosine taper below highpass_ell (F_l = 0 below "
+                                        "highpass_ell - highpass_width)", bounds=(0.0, 1e5))
+    beam_fwhm_arcmin: float | None = _key(None, "Gaussian beam FWHM of the map, arcmin (or beam_path): required by "
+                                                "matched/wiener, shapes the test sources of normalise = injected",
+                                          bounds=(0.0, 600.0))
+    beam_path: Path | None = _key(None, "beam table of the map, two text columns ell (from 0) and B_l")
+    cl_path: Path | None = _key(None, "matched/wiener: CMB C_l table, two text columns ell and C_l in uK^2 before "
+                                      "the beam (default: the lensed CMB spectrum pairvel ships)")
+    noise_uk_arcmin: float | None = _key(None, "matched/wiener: white-noise level of the map, uK arcmin",
+                                         bounds=(1e-6, 1e6))
+    lmax: int | None = _key(None, "largest multipole of the filtering (default 3 nside - 1, at most 16384)",
+                            bounds=(16, 16384))
+    normalise: str = _key("injected", "divide the filtered map by the aperture response to a beam-shaped source: "
+                                      "injected (measured on painted sources), aperture (analytic) or none",
+                          choices=("injected", "aperture", "none"))
+
+
+@dataclass(frozen=True)
+class Config:
+    """A whole run configuration; ``source`` is the file it came from (None when built in code)."""
+
+    run: RunConfig = field(default_factory=RunConfig)
+    catalogue: CatalogueConfig = field(default_factory=CatalogueConfig)
+    map: MapConfig = field(default_factory=MapConfig)
+    aperture: ApertureConfig = field(default_factory=ApertureConfig)
+    trend: TrendConfig = field(default_factory=TrendConfig)
+    bins: BinsConfig = field(default_factory=BinsConfig)
+    covariance: CovarianceConfig = field(default_factory=CovarianceConfig)
+    theory: TheoryConfig = field(default_factory=TheoryConfig)
+    cosmology: Cosmology = field(default_factory=Cosmology)
+    nulls: NullConfig = field(default_factory=NullConfig)
+    compute: ComputeConfig = field(default_factory=ComputeConfig)
+    blinding: BlindingConfig = field(default_factory=BlindingConfig)
+    multifrequency: MultifrequencyConfig = field(default_factory=MultifrequencyConfig)
+    prefilter: PrefilterConfig = field(default_factory=PrefilterConfig)
+    source: Path | None = None
+
+    def as_dict(self) -> dict:
+        """Plain JSON-able dict of every setting (paths as strings, infinities as strings)."""
+
+        def plain(v):
+            if isinstance(v, Path):
+                return str(v)
+            if isinstance(v, float) and not math.isfinite(v):
+                return str(v)
+            if isinstance(v, tuple):
+                return [plain(x) for x in v]
+            return v
+
+        out = {}
+        for sec in dataclasses.fields(self):
+            if sec.name == "source":
+                continue
+            obj = getattr(self, sec.name)
+            out[sec.name] = {f.name: plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+        return out
+
+
+_COSMOLOGY_DOCS = {
+    "h": "H0 / (100 km/s/Mpc)",
+    "omega_m": "matter density parameter today (flat LCDM)",
+    "omega_b": "baryon density parameter today",
+    "n_s": "scalar spectral index of the primordial power spectrum",
+    "sigma_8": "rms linear density contrast in 8 Mpc/h spheres at z = 0 (normalises P(k))",
+    "t_cmb_k": "CMB temperature in K",
+}
+
+_SECTIONS = {f.name: f for f in dataclasses.fields(Config) if f.name != "source"}
+
+
+def _section_type(name):
+    return typing.get_type_hints(Config)[name]
+
+
+def iter_config_keys():
+    """Yield (dotted key, type text, default, doc) for every documented key, in declaration order."""
+    for sec_name in _SECTIONS:
+        cls = _section_type(sec_name)
+        hints = typing.get_type_hints(cls)
+        for f in dataclasses.fields(cls):
+            doc = f.metadata.get("doc") or _COSMOLOGY_DOCS[f.name]
+            yield f"{sec_name}.{f.name}", _type_text(hints[f.name]), f.default, doc
+
+
+def _type_text(tp) -> str:
+    args = typing.get_args(tp)
+    if typing.get_origin(tp) in (typing.Union, types.UnionType):
+        inner = [a for a in args if a is not type(None)]
+        return _type_text(inner[0]) + " (optional)"
+    if typing.get_origin(tp) is tuple:
+        return f"list of {_type_text(args[0])}"
+    return {Path: "path"}.get(tp, getattr(tp, "__name__", str(tp)))
+
+
+def _coerce(value, tp, where: str, base_dir: Path):
+    """Check ``value`` from TOML against annotation ``tp``; return the typed value."""
+    origin = typing.get_origin(tp)
+    if origin in (typing.Union, types.UnionType):
+        inner = [a for a in typing.get_args(tp) if a is not type(None)][0]
+        return _coerce(value, inner, where, base_dir)
+    if origin is tuple:
+        if not isinstance(value, list) or not value:
+            raise ConfigError(f"{where} must be a non-empty list of numbers; got {value!r}")
+        return tuple(_coerce(v, typing.get_args(tp)[0], where, base_dir) for v in value)
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"{where} must be true or false; got {value!r}")
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{where} must be an integer; got {value!r}")
+        return value
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{where} must be a number; got {value!r}")
+        return float(value)
+    if tp is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"{where} must be a string; got {value!r}")
+        return value
+    if tp is Path:
+        if not isinstance(value, str) or not value:
+            raise ConfigError(f"{where} must be a file path string; got {value!r}")
+        p = Path(value).expanduser()
+        return p if p.is_absolute() else (base_dir / p)
+    raise TypeError(f"unsupported config type {tp!r}")  # a bug in the schema, not user input
+
+
+def _build_section(cls, table, sec_name: str, where_file: str, base_dir: Path):
+    if not isinstance(table, dict):
+        raise ConfigError(f"config {where_file}: [{sec_name}] must be a table; got {table!r}", key=sec_name)
+    hints = typing.get_type_hints(cls)
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    kwargs = {}
+    for key, value in table.items():
+        dotted = f"{sec_name}.{key}"
+        if key not in fields:
+            hint = difflib.get_close_matches(key, list(fields), n=1)
+            extra = f" (did you mean '{sec_name}.{hint[0]}'?)" if hint else ""
+            raise ConfigError(f"config {where_file}: unknown key '{dotted}'{extra}", path=where_file, key=dotted)
+        where = f"config {where_file}: '{dotted}'"
+        try:
+            typed = _coerce(value, hints[key], where, base_dir)
+        except ConfigError as err:
+            raise ConfigError(str(err), path=where_file, key=dotted) from None
+        meta = fields[key].metadata
+        if "choices" in meta and typed not in meta["choices"]:
+            shown = ", ".join(repr(c) for c in meta["choices"] if c is not None)
+            raise ConfigError(f"{where} must be one of {shown}; got {typed!r}", path=where_file, key=dotted)
+        if "bounds" in meta and typed is not None:
+            lo, hi = meta["bounds"]
+            vals = typed if isinstance(typed, tuple) else (typed,)
+            if any(not (lo <= v <= hi) for v in vals):
+                raise ConfigError(f"{where} must lie in [{lo}, {hi}]; got {typed!r}", path=where_file, key=dotted)
+        kwargs[key] = typed
+    try:
+        return cls(**kwargs)
+    except ConfigError as err:  # Cosmology validates itself
+        raise ConfigError(f"config {where_file}: {err}", path=where_file, key=err.key) from None
+
+
+def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
+    """Validate a parsed TOML mapping into a :class:`Config`.
+
+    Parameters
+    ----------
+    data : dict
+        The parsed TOML document.
+    source : Path, optional
+        The file it came from; relative paths resolve against its folder (else the working folder).
+    """
+    where_file = str(source) if source is not None else "<dict>"
+    base_dir = source.parent.resolve() if source is not None else Path.cwd()
+    sections = {}
+    for sec_name, table in data.items():
+        if sec_name not in _SECTIONS:
+            hint = difflib.get_close_matches(sec_name, list(_SECTIONS), n=1)
+            extra = f" (did you mean '[{hint[0]}]'?)" if hint else ""
+            raise ConfigError(f"config {where_file}: unknown section '[{sec_name}]'{extra}", path=where_file, key=sec_name)
+        sections[sec_name] = _build_section(_section_type(sec_name), table, sec_name, where_file, base_dir)
+    cfg = Config(**sections, source=source)
+    _check_consistency(cfg, where_file)
+    return cfg
+
+
+def _check_consistency(cfg: Config, where_file: str) -> None:
+    def bad(key, msg):
+        raise ConfigError(f"config {where_file}: '{key}' {msg}", path=where_file, key=key)
+
+    if cfg.catalogue.path is None:
+        bad("catalogue.path", "is required")
+    if cfg.map.path is None and not cfg.multifrequency.map_paths:
+        bad("map.path", "is required (or multifrequency.map_paths)")
+    if not cfg.catalogue.z_min < cfg.catalogue.z_max:
+        bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
+    if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
+        bad("catalogue.proxy_max", "must exceed catalogue.proxy_min")
+    proxy_cut = math.isfinite(cfg.catalogue.proxy_min) or math.isfinite(cfg.catalogue.proxy_max)
+    if proxy_cut and cfg.catalogue.proxy_column is None:
+        bad("catalogue.proxy_column", "is required when proxy_min or proxy_max is set")
+    b = cfg.bins
+    if b.edges_mpc is not None:
+        e = np.asarray(b.edges_mpc)
+        if e.size < 2 or np.any(np.diff(e) <= 0) or e[0] < 0:
+            bad("bins.edges_mpc", f"must be at least two increasing values >= 0; got {list(b.edges_mpc)}")
+    else:
+        n = (b.r_max_mpc - b.r_min_mpc) / b.width_mpc
+        if n < 1 or abs(n - round(n)) > 1e-9:
+            bad("bins.width_mpc", f"must divide r_max_mpc - r_min_mpc into a whole number (>= 1) of bins; "
+                                  f"got {b.width_mpc} for {b.r_min_mpc}..{b.r_max_mpc}")
+    if not cfg.theory.fit_r_min_mpc < cfg.theory.fit_r_max_mpc:
+        bad("theory.fit_r_max_mpc", "must exceed theory.fit_r_min_mpc")
+    th = cfg.theory
+    if th.proxy_bin_edges is not None:
+        pe = np.asarray(th.proxy_bin_edges)
+        if pe.size < 2 or np.any(np.diff(pe) <= 0) or not np.all(np.isfinite(pe)):
+            bad("theory.proxy_bin_edges", f"must be at least two finite, increasing values; got {list(pe)}")
+        if cfg.catalogue.proxy_column is None:
+            bad("catalogue.proxy_column", "is required when theory.proxy_bin_edges is set")
+    if (th.tau_prior_mean is None) != (th.tau_prior_sigma is None):
+        bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
+    if th.power_table_path is None and (th.power_table_renormalise or th.power_table_z != 0):
+        bad("theory.power_table_path", "is required when power_table_z or power_table_renormalise is set")
+    ap = cfg.aperture
+    if ap.method == "kernel" and ap.pixel_weighting == "subsample":
+        bad("aperture.method", "kernel supports pixel_weighting centre and fraction; use direct or auto for subsample")
+    if ap.radii_arcmin is not None and len(set(ap.radii_arcmin)) != len(ap.radii_arcmin):
+        bad("aperture.radii_arcmin", f"must not repeat a radius; got {list(ap.radii_arcmin)}")
+    if th.tau_prior_mean is not None and not th.fit_velocity_scale:
+        bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
+
+    _check_multifrequency(cfg, bad)
+    pf = cfg.prefilter
+    if pf.kind in ("matched", "wiener"):
+        if pf.noise_uk_arcmin is None:
+            bad("prefilter.noise_uk_arcmin", f"is required for kind = '{pf.kind}'")
+        if pf.beam_fwhm_arcmin is None and pf.beam_path is None:
+            bad("prefilter.beam_fwhm_arcmin", f"or prefilter.beam_path is required for kind = '{pf.kind}'")
+    if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
+        bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
+    if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
+        bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
+
+
+def load_config(path) -> Config:
+    """Read and validate a TOML config file.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing or unreadable, is not valid TOML, has an unknown key or a value of the
+        wrong type or range.  The message names the file and the dotted key.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError(f"config {path}: file not found", path=path) from None
+    except OSError as err:
+        raise ConfigError(f"config {path}: cannot be read ({err.strerror})", path=path) from None
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(f"config {path}: not valid TOML ({err})", path=path) from None
+    return config_from_dict(data, source=path.resolve())
+
+
+def _check_multifrequency(cfg, bad) -> None:
+    """Cross-key checks of ``[multifrequency]``; ``bad(key, message)`` raises the ConfigError."""
+    mf = cfg.multifrequency
+    if not mf.map_paths:
+        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+            if getattr(mf, key) is not None:
+                bad(f"multifrequency.{key}", "is set but multifrequency.map_paths is not")
+        return
+    k = len(mf.map_paths)
+    if cfg.map.path is not None:
+        bad("map.path", "and multifrequency.map_paths are both set; keep one (map_paths replaces map.path)")
+    if mf.frequencies_ghz is None:
+        bad("multifrequency.frequencies_ghz", f"is required with multifrequency.map_paths (one per map, {k})")
+    for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+        val = getattr(mf, key)
+        if val is not None and len(val) != k:
+            bad(f"multifrequency.{key}", f"must have one value per map in multifrequency.map_paths ({k}); "
+                                         f"got {len(val)}")
+    if mf.combination == "tsz_free" and k < 2:
+        bad("multifrequency.map_paths", f"must list at least 2 maps for combination = 'tsz_free'; got {k}")
+    if mf.combination == "weights" and mf.weights is None:
+        bad("multifrequency.weights", "is required when combination = 'weights'")
+    if mf.combination != "weights" and mf.weights is not None:
+        bad("multifrequency.weights", f"is used only with combination = 'weights'; got '{mf.combination}'")
+    if mf.noise_model == "levels" and mf.noise_uk_arcmin is None:
+        bad("multifrequency.noise_uk_arcmin", "is required when noise_model = 'levels'")
+    if mf.combination == "tsz_free":
+        f = tsz_spectrum(mf.frequencies_ghz, t_cmb_k=cfg.cosmology.t_cmb_k)
+        if np.ptp(f) <= 1e-9 * max(1.0, float(np.abs(f).max())):
+            bad("multifrequency.frequencies_ghz", f"must give maps with different tSZ factors for tsz_free (the "
+                                                  f"constraints are singular); got {list(mf.frequencies_ghz)}")
+    if (mf.beam_fwhm_arcmin is not None and np.ptp(mf.beam_fwhm_arcmin) > 1e-6 and not mf.allow_beam_mismatch):
+        bad("multifrequency.beam_fwhm_arcmin", f"must be equal for a pixel-wise combination; got "
+                                               f"{list(mf.beam_fwhm_arcmin)} (set allow_beam_mismatch = true to "
+                                               f"combine anyway, or smooth the maps to one beam first)")

@@ -1,0 +1,92 @@
+"""The flat LCDM cosmology every stage shares: parameters, distances and expansion rate.
+
+Distances and H(z) come from :mod:`astropy.cosmology`, so the theory template, the geometry
+stage and the mocks all use one expansion history.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Cosmology", "DEFAULT_COSMOLOGY"]
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+
+from ..core.constants import T_CMB_K
+from ..core.errors import ConfigError
+
+
+@dataclass(frozen=True)
+class Cosmology:
+    """Flat LCDM parameters.
+
+    Parameters
+    ----------
+    h : float
+        H0 / (100 km/s/Mpc).
+    omega_m, omega_b : float
+        Total matter and baryon density parameters today (Omega_m, Omega_b).
+    n_s : float
+        Scalar spectral index.
+    sigma_8 : float
+        rms of linear density fluctuations in spheres of 8 Mpc/h at z = 0.
+    t_cmb_k : float
+        CMB temperature in K, used for radiation density and the transfer function.
+
+    Notes
+    -----
+    Defaults are close to a recent CMB-based fit (values recalled from memory; see
+    SCIENCE.md).  Massless neutrinos with N_eff = 3.046 enter only through radiation in E(z).
+    """
+
+    h: float = 0.677
+    omega_m: float = 0.310
+    omega_b: float = 0.049
+    n_s: float = 0.965
+    sigma_8: float = 0.810
+    t_cmb_k: float = T_CMB_K
+
+    def __post_init__(self):
+        checks = {
+            "h": 0.2 <= self.h <= 1.5,
+            "omega_m": 0.01 <= self.omega_m <= 1.0,
+            "omega_b": 0.0 <= self.omega_b < self.omega_m,
+            "n_s": 0.5 <= self.n_s <= 1.5,
+            "sigma_8": 0.1 <= self.sigma_8 <= 2.0,
+            "t_cmb_k": 1.0 <= self.t_cmb_k <= 4.0,
+        }
+        for name, ok in checks.items():
+            if not ok:
+                raise ConfigError(
+                    f"cosmology parameter '{name}' is out of range; got {getattr(self, name)!r}",
+                    key=f"cosmology.{name}",
+                )
+
+    @cached_property
+    def astropy(self):
+        """The matching :class:`astropy.cosmology.FlatLambdaCDM` instance."""
+        from astropy.cosmology import FlatLambdaCDM
+
+        return FlatLambdaCDM(
+            H0=100.0 * self.h, Om0=self.omega_m, Ob0=self.omega_b, Tcmb0=self.t_cmb_k, Neff=3.046, m_nu=0.0
+        )
+
+    def comoving_distance_mpc(self, z):
+        """Line-of-sight comoving distance in Mpc at redshift ``z`` (array-like)."""
+        return np.asarray(self.astropy.comoving_distance(np.asarray(z, dtype=float)).value)
+
+    def efunc(self, z):
+        """E(z) = H(z) / H0."""
+        return np.asarray(self.astropy.efunc(np.asarray(z, dtype=float)))
+
+    def hubble_km_s_mpc(self, z):
+        """H(z) in km/s/Mpc."""
+        return 100.0 * self.h * self.efunc(z)
+
+    def omega_m_z(self, z):
+        """Matter density parameter at redshift ``z``."""
+        return np.asarray(self.astropy.Om(np.asarray(z, dtype=float)))
+
+
+DEFAULT_COSMOLOGY = Cosmology()

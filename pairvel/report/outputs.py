@@ -1,0 +1,507 @@
+"""Write a run's tables, figure, summary and report into a new folder, all or nothing.
+
+Files are written into a hidden temporary folder beside the target and renamed into place at the
+end, so a failure leaves no half-written output.  An existing folder is replaced only with
+``force=True`` and only when it carries the marker file of an earlier pairvel output, so nothing
+a user made is ever deleted.
+"""
+
+from __future__ import annotations
+
+__all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir", "write_folder_atomically"]
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from ..core.errors import OutputError
+
+#: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
+OUTPUT_MARKER = ".pairvel-output"
+
+
+def prepare_output_dir(out_dir, *, force: bool = False) -> Path:
+    """Check that ``out_dir`` may be written; return it as an absolute Path (nothing is created)."""
+    out = Path(out_dir).expanduser().resolve()
+    if out.exists():
+        if not force:
+            raise OutputError(f"output folder {out} exists already; choose another --out or pass --force", path=out)
+        if not (out / OUTPUT_MARKER).is_file():
+            raise OutputError(f"output folder {out} exists and is not a pairvel output; --force only replaces "
+                              f"folders that pairvel wrote", path=out)
+    if not out.parent.is_dir():
+        raise OutputError(f"output folder {out}: parent folder {out.parent} does not exist", path=out)
+    return out
+
+
+def _json_default(obj):
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def _finite_or_none(obj):
+    """JSON has no inf/nan: replace them by None, recursively."""
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, dict):
+        return {k: _finite_or_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite_or_none(v) for v in obj]
+    return obj
+
+
+def _blinding(result) -> dict:
+    return result.extra.get("blinding", {"blinded": False})
+
+
+def _blind_tag(result) -> str:
+    return "BLINDED (amplitude scaled by a hidden factor)" if _blinding(result).get("blinded") else "not blinded"
+
+
+def _covariance_method(cc) -> str:
+    if cc.estimator == "simulations":
+        return f"{cc.n_sim} simulated Gaussian sky maps through the same photometry and pair pass"
+    if cc.estimator == "bootstrap":
+        return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
+    return f"delete-one jackknife over {cc.regions} sky regions"
+
+
+def _plot_correlation(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    sig = np.sqrt(np.diag(result.covariance))
+    corr = result.covariance / np.outer(sig, sig)
+    fig, ax = plt.subplots(figsize=(5.2, 4.4), constrained_layout=True)
+    e = result.edges
+    im = ax.pcolormesh(e, e, corr, cmap="RdBu_r", vmin=-1, vmax=1)
+    fig.colorbar(im, ax=ax, label="correlation")
+    ax.set_xlabel("r [Mpc]")
+    ax.set_ylabel("r [Mpc]")
+    ax.set_aspect("equal")
+    ax.set_title(f"{_covariance_method(result.config.covariance)} ({_blind_tag(result).split(' (')[0]})\ncondition number "
+                 f"{np.linalg.cond(result.covariance):.3g}", fontsize=8)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def summary_dict(result) -> dict:
+    """The contents of summary.json: headline numbers, null test, selection and provenance."""
+    fit = result.fit.as_dict()
+    out = {
+        "producer": "pairvel",
+        "run_name": result.config.run.name,
+        "blinded": bool(_blinding(result).get("blinded")),
+        "blinding": _blinding(result),
+        "tau_mean": fit["amplitude"],
+        "tau_mean_error": fit["error"],
+        "snr": fit["snr"],
+        "chi2_null": fit["chi2_null"],
+        "pte_null": fit["pte_null"],
+        "chi2_min": fit["chi2_min"],
+        "pte_min": fit["pte_min"],
+        "dof": fit["dof"],
+        "fit": fit,
+        "z_eff": result.z_eff,
+        "n_tracers": result.n_tracers,
+        "n_pairs": int(result.pair_counts.sum()),
+        "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
+        "covariance": {"method": _covariance_method(result.config.covariance),
+                       "n_regions": result.n_jk,
+                       "precision_correction": "Hartlap, Simon & Schneider 2007"},
+        "template": {"kind": "linear-theory mean pairwise velocity",
+                     "bias": result.config.theory.bias, "z_eff": result.z_eff,
+                     "meaning": "p_model(r) = tau_mean * T_CMB * v12(r) / c"},
+        "null_tests": [n.as_dict() for n in result.nulls],
+        "null_tests_passed": all(n.passed for n in result.nulls),
+        "selection": result.selection,
+        "config": result.config.as_dict(),
+        "provenance": result.provenance,
+    }
+    if "demo_check" in result.extra:
+        out["demo_check"] = result.extra["demo_check"]
+    if "template" in result.extra:
+        out["template"].update(result.extra["template"])
+    out.update(theory_summary(result))
+    if "radius_fits" in result.extra:
+        out["aperture_radii"] = [f.as_dict() for f in result.extra["radius_fits"]]
+    if result.fit.likelihood == "sellentin-heavens":
+        out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
+                                                     "enters only the reported chi2 values)")
+    if "rotations_used" in result.extra:
+        out["null_rotations_used"] = result.extra["rotations_used"]
+    if "covariance_diagnostics" in result.extra:
+        out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
+    if "multifrequency" in result.extra:  # several frequency maps: weights, f_tSZ, noise cost
+        out["multifrequency"] = result.extra["multifrequency"]
+    if "prefilter" in result.extra:  # harmonic-space filter of the map
+        out["prefilter"] = result.extra["prefilter"]
+    return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
+
+
+def conversion(result) -> dict:
+    """How the fitted amplitude, tau_mean and a velocity scale relate, with the numbers of this run."""
+    from ..core.constants import C_KM_S, T_CMB_UK
+
+    uk_per_km_s = T_CMB_UK / C_KM_S
+    tau = float(result.fit.amplitude)
+    v_fit = result.v12_template[result.in_fit]
+    info = result.extra.get("template", {})
+    return {
+        "statement": ("p(r) = tau_mean * T_CMB * v12(r) / c.  The fitted amplitude is tau_mean: the measured curve "
+                      "is tau_mean times the template T_CMB v12_template(r) / c.  Only the product tau_mean * v12 is "
+                      "measured, so a velocity scale different from the template's (e.g. f sigma_8 / "
+                      "f_sigma8_template) rescales tau_mean inversely."),
+        "uK_per_km_s_per_unit_tau": uk_per_km_s,
+        "uK_per_km_s_at_fitted_tau": uk_per_km_s * tau,
+        "km_s_per_uK_at_fitted_tau": (1.0 / (uk_per_km_s * tau)) if tau != 0 else float("inf"),
+        "template_v12_km_s_in_fit_range": [float(v_fit.min()), float(v_fit.max())] if v_fit.size else None,
+        "f_sigma8_template": info.get("f_sigma8_template"),
+        "measured_tau_times_velocity_scale_over_template": tau,
+    }
+
+
+def theory_summary(result) -> dict:
+    """summary.json entries for the conversion, the likelihood, proxy-bin fits and the joint fit."""
+    out = {"conversion": conversion(result), "likelihood": result.fit.likelihood}
+    if result.fit.likelihood == "sellentin-heavens":
+        out["tau_mean_68"] = [result.fit.lower_68, result.fit.upper_68]
+    if "proxy_bins" in result.extra:
+        out["proxy_bins"] = {"proxy_column": result.config.catalogue.proxy_column,
+                             "bins": [b.as_dict() for b in result.extra["proxy_bins"]]}
+    if "velocity_scale_fit" in result.extra:
+        out["velocity_scale_fit"] = result.extra["velocity_scale_fit"].as_dict()
+    return out
+
+
+def _write_theory_outputs(result, folder: Path) -> list:
+    """proxy_bins.ecsv + tau_vs_proxy.png and velocity_scale.png when those fits ran; returns file names."""
+    from astropy.table import Table
+
+    written = []
+    if "proxy_bins" in result.extra:
+        from ..stats.subsamples import plot_proxy_bins
+
+        bins = result.extra["proxy_bins"]
+        rows = [b.as_dict() for b in bins]
+        table = Table()
+        for key in ("proxy_min", "proxy_max", "proxy_median", "n_tracers", "n_pairs", "n_regions", "z_mean"):
+            table[key] = [r[key] for r in rows]
+        for key in ("tau_mean", "tau_mean_error", "snr", "chi2_min", "pte_min"):
+            table[key] = [r.get(key, np.nan) for r in rows]
+        table["problem"] = [r["problem"] or "" for r in rows]
+        table.meta["description"] = (f"tau_mean fitted separately in bins of {result.config.catalogue.proxy_column}; "
+                                     f"likelihood {result.fit.likelihood}")
+        table.write(folder / "proxy_bins.ecsv", format="ascii.ecsv")
+        plot_proxy_bins(bins, folder / "tau_vs_proxy.png", proxy_name=str(result.config.catalogue.proxy_column),
+                        tau_all=result.fit.amplitude, tau_all_error=result.fit.error)
+        written += ["proxy_bins.ecsv", "tau_vs_proxy.png"]
+    if "velocity_scale_fit" in result.extra:
+        from ..stats.joint import plot_velocity_scale
+
+        plot_velocity_scale(result.extra["velocity_scale_fit"], folder / "velocity_scale.png")
+        written.append("velocity_scale.png")
+    return written
+
+
+def _theory_report(result) -> list:
+    """Report lines: template, likelihood, conversion, proxy bins, joint fit."""
+    f = result.fit
+    conv = conversion(result)
+    info = result.extra.get("template", {})
+    lines = ["", "## Template, likelihood and units", ""]
+    if info:
+        lines += [f"- power spectrum: {info.get('power_spectrum')}; growth rate: {info.get('growth_rate')}",
+                  (f"- redshifts: {info.get('redshift_weighting')} (mean pair redshift of the model "
+                   f"{info.get('z_mean_model', float('nan')):.3f}); separations inside bins: "
+                   f"{info.get('separation_weighting')}"),
+                  "- photo-z damping: " + ("none (spectroscopic redshifts)" if not info.get("photoz_model") else
+                                            f"{info['photoz_model']}, sigma_z = {info['photoz_sigma_z0']:g} (1 + z)")]
+        loss = info.get("trend_loss_model")
+        if loss:
+            kept = loss["kept_fraction"]
+            lines.append(f"- redshift-trend removal: the template is multiplied by the linear-theory fraction of the "
+                         f"signal the removal keeps on this catalogue, {kept[0]:.3f} in the first bin to "
+                         f"{kept[-1]:.3f} in the last (Monte Carlo over {loss['pairs_per_bin']} pairs per bin; "
+                         f"column trend_kept of the table)")
+        elif result.config.trend.enabled:
+            lines.append("- redshift-trend removal: its signal loss is not modelled (theory.model_trend_loss = false); "
+                         "tau_mean is biased low by it")
+    if f.likelihood == "sellentin-heavens":
+        lines.append(f"- likelihood: Sellentin & Heavens (2016), {result.n_jk} jackknife regions; 68% interval of "
+                     f"tau_mean [{f.lower_68:.4e}, {f.upper_68:.4e}]")
+    else:
+        lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} "
+                     f"({result.n_jk} jackknife regions)")
+    lines += [f"- conversion: {conv['statement']}",
+              f"- 1 km/s of v12 gives {conv['uK_per_km_s_per_unit_tau']:.4f} uK per unit optical depth, i.e. "
+              f"{conv['uK_per_km_s_at_fitted_tau']:.3e} uK at the fitted tau_mean"
+              + (f"; the template's f sigma_8 is {conv['f_sigma8_template']:.4f}" if conv["f_sigma8_template"] else "")]
+    if "proxy_bins" in result.extra:
+        lines += ["", f"## Fits per bin of {result.config.catalogue.proxy_column}", "",
+                  "| proxy range | median | tracers | pairs | regions | tau_mean | error | S/N | note |",
+                  "|---|---:|---:|---:|---:|---:|---:|---:|---|"]
+        for b in result.extra["proxy_bins"]:
+            fit_txt = (f"{b.fit.amplitude:.4e} | {b.fit.error:.4e} | {b.fit.snr:.2f}" if b.fit is not None
+                       else "- | - | -")
+            lines.append(f"| [{b.proxy_min:g}, {b.proxy_max:g}) | {b.proxy_median:.4g} | {b.n_tracers:,} | "
+                         f"{b.n_pairs:,} | {b.n_regions} | {fit_txt} | {b.problem or ''} |")
+    if "velocity_scale_fit" in result.extra:
+        v = result.extra["velocity_scale_fit"]
+        lines += ["", "## Joint fit of tau_mean and f sigma_8", "",
+                  (f"The data measure A = tau_mean f_sigma8 / {v.s_fid:.4f} = {v.amplitude:.4e} ± "
+                   f"{v.amplitude_error:.4e}; tau_mean and f sigma_8 are degenerate along tau_mean f_sigma8 = const "
+                   "(velocity_scale.png).")]
+        if v.prior is None:
+            lines.append("No prior on tau_mean is set (theory.tau_prior_mean / tau_prior_sigma), so f sigma_8 is "
+                         "not constrained.")
+        else:
+            lines.append(f"With the prior tau_mean = {v.prior[0]:.4e} ± {v.prior[1]:.4e}: f sigma_8 = {v.s_mean:.4f} "
+                         f"± {v.s_std:.4f} (68%: [{v.s_lower_68:.4f}, {v.s_upper_68:.4f}]; flat prior on "
+                         f"[0, {v.s_grid[-1]:.3f}])")
+    return lines
+
+
+def _write_tables(result, folder: Path) -> None:
+    from astropy.io import fits
+    from astropy.table import Table
+
+    nb = result.edges.size - 1
+    table = Table()
+    table["r_min"] = result.edges[:-1]
+    table["r_max"] = result.edges[1:]
+    table["r_mid"] = result.r_mid
+    table["p_uK"] = result.p
+    table["p_err_uK"] = result.p_err
+    table["n_pairs"] = result.pair_counts.astype(np.int64)
+    table["z_pair"] = result.z_eff_bins
+    table["v12_lin_km_s"] = result.v12_template
+    loss = result.extra.get("template", {}).get("trend_loss_model")
+    table["trend_kept"] = np.asarray(loss["kept_fraction"]) if loss else np.ones(nb)
+    table["model_uK"] = result.model_uk
+    table["in_fit"] = result.in_fit
+    for name in ("r_min", "r_max", "r_mid"):
+        table[name].unit = "Mpc"
+    table["p_uK"].unit = table["p_err_uK"].unit = table["model_uK"].unit = "uK"
+    table["v12_lin_km_s"].unit = "km / s"
+    table["v12_lin_km_s"].description = "linear-theory pairwise velocity times trend_kept"
+    table["trend_kept"].description = "predicted fraction of the signal the redshift-trend removal keeps (1: not modelled)"
+    table.meta["description"] = "mean pairwise kSZ momentum (Ferreira et al. 1999 estimator) against comoving separation"
+    table.meta["tau_mean"] = float(result.fit.amplitude)
+    table.meta["tau_mean_error"] = float(result.fit.error)
+    table.meta["blinding"] = _blind_tag(result)
+    table.write(folder / "pairwise.ecsv", format="ascii.ecsv")
+
+    hdr = fits.Header()
+    hdr["BUNIT"] = ("uK2", "covariance of p in uK^2")
+    hdr["NJK"] = (result.n_jk, "jackknife regions")
+    hdr["NBINS"] = nb
+    hdr["BLINDED"] = (bool(_blinding(result).get("blinded")), "values scaled by a hidden blinding factor")
+    hdr["COMMENT"] = f"{_covariance_method(result.config.covariance)}; bins as in pairwise.ecsv"
+    sig = np.sqrt(np.diag(result.covariance))
+    corr = result.covariance / np.outer(sig, sig)
+    hdus = [fits.PrimaryHDU(result.covariance, header=hdr),
+            fits.ImageHDU(corr, name="CORRELATION"),
+            fits.ImageHDU(result.p_jk, name="JACKKNIFE_SAMPLES"),
+            fits.ImageHDU(result.edges, name="EDGES_MPC")]
+    fits.HDUList(hdus).writeto(folder / "covariance.fits")
+
+    for null in result.nulls:
+        nt = Table()
+        nt["r_mid"] = result.r_mid
+        nt["r_mid"].unit = "Mpc"
+        nt["p_mean_uK"] = null.p.mean(axis=0)
+        nt["p_mean_err_uK"] = null.mean_error
+        for k in range(null.n_real):
+            nt[f"p_real{k:03d}_uK"] = null.p[k]
+        nt.meta["description"] = f"null test: {null.description}"
+        nt.meta["blinding"] = _blind_tag(result)
+        nt.meta.update({k: v for k, v in null.as_dict().items() if k != "description"})
+        nt.write(folder / f"null_{null.kind}.ecsv", format="ascii.ecsv")
+
+
+def _plot(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    r = result.r_mid
+    fig, ax = plt.subplots(figsize=(7.0, 4.6), constrained_layout=True)
+    ax.axhline(0.0, color="0.6", lw=0.8)
+    random = [n for n in result.nulls if n.kind == "random_positions"]
+    if random:
+        n = random[0]
+        spread = n.p.std(axis=0, ddof=1) if n.n_real > 1 else np.zeros_like(r)
+        ax.fill_between(r, n.p.mean(axis=0) - spread, n.p.mean(axis=0) + spread,
+                        color="0.85", label=f"null: random positions (mean ± 1σ of {n.n_real})")
+    ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
+                ms=4, capsize=2, label=f"measured ({result.config.covariance.estimator} errors)")
+    if (~result.in_fit).any():
+        ax.errorbar(r[~result.in_fit], result.p[~result.in_fit], yerr=result.p_err[~result.in_fit], fmt="o",
+                    mfc="none", color="C0", ms=4, capsize=2, label="not fitted")
+    f = result.fit
+    ax.plot(r, result.model_uk, color="C3",
+            label=f"linear theory, τ̄ = ({f.amplitude * 1e4:.2f} ± {f.error * 1e4:.2f})×10⁻⁴, S/N = {f.snr:.1f}")
+    for name, curve in result.extra.get("plot_curves", {}).items():
+        ax.plot(r, curve, ls="--", lw=1.2, label=name)
+    ax.set_xlabel("comoving separation r [Mpc]")
+    ax.set_ylabel("mean pairwise kSZ momentum p(r) [μK]")
+    ax.set_title(("BLINDED - " if _blinding(result).get("blinded") else "") +
+                 f"{result.config.run.name}: {result.n_tracers:,} tracers, "
+                 f"θ = {result.config.aperture.radius_arcmin:g}′, z_eff = {result.z_eff:.2f}", fontsize=10)
+    ax.legend(fontsize=8, loc="lower right")
+    fig.savefig(path, dpi=130)
+    plt.close(fig)
+
+
+def _plot_nulls(result, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from scipy import stats
+
+    fig, axes = plt.subplots(2, len(result.nulls), figsize=(4.2 * len(result.nulls), 6.8), sharey="row",
+                             constrained_layout=True, squeeze=False)
+    for ax, n in zip(axes[1], result.nulls):
+        hi = max(float(np.max(n.chi2)), stats.chi2.ppf(0.995, n.dof))
+        ax.hist(n.chi2, bins=np.linspace(0, hi, 16), density=True, color="C2", alpha=0.6,
+                label=f"{n.n_real} realisations")
+        xs = np.linspace(0, hi, 200)
+        ax.plot(xs, stats.chi2.pdf(xs, n.dof), color="k", lw=1, label=f"χ² pdf, {n.dof} dof")
+        ax.set_xlabel("χ² of one realisation against zero")
+        ax.legend(fontsize=7)
+    axes[1][0].set_ylabel("density")
+    for ax, n in zip(axes[0], result.nulls):
+        ax.axhline(0.0, color="0.6", lw=0.8)
+        for k in range(n.n_real):
+            ax.plot(result.r_mid, n.p[k], color="0.8", lw=0.7)
+        ax.errorbar(result.r_mid, n.p.mean(axis=0), yerr=n.mean_error, fmt="o", ms=3, capsize=2, color="C2")
+        ax.set_title(f"{n.kind}: χ² = {n.chi2_mean:.1f}/{n.dof}, PTE = {n.pte_mean:.2f} "
+                     f"({'pass' if n.passed else 'FAIL'})", fontsize=8.5)
+        ax.set_xlabel("comoving separation r [Mpc]")
+    axes[0][0].set_ylabel("null p(r) [μK]: realisations and mean")
+    fig.suptitle(f"null tests ({_blind_tag(result)})", fontsize=9)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def _report(result, summary: dict) -> str:
+    f = result.fit
+    lines = [
+        f"# pairvel report: {result.config.run.name}",
+        "",
+        f"**Blinding: {_blind_tag(result)}.**",
+        "",
+        "## Headline",
+        f"- mean optical depth tau_mean = {f.amplitude:.4e} ± {f.error:.4e} (S/N = {f.snr:.2f})",
+        f"- chi2 against zero: {f.chi2_null:.2f} for {f.n_bins} bins (PTE {f.pte_null:.3g}); "
+        f"best fit: {f.chi2_min:.2f} for {f.dof} dof (PTE {f.pte_min:.3g})",
+        f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
+        "",
+        "## Null tests",
+        "",
+        f"Mean curve of each kind against zero; a kind passes when its PTE exceeds "
+        f"{result.config.nulls.pte_threshold:g}.",
+        "",
+        "| null test | realisations | chi2 (mean curve) | dof | PTE | result | realisations with PTE < 0.05 |",
+        "|---|---:|---:|---:|---:|:---:|---:|",
+    ]
+    for n in result.nulls:
+        lines.append(f"| {n.description} | {n.n_real} | {n.chi2_mean:.2f} | {n.dof} | {n.pte_mean:.3g} | "
+                     f"{'pass' if n.passed else 'FAIL'} | {int(np.sum(n.pte < 0.05))} |")
+    if not result.nulls:
+        lines.append("| (none configured) | | | | | | |")
+    lines += ["", "## Measured curve", "",
+              "| r_min | r_max | p [uK] | error [uK] | pairs | model [uK] | fitted |",
+              "|---:|---:|---:|---:|---:|---:|:---:|"]
+    for k in range(result.edges.size - 1):
+        lines.append(f"| {result.edges[k]:g} | {result.edges[k + 1]:g} | {result.p[k]:+.4f} | {result.p_err[k]:.4f} | "
+                     f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.4f} | {'yes' if result.in_fit[k] else 'no'} |")
+    lines += _theory_report(result)
+    lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
+    for section, body in result.extra.get("report_sections", {}).items():
+        lines += ["", f"## {section}", "", body]
+    prov = result.provenance
+    lines += ["", "## Provenance", "",
+              f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')})",
+              f"- catalogue: {prov['catalogue']['path']} (sha256 {prov['catalogue']['sha256']})",
+              f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
+              f"- seed: {prov['seed']}; started {prov['started_utc']}",
+              "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
+              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
+    return "\n".join(lines)
+
+
+def write_outputs(result, out_dir, *, force: bool = False) -> Path:
+    """Write every output of ``result`` into ``out_dir`` atomically; return the folder.
+
+    Raises
+    ------
+    OutputError
+        The folder exists (without ``force``), is not a pairvel output, or cannot be written.
+    """
+    summary = summary_dict(result)
+
+    def fill(tmp: Path) -> None:
+        _write_tables(result, tmp)
+        _plot(result, tmp / "pairwise.png")
+        if result.nulls:
+            _plot_nulls(result, tmp / "nulls.png")
+        _write_theory_outputs(result, tmp)
+        _plot_correlation(result, tmp / "correlation.png")
+        if "prefilter_transfer" in result.extra:
+            from ..maps.prefilter import plot_transfer
+
+            plot_transfer(result.extra["prefilter_transfer"], result.extra["prefilter"], tmp / "prefilter.png")
+        if "radius_fits" in result.extra:
+            from ..stats.radii import write_radius_outputs
+
+            write_radius_outputs(result.extra["radius_fits"], tmp)
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+        (tmp / "report.md").write_text(_report(result, summary))
+
+    return write_folder_atomically(out_dir, fill, force=force)
+
+
+def write_folder_atomically(out_dir, fill, *, force: bool = False) -> Path:
+    """Call ``fill(tmp_folder)`` on a hidden temporary folder and rename it to ``out_dir``.
+
+    The same all-or-nothing rules as :func:`write_outputs`: an existing folder is replaced only
+    with ``force`` and only when it carries :data:`OUTPUT_MARKER`; on failure nothing is left.
+    """
+    out = prepare_output_dir(out_dir, force=force)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        fill(tmp)
+        (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
+        if out.exists():  # force: only reached for a folder that pairvel wrote
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+            os.rename(out, old / out.name)
+            os.rename(tmp, out)
+            shutil.rmtree(old)
+        else:
+            os.rename(tmp, out)
+    except OSError as err:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"output folder {out}: cannot be written ({err.strerror or err})", path=out) from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
