@@ -1,67 +1,219 @@
 """The only module that knows the order of the stages.
 
-config -> catalogue + sky map -> photometry -> redshift-trend correction -> geometry -> pairs ->
-estimate -> covariance -> fit -> null test.  Each stage is a plain function of plain data; this
-module wires them together and collects a frozen :class:`RunResult` that the output writer turns
+config -> catalogue + sky map -> photometry -> redshift-trend correction -> geometry and regions
+-> null and simulated temperature sets -> one pair pass -> covariance, template, fit -> extra fits.
+:func:`run_pipeline` reads as that list; each stage below is a named function of plain data, and
+the frozen :class:`~pairvel.report.result.RunResult` it returns is what the output writer turns
 into files.
+
+Every temperature set (the data, the null realisations, the extra aperture radii, the jackknife
+sets re-trended without each region, the simulated skies) is a row of one stack that goes through
+a single pair pass; :class:`TemperatureStack` keeps the row bookkeeping in one place.
 """
 
 from __future__ import annotations
 
-__all__ = ["RunResult", "run_pipeline", "package_versions"]
+__all__ = ["run_pipeline", "TemperatureStack"]
 
 import datetime as _dt
 import platform
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 
-from .core.provenance import __version__
+from .core.constants import C_KM_S, T_CMB_UK
+from .core.errors import InputError, PairvelWarning
 from .core.progress import Progress
+from .core.provenance import __version__, file_sha256, package_versions
 from .core.rng import as_generator
-from .core.provenance import file_sha256, package_versions
 from .input.catalogue import Catalogue, load_catalogue
 from .input.config import Config
-from .report.result import RunResult
-from .core.constants import C_KM_S, T_CMB_UK
-from .stats.covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
-                         kmeans_regions, region_half_sums)
-from .core.errors import InputError, PairvelWarning
-from .stats.covdiag import covariance_diagnostics, diagnostics_markdown
-from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
-from .pairs.distributed import pairwise_momentum_units
-from .pairs.estimator import pairwise_momentum
-from .stats.fit import fit_amplitude
-from .pairs.geometry import comoving_positions
-from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
-from .maps.photometry import measure_apertures, measure_random_apertures
-from .maps.skymap import read_mask, remove_monopole_dipole
-from .stats.joint import fit_velocity_scale
-from .maps.prefilter import apply_prefilter, prefilter_markdown
 from .maps.multifreq import combination_markdown, map_provenance, read_input_map
+from .maps.photometry import measure_apertures, measure_random_apertures
+from .maps.prefilter import apply_prefilter, prefilter_markdown
 from .maps.radii import aperture_radii, radius_scale
-from .stats.radii import fit_radii, radius_report
-from .stats.subsamples import fit_proxy_bins
+from .maps.skymap import read_mask, remove_monopole_dipole
+from .maps.trend import remove_redshift_trend
 from .model.template import load_power, template_for_run
 from .model.trendmodel import trend_transfer
-from .maps.trend import remove_redshift_trend
+from .pairs.distributed import pairwise_momentum_units
+from .pairs.estimator import pairwise_momentum
+from .pairs.geometry import comoving_positions
+from .report.result import RunResult
+from .stats.covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
+                               kmeans_regions, region_half_sums)
+from .stats.covdiag import covariance_diagnostics, diagnostics_markdown
+from .stats.fit import fit_amplitude
+from .stats.joint import fit_velocity_scale
+from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
+from .stats.radii import fit_radii, radius_report
+from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
+from .stats.subsamples import fit_proxy_bins
 
-def _measure(skymap, ra, dec, cfg: Config, progress: Progress, label: str, scale=None):
-    """Aperture temperatures (n_radii, N), primary radius first, and which tracers are usable at every radius."""
+
+def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
+    """Run every stage for a validated config and return the result (nothing is written).
+
+    Parameters
+    ----------
+    cfg : Config
+        A validated configuration (see :func:`pairvel.input.config.load_config`).
+    progress : Progress, optional
+        Where stage lines go; silent when None.
+    """
+    progress = progress or Progress(10, quiet=True)
+    rng = as_generator(cfg.run.seed)
+    started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
+    power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
+
+    with progress.stage("catalogue"):
+        cat = read_catalogue(cfg, progress)
+    with progress.stage("sky map"):
+        sky = prepare_map(cfg, progress)
+    with progress.stage(f"aperture photometry at {len(cat)} tracers"):
+        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress)
+    with progress.stage("redshift-trend correction"):
+        temps = correct_trend(cfg, aps.temperatures, cat.z)
+    with progress.stage("geometry and jackknife regions"):
+        positions, regions = geometry_and_regions(cfg, cat, rng, progress)
+        retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg)
+    with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
+        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, rng, progress)
+    with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
+        rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
+    null_sets = {"random_positions": random_sets, **shuffled_null_sets(cfg, temps[0], cat.z, rng),
+                 "rotated": rotated}
+    sims = np.zeros((0, len(cat)))
+    if cfg.covariance.estimator == "simulations":
+        with progress.stage(f"simulated maps: {cfg.covariance.n_sim} Gaussian skies at nside {sky.skymap.nside}"):
+            sims = simulated_sets(cfg, sky, cat, rng, progress)
+    stack = TemperatureStack.build(temps, null_sets, retrended, sims)
+    edges = cfg.bins.edges()
+    with progress.stage(f"pair pass: {len(cat)} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress)
+    with progress.stage("covariance, template and fit"):
+        cov = covariance(cfg, pr, stack, positions, temps[0], edges, regions, cat, rng)
+        model = template(cfg, pr, edges, cat, positions, power, rng, progress)
+        fit = fit_amplitude(cov.p, model.template_uk, cov.matrix, n_samples=cov.n_samples, use=model.in_fit,
+                            likelihood=cfg.theory.likelihood)
+        nulls = evaluate_nulls(cfg, pr, stack, cov)
+        radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
+                                model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
+                                likelihood=cfg.theory.likelihood)
+    extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, cat=cat, positions=positions,
+                          temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+    return RunResult(
+        config=cfg, edges=edges, p=cov.p, covariance=cov.matrix, p_jk=cov.p_jk, pair_counts=pr.pair_counts,
+        z_eff_bins=pr.z_eff, z_eff=model.z_eff, v12_template=model.v12, in_fit=model.in_fit, fit=fit,
+        nulls=tuple(nulls), n_tracers=len(cat), selection=selection_counts(cfg, cat, aps, sky),
+        provenance=provenance(cfg, cat, sky, started), extra=extra,
+    )
+
+
+# ---------------------------------------------------------------------------------------- inputs
+@dataclass(frozen=True)
+class SkyInputs:
+    """The map every later stage measures, and what was done to it on the way."""
+
+    skymap: object
+    combination: dict | None     # several frequency maps combined ([multifrequency]), else None
+    dipole_fit: np.ndarray | None  # monopole and dipole removed (uK), else None
+    prefilter: object | None     # PrefilterResult of [prefilter], else None
+
+
+@dataclass(frozen=True)
+class Apertures:
+    """Aperture temperatures of the usable tracers, before the redshift-trend correction."""
+
+    temperatures: np.ndarray  # (n_radii, N) uK, primary radius first
+    scale: np.ndarray | None  # per-tracer radius factor of a physical radius, else None
+    n_dropped: int            # tracers whose aperture was too masked or off the map
+
+
+def read_catalogue(cfg: Config, progress: Progress) -> Catalogue:
+    cat = load_catalogue(cfg.catalogue)
+    progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
+    return cat
+
+
+def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
+    """Read (or combine) the map, apply the mask, remove monopole and dipole, pre-filter."""
+    skymap, combination = read_input_map(cfg)  # one map, or the combination of [multifrequency]
+    if cfg.map.mask_path is not None:
+        mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
+                         nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
+                         coordsys=skymap.coordsys)
+        skymap = skymap.with_mask(mask)
+    dipole_fit = None
+    if cfg.map.remove_dipole:
+        skymap, dipole_fit = remove_monopole_dipole(skymap)
+        progress.say(f"      removed monopole {dipole_fit[0]:.4g} uK and dipole |d| = "
+                     f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
+    skymap, prefilter = apply_prefilter(skymap, cfg.prefilter, radius_arcmin=cfg.aperture.radius_arcmin,
+                                        seed=cfg.run.seed, progress=progress.say)
+    return SkyInputs(skymap, combination, dipole_fit, prefilter)
+
+
+def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> tuple[Catalogue, Apertures]:
+    """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted."""
     ap = cfg.aperture
-    res = measure_apertures(skymap, ra, dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
-                            progress=progress.counter(label), pixel_weighting=ap.pixel_weighting, method=ap.method,
-                            radius_scale=scale)
-    return res.temperatures, res.usable
+    scale = radius_scale(ap, cat.z, cfg.cosmology)  # None for fixed angular radii
+    res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
+                            progress=progress.counter("apertures"), pixel_weighting=ap.pixel_weighting,
+                            method=ap.method, radius_scale=scale)
+    usable = res.usable
+    n_dropped = int((~usable).sum())
+    if n_dropped:
+        warnings.warn(f"{n_dropped} of {len(cat)} tracers dropped: aperture more than "
+                      f"{cfg.map.max_masked_fraction:.0%} masked or outside the map", PairvelWarning, stacklevel=2)
+    if usable.sum() < 2:
+        raise InputError(f"map {skymap.path}: fewer than 2 tracers have usable apertures "
+                         f"({n_dropped} of {len(cat)} masked or outside the map)", path=skymap.path)
+    return cat.subset(usable), Apertures(res.temperatures[:, usable], None if scale is None else scale[usable],
+                                         n_dropped)
 
 
+def selection_counts(cfg: Config, cat: Catalogue, aps: Apertures, sky: SkyInputs) -> dict:
+    """The catalogue's selection counts with what the map stages dropped or changed."""
+    selection = dict(cat.selection, aperture_masked_dropped=aps.n_dropped, used=len(cat))
+    if sky.dipole_fit is not None:
+        selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in sky.dipole_fit]
+    if aps.scale is not None:
+        theta = cfg.aperture.radius_arcmin * aps.scale
+        selection["aperture_radius_arcmin_range"] = (f"{theta.min():.3g}-{theta.max():.3g} (median "
+                                                     f"{np.median(theta):.3g}) for {cfg.aperture.radius_kpc:g} kpc "
+                                                     f"{cfg.aperture.radius_kpc_kind}")
+    return selection
+
+
+# ------------------------------------------------------------------------ trend and geometry
 def _trend(temps, z, cfg: Config):
     if not cfg.trend.enabled:
         return temps
     return remove_redshift_trend(temps, z, sigma_z=cfg.trend.sigma_z)
 
 
-def _retrended_sets(temps_raw, z, regions, n_jk, cfg: Config) -> np.ndarray:
+def correct_trend(cfg: Config, temps_raw: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Each radius's temperatures (n_radii, N) with the redshift trend removed (unchanged when off)."""
+    return np.array([_trend(t, z, cfg) for t in temps_raw]).reshape(temps_raw.shape)
+
+
+def geometry_and_regions(cfg: Config, cat: Catalogue, rng, progress: Progress) -> tuple[np.ndarray, np.ndarray]:
+    """Comoving positions (N, 3) in Mpc and the jackknife region of each tracer (N,)."""
+    positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
+    cc = cfg.covariance
+    if cc.regions == "healpix":
+        regions = healpix_regions(cat.ra, cat.dec, cc.healpix_nside, min_tracers=cc.min_region_tracers)
+    else:
+        if cc.n_regions > len(cat):
+            raise InputError(f"covariance.n_regions = {cc.n_regions} exceeds the {len(cat)} usable tracers")
+        regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=rng)
+    progress.say(f"      {int(regions.max()) + 1} jackknife regions ({cc.regions})")
+    return positions, regions
+
+
+def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
     """Set r n_jk + k: the temperatures of radius r with the redshift trend estimated from the
     tracers outside region k (region k's own tracers, whose pairs the jackknife sample drops, are
     set to 0).  ``temps_raw`` (n_radii, N).
@@ -71,7 +223,7 @@ def _retrended_sets(temps_raw, z, regions, n_jk, cfg: Config) -> np.ndarray:
     errors of p(r) by up to ~2.8x at 300 Mpc.  Empty (0, N) when the trend correction or this
     option is off.
     """
-    n = z.size
+    n, n_jk = z.size, int(regions.max()) + 1
     if not (cfg.trend.enabled and cfg.covariance.jackknife_retrend):
         return np.zeros((0, n))
     out = np.zeros((temps_raw.shape[0], n_jk, n))
@@ -82,14 +234,205 @@ def _retrended_sets(temps_raw, z, regions, n_jk, cfg: Config) -> np.ndarray:
     return out.reshape(-1, n)
 
 
-def _retrend(sets, z, cfg: Config):
-    """The redshift-trend correction applied again to each shuffled set, as it was to the data:
-    a shuffle mixes tracers of different redshifts, so without it a shuffled set keeps a residual
-    trend the data do not have, and its curve scatters more at large separations."""
-    return np.array([_trend(t, z, cfg) for t in sets]).reshape(sets.shape)
+# ------------------------------------------------------------------ null and simulated sets
+def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, rng, progress: Progress) -> np.ndarray:
+    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data."""
+    n_null = cfg.nulls.n_random
+    sets = []
+    for k in range(n_null):
+        _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
+                                             max_masked_fraction=cfg.map.max_masked_fraction,
+                                             pixel_weighting=cfg.aperture.pixel_weighting,
+                                             method=cfg.aperture.method, radius_scale=scale)
+        sets.append(_trend(t_r[0], cat.z, cfg))
+        progress.say(f"      null set {k + 1}/{n_null}")
+    return np.array(sets).reshape(n_null, len(cat))
 
 
-def _trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:
+def rotated_map_sets(cfg: Config, skymap, cat: Catalogue) -> tuple[np.ndarray, list]:
+    """(n_kept, N) apertures on the map rotated in longitude, trend-corrected, and the rotations kept."""
+    nc = cfg.nulls
+    rot, kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
+                             max_masked_fraction=cfg.map.max_masked_fraction,
+                             min_usable_fraction=nc.rotation_min_usable)
+    return correct_trend(cfg, rot, cat.z), kept
+
+
+def shuffled_null_sets(cfg: Config, temps: np.ndarray, z: np.ndarray, rng) -> dict:
+    """Shuffled temperatures, over all tracers and within redshift slices.
+
+    The redshift-trend correction is applied again to each shuffled set, as it was to the data: a
+    shuffle mixes tracers of different redshifts, so without it a shuffled set keeps a residual
+    trend the data do not have, and its curve scatters more at large separations.
+    """
+    nc = cfg.nulls
+    shuffled = shuffled_sets(temps, z, nc.n_shuffle, rng=rng)
+    in_z = shuffled_sets(temps, z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)
+    return {"shuffled": correct_trend(cfg, shuffled, z), "shuffled_in_z": correct_trend(cfg, in_z, z)}
+
+
+def _noise_cl(path) -> np.ndarray | None:
+    """N_ell from an (ell, N_ell) text table, zero at multipoles it does not list."""
+    if path is None:
+        return None
+    try:
+        table = np.loadtxt(path, comments="#", ndmin=2)
+    except (OSError, ValueError) as err:
+        raise InputError(f"covariance.sim_noise_cl_path {path}: cannot be read as an (ell, N_ell) "
+                         f"table ({err})", path=path) from None
+    noise_cl = np.zeros(int(table[:, 0].max()) + 1)
+    noise_cl[table[:, 0].astype(int)] = table[:, 1]
+    return noise_cl
+
+
+def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: Progress) -> np.ndarray:
+    """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
+    cc = cfg.covariance
+    cmb_cl = None
+    if cc.sim_cmb:
+        from .model.cmb import load_cmb_cl
+
+        cmb_cl = load_cmb_cl()[1]
+    pf = sky.prefilter
+    sims = simulate_aperture_temperatures(sky.skymap.nside, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
+                                          seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
+                                          white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin,
+                                          noise_cl=_noise_cl(cc.sim_noise_cl_path),
+                                          max_masked_fraction=cfg.map.max_masked_fraction,
+                                          n_threads=cfg.compute.n_threads,
+                                          progress=progress.counter("simulated maps"),
+                                          transfer=None if pf is None else pf.transfer / pf.response)
+    out = np.empty_like(sims)
+    for k, t in enumerate(sims):
+        ok = np.isfinite(t)
+        out[k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
+    return out
+
+
+# ------------------------------------------------------------------------------ the pair pass
+@dataclass(frozen=True)
+class TemperatureStack:
+    """Every temperature set of a run as rows of one (n_sets, N) array, in this order: the data
+    (primary radius), the null realisations of each kind, the extra aperture radii, the jackknife
+    sets re-trended without each region (radius by radius), the simulated skies."""
+
+    values: np.ndarray
+    null_rows: dict     # kind -> slice of rows
+    radius_rows: list   # the primary radius (row 0), then each extra radius
+    retrend_start: int  # first re-trended jackknife row
+    n_retrend: int
+    sim_rows: slice
+
+    @classmethod
+    def build(cls, temps, null_sets: dict, retrended, sims) -> "TemperatureStack":
+        rows, null_rows = 1, {}
+        for kind, sets in null_sets.items():
+            null_rows[kind] = slice(rows, rows + sets.shape[0])
+            rows += sets.shape[0]
+        radius_rows = [0] + list(range(rows, rows + temps.shape[0] - 1))
+        rows += temps.shape[0] - 1
+        values = np.vstack([temps[:1]] + list(null_sets.values()) + [temps[1:], retrended, sims])
+        return cls(values, null_rows, radius_rows, rows, retrended.shape[0],
+                   slice(values.shape[0] - sims.shape[0], values.shape[0]))
+
+    @property
+    def n_sets(self) -> int:
+        return self.values.shape[0]
+
+
+def pair_pass(cfg: Config, positions, values, edges, regions, cat: Catalogue, progress: Progress):
+    """One pass over every pair for every temperature set, locally or on a Dask scheduler."""
+    if cfg.compute.scheduler_address:
+        pr = pairwise_momentum_units(positions, values, edges, regions=regions, redshifts=cat.z,
+                                     weights=cat.weight, n_units=cfg.compute.n_units,
+                                     scheduler=cfg.compute.scheduler_address, n_threads=cfg.compute.n_threads)
+    else:
+        pr = pairwise_momentum(positions, values, edges, regions=regions, redshifts=cat.z,
+                               weights=cat.weight, n_threads=cfg.compute.n_threads)
+    progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
+    return pr
+
+
+# ------------------------------------------------------------------ covariance, template, fit
+@dataclass(frozen=True)
+class CovarianceResult:
+    """The data curve, its jackknife samples and the covariance the fit uses."""
+
+    p: np.ndarray          # (n_bins,) uK, the data curve
+    p_jk: np.ndarray       # (n_jk, n_bins) the data's jackknife samples
+    jk_rows: np.ndarray    # (n_sets, n_jk, n_bins) every set's jackknife samples (re-trended where run)
+    jackknife: np.ndarray  # jackknife covariance
+    matrix: np.ndarray     # the covariance used (jackknife, simulations or bootstrap)
+    n_samples: int         # samples behind it, for the Hartlap factor
+    n_jk: int
+    diagnostics: dict
+    from_simulations: bool
+
+
+def _jackknife_rows(pr, stack: TemperatureStack, n_jk: int) -> np.ndarray:
+    """Each set's jackknife samples; where re-trended sets were run, sample k of radius r is the set
+    re-trended without region k, minus the pairs touching k."""
+    if not stack.n_retrend:
+        return pr.p_jk
+    rows = pr.p_jk.copy()
+    k = np.arange(n_jk)
+    for r, row_r in enumerate(stack.radius_rows):
+        rows[row_r] = pr.p_jk[stack.retrend_start + r * n_jk + k, k]
+    return rows
+
+
+def covariance(cfg: Config, pr, stack: TemperatureStack, positions, temps, edges, regions, cat: Catalogue,
+               rng) -> CovarianceResult:
+    """Jackknife covariance, or the simulated-sky or region-bootstrap one when configured."""
+    cc = cfg.covariance
+    n_jk = int(regions.max()) + 1
+    jk_rows = _jackknife_rows(pr, stack, n_jk)
+    p, p_jk = pr.p[0], jk_rows[0]
+    valid = np.all(np.isfinite(p_jk), axis=0) & np.isfinite(p)
+    if not valid.all():
+        raise InputError(f"separation bins {np.flatnonzero(~valid).tolist()} have no pairs in some jackknife "
+                         f"sample; widen bins.width_mpc or reduce covariance.n_regions")
+    cov_jk = jackknife_covariance(p_jk)
+    cov, n_cov = cov_jk, n_jk
+    n_sims = stack.sim_rows.stop - stack.sim_rows.start
+    if n_sims:
+        cov, n_cov = simulation_covariance(pr.p[stack.sim_rows]), n_sims
+    if cc.estimator == "bootstrap":
+        num_k, den_k = region_half_sums(positions, temps, edges, regions, weights=cat.weight,
+                                        n_threads=cfg.compute.n_threads)
+        cov = bootstrap_covariance(bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng))
+    covs = {"jackknife": cov_jk, cc.estimator: cov}
+    diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
+                                  used=cc.estimator)
+    return CovarianceResult(p, p_jk, jk_rows, cov_jk, cov, n_cov, n_jk, diag, bool(n_sims))
+
+
+@dataclass(frozen=True)
+class TemplateResult:
+    """The model curve the amplitude is fitted against."""
+
+    v12: np.ndarray           # (n_bins,) km/s, bin- and pair-averaged, times the trend-loss factor
+    template_uk: np.ndarray   # T_CMB v12 / c, uK per unit optical depth
+    in_fit: np.ndarray        # (n_bins,) bool, bins inside the fit range
+    z_eff: float
+    trend_factor: np.ndarray  # (n_bins,) signal fraction kept by the trend removal (1 when not modelled)
+    info: dict
+
+
+def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, progress: Progress) -> TemplateResult:
+    """The linear template averaged like the estimator, times the predicted trend-removal loss."""
+    r_mid = 0.5 * (edges[1:] + edges[:-1])
+    in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+    weight = pr.denominator * in_fit
+    z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
+    v12, info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
+                                 z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
+    factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress)
+    v12 = v12 * factor
+    return TemplateResult(v12, T_CMB_UK * v12 / C_KM_S, in_fit, z_eff, factor, info)
+
+
+def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:
     """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled).
 
     Records the fraction, its Monte Carlo error and the draws in ``template_info``.
@@ -112,8 +455,39 @@ def _trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dic
     return factor
 
 
-def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps, regions, edges, in_fit, power,
-                progress, trend_factor=None) -> dict:
+def evaluate_nulls(cfg: Config, pr, stack: TemperatureStack, cov: CovarianceResult) -> list:
+    """chi2 and PTE of each kind of null test that has realisations."""
+    nc = cfg.nulls
+    against = {"covariance": cov.matrix, "n_samples": cov.n_samples} if cov.from_simulations else {}
+    return [evaluate_null(kind, pr.p[rows], pr.p_jk[rows], cov.n_jk, threshold=nc.pte_threshold, **against)
+            for kind, rows in stack.null_rows.items() if rows.stop > rows.start]
+
+
+# ---------------------------------------------------------------------------- what else is kept
+def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult, radius_fits, sky: SkyInputs,
+                  rotations, **data) -> dict:
+    """Everything beyond the main curve and fit: optional fits, map-stage records, report sections."""
+    extra, sections = {"template": model.info}, {}
+    if len(radius_fits) > 1:
+        extra["radius_fits"] = radius_fits
+        sections["Signal against aperture radius"] = radius_report(radius_fits)
+    extra.update(extra_fits(cfg, fit, model, cov.n_samples, **data))
+    if sky.prefilter is not None:  # harmonic-space filter of the map
+        extra["prefilter"] = sky.prefilter.info()
+        extra["prefilter_transfer"] = sky.prefilter.transfer
+        sections["Map pre-filter"] = prefilter_markdown(extra["prefilter"])
+    if sky.combination is not None:  # several frequency maps
+        extra["multifrequency"] = sky.combination
+        sections["Several frequency maps"] = combination_markdown(sky.combination)
+    sections["Covariance diagnostics"] = diagnostics_markdown(cov.diagnostics, data["edges"])
+    extra.update({"covariance_diagnostics": cov.diagnostics,
+                  "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rotations],
+                  "report_sections": sections})
+    return extra
+
+
+def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, positions, temps, regions, edges,
+               power, progress) -> dict:
     """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
     out = {}
     th = cfg.theory
@@ -121,239 +495,28 @@ def _extra_fits(cfg: Config, fit, template_info, n_jk, *, cat, positions, temps,
         progress.say(f"      fits in {len(th.proxy_bin_edges) - 1} bins of {cfg.catalogue.proxy_column}")
         out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
                                            temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
-                                           in_fit=in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
-                                           n_threads=cfg.compute.n_threads, template_factor=trend_factor)
+                                           in_fit=model.in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
+                                           n_threads=cfg.compute.n_threads, template_factor=model.trend_factor)
     if th.fit_velocity_scale:
         prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
-        out["velocity_scale_fit"] = fit_velocity_scale(fit, template_info["f_sigma8_template"], n_samples=n_jk,
+        out["velocity_scale_fit"] = fit_velocity_scale(fit, model.info["f_sigma8_template"], n_samples=n_samples,
                                                        tau_prior=prior)
     return out
 
 
-def _simulated_sets(skymap, cat, cfg: Config, rng, progress, prefilter=None) -> np.ndarray:
-    """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
-    cc = cfg.covariance
-    cmb_cl = noise_cl = None
-    if cc.sim_cmb:
-        from .model.cmb import load_cmb_cl
-
-        cmb_cl = load_cmb_cl()[1]
-    if cc.sim_noise_cl_path is not None:
-        try:
-            table = np.loadtxt(cc.sim_noise_cl_path, comments="#", ndmin=2)
-        except (OSError, ValueError) as err:
-            raise InputError(f"covariance.sim_noise_cl_path {cc.sim_noise_cl_path}: cannot be read as an (ell, N_ell) "
-                             f"table ({err})", path=cc.sim_noise_cl_path) from None
-        noise_cl = np.zeros(int(table[:, 0].max()) + 1)
-        noise_cl[table[:, 0].astype(int)] = table[:, 1]
-    sims = simulate_aperture_temperatures(skymap.nside, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
-                                          seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
-                                          white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin, noise_cl=noise_cl,
-                                          max_masked_fraction=cfg.map.max_masked_fraction,
-                                          n_threads=cfg.compute.n_threads,
-                                          progress=progress.counter("simulated maps"),
-                                          transfer=None if prefilter is None else prefilter.transfer / prefilter.response)
-    out = np.empty_like(sims)
-    for k, t in enumerate(sims):
-        ok = np.isfinite(t)
-        out[k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
-    return out
-
-
-def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
-    """Run every stage for a validated config and return the result (nothing is written).
-
-    Parameters
-    ----------
-    cfg : Config
-        A validated configuration (see :func:`pairvel.input.config.load_config`).
-    progress : Progress, optional
-        Where stage lines go; silent when None.
-    """
-    progress = progress or Progress(10, quiet=True)
-    rng = as_generator(cfg.run.seed)
-    started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
-
-    power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
-    with progress.stage("catalogue"):
-        cat: Catalogue = load_catalogue(cfg.catalogue)
-        progress.say(f"      {len(cat)} tracers kept of {cat.selection['rows_read']} read")
-    with progress.stage("sky map"):
-        skymap, combination_info = read_input_map(cfg)  # one map, or the combination of [multifrequency]
-        if cfg.map.mask_path is not None:
-            mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
-                             nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
-                             coordsys=skymap.coordsys)
-            skymap = skymap.with_mask(mask)
-        dipole_fit = None
-        if cfg.map.remove_dipole:
-            skymap, dipole_fit = remove_monopole_dipole(skymap)
-            progress.say(f"      removed monopole {dipole_fit[0]:.4g} uK and dipole |d| = "
-                         f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
-        skymap, prefilter = apply_prefilter(skymap, cfg.prefilter, radius_arcmin=cfg.aperture.radius_arcmin,
-                                            seed=cfg.run.seed, progress=progress.say)
-    with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # None for fixed angular radii
-        temps_radii, usable = _measure(skymap, cat.ra, cat.dec, cfg, progress, "apertures", scale)
-        n_masked = int((~usable).sum())
-        if n_masked:
-            warnings.warn(f"{n_masked} of {len(cat)} tracers dropped: aperture more than "
-                          f"{cfg.map.max_masked_fraction:.0%} masked or outside the map", PairvelWarning, stacklevel=2)
-        if usable.sum() < 2:
-            raise InputError(f"map {skymap.path}: fewer than 2 tracers have usable apertures "
-                             f"({n_masked} of {len(cat)} masked or outside the map)", path=skymap.path)
-        cat = cat.subset(usable)
-        temps_radii = temps_radii[:, usable]
-        temps = temps_radii[0]
-        scale = None if scale is None else scale[usable]
-    selection = dict(cat.selection, aperture_masked_dropped=n_masked, used=len(cat))
-    if dipole_fit is not None:
-        selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in dipole_fit]
-    if scale is not None:
-        theta = cfg.aperture.radius_arcmin * scale
-        selection["aperture_radius_arcmin_range"] = (f"{theta.min():.3g}-{theta.max():.3g} (median {np.median(theta):.3g}) "
-                                                     f"for {cfg.aperture.radius_kpc:g} kpc {cfg.aperture.radius_kpc_kind}")
-
-    with progress.stage("redshift-trend correction"):
-        temps_raw = temps_radii          # (n_radii, N), before the trend correction
-        temps = _trend(temps, cat.z, cfg)
-        radius_sets = np.array([_trend(t, cat.z, cfg) for t in temps_radii[1:]]).reshape(-1, len(cat))
-    with progress.stage("geometry and jackknife regions"):
-        positions = comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology)
-        cc = cfg.covariance
-        if cc.regions == "healpix":
-            regions = healpix_regions(cat.ra, cat.dec, cc.healpix_nside, min_tracers=cc.min_region_tracers)
-        else:
-            if cc.n_regions > len(cat):
-                raise InputError(f"covariance.n_regions = {cc.n_regions} exceeds the {len(cat)} usable tracers")
-            regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=rng)
-        n_jk = int(regions.max()) + 1
-        progress.say(f"      {n_jk} jackknife regions ({cc.regions})")
-        retrended = _retrended_sets(temps_raw, cat.z, regions, n_jk, cfg)
-
-    n_null = cfg.nulls.n_random
-    with progress.stage(f"null-test photometry: {n_null} sets of random sky positions"):
-        null_sets = []
-        for k in range(n_null):
-            _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
-                                                 max_masked_fraction=cfg.map.max_masked_fraction,
-                                                 pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method,
-                                                 radius_scale=scale)
-            null_sets.append(_trend(t_r[0], cat.z, cfg))
-            progress.say(f"      null set {k + 1}/{n_null}")
-
-    nc = cfg.nulls
-    with progress.stage(f"null-test photometry: map rotated by {len(nc.rotation_deg)} longitude angles"):
-        rot, rot_kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
-                                     max_masked_fraction=cfg.map.max_masked_fraction,
-                                     min_usable_fraction=nc.rotation_min_usable)
-        rot = np.array([_trend(t, cat.z, cfg) for t in rot]).reshape(rot.shape)
-    null_sets = {"random_positions": np.array(null_sets).reshape(n_null, len(cat)),
-                 "shuffled": _retrend(shuffled_sets(temps, cat.z, nc.n_shuffle, rng=rng), cat.z, cfg),
-                 "shuffled_in_z": _retrend(shuffled_sets(temps, cat.z, nc.n_shuffle_z, rng=rng,
-                                                         z_slice_width=nc.z_slice_width), cat.z, cfg),
-                 "rotated": rot}
-    sims = np.zeros((0, len(cat)))
-    if cc.estimator == "simulations":
-        with progress.stage(f"simulated maps: {cc.n_sim} Gaussian skies at nside {skymap.nside}"):
-            sims = _simulated_sets(skymap, cat, cfg, rng, progress, prefilter)
-    # rows: data, null realisations, extra aperture radii, re-trended jackknife sets, simulated maps (last)
-    rt0 = 1 + sum(v.shape[0] for v in null_sets.values()) + radius_sets.shape[0]
-    stacked = np.vstack([temps[None, :]] + list(null_sets.values()) + [radius_sets, retrended, sims])
-    edges = cfg.bins.edges()
-    with progress.stage(f"pair pass: {len(cat)} tracers, {stacked.shape[0]} temperature sets, {edges.size - 1} bins"):
-        if cfg.compute.scheduler_address:
-            pr = pairwise_momentum_units(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                                         weights=cat.weight, n_units=cfg.compute.n_units,
-                                         scheduler=cfg.compute.scheduler_address, n_threads=cfg.compute.n_threads)
-        else:
-            pr = pairwise_momentum(positions, stacked, edges, regions=regions, redshifts=cat.z,
-                                   weights=cat.weight, n_threads=cfg.compute.n_threads)
-        progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
-
-    with progress.stage("covariance, template and fit"):
-        p, p_jk = pr.p[0], pr.p_jk[0]
-        jk_rows = pr.p_jk
-        if retrended.shape[0]:   # sample k: the set re-trended without region k, minus the pairs touching k
-            jk_rows = pr.p_jk.copy()
-            for r, row_r in enumerate([0] + list(range(rt0 - radius_sets.shape[0], rt0))):
-                jk_rows[row_r] = pr.p_jk[rt0 + r * n_jk + np.arange(n_jk), np.arange(n_jk)]
-            p_jk = jk_rows[0]
-        valid = np.all(np.isfinite(p_jk), axis=0) & np.isfinite(p)
-        if not valid.all():
-            raise InputError(f"separation bins {np.flatnonzero(~valid).tolist()} have no pairs in some jackknife "
-                             f"sample; widen bins.width_mpc or reduce covariance.n_regions")
-        cov_jk = jackknife_covariance(p_jk)
-        cov, p_boot = cov_jk, None
-        n_cov = n_jk
-        if sims.shape[0]:
-            cov = simulation_covariance(pr.p[stacked.shape[0] - sims.shape[0]:])
-            n_cov = sims.shape[0]
-        if cc.estimator == "bootstrap":
-            num_k, den_k = region_half_sums(positions, temps, edges, regions, weights=cat.weight,
-                                            n_threads=cfg.compute.n_threads)
-            p_boot = bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng)
-            cov = bootstrap_covariance(p_boot)
-        r_mid = 0.5 * (edges[1:] + edges[:-1])
-        in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
-        weight = pr.denominator * in_fit
-        z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
-        v12, template_info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
-                                              z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
-        trend_factor = _trend_loss(positions, cat.z, edges, cfg, rng, power, template_info, progress)
-        v12 = v12 * trend_factor
-        template = T_CMB_UK * v12 / C_KM_S
-        fit = fit_amplitude(p, template, cov, n_samples=n_cov, use=in_fit, likelihood=cfg.theory.likelihood)
-        covs = {"jackknife": cov_jk, cc.estimator: cov}
-        diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
-                                      used=cc.estimator)
-        nulls, row = [], 1
-        for kind, sets in null_sets.items():
-            if sets.shape[0]:
-                rows = slice(row, row + sets.shape[0])
-                nulls.append(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=nc.pte_threshold,
-                                           **({"covariance": cov, "n_samples": n_cov} if sims.shape[0] else {})))
-                row += sets.shape[0]
-        radius_rows = [0] + list(range(row, row + radius_sets.shape[0]))  # the extra radii are the last rows
-        radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[radius_rows], jk_rows[radius_rows], template,
-                                n_jk=n_jk, in_fit=in_fit, likelihood=cfg.theory.likelihood)
-
-    extra = {"template": template_info}
-    if len(radius_fits) > 1:
-        extra["radius_fits"] = radius_fits
-        extra["report_sections"] = {"Signal against aperture radius": radius_report(radius_fits)}
-    extra.update(_extra_fits(cfg, fit, template_info, n_cov, cat=cat, positions=positions, temps=temps,
-                             regions=regions, edges=edges, in_fit=in_fit, power=power, progress=progress,
-                             trend_factor=trend_factor))
-    if prefilter is not None:  # harmonic-space filter of the map
-        extra["prefilter"] = prefilter.info()
-        extra["prefilter_transfer"] = prefilter.transfer
-        extra["report_sections"] = {**extra.get("report_sections", {}),
-                                    "Map pre-filter": prefilter_markdown(extra["prefilter"])}
-    if combination_info is not None:  # several frequency maps
-        extra["multifrequency"] = combination_info
-        extra["report_sections"] = {**extra.get("report_sections", {}),
-                                    "Several frequency maps": combination_markdown(combination_info)}
-    extra.update({"covariance_diagnostics": diag,
-                  "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rot_kept],
-                  "report_sections": {**extra.get("report_sections", {}),
-                                      "Covariance diagnostics": diagnostics_markdown(diag, edges)}})
-    provenance = {
+def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str) -> dict:
+    """Inputs with their checksums, versions, seed and start time: what a rerun needs."""
+    return {
         "pairvel_version": __version__,
         "started_utc": started,
         "config_file": None if cfg.source is None else str(cfg.source),
         "config_sha256": None if cfg.source is None else file_sha256(cfg.source),
         "catalogue": {"path": cat.path, "sha256": cat.sha256},
         "map": map_provenance(cfg),
-        "multifrequency": combination_info,
+        "multifrequency": sky.combination,
         "mask": None if cfg.map.mask_path is None else {"path": str(cfg.map.mask_path),
                                                          "sha256": file_sha256(cfg.map.mask_path)},
         "seed": cfg.run.seed,
         "versions": package_versions(),
         "platform": platform.platform(),
     }
-    return RunResult(
-        config=cfg, edges=edges, p=p, covariance=cov, p_jk=p_jk, pair_counts=pr.pair_counts,
-        z_eff_bins=pr.z_eff, z_eff=z_eff, v12_template=v12, in_fit=in_fit, fit=fit, nulls=tuple(nulls),
-        n_tracers=len(cat), selection=selection, provenance=provenance, extra=extra,
-    )

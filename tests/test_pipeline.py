@@ -108,7 +108,7 @@ def test_jackknife_sample_is_the_whole_chain_without_the_region():
 
     from pairvel.pairs.estimator import pairwise_momentum
     from pairvel.pairs.geometry import comoving_positions
-    from pairvel.pipeline import _retrended_sets
+    from pairvel.pipeline import retrended_sets
     from pairvel.maps.trend import remove_redshift_trend
 
     rng = np.random.default_rng(12)
@@ -119,7 +119,7 @@ def test_jackknife_sample_is_the_whole_chain_without_the_region():
     regions = (ra // 4).astype(int)
     cfg = SimpleNamespace(trend=SimpleNamespace(enabled=True, sigma_z=0.01),
                           covariance=SimpleNamespace(jackknife_retrend=True))
-    sets = _retrended_sets(raw[None, :], z, regions, n_jk, cfg)
+    sets = retrended_sets(raw[None, :], z, regions, cfg)
     edges = np.linspace(0, 80, 5)
     res = pairwise_momentum(pos, sets, edges, regions=regions)
     for k in range(n_jk):
