@@ -11,6 +11,7 @@ from __future__ import annotations
 __all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir", "write_folder_atomically"]
 
 import json
+import logging
 import math
 import os
 import shutil
@@ -23,6 +24,8 @@ from ..core.errors import OutputError
 
 #: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
 OUTPUT_MARKER = ".pairvel-output"
+
+_log = logging.getLogger(__name__)
 
 
 def prepare_output_dir(out_dir, *, force: bool = False) -> Path:
@@ -488,6 +491,7 @@ def write_folder_atomically(out_dir, fill, *, force: bool = False) -> Path:
     """
     out = prepare_output_dir(out_dir, force=force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    _log.debug("filling %s, to be renamed to %s", tmp, out)
     try:
         fill(tmp)
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
