@@ -5,8 +5,9 @@ stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-w
 
 Logging is set up here and nowhere else: for one call of :func:`main` the ``pairvel`` logger sends
 its records to stderr (bare progress lines, ``pairvel: warning: ...``; ``--quiet`` keeps warnings
-only, ``--verbose`` adds DEBUG records).  Python warnings raised meanwhile become records of
-``pairvel.warnings``.
+only, ``--verbose`` adds DEBUG records) and into an in-memory ``run.log`` (INFO and above, with
+UTC timestamps) that the output writer puts into the new folder before renaming it into place.
+Python warnings raised meanwhile become records of ``pairvel.warnings``.
 """
 
 from __future__ import annotations
@@ -17,9 +18,12 @@ import argparse
 import contextlib
 import datetime as _dt
 import functools
+import io
 import logging
 import platform
+import shlex
 import sys
+import time
 import traceback
 import warnings
 from pathlib import Path
@@ -28,6 +32,9 @@ from .core.provenance import __version__
 from .core.errors import PairvelError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+
+#: Line format of run.log: UTC time, level, message.
+_RUN_LOG_FORMAT = "%(asctime)s.%(msecs)03dZ %(levelname)-7s %(message)s"
 
 _log = logging.getLogger("pairvel.cli")  # not __name__: that is "__main__" under python -m
 _warnings_log = logging.getLogger("pairvel.warnings")
@@ -108,7 +115,7 @@ def _closing_summary(result, out: Path) -> str:
     return "\n".join(lines)
 
 
-def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
+def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool) -> int:
     from .core.progress import Progress
     from .input.config import load_config
     from .report.outputs import prepare_output_dir, write_outputs
@@ -118,7 +125,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
     out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
     _log.debug("config %s; output folder %s", cfg.source, out)
     _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
-    progress = Progress(10)  # never quiet: --quiet raises the level of the stderr handler
+    progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
     result = run_pipeline(cfg, progress=progress)
     if demo:
         from .sims.demo import attach_truth_check
@@ -131,7 +138,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
         result, _ = blind_result(result, key_path)
         progress.say(f"      outputs blinded; key kept in {key_path}")
     with progress.stage("writing outputs"):
-        write_outputs(result, out, force=args.force)
+        write_outputs(result, out, force=args.force, run_log=run_log)
     print(_closing_summary(result, out))
     if demo:
         print(result.extra["demo_check"]["verdict"])
@@ -139,12 +146,13 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
     return EXIT_OK
 
 
-def _cmd_unblind(args) -> int:
+def _cmd_unblind(args, run_log) -> int:
     from .report.blinding import unblind_folder
 
     folder = Path(args.folder).expanduser().resolve()
     _log.info("unblinding %s with the key in %s", folder, args.key)
-    out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded")
+    out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded",
+                         run_log=run_log)
     print(f"pairvel: unblinded outputs written to {out} ({folder} unchanged)")
     return EXIT_OK
 
@@ -227,7 +235,7 @@ def _add_validate_parser(sub, common) -> None:
     common(val)
 
 
-def _cmd_validate(args) -> int:
+def _cmd_validate(args, run_log) -> int:
     from .report.outputs import prepare_output_dir
     from .sims.validate import ValidationOptions, format_summary, run_validation, write_validation
 
@@ -242,7 +250,7 @@ def _cmd_validate(args) -> int:
     out = prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
     _log.debug("output folder %s", out)
     result = run_validation(opt, progress=_log.info)
-    out = write_validation(result, args.out, force=args.force)
+    out = write_validation(result, args.out, force=args.force, run_log=run_log)
     print(format_summary(result))
     print(f"  outputs: {out}")
     return EXIT_OK
@@ -258,22 +266,32 @@ class _TerminalFormatter(logging.Formatter):
 
 
 @contextlib.contextmanager
-def _command_logging(*, quiet: bool, verbose: bool):
-    """Route the ``pairvel`` records to stderr for one command.
+def _command_logging(command_line: str, *, quiet: bool, verbose: bool):
+    """Route the ``pairvel`` records to stderr and to an in-memory run log for one command.
 
-    The handler is removed and the logger's level restored on exit, so :func:`main` can be called
-    many times in one process.
+    Yields a callable returning the run log so far (a ``#`` header line, then INFO and above
+    with UTC timestamps and level names, whatever ``quiet``).  Every handler is removed and the
+    logger's level restored on exit, so :func:`main` can be called many times in one process.
     """
     logger = logging.getLogger("pairvel")
     terminal = logging.StreamHandler(sys.stderr)
     terminal.setLevel(logging.WARNING if quiet else logging.DEBUG if verbose else logging.INFO)
     terminal.setFormatter(_TerminalFormatter())
+    buffer = io.StringIO(f"# pairvel {__version__}, Python {platform.python_version()}: {command_line}\n")
+    buffer.seek(0, io.SEEK_END)
+    captured = logging.StreamHandler(buffer)
+    captured.setLevel(logging.INFO)
+    stamped = logging.Formatter(_RUN_LOG_FORMAT, datefmt="%Y-%m-%dT%H:%M:%S")
+    stamped.converter = time.gmtime
+    captured.setFormatter(stamped)
     saved_level = logger.level
     logger.setLevel(logging.DEBUG if verbose else logging.INFO)
     logger.addHandler(terminal)
+    logger.addHandler(captured)
     try:
-        yield
+        yield buffer.getvalue
     finally:
+        logger.removeHandler(captured)
         logger.removeHandler(terminal)
         logger.setLevel(saved_level)
 
@@ -289,33 +307,35 @@ def _log_warning(message, category, filename, lineno, file=None, line=None, *, d
         _warnings_log.warning("%s", message)
 
 
-def _dispatch(args) -> int:
+def _dispatch(args, run_log) -> int:
     if args.command == "run":
-        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), demo=False)
+        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log, demo=False)
     if args.command == "demo":
         from .sims.demo import demo_config_path
 
         stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
-        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", demo=True)
+        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log, demo=True)
     if args.command == "mock":
         return _cmd_mock(args)
     if args.command == "unblind":
-        return _cmd_unblind(args)
+        return _cmd_unblind(args, run_log)
     if args.command == "validate":
-        return _cmd_validate(args)
+        return _cmd_validate(args, run_log)
     return _cmd_keys(args)
 
 
 def main(argv=None) -> int:
     """Entry point; returns the exit code (0 success, 2 bad input or config, 1 internal error)."""
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = _parser().parse_args(argv)
     debug = getattr(args, "debug", False)
-    logging_setup = _command_logging(quiet=getattr(args, "quiet", False), verbose=getattr(args, "verbose", False))
-    with logging_setup, warnings.catch_warnings():
+    logging_setup = _command_logging(shlex.join(["pairvel", *argv]), quiet=getattr(args, "quiet", False),
+                                     verbose=getattr(args, "verbose", False))
+    with logging_setup as run_log, warnings.catch_warnings():
         warnings.showwarning = functools.partial(_log_warning, debug=debug)
         _log.debug("pairvel %s on Python %s; working folder %s", __version__, platform.python_version(), Path.cwd())
         try:
-            return _dispatch(args)
+            return _dispatch(args, run_log)
         except PairvelError as err:
             if debug:
                 traceback.print_exc()
