@@ -2,6 +2,12 @@
 
 A thin layer over the library.  Every :class:`~pairvel.core.errors.PairvelError` becomes one line on
 stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.
+
+Logging is set up here and nowhere else: for one call of :func:`main` the ``pairvel`` logger sends
+its records to stderr (bare progress lines, ``pairvel: warning: ...``; ``--quiet`` keeps warnings
+only, ``--verbose`` adds DEBUG records) and into an in-memory ``run.log`` (INFO and above, with
+UTC timestamps) that the output writer puts into the new folder before renaming it into place.
+Python warnings raised meanwhile become records of ``pairvel.warnings``.
 """
 
 from __future__ import annotations
@@ -9,8 +15,15 @@ from __future__ import annotations
 __all__ = ["main"]
 
 import argparse
+import contextlib
 import datetime as _dt
+import functools
+import io
+import logging
+import platform
+import shlex
 import sys
+import time
 import traceback
 import warnings
 from pathlib import Path
@@ -19,6 +32,12 @@ from .core.provenance import __version__
 from .core.errors import PairvelError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+
+#: Line format of run.log: UTC time, level, message.
+_RUN_LOG_FORMAT = "%(asctime)s.%(msecs)03dZ %(levelname)-7s %(message)s"
+
+_log = logging.getLogger("pairvel.cli")  # not __name__: that is "__main__" under python -m
+_warnings_log = logging.getLogger("pairvel.warnings")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -31,7 +50,10 @@ def _parser() -> argparse.ArgumentParser:
     sub.required = True
 
     def common(p):
-        p.add_argument("--quiet", action="store_true", help="no progress lines, only the closing summary")
+        loudness = p.add_mutually_exclusive_group()
+        loudness.add_argument("--quiet", action="store_true",
+                              help="no progress lines on stderr, only warnings, errors and the closing summary")
+        loudness.add_argument("--verbose", action="store_true", help="also show debug messages on stderr")
         p.add_argument("--debug", action="store_true", help="show the full traceback of an error")
 
     run = sub.add_parser("run", help="measure, fit and null-test from a TOML config",
@@ -93,7 +115,7 @@ def _closing_summary(result, out: Path) -> str:
     return "\n".join(lines)
 
 
-def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
+def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool) -> int:
     from .core.progress import Progress
     from .input.config import load_config
     from .report.outputs import prepare_output_dir, write_outputs
@@ -101,7 +123,9 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
 
     cfg = load_config(config_path)
     out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
-    progress = Progress(10, quiet=args.quiet)
+    _log.debug("config %s; output folder %s", cfg.source, out)
+    _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
+    progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
     result = run_pipeline(cfg, progress=progress)
     if demo:
         from .sims.demo import attach_truth_check
@@ -114,7 +138,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
         result, _ = blind_result(result, key_path)
         progress.say(f"      outputs blinded; key kept in {key_path}")
     with progress.stage("writing outputs"):
-        write_outputs(result, out, force=args.force)
+        write_outputs(result, out, force=args.force, run_log=run_log)
     print(_closing_summary(result, out))
     if demo:
         print(result.extra["demo_check"]["verdict"])
@@ -122,11 +146,13 @@ def _cmd_run(args, config_path: Path, default_out: Path, *, demo: bool) -> int:
     return EXIT_OK
 
 
-def _cmd_unblind(args) -> int:
+def _cmd_unblind(args, run_log) -> int:
     from .report.blinding import unblind_folder
 
     folder = Path(args.folder).expanduser().resolve()
-    out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded")
+    _log.info("unblinding %s with the key in %s", folder, args.key)
+    out = unblind_folder(folder, args.key, args.out if args.out else folder.parent / f"{folder.name}-unblinded",
+                         run_log=run_log)
     print(f"pairvel: unblinded outputs written to {out} ({folder} unchanged)")
     return EXIT_OK
 
@@ -150,7 +176,7 @@ def _cmd_mock(args) -> int:
         options["tau_mean"] = args.tau_mean
     if args.extra_frequency:
         options["extra_frequencies_ghz"] = args.extra_frequency
-    truth = make_mock_survey(args.out, **options, progress=None if args.quiet else _say)
+    truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
     if args.extra_frequency:
@@ -209,7 +235,7 @@ def _add_validate_parser(sub, common) -> None:
     common(val)
 
 
-def _cmd_validate(args) -> int:
+def _cmd_validate(args, run_log) -> int:
     from .report.outputs import prepare_output_dir
     from .sims.validate import ValidationOptions, format_summary, run_validation, write_validation
 
@@ -221,44 +247,95 @@ def _cmd_validate(args) -> int:
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
                             exact_fields=not args.grid_fields, box_padding=args.box_padding,
                             trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics)
-    prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
-    result = run_validation(opt, progress=None if args.quiet else _say)
-    out = write_validation(result, args.out, force=args.force)
+    out = prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
+    _log.debug("output folder %s", out)
+    result = run_validation(opt, progress=_log.info)
+    out = write_validation(result, args.out, force=args.force, run_log=run_log)
     print(format_summary(result))
     print(f"  outputs: {out}")
     return EXIT_OK
 
 
-def _say(text: str) -> None:
-    print(text, file=sys.stderr, flush=True)
+class _TerminalFormatter(logging.Formatter):
+    """stderr lines as pairvel has always printed them: the bare message for DEBUG and INFO,
+    ``pairvel: warning: ...`` (``error``, ``critical``) above."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        text = super().format(record)
+        return f"pairvel: {record.levelname.lower()}: {text}" if record.levelno >= logging.WARNING else text
 
 
-def _short_warning(message, category, filename, lineno, file=None, line=None):
-    print(f"pairvel: warning: {message}", file=sys.stderr if file is None else file)
+@contextlib.contextmanager
+def _command_logging(command_line: str, *, quiet: bool, verbose: bool):
+    """Route the ``pairvel`` records to stderr and to an in-memory run log for one command.
+
+    Yields a callable returning the run log so far (a ``#`` header line, then INFO and above
+    with UTC timestamps and level names, whatever ``quiet``).  Every handler is removed and the
+    logger's level restored on exit, so :func:`main` can be called many times in one process.
+    """
+    logger = logging.getLogger("pairvel")
+    terminal = logging.StreamHandler(sys.stderr)
+    terminal.setLevel(logging.WARNING if quiet else logging.DEBUG if verbose else logging.INFO)
+    terminal.setFormatter(_TerminalFormatter())
+    buffer = io.StringIO(f"# pairvel {__version__}, Python {platform.python_version()}: {command_line}\n")
+    buffer.seek(0, io.SEEK_END)
+    captured = logging.StreamHandler(buffer)
+    captured.setLevel(logging.INFO)
+    stamped = logging.Formatter(_RUN_LOG_FORMAT, datefmt="%Y-%m-%dT%H:%M:%S")
+    stamped.converter = time.gmtime
+    captured.setFormatter(stamped)
+    saved_level = logger.level
+    logger.setLevel(logging.DEBUG if verbose else logging.INFO)
+    logger.addHandler(terminal)
+    logger.addHandler(captured)
+    try:
+        yield buffer.getvalue
+    finally:
+        logger.removeHandler(captured)
+        logger.removeHandler(terminal)
+        logger.setLevel(saved_level)
+
+
+def _log_warning(message, category, filename, lineno, file=None, line=None, *, debug: bool = False):
+    """``warnings.showwarning`` for the command line: one WARNING record of ``pairvel.warnings``.
+
+    The record holds the message alone; with ``--debug`` it also names the file, line and category.
+    """
+    if debug:
+        _warnings_log.warning("%s", warnings.formatwarning(message, category, filename, lineno, line).rstrip())
+    else:
+        _warnings_log.warning("%s", message)
+
+
+def _dispatch(args, run_log) -> int:
+    if args.command == "run":
+        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log, demo=False)
+    if args.command == "demo":
+        from .sims.demo import demo_config_path
+
+        stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
+        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log, demo=True)
+    if args.command == "mock":
+        return _cmd_mock(args)
+    if args.command == "unblind":
+        return _cmd_unblind(args, run_log)
+    if args.command == "validate":
+        return _cmd_validate(args, run_log)
+    return _cmd_keys(args)
 
 
 def main(argv=None) -> int:
     """Entry point; returns the exit code (0 success, 2 bad input or config, 1 internal error)."""
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = _parser().parse_args(argv)
     debug = getattr(args, "debug", False)
-    with warnings.catch_warnings():
-        if not debug:
-            warnings.showwarning = _short_warning
+    logging_setup = _command_logging(shlex.join(["pairvel", *argv]), quiet=getattr(args, "quiet", False),
+                                     verbose=getattr(args, "verbose", False))
+    with logging_setup as run_log, warnings.catch_warnings():
+        warnings.showwarning = functools.partial(_log_warning, debug=debug)
+        _log.debug("pairvel %s on Python %s; working folder %s", __version__, platform.python_version(), Path.cwd())
         try:
-            if args.command == "run":
-                return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), demo=False)
-            if args.command == "demo":
-                from .sims.demo import demo_config_path
-
-                stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
-                return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", demo=True)
-            if args.command == "mock":
-                return _cmd_mock(args)
-            if args.command == "unblind":
-                return _cmd_unblind(args)
-            if args.command == "validate":
-                return _cmd_validate(args)
-            return _cmd_keys(args)
+            return _dispatch(args, run_log)
         except PairvelError as err:
             if debug:
                 traceback.print_exc()

@@ -1,6 +1,9 @@
 """The command line: one clear line and exit code 2 for bad input, no partial output, atomic writes."""
 
 import json
+import logging
+import re
+from pathlib import Path
 
 import healpy as hp
 import numpy as np
@@ -141,3 +144,81 @@ def test_weight_column_reaches_the_estimator(tiny_survey, capsys):
     assert p_with("w_bad", "o4") == 2
     line = only_error_line(capsys)
     assert "w_bad" in line and "row 7" in line and not (tiny_survey / "o4").exists()
+
+
+# --- logging: stderr levels, run.log, warnings ---------------------------------------------------
+
+STAMPED = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z (INFO   |WARNING) ")
+
+
+def pairvel_logger_state():
+    logger = logging.getLogger("pairvel")
+    return list(logger.handlers), logger.level
+
+
+def test_stderr_levels_run_log_and_warnings(tiny_survey, capsys):
+    """Default: progress and warnings on stderr; --quiet: warnings only; --verbose: debug records too.
+    run.log (INFO and above, timestamped) is the same whatever the flags; the summary stays on stdout."""
+    state = pairvel_logger_state()
+    out = tiny_survey / "out"
+    argv = ["run", str(tiny_survey / "run.toml"), "--out", str(out)]
+
+    assert main(argv) == 0
+    printed = capsys.readouterr()
+    err = printed.err.splitlines()
+    assert "[1/10] catalogue ..." in err and any(line.startswith("[10/10] writing outputs: done in") for line in err)
+    warned = [line.removeprefix("pairvel: warning: ") for line in err if line.startswith("pairvel: warning: ")]
+    assert any("has no COORDSYS keyword" in w for w in warned) and any("rotation skipped" in w for w in warned)
+    assert not any(line.startswith("pair pass: ") for line in err)            # a DEBUG record
+    assert "tau_mean = " in printed.out and f"outputs: {out}" in printed.out
+    assert "tau_mean = " not in printed.err
+    log = (out / "run.log").read_text().splitlines()
+    assert log[0].startswith("# pairvel ") and ": pairvel run " in log[0]
+    assert all(STAMPED.match(line) for line in log[1:]), log
+    assert any(line.endswith(" INFO    [1/10] catalogue ...") for line in log)
+    assert any(line.endswith(" INFO    [10/10] writing outputs ...") for line in log)
+    assert [line.split(" WARNING ", 1)[1] for line in log if " WARNING " in line] == warned
+    assert pairvel_logger_state() == state
+
+    assert main(argv + ["--force", "--quiet"]) == 0
+    printed = capsys.readouterr()
+    err = printed.err.splitlines()
+    assert err and all(line.startswith("pairvel: warning: ") for line in err), err
+    assert "tau_mean = " in printed.out
+    quiet_log = (out / "run.log").read_text()
+    assert " INFO    [1/10] catalogue ..." in quiet_log and " WARNING " in quiet_log
+    assert pairvel_logger_state() == state
+
+    assert main(argv + ["--force", "--verbose", "--debug"]) == 0
+    err = capsys.readouterr().err.splitlines()
+    assert "[1/10] catalogue ..." in err
+    assert any(line.startswith("pair pass: ") and " threads, " in line for line in err)
+    assert any(line.startswith("config ") and f"output folder {out}" in line for line in err)
+    assert any(line.startswith("pairvel: warning: ") and ".py:" in line and "PairvelWarning: " in line for line in err)
+    verbose_log = (out / "run.log").read_text()
+    assert "Z DEBUG " not in verbose_log and " threads, " not in verbose_log
+    assert "PairvelWarning: " in verbose_log                                  # --debug: warnings name their origin
+    assert pairvel_logger_state() == state
+
+
+def test_quiet_and_verbose_exclude_each_other(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["run", "x.toml", "--quiet", "--verbose"])
+    assert exc.value.code == 2 and "not allowed with argument" in capsys.readouterr().err
+
+
+def test_failed_write_leaves_no_folder_and_no_log(tiny_survey, capsys, monkeypatch):
+    """The log is held in memory: a run that fails while writing leaves neither a folder nor a run.log."""
+    import pairvel.report.outputs as outputs
+
+    def full_disk(result, summary):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(outputs, "_report", full_disk)
+    state = pairvel_logger_state()
+    assert main(["run", str(tiny_survey / "run.toml"), "--out", str(tiny_survey / "out")]) == 2
+    line = only_error_line(capsys)
+    assert "cannot be written" in line and "No space left on device" in line
+    assert sorted(p.name for p in tiny_survey.iterdir()) == ["cat.csv", "map.fits", "run.toml"]
+    assert not (Path.cwd() / "run.log").exists()
+    assert pairvel_logger_state() == state

@@ -4,6 +4,15 @@ In: nothing from the rest of pairvel (standard library and numpy only).
 Out: the :class:`~pairvel.core.errors.PairvelError` hierarchy, physical constants, seed
 normalisation, the progress reporter, version and checksum records, unit vectors on the sphere.
 Every other subpackage may import from here; nothing here imports from them.
+
+Messages go through the standard :mod:`logging` module, to the ``pairvel`` logger or its children
+(``logging.getLogger(__name__)`` in each module).  The library never configures handlers or
+levels: the ``NullHandler`` below keeps it silent until an application (the command line, a
+notebook) sets logging up.
 """
+
+import logging
+
+logging.getLogger("pairvel").addHandler(logging.NullHandler())
 
 __all__ = ["constants", "errors", "progress", "provenance", "rng", "sphere"]

@@ -1,23 +1,42 @@
-"""Progress lines on stderr for the long stages of a run."""
+"""Progress lines for the long stages of a run, sent as INFO records of the ``pairvel`` logger.
+
+Nothing is printed unless the caller sets logging up (the command line does); see
+:mod:`pairvel.core` for the logging convention.
+"""
 
 from __future__ import annotations
 
-import sys
+import logging
 import time
+
+_log = logging.getLogger(__name__)
 
 
 class Progress:
-    """Prints ``[k/n] stage ...`` lines with elapsed times; silent when ``quiet``."""
+    """Logs ``[k/n] stage ...`` lines with elapsed times at INFO; emits nothing when ``quiet``.
+
+    Parameters
+    ----------
+    n_stages : int
+        Number of stages announced by :meth:`stage` (the ``n`` of ``[k/n]``).
+    quiet : bool, default False
+        Emit no record and print nothing (library callers that want no progress at all).
+    stream : file-like, optional
+        Also print each line there, as plain text; by default lines are only logged.
+    """
 
     def __init__(self, n_stages: int, *, quiet: bool = False, stream=None):
         self.n_stages = n_stages
         self.quiet = quiet
-        self.stream = stream if stream is not None else sys.stderr
+        self.stream = stream
         self._k = 0
         self._t0 = time.perf_counter()
 
     def say(self, text: str) -> None:
-        if not self.quiet:
+        if self.quiet:
+            return
+        _log.info(text)
+        if self.stream is not None:
             print(text, file=self.stream, flush=True)
 
     def stage(self, name: str) -> "_Stage":
@@ -25,7 +44,7 @@ class Progress:
         return _Stage(self, f"[{self._k}/{self.n_stages}] {name}")
 
     def counter(self, label: str):
-        """A ``callable(done, total)`` that prints a percentage now and then."""
+        """A ``callable(done, total)`` that logs a percentage now and then."""
         last = [-1]
 
         def report(done: int, total: int) -> None:
@@ -51,6 +70,9 @@ class _Stage:
         return self
 
     def __exit__(self, exc_type, exc, tb):
+        seconds = time.perf_counter() - self.t0
         if exc_type is None:
-            self.progress.say(f"{self.label}: done in {time.perf_counter() - self.t0:.1f} s")
+            self.progress.say(f"{self.label}: done in {seconds:.1f} s")
+        elif not self.progress.quiet:
+            _log.debug("%s: stopped by %s after %.1f s", self.label, exc_type.__name__, seconds)
         return False

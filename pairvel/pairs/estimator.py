@@ -10,6 +10,7 @@ from __future__ import annotations
 
 __all__ = ["PairwiseResult", "pairwise_momentum", "pairwise_momentum_cross", "mean_pairwise_velocity_3d"]
 
+import logging
 from dataclasses import dataclass
 
 import numba
@@ -21,6 +22,8 @@ from ..core.errors import InputError
 # from this many temperature sets on, method='auto' takes the linear path (measured with
 # benchmarks/bench_many_sets.py at 1e5 tracers and 50 regions: below ~200 sets the direct loop is cheaper)
 LINEAR_MIN_SETS = 200
+
+_log = logging.getLogger(__name__)
 
 
 @dataclass(frozen=True)
@@ -211,6 +214,8 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     regs = np.ascontiguousarray(reg[order])
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
+    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, %s path", n, m_sets, nbins,
+               numba.get_num_threads(), "linear" if linear else "direct")
     try:
         ts = np.empty((n, 0)) if linear else np.ascontiguousarray(temps2[:, order].T)   # (N, M)
         sums = _kernels.pair_sums(xs, us, ts, ws, regs, np.ascontiguousarray(zz[order]),

@@ -171,8 +171,12 @@ def load_result(folder):
                      extra=extra)
 
 
-def unblind_folder(blinded_dir, key_path, out_dir) -> Path:
-    """Apply the key to a blinded output folder and write a new, unblinded folder (input untouched)."""
+def unblind_folder(blinded_dir, key_path, out_dir, *, run_log=None) -> Path:
+    """Apply the key to a blinded output folder and write a new, unblinded folder (input untouched).
+
+    ``run_log`` (callable() -> str, optional) adds ``run.log`` to the new folder, as in
+    :func:`pairvel.report.outputs.write_outputs`.
+    """
     from .outputs import write_outputs
 
     blinded_dir = Path(blinded_dir)
@@ -188,4 +192,4 @@ def unblind_folder(blinded_dir, key_path, out_dir) -> Path:
     unblinded = apply_factor(result, key["factor"], divide=True,
                              blinding={"blinded": False, "unblinded_from": str(blinded_dir.resolve()),
                                        "key_id": key["key_id"]})
-    return write_outputs(unblinded, out_dir)
+    return write_outputs(unblinded, out_dir, run_log=run_log)

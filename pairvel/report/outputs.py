@@ -1,16 +1,18 @@
 """Write a run's tables, figure, summary and report into a new folder, all or nothing.
 
 Files are written into a hidden temporary folder beside the target and renamed into place at the
-end, so a failure leaves no half-written output.  An existing folder is replaced only with
-``force=True`` and only when it carries the marker file of an earlier pairvel output, so nothing
-a user made is ever deleted.
+end, so a failure leaves no half-written output; a run log captured by the caller (``run.log``) is
+the last file written there.  An existing folder is replaced only with ``force=True`` and only
+when it carries the marker file of an earlier pairvel output, so nothing a user made is ever
+deleted.
 """
 
 from __future__ import annotations
 
-__all__ = ["write_outputs", "OUTPUT_MARKER", "prepare_output_dir", "write_folder_atomically"]
+__all__ = ["write_outputs", "OUTPUT_MARKER", "RUN_LOG", "prepare_output_dir", "write_folder_atomically"]
 
 import json
+import logging
 import math
 import os
 import shutil
@@ -23,6 +25,11 @@ from ..core.errors import OutputError
 
 #: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
 OUTPUT_MARKER = ".pairvel-output"
+
+#: The run's log inside an output folder (written only when a ``run_log`` is given).
+RUN_LOG = "run.log"
+
+_log = logging.getLogger(__name__)
 
 
 def prepare_output_dir(out_dir, *, force: bool = False) -> Path:
@@ -449,8 +456,19 @@ def _report(result, summary: dict) -> str:
     return "\n".join(lines)
 
 
-def write_outputs(result, out_dir, *, force: bool = False) -> Path:
+def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path:
     """Write every output of ``result`` into ``out_dir`` atomically; return the folder.
+
+    Parameters
+    ----------
+    result : RunResult
+        What :func:`pairvel.pipeline.run_pipeline` returned.
+    out_dir : str or Path
+        The new folder.
+    force : bool, default False
+        Replace an existing folder that pairvel wrote.
+    run_log : callable() -> str, optional
+        Returns the text of ``run.log``; see :func:`write_folder_atomically`.  Default: no log file.
 
     Raises
     ------
@@ -477,19 +495,24 @@ def write_outputs(result, out_dir, *, force: bool = False) -> Path:
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
 
-    return write_folder_atomically(out_dir, fill, force=force)
+    return write_folder_atomically(out_dir, fill, force=force, run_log=run_log)
 
 
-def write_folder_atomically(out_dir, fill, *, force: bool = False) -> Path:
+def write_folder_atomically(out_dir, fill, *, force: bool = False, run_log=None) -> Path:
     """Call ``fill(tmp_folder)`` on a hidden temporary folder and rename it to ``out_dir``.
 
     The same all-or-nothing rules as :func:`write_outputs`: an existing folder is replaced only
     with ``force`` and only when it carries :data:`OUTPUT_MARKER`; on failure nothing is left.
+    ``run_log``, a callable returning text, is called after ``fill`` and its text written to
+    :data:`RUN_LOG` in the temporary folder, so the log holds every record up to the rename.
     """
     out = prepare_output_dir(out_dir, force=force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    _log.debug("filling %s, to be renamed to %s", tmp, out)
     try:
         fill(tmp)
+        if run_log is not None:
+            (tmp / RUN_LOG).write_text(run_log())
         (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
         if out.exists():  # force: only reached for a folder that pairvel wrote
             old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))

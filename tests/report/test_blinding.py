@@ -81,3 +81,19 @@ def test_unblind_refuses_wrong_key_and_unblinded_folder(tiny_survey, tmp_path):
     (tmp_path / "bad.json").write_text('{"factor": 2}')
     with pytest.raises(InputError, match="not a pairvel blinding key"):
         unblind_folder(tmp_path / "plain", tmp_path / "bad.json", tmp_path / "o")
+
+
+@pytest.mark.filterwarnings("ignore")
+def test_blinded_run_log_keeps_the_factor_hidden_and_unblind_writes_its_own(tiny_survey):
+    (tiny_survey / "blind.toml").write_text((tiny_survey / "run.toml").read_text() + "\n[blinding]\nenabled = true\n")
+    blinded = tiny_survey / "blinded"
+    assert main(["run", str(tiny_survey / "blind.toml"), "--out", str(blinded), "--quiet"]) == 0
+    key = tiny_survey / "blinded.blinding-key.json"
+    log = (blinded / "run.log").read_text()
+    assert "outputs blinded; key kept in" in log
+    factor = json.loads(key.read_text())["factor"]
+    assert f"{factor:.6f}" not in log and f"{factor:.4e}" not in log     # the log does not reveal the factor
+    out = tiny_survey / "unblinded"
+    assert main(["unblind", str(blinded), "--key", str(key), "--out", str(out), "--quiet"]) == 0
+    unblind_log = (out / "run.log").read_text()
+    assert ": pairvel unblind " in unblind_log.splitlines()[0] and f"INFO    unblinding {blinded}" in unblind_log
