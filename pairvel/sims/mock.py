@@ -314,6 +314,22 @@ def _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg):
     return np.sort(pix[np.abs(dra) <= half])
 
 
+def _add_to_footprint(values, foot, pix, val) -> None:
+    """Add ``val`` at the HEALPix pixels ``pix`` to ``values``, held on the sorted pixels ``foot``, in
+    place: repeated pixels add up, pixels outside ``foot`` (beyond the map's margin) are left out."""
+    idx = np.searchsorted(foot, pix)
+    ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
+    np.add.at(values, idx[ok], val[ok])
+
+
+def _white_noise(noise_uk_arcmin, nside, size, rng) -> np.ndarray:
+    """``size`` pixel values of white noise with ``noise_uk_arcmin`` uK-arcmin at ``nside``, from ``rng``."""
+    import healpy as hp
+
+    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
+    return rng.normal(0.0, sigma_pix, size)
+
+
 def _plain(obj):
     """JSON-ready copy: numpy scalars to Python numbers, non-finite floats to None."""
     if isinstance(obj, dict):
@@ -352,18 +368,13 @@ def _check_extra_frequencies(freqs, noise, default_noise) -> dict:
 
 def _frequency_map(nu, foot, cmb_values, ksz, tsz, noise_uk_arcmin, nside, rng):
     """CMB + kSZ + tSZ scaled from 150 GHz to ``nu`` + white noise, on the footprint pixels."""
-    import healpy as hp
-
     from ..model.sz import tsz_spectrum
 
     scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz map's tSZ is _TSZ_F150 times the amplitude
     values = cmb_values.copy()
     for (pix, val), factor in ((ksz, 1.0), (tsz, scale)):
-        idx = np.searchsorted(foot, pix)
-        ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
-        np.add.at(values, idx[ok], factor * val[ok])
-    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
-    return values + rng.normal(0.0, sigma_pix, foot.size)
+        _add_to_footprint(values, foot, pix, factor * val)
+    return values + _white_noise(noise_uk_arcmin, nside, foot.size, rng)
 
 
 def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_max=20.0, dec_min=-10.0,
@@ -560,11 +571,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     pix_k, val_k = paint_beam_sources(nside, ra, dec, dt_ksz * area, beam_fwhm_arcmin)
     pix_t, val_t = paint_beam_sources(nside, ra, dec, tsz * area, beam_fwhm_arcmin)
     for pix, val in ((pix_k, val_k), (pix_t, val_t)):
-        idx = np.searchsorted(foot, pix)
-        ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
-        np.add.at(values, idx[ok], val[ok])
-    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
-    values += rng.normal(0.0, sigma_pix, foot.size)
+        _add_to_footprint(values, foot, pix, val)
+    values += _white_noise(noise_uk_arcmin, nside, foot.size, rng)
     extra_maps = {}
     for nu, noise_nu in extra_noise.items():  # several frequencies: drawn after the 150 GHz map
         extra_maps[nu] = _frequency_map(nu, foot, cmb_values, (pix_k, val_k), (pix_t, val_t), noise_nu, nside, rng)

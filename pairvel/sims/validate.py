@@ -271,22 +271,17 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
 
 def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     """Paint dT onto a partial HEALPix map with white noise; compensated apertures at the tracers."""
-    import healpy as hp
-
     from ..maps.sources import paint_beam_sources
-    from .mock import _footprint_pixels
+    from .mock import _add_to_footprint, _footprint_pixels, _white_noise
     from ..maps.photometry import measure_apertures
     from ..maps.skymap import SkyMap
 
     foot = _footprint_pixels(opt.nside, -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg,
                              margin_deg=0.5)
     area = math.pi * (opt.aperture_radius_arcmin * ARCMIN_RAD) ** 2
-    sigma_pix = opt.noise_uk_arcmin / math.sqrt(hp.nside2pixarea(opt.nside, degrees=True) * 3600.0)
-    values = rng.normal(0.0, sigma_pix, foot.size)
+    values = _white_noise(opt.noise_uk_arcmin, opt.nside, foot.size, rng)
     pix, val = paint_beam_sources(opt.nside, ra, dec, dt_uk * area, opt.beam_fwhm_arcmin)
-    where = np.searchsorted(foot, pix)
-    ok = (where < foot.size) & (foot[np.minimum(where, foot.size - 1)] == pix)
-    np.add.at(values, where[ok], val[ok])
+    _add_to_footprint(values, foot, pix, val)
     sky = SkyMap(opt.nside, False, foot, values)
     res = measure_apertures(sky, ra, dec, opt.aperture_radius_arcmin, max_masked_fraction=0.1)
     return res.temperatures[0], res.usable
