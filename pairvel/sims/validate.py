@@ -224,8 +224,8 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     2.4-4.6% below b over 0.1 < z < 0.4; the returned effective bias is its mean over the kept
     tracers, and the validation's template uses it (the mock's true bias).
     """
-    from .mock import _field_variance
-    from .mock import _cone_box, _gaussian_fields, _gaussian_fields_at, _inverse_distance, _patch_frame
+    from ._fields import _cone_box, _field_variance, _gaussian_fields, _gaussian_fields_at, _patch_frame
+    from .mock import _inverse_distance
     from ..model.theory import growth_factor, growth_rate
 
     cosmo = DEFAULT_COSMOLOGY
