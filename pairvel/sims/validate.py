@@ -224,7 +224,7 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     2.4-4.6% below b over 0.1 < z < 0.4; the returned effective bias is its mean over the kept
     tracers, and the validation's template uses it (the mock's true bias).
     """
-    from ._fields import _cone_box, _field_variance, _gaussian_fields, _gaussian_fields_at, _patch_frame
+    from ._fields import _cone_box, _field_variance, _patch_frame
     from .mock import _inverse_distance
     from ..model.theory import growth_factor, growth_rate
 
@@ -245,14 +245,7 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     ra_r, dec_r = np.radians(ra), np.radians(dec)
     unit = np.column_stack([np.cos(dec_r) * np.cos(ra_r), np.cos(dec_r) * np.sin(ra_r), np.sin(dec_r)])
     q = (unit * dist[:, None]) @ frame.T  # grid frame
-    if opt.exact_fields:
-        delta, u = _gaussian_fields_at(q, lo, shape, opt.cell_mpc, cosmo, rng)
-    else:
-        delta0, u0 = _gaussian_fields(shape, opt.cell_mpc, cosmo, rng)
-        idx = np.clip(np.floor((q - lo) / opt.cell_mpc).astype(np.int64), 0, np.array(shape) - 1)
-        delta = delta0[tuple(idx.T)].astype(np.float64)
-        u = np.column_stack([c[tuple(idx.T)] for c in u0]).astype(np.float64)
-        del delta0, u0
+    delta, u = _fields_at_points(opt, q, lo, shape, cosmo, rng)
     z = _inverse_distance(cosmo, opt.z_max)(dist)
     zg = np.linspace(opt.z_min, opt.z_max, 256)  # D and f vary slowly: interpolate (error < 1e-6)
     growth = np.interp(z, zg, growth_factor(zg, cosmo=cosmo))
@@ -267,6 +260,18 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     mean_f, slope_f = _clipped_density_moments(opt.bias * growth * sigma0, cap)
     bias_eff = opt.bias * float(np.mean(slope_f / mean_f))
     return ra % 360.0, dec, z, v_r, bias_eff
+
+
+def _fields_at_points(opt: ValidationOptions, q, lo, shape, cosmo, rng):
+    """delta_0 (N,) and u_0 (N, 3), Mpc, at the grid-frame points ``q`` (N, 3) of a periodic box with corner
+    ``lo`` and ``shape`` cells: summed exactly at each point (``exact_fields``) or read at the nearest node."""
+    from ._fields import _gaussian_fields, _gaussian_fields_at
+
+    if opt.exact_fields:
+        return _gaussian_fields_at(q, lo, shape, opt.cell_mpc, cosmo, rng)
+    delta0, u0 = _gaussian_fields(shape, opt.cell_mpc, cosmo, rng)
+    idx = tuple(np.clip(np.floor((q - lo) / opt.cell_mpc).astype(np.int64), 0, np.array(shape) - 1).T)
+    return delta0[idx].astype(np.float64), np.column_stack([c[idx] for c in u0]).astype(np.float64)
 
 
 def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
