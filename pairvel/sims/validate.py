@@ -339,10 +339,30 @@ def _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended=None, 
     return pr, p_obj, p_re
 
 
+def _jackknife_regions(opt: ValidationOptions, ra, dec, rng) -> np.ndarray:
+    """Region index per tracer, made as the pipeline makes them: k-means (seeded from ``rng``) or HEALPix."""
+    from ..stats.covariance import healpix_regions, kmeans_regions
+
+    cov_cfg = CovarianceConfig(regions=opt.regions, n_regions=opt.n_regions, healpix_nside=opt.healpix_nside)
+    if cov_cfg.regions == "healpix":
+        return healpix_regions(ra, dec, cov_cfg.healpix_nside, min_tracers=cov_cfg.min_region_tracers)
+    return kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
+
+
+def _retrended(temps, z, regions, n_jk, sigma_z) -> np.ndarray:
+    """(n_jk, N): row k holds ``temps`` with the redshift trend estimated without region k (and zero in
+    region k), for the pipeline's jackknife, which redoes the trend removal inside each delete-one sample."""
+    from ..maps.trend import remove_redshift_trend
+
+    out = np.zeros((n_jk, temps.size))
+    for k in range(n_jk):
+        kept = regions != k
+        out[k, kept] = remove_redshift_trend(temps[kept], z[kept], sigma_z=sigma_z)
+    return out
+
+
 def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: np.ndarray) -> dict:
     """Draw one mock, run the pipeline's stages on it and return one row of results."""
-    from ..stats.covariance import healpix_regions, jackknife_covariance, kmeans_regions
-    from ..stats.fit import fit_amplitude
     from ..pairs.geometry import comoving_positions
     from ..model.template import template_for_run
     from ..maps.trend import remove_redshift_trend
@@ -361,18 +381,9 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     sets = remove_redshift_trend(raw, z, sigma_z=trend_cfg.sigma_z) if opt.trend else raw
 
     pos = comoving_positions(ra, dec, z, cosmo=DEFAULT_COSMOLOGY)
-    cov_cfg = CovarianceConfig(regions=opt.regions, n_regions=opt.n_regions, healpix_nside=opt.healpix_nside)
-    if cov_cfg.regions == "healpix":
-        regions = healpix_regions(ra, dec, cov_cfg.healpix_nside, min_tracers=cov_cfg.min_region_tracers)
-    else:
-        regions = kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
+    regions = _jackknife_regions(opt, ra, dec, rng)
     n_jk = int(regions.max()) + 1
-    retrended = None
-    if opt.trend:  # jackknife sample k with the trend re-estimated without region k, as the pipeline does
-        retrended = np.zeros((n_jk, ra.size))
-        for k in range(n_jk):
-            out = regions != k
-            retrended[k, out] = remove_redshift_trend(raw[0, out], z[out], sigma_z=trend_cfg.sigma_z)
+    retrended = _retrended(raw[0], z, regions, n_jk, trend_cfg.sigma_z) if opt.trend else None
     pr, p_obj_jk, p_retrend_jk = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended,
                                                          object_split=opt.diagnostics)
 
@@ -391,27 +402,41 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
         template = template * transfer.factor
         row["trend_transfer"] = transfer.ratio
     # "" : the pipeline's jackknife on the measured temperatures; "signal_": same on the noiseless kSZ;
-    # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones
-    cases = [("", 0, pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk), ("signal_", 1, pr.p_jk[1])]
+    # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones;
+    # "plainjk_": the plain delete-one jackknife of the measured ones, trend removed once (a diagnostic)
+    cases = [("", pr.p[0], pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk), ("signal_", pr.p[1], pr.p_jk[1])]
     if opt.diagnostics:
-        cases += [("objsplit_", 0, p_obj_jk[0]), ("plainjk_", 0, pr.p_jk[0])]
-    for label, k, samples in cases:
+        cases += [("objsplit_", pr.p[0], p_obj_jk[0]), ("plainjk_", pr.p[0], pr.p_jk[0])]
+    row.update(_fit_cases(opt, cases, template, in_fit, n_jk))
+    row["dof"] = int(in_fit.sum()) - 1
+    row["template_uk"] = template
+    row["in_fit"] = in_fit
+    return row
+
+
+def _fit_cases(opt: ValidationOptions, cases, template, in_fit, n_jk) -> dict:
+    """Row entries of the amplitude fit of each case (label, curve p(r) in uK, jackknife samples):
+    tau_hat, tau_err, the 68% interval, chi2_min and chi2_null, prefixed by the label; the curve
+    itself for the "" and "signal_" cases and its jackknife errors for all.  Without a signal
+    (tau_mean = 0) the "signal_" fit is not made and its columns hold nan."""
+    from ..stats.covariance import jackknife_covariance
+    from ..stats.fit import fit_amplitude
+
+    row = {}
+    for label, p, samples in cases:
         cov = jackknife_covariance(samples)
         if label == "signal_" and opt.tau_mean == 0:  # no signal to fit: keep the columns, fill with nan
             nan = float("nan")
             row.update({f"{label}{key}": nan for key in ("tau_hat", "tau_err", "lower_68", "upper_68", "chi2_min",
                                                           "chi2_null")})
-            row[f"{label}p_uk"], row[f"{label}p_err_uk"] = pr.p[k], np.full(pr.p[k].shape, nan)
+            row[f"{label}p_uk"], row[f"{label}p_err_uk"] = p, np.full(p.shape, nan)
             continue
-        f = fit_amplitude(pr.p[k], template, cov, n_samples=n_jk, use=in_fit, likelihood=opt.likelihood)
+        f = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit, likelihood=opt.likelihood)
         row.update({f"{label}tau_hat": f.amplitude, f"{label}tau_err": f.error, f"{label}lower_68": f.lower_68,
                     f"{label}upper_68": f.upper_68, f"{label}chi2_min": f.chi2_min, f"{label}chi2_null": f.chi2_null})
         if label in ("", "signal_"):
-            row[f"{label}p_uk"] = pr.p[k]
+            row[f"{label}p_uk"] = p
         row[f"{label}p_err_uk"] = np.sqrt(np.diag(cov))
-    row["dof"] = int(in_fit.sum()) - 1
-    row["template_uk"] = template
-    row["in_fit"] = in_fit
     return row
 
 
