@@ -30,7 +30,6 @@ __all__ = ["MockTruth", "make_mock_survey", "SURVEY_NAME", "TELESCOPE_NAME", "ex
 
 import json
 import math
-import os
 import time
 import warnings
 from dataclasses import asdict, dataclass, field
@@ -44,7 +43,8 @@ from ..maps.sources import paint_beam_sources
 from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..core.errors import InputError, OutputError, PairvelWarning
-from ..core.sphere import unit_vectors
+from ._fields import _cone_box, _gaussian_fields, _patch_frame
+from ._fields import _gaussian_fields_at, _power_at  # noqa: F401  (tests import them from here)
 
 SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"
@@ -146,142 +146,6 @@ def _check_options(o: dict) -> None:
     need(o["progress"] is None or callable(o["progress"]), "progress", "None or a callable(str)")
 
 
-def _patch_frame(ra_min, ra_max, dec_min, dec_max) -> np.ndarray:
-    """Rotation (3, 3) whose rows are the unit vectors towards the footprint centre, east and north.
-
-    Grid coordinates are q = frame @ x; equatorial ones x = q @ frame for row vectors.  For a patch
-    centred on RA = 0, Dec = 0 the frame is exactly the identity.
-    """
-    ra_c = math.radians(ra_min + 0.5 * (ra_max - ra_min))
-    dec_c = math.radians(0.5 * (dec_min + dec_max))
-    centre = [math.cos(dec_c) * math.cos(ra_c), math.cos(dec_c) * math.sin(ra_c), math.sin(dec_c)]
-    east = [-math.sin(ra_c), math.cos(ra_c), 0.0]
-    north = [-math.sin(dec_c) * math.cos(ra_c), -math.sin(dec_c) * math.sin(ra_c), math.cos(dec_c)]
-    return np.array([centre, east, north])
-
-
-def _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, margin, frame=None):
-    """Bounding box, in the grid frame, of the light cone from a dense sample of its boundary."""
-    ra = np.linspace(ra_min, ra_max, 41)
-    dec = np.linspace(dec_min, dec_max, 41)
-    rr, dd = np.meshgrid(ra, dec)
-    u = unit_vectors(rr.ravel(), dd.ravel())
-    if frame is not None:
-        u = u @ frame.T
-    pts = np.concatenate([u * d for d in np.linspace(d_min, d_max, 41)])
-    return pts.min(axis=0) - margin, pts.max(axis=0) + margin
-
-
-def _power_at(k, cosmo):
-    """Linear P(k, z = 0) at every k > 0 of a grid, interpolated in log-log from 4096 log-spaced
-    evaluations (relative error below 1e-5; evaluating the transfer function at every mode of a
-    large grid costs seconds).  Zero where k = 0."""
-    from ..model.theory import linear_power
-
-    k = np.asarray(k, np.float64)
-    pos = k[k > 0]
-    out = np.zeros_like(k)
-    if pos.size:
-        nodes = np.geomspace(pos.min(), pos.max(), 4096)
-        logp = np.log(linear_power(nodes, 0.0, cosmo=cosmo))
-        out[k > 0] = np.exp(np.interp(np.log(pos), np.log(nodes), logp))
-    return out
-
-
-def _grid_wavevectors(shape, cell, *, half=False):
-    """Broadcastable kx, ky, kz (1/Mpc) of an FFT grid (kz of a real FFT with ``half``) and k^2 with
-    k^2 = 1 at k = 0 (so divisions by it stay finite)."""
-    kx = 2 * np.pi * np.fft.fftfreq(shape[0], d=cell)[:, None, None]
-    ky = 2 * np.pi * np.fft.fftfreq(shape[1], d=cell)[None, :, None]
-    kz = 2 * np.pi * (np.fft.rfftfreq if half else np.fft.fftfreq)(shape[2], d=cell)[None, None, :]
-    k2 = kx**2 + ky**2 + kz**2
-    k2[0, 0, 0] = 1.0
-    return kx, ky, kz, k2
-
-
-def _gaussian_fields(shape, cell, cosmo, rng):
-    """delta_0(x) and the velocity potential gradient u_0(x) = IFFT[i delta_0(k) k / k^2] (Mpc).
-
-    The z = 0 linear velocity is a H0 f(0) u_0; at redshift z it is a H(z) f(z) D(z) u_0.
-    """
-
-    kx, ky, kz, k2 = _grid_wavevectors(shape, cell, half=True)
-    white = np.fft.rfftn(rng.standard_normal(shape))
-    amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
-    amp[0, 0, 0] = 0.0
-    dk = white * amp
-    delta = np.fft.irfftn(dk, s=shape, axes=(0, 1, 2)).astype(np.float32)
-    u = []
-    for kk in (kx, ky, kz):
-        u.append(np.fft.irfftn(1j * dk * kk / k2, s=shape, axes=(0, 1, 2)).astype(np.float32))
-    return delta, u
-
-
-def _field_variance(shape, cell, cosmo, *, drop_nyquist: bool) -> float:
-    """Variance of the z = 0 grid field delta_0 of :func:`_gaussian_fields` (or, with ``drop_nyquist``,
-    of :func:`_gaussian_fields_at`): the mean over the grid's modes of P(k) / cell^3, k = 0 excluded."""
-    *_, k2 = _grid_wavevectors(shape, cell)
-    k2[0, 0, 0] = 0.0
-    power = _power_at(np.sqrt(k2), cosmo) / cell**3
-    if drop_nyquist:
-        for axis, n in enumerate(shape):
-            if n % 2 == 0:
-                power[(slice(None),) * axis + (n // 2,)] = 0.0
-    return float(power.sum() / power.size)
-
-
-def _gaussian_fields_at(points, lo, shape, cell, cosmo, rng, *, epsilon=1e-7):
-    """delta_0 and u_0 (as in :func:`_gaussian_fields`) evaluated exactly at arbitrary points.
-
-    The same Fourier modes as ``_gaussian_fields(shape, cell, cosmo, rng)`` (the same white-noise
-    draw), summed at each point by a type-2 non-uniform FFT (``ducc0.nufft.u2nu``) instead of
-    being read at the nearest grid node.  Nearest-node lookup makes the fields piecewise constant,
-    which multiplies their power by the cell window prod_i sinc^2(k_i cell / 2) and lowers the
-    pairwise velocity of close pairs (about 12% in the 0-20 Mpc bin with 8 Mpc cells); the band-
-    limited field evaluated at the points only lacks the modes beyond the grid's Nyquist
-    frequency.  The Nyquist planes of an even-sized grid are left out (their gradient has no real
-counterpart).  A test checks the sum against a direct evaluation of the Fourier series.
-
-    Parameters
-    ----------
-    points : ndarray of shape (N, 3), Mpc
-        Positions in the grid frame.
-    lo : ndarray of shape (3,), Mpc
-        Position of grid node (0, 0, 0); the box is periodic with side ``shape * cell``.
-
-    Returns
-    -------
-    delta : ndarray of shape (N,)
-    u : ndarray of shape (N, 3), Mpc
-    """
-    import ducc0
-
-    kx, ky, kz, k2 = _grid_wavevectors(shape, cell)
-    dk = np.fft.fftn(rng.standard_normal(shape))
-    amp = np.sqrt(_power_at(np.sqrt(k2), cosmo) / cell**3)
-    amp[0, 0, 0] = 0.0
-    dk *= amp
-    del amp
-    for axis, n in enumerate(shape):  # a Nyquist mode has no partner of opposite k: drop it so the fields stay real
-        if n % 2 == 0:
-            dk[(slice(None),) * axis + (n // 2,)] = 0.0
-    n_cells = shape[0] * shape[1] * shape[2]
-    grids = np.empty((4,) + tuple(shape), np.complex128)
-    grids[0] = dk
-    del dk
-    inv_k2 = 1.0 / k2
-    del k2
-    for i, kk in enumerate((kx, ky, kz)):
-        np.multiply(grids[0], inv_k2, out=grids[i + 1])
-        grids[i + 1] *= 1j * kk
-    del inv_k2
-    coord = np.ascontiguousarray(np.asarray(points, np.float64) - np.asarray(lo, np.float64))
-    values = ducc0.nufft.u2nu(grid=grids, coord=coord, forward=False, epsilon=epsilon, nthreads=os.cpu_count() or 1,
-                              periodicity=[float(s * cell) for s in shape], fft_order=True)
-    values = values.real / n_cells
-    return values[0], values[1:].T.copy()
-
-
 def _gaussian_alm(cl, lmax, rng):
     """Gaussian a_lm (healpy ordering) with power C_l, drawn from ``rng`` (no global random state)."""
     import healpy as hp
@@ -312,6 +176,22 @@ def _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg):
     cos_edge = math.cos(math.radians(min(max(abs(dec_min), abs(dec_max)) + margin_deg, 90.0)))
     half = 0.5 * (ra_max - ra_min) + margin_deg / max(cos_edge, 0.05)
     return np.sort(pix[np.abs(dra) <= half])
+
+
+def _add_to_footprint(values, foot, pix, val) -> None:
+    """Add ``val`` at the HEALPix pixels ``pix`` to ``values``, held on the sorted pixels ``foot``, in
+    place: repeated pixels add up, pixels outside ``foot`` (beyond the map's margin) are left out."""
+    idx = np.searchsorted(foot, pix)
+    ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
+    np.add.at(values, idx[ok], val[ok])
+
+
+def _white_noise(noise_uk_arcmin, nside, size, rng) -> np.ndarray:
+    """``size`` pixel values of white noise with ``noise_uk_arcmin`` uK-arcmin at ``nside``, from ``rng``."""
+    import healpy as hp
+
+    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
+    return rng.normal(0.0, sigma_pix, size)
 
 
 def _plain(obj):
@@ -348,22 +228,6 @@ def _check_extra_frequencies(freqs, noise, default_noise) -> dict:
         raise InputError(f"mock option 'extra_noise_uk_arcmin' must be one number >= 0 per extra frequency "
                          f"({len(freqs)}); got {noise!r}", key="extra_noise_uk_arcmin")
     return {float(f): float(n) for f, n in zip(freqs, noise)}
-
-
-def _frequency_map(nu, foot, cmb_values, ksz, tsz, noise_uk_arcmin, nside, rng):
-    """CMB + kSZ + tSZ scaled from 150 GHz to ``nu`` + white noise, on the footprint pixels."""
-    import healpy as hp
-
-    from ..model.sz import tsz_spectrum
-
-    scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz map's tSZ is _TSZ_F150 times the amplitude
-    values = cmb_values.copy()
-    for (pix, val), factor in ((ksz, 1.0), (tsz, scale)):
-        idx = np.searchsorted(foot, pix)
-        ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
-        np.add.at(values, idx[ok], factor * val[ok])
-    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
-    return values + rng.normal(0.0, sigma_pix, foot.size)
 
 
 def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_max=20.0, dec_min=-10.0,
@@ -442,193 +306,375 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     measured slope of the pixelised aperture.  tau_i is proportional to M_i^(2/3), scaled so that
     its mean over the written tracers is ``tau_mean``.
     """
-    import healpy as hp
-    from astropy.table import Table
-
-    from ..pairs.estimator import mean_pairwise_velocity_3d, pairwise_momentum
-    from ..pairs.geometry import comoving_positions
-    from ..maps.photometry import measure_apertures
-    from ..maps.skymap import SkyMap, write_partial_map
-    from ..model.theory import binned_pairwise_velocity, growth_factor, growth_rate
-    from ..maps.trend import remove_redshift_trend
-
     out = Path(out_dir)
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise OutputError(f"mock folder {out} exists and is not empty; choose a new folder", path=out)
-    _check_options(dict(n_tracers=n_tracers, nside=nside, ra_min=ra_min, ra_max=ra_max, dec_min=dec_min,
-                        dec_max=dec_max, z_min=z_min, z_max=z_max, tau_mean=tau_mean, bias=bias, cell_mpc=cell_mpc,
-                        beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
-                        aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
-                        tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo, progress=progress))
+    options = dict(n_tracers=n_tracers, nside=nside, ra_min=ra_min, ra_max=ra_max, dec_min=dec_min, dec_max=dec_max,
+                   z_min=z_min, z_max=z_max, tau_mean=tau_mean, bias=bias, cell_mpc=cell_mpc,
+                   beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
+                   aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
+                   tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo)
+    _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
+    spec = _MockSpec(**options, extra_noise=extra_noise)
     if seed is None:
         seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
-    rng = as_generator(seed)
+    rng = as_generator(seed)  # the stages draw from it in the order they run, which fixes every output
     say = progress or (lambda text: None)
-    timings = {}
-    t0 = time.perf_counter()
+    timings, t0 = {}, time.perf_counter()
 
-    # 1. Gaussian density and velocity fields at z = 0, on a grid turned towards the footprint
-    d_min, d_max = cosmo.comoving_distance_mpc([z_min, z_max])
-    frame = _patch_frame(ra_min, ra_max, dec_min, dec_max)
-    lo, hi = _cone_box(ra_min, ra_max, dec_min, dec_max, d_min, d_max, cell_mpc, frame)
-    shape = tuple(int(s) for s in np.ceil((hi - lo) / cell_mpc).astype(int))
+    cone = _cone_grid(spec)
+    say(f"mock: Gaussian field on a {'x'.join(map(str, cone.shape))} grid of {cell_mpc:g} Mpc cells")
+    delta0, u0 = _gaussian_fields(cone.shape, cell_mpc, cosmo, rng)
+    _lap(timings, "fields", t0)
+    cells, clipped_fraction = _poisson_cells(cone, delta0, spec, rng)
+    tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
+    del delta0, u0
+    amplitudes = _sz_amplitudes(tracers, spec, rng)
+    _lap(timings, "tracers", t0)
+    say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
+
+    foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0)
+    cmb = _cmb_on_footprint(spec, foot, rng, say)
+    _lap(timings, "cmb", t0)
+    ksz, tsz = _painted_sources(spec, tracers, amplitudes)
+    maps = _sky_maps(spec, foot, cmb, ksz, tsz, rng)
+    _lap(timings, "map", t0)
+
+    curves = _pairwise_truth(tracers, spec)
+    response = _aperture_response(spec, tracers, ksz, amplitudes.dt_ksz_uk)
+    _lap(timings, "truth", t0)
+
+    files = _write_survey(out, spec, tracers, amplitudes.log_mass, foot, maps)
+    truth = MockTruth(
+        n_tracers=int(tracers.z.size), tau_mean=float(tau_mean), bias=float(bias),
+        seed=int(seed) if isinstance(seed, (int, np.integer)) else None, options=_options_record(spec),
+        edges_mpc=curves.edges_mpc.tolist(), v12_3d_realised_km_s=curves.v12_3d.tolist(),
+        v12_los_realised_km_s=curves.v12_los.tolist(), v12_linear_km_s=curves.v12_linear.tolist(),
+        z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
+        timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
+    (out / "truth.json").write_text(json.dumps(_truth_record(truth, spec, curves), indent=2, allow_nan=False) + "\n")
+    return truth
+
+
+def _lap(timings: dict, name: str, t0: float) -> None:
+    """Record under ``name`` the seconds since ``t0`` that no earlier entry of ``timings`` holds."""
+    timings[name] = time.perf_counter() - t0 - sum(timings.values())
+
+
+# ---------------------------------------------------------------------------------------------
+# the stages of make_mock_survey, in the order it runs them
+
+@dataclass(frozen=True)
+class _MockSpec:
+    """The checked options of :func:`make_mock_survey` (same names, units and meaning), with the extra
+    maps as ``extra_noise``: {frequency in GHz: white noise in uK-arcmin}, in the order drawn."""
+
+    n_tracers: int
+    nside: int
+    ra_min: float
+    ra_max: float
+    dec_min: float
+    dec_max: float
+    z_min: float
+    z_max: float
+    tau_mean: float
+    bias: float
+    cell_mpc: float
+    beam_fwhm_arcmin: float
+    noise_uk_arcmin: float
+    aperture_radius_arcmin: float
+    include_cmb: bool
+    tsz_amplitude_uk: float
+    cosmo: Cosmology
+    extra_noise: dict
+
+
+@dataclass(frozen=True, eq=False)
+class _Cone:
+    """The light cone and the FFT grid around it, whose axes are turned by ``frame`` (:func:`_patch_frame`).
+
+    ``lo`` (Mpc, grid frame) is the outer corner of cell (0, 0, 0); ``d_min`` and ``d_max`` (Mpc) are the
+    comoving distances of z_min and z_max; ``growth`` is the growth factor D at ``z_grid``, 256 redshifts
+    from z_min to z_max (D varies slowly: interpolated).
+    """
+
+    frame: np.ndarray
+    lo: np.ndarray
+    shape: tuple
+    cell_mpc: float
+    d_min: float
+    d_max: float
+    z_grid: np.ndarray
+    growth: np.ndarray
+
+    def centres(self, axis: int) -> np.ndarray:
+        """Grid-frame coordinate (Mpc) of the cell centres along ``axis``."""
+        return self.lo[axis] + self.cell_mpc * (np.arange(self.shape[axis]) + 0.5)
+
+
+def _cone_grid(spec: _MockSpec) -> _Cone:
+    """The grid enclosing the light cone with one cell of margin, or an InputError naming ``cell_mpc``
+    when it would have more than ``_MAX_CELLS`` cells."""
+    from ..model.theory import growth_factor
+
+    d_min, d_max = spec.cosmo.comoving_distance_mpc([spec.z_min, spec.z_max])
+    frame = _patch_frame(spec.ra_min, spec.ra_max, spec.dec_min, spec.dec_max)
+    lo, hi = _cone_box(spec.ra_min, spec.ra_max, spec.dec_min, spec.dec_max, d_min, d_max, spec.cell_mpc, frame)
+    shape = tuple(int(s) for s in np.ceil((hi - lo) / spec.cell_mpc).astype(int))
     n_cells = shape[0] * shape[1] * shape[2]
     if n_cells > _MAX_CELLS:
         raise InputError(f"mock grid must have at most {_MAX_CELLS:,} cells; got {n_cells:,} "
-                         f"({shape[0]}x{shape[1]}x{shape[2]} of {cell_mpc:g} Mpc): increase cell_mpc or shrink "
-                         f"the footprint or redshift range", key="cell_mpc")
-    say(f"mock: Gaussian field on a {shape[0]}x{shape[1]}x{shape[2]} grid of {cell_mpc:g} Mpc cells")
-    delta0, u0 = _gaussian_fields(shape, cell_mpc, cosmo, rng)
-    timings["fields"] = time.perf_counter() - t0
+                         f"({shape[0]}x{shape[1]}x{shape[2]} of {spec.cell_mpc:g} Mpc): increase cell_mpc or "
+                         f"shrink the footprint or redshift range", key="cell_mpc")
+    z_grid = np.linspace(spec.z_min, spec.z_max, 256)
+    return _Cone(frame, lo, shape, spec.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=spec.cosmo))
 
-    # 2. tracers: Poisson sampling of the cone, constant comoving density
-    omega = math.radians(ra_max - ra_min) * (math.sin(math.radians(dec_max)) - math.sin(math.radians(dec_min)))
-    n_bar = n_tracers / (omega / 3 * (d_max**3 - d_min**3))
-    centres = [lo[i] + cell_mpc * (np.arange(shape[i]) + 0.5) for i in range(3)]
-    to_z = _inverse_distance(cosmo, z_max)
-    zg = np.linspace(z_min, z_max, 256)
-    d_grid = growth_factor(zg, cosmo=cosmo)
-    yy, zz = np.meshgrid(centres[1], centres[2], indexing="ij")
-    cells_x, cells_y, cells_z, counts = [], [], [], []
+
+def _poisson_cells(cone: _Cone, delta0, spec: _MockSpec, rng):
+    """Poisson numbers of tracers in the cells near the cone, drawn slab by slab along the first axis.
+
+    The mean count of a cell is n cell^3 max(1 + b D(z) delta_0, 0), with n the constant comoving
+    density that puts ``n_tracers`` in the cone and z the redshift of the cell centre.
+
+    Returns
+    -------
+    cells : ndarray of shape (n, 3), int
+        Grid index of each tracer's cell (a cell drawing k tracers appears k times).
+    clipped_fraction : float
+        Fraction of the cells near the cone whose 1 + b D delta_0 was negative (set to zero).
+    """
+    sin_dec = math.sin(math.radians(spec.dec_max)) - math.sin(math.radians(spec.dec_min))
+    omega = math.radians(spec.ra_max - spec.ra_min) * sin_dec
+    n_bar = spec.n_tracers / (omega / 3 * (cone.d_max**3 - cone.d_min**3))
+    to_z = _inverse_distance(spec.cosmo, spec.z_max)
+    x = cone.centres(0)
+    yy, zz = np.meshgrid(cone.centres(1), cone.centres(2), indexing="ij")
+    found, counts = [], []
     clipped = total = 0
-    for ix in range(shape[0]):
-        x = centres[0][ix]
-        dist = np.sqrt(x * x + yy**2 + zz**2)
-        near = (dist > d_min - cell_mpc) & (dist < d_max + cell_mpc)
+    for ix in range(cone.shape[0]):
+        dist = np.sqrt(x[ix] * x[ix] + yy**2 + zz**2)
+        near = (dist > cone.d_min - cone.cell_mpc) & (dist < cone.d_max + cone.cell_mpc)
         if not near.any():
             continue
-        growth = np.interp(to_z(dist[near]), zg, d_grid)
-        dens = 1.0 + bias * growth * delta0[ix][near]
+        growth = np.interp(to_z(dist[near]), cone.z_grid, cone.growth)
+        dens = 1.0 + spec.bias * growth * delta0[ix][near]
         clipped += int((dens < 0).sum())
         total += dens.size
-        k = rng.poisson(n_bar * cell_mpc**3 * np.clip(dens, 0.0, None))
+        k = rng.poisson(n_bar * cone.cell_mpc**3 * np.clip(dens, 0.0, None))
         iy, iz = np.nonzero(near)
         sel = k > 0
-        cells_x.append(np.full(sel.sum(), ix))
-        cells_y.append(iy[sel])
-        cells_z.append(iz[sel])
+        found.append(np.column_stack([np.full(sel.sum(), ix), iy[sel], iz[sel]]))
         counts.append(k[sel])
-    counts = np.concatenate(counts)
-    cx, cy, cz = (np.repeat(np.concatenate(c), counts) for c in (cells_x, cells_y, cells_z))
-    pos = np.column_stack([centres[0][cx], centres[1][cy], centres[2][cz]])
-    pos += rng.uniform(-0.5 * cell_mpc, 0.5 * cell_mpc, pos.shape)
-    pos = pos @ frame  # grid frame -> equatorial axes
+    return np.repeat(np.concatenate(found), np.concatenate(counts), axis=0), clipped / max(total, 1)
+
+
+@dataclass(frozen=True, eq=False)
+class _Tracers:
+    """Tracers in the cone: ``ra``, ``dec`` (degrees, RA in [0, 360)) and ``z`` of shape (n,), comoving
+    ``pos`` (Mpc) and ``vel`` (km/s) of shape (n, 3) in equatorial axes, ``v_r`` (km/s, > 0 receding),
+    and ``roundtrip_mpc``, the largest distance between ``pos`` and the position recomputed from
+    (ra, dec, z)."""
+
+    ra: np.ndarray
+    dec: np.ndarray
+    z: np.ndarray
+    pos: np.ndarray
+    vel: np.ndarray
+    v_r: np.ndarray
+    roundtrip_mpc: float
+
+
+def _tracers_in_cone(cone: _Cone, cells, u0, spec: _MockSpec, rng) -> _Tracers:
+    """Each tracer uniform within its cell, kept when inside the cone, with the linear velocity of its
+    cell at its own redshift, v = a H f D u_0; an InputError when fewer than two are left."""
+    from ..model.theory import growth_rate
+    from ..pairs.geometry import comoving_positions
+
+    pos = np.column_stack([cone.centres(i)[cells[:, i]] for i in range(3)])
+    pos += rng.uniform(-0.5 * cone.cell_mpc, 0.5 * cone.cell_mpc, pos.shape)
+    pos = pos @ cone.frame  # grid frame -> equatorial axes
     dist = np.linalg.norm(pos, axis=1)
     ra = np.degrees(np.arctan2(pos[:, 1], pos[:, 0]))
     dec = np.degrees(np.arcsin(pos[:, 2] / dist))
-    dra = (ra - ra_min) % 360.0
-    inside = (dist >= d_min) & (dist < d_max) & (dra < ra_max - ra_min) & (dec >= dec_min) & (dec < dec_max)
-    pos, dist, ra, dec = pos[inside], dist[inside], ra[inside] % 360.0, dec[inside]
-    cx, cy, cz = cx[inside], cy[inside], cz[inside]
-    n = pos.shape[0]
-    if n < 2:
-        raise InputError(f"mock option 'n_tracers' must give at least 2 tracers in the cone; got {n} "
-                         f"(requested {n_tracers})", key="n_tracers")
-    z = to_z(dist)
-    a = 1.0 / (1.0 + z)
-    vel_scale = a * cosmo.hubble_km_s_mpc(z) * growth_rate(z, cosmo=cosmo) * np.interp(z, zg, d_grid)
-    vel = np.column_stack([u[cx, cy, cz] for u in u0]).astype(np.float64) @ frame * vel_scale[:, None]
-    del delta0, u0
+    dra = (ra - spec.ra_min) % 360.0
+    inside = ((dist >= cone.d_min) & (dist < cone.d_max) & (dra < spec.ra_max - spec.ra_min)
+              & (dec >= spec.dec_min) & (dec < spec.dec_max))
+    pos, dist, ra, dec, cells = pos[inside], dist[inside], ra[inside] % 360.0, dec[inside], cells[inside]
+    if pos.shape[0] < 2:
+        raise InputError(f"mock option 'n_tracers' must give at least 2 tracers in the cone; got {pos.shape[0]} "
+                         f"(requested {spec.n_tracers})", key="n_tracers")
+    z = _inverse_distance(spec.cosmo, spec.z_max)(dist)
+    growth = np.interp(z, cone.z_grid, cone.growth)
+    vel_scale = 1.0 / (1.0 + z) * spec.cosmo.hubble_km_s_mpc(z) * growth_rate(z, cosmo=spec.cosmo) * growth
+    vel = np.column_stack([u[tuple(cells.T)] for u in u0]).astype(np.float64) @ cone.frame * vel_scale[:, None]
     v_r = np.einsum("ij,ij->i", vel, pos) / dist
-    roundtrip = float(np.max(np.linalg.norm(comoving_positions(ra, dec, z, cosmo=cosmo) - pos, axis=1)))
-    # mass proxy: dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^(2/3), mean tau_mean
-    uu = rng.uniform(size=n)
+    roundtrip = float(np.max(np.linalg.norm(comoving_positions(ra, dec, z, cosmo=spec.cosmo) - pos, axis=1)))
+    return _Tracers(ra, dec, z, pos, vel, v_r, roundtrip)
+
+
+@dataclass(frozen=True, eq=False)
+class _Amplitudes:
+    """Per tracer: ``log_mass`` (log10 Msun), the kSZ ``dt_ksz_uk`` and the 150 GHz tSZ ``tsz_uk``, both
+    aperture temperatures in uK."""
+
+    log_mass: np.ndarray
+    dt_ksz_uk: np.ndarray
+    tsz_uk: np.ndarray
+
+
+def _sz_amplitudes(tracers: _Tracers, spec: _MockSpec, rng) -> _Amplitudes:
+    """A mass proxy with dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^(2/3) with mean
+    ``tau_mean``, dT_kSZ = -tau T_CMB v_r / c; the tSZ f(150 GHz) A (M / 10^14.5)^(5/3) ((1 + z) / 1.35)^2."""
+    uu = rng.uniform(size=tracers.z.size)
     lo_m, hi_m = 10.0 ** (-1.5 * 14.0), 10.0 ** (-1.5 * 15.0)
     log_mass = np.log10(lo_m + uu * (hi_m - lo_m)) / -1.5
     tau = 10.0 ** (2.0 / 3.0 * (log_mass - 14.5))
-    tau *= tau_mean / tau.mean()
-    dt_ksz = -tau * T_CMB_UK * v_r / C_KM_S
-    tsz = _TSZ_F150 * tsz_amplitude_uk * 10.0 ** (5.0 / 3.0 * (log_mass - 14.5)) * ((1 + z) / 1.35) ** 2
-    timings["tracers"] = time.perf_counter() - t0 - sum(timings.values())
-    say(f"mock: {n} tracers, clipped cells {clipped / max(total, 1):.2%}")
+    tau *= spec.tau_mean / tau.mean()
+    dt_ksz = -tau * T_CMB_UK * tracers.v_r / C_KM_S
+    tsz = (_TSZ_F150 * spec.tsz_amplitude_uk * 10.0 ** (5.0 / 3.0 * (log_mass - 14.5))
+           * ((1 + tracers.z) / 1.35) ** 2)
+    return _Amplitudes(log_mass, dt_ksz, tsz)
 
-    # 3-4. the map on the footprint
-    area = math.pi * (aperture_radius_arcmin * ARCMIN_RAD) ** 2
-    foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0)
+
+def _cmb_on_footprint(spec: _MockSpec, foot, rng, say) -> np.ndarray:
+    """The beam-smoothed primary CMB (uK) at the footprint pixels ``foot``; zeros without ``include_cmb``."""
+    import healpy as hp
+
     values = np.zeros(foot.size)
-    if include_cmb:
+    if spec.include_cmb:
         ell, cl = load_cmb_cl()
-        lmax = min(3 * nside - 1, int(ell[-1]))
+        lmax = min(3 * spec.nside - 1, int(ell[-1]))
         alm = _gaussian_alm(cl[: lmax + 1], lmax, rng)
-        hp.almxfl(alm, hp.gauss_beam(math.radians(beam_fwhm_arcmin / 60.0), lmax=lmax), inplace=True)
-        say(f"mock: primary CMB at nside {nside}, lmax {lmax}")
-        values += hp.alm2map(alm, nside, lmax=lmax)[foot]
-        del alm
-    cmb_values = values.copy() if extra_noise else None  # the blackbody part, shared by the extra frequencies
-    timings["cmb"] = time.perf_counter() - t0 - sum(timings.values())
-    pix_k, val_k = paint_beam_sources(nside, ra, dec, dt_ksz * area, beam_fwhm_arcmin)
-    pix_t, val_t = paint_beam_sources(nside, ra, dec, tsz * area, beam_fwhm_arcmin)
-    for pix, val in ((pix_k, val_k), (pix_t, val_t)):
-        idx = np.searchsorted(foot, pix)
-        ok = (idx < foot.size) & (foot[np.minimum(idx, foot.size - 1)] == pix)
-        np.add.at(values, idx[ok], val[ok])
-    sigma_pix = noise_uk_arcmin / math.sqrt(hp.nside2pixarea(nside, degrees=True) * 3600.0)
-    values += rng.normal(0.0, sigma_pix, foot.size)
-    extra_maps = {}
-    for nu, noise_nu in extra_noise.items():  # several frequencies: drawn after the 150 GHz map
-        extra_maps[nu] = _frequency_map(nu, foot, cmb_values, (pix_k, val_k), (pix_t, val_t), noise_nu, nside, rng)
-    timings["map"] = time.perf_counter() - t0 - sum(timings.values())
+        hp.almxfl(alm, hp.gauss_beam(math.radians(spec.beam_fwhm_arcmin / 60.0), lmax=lmax), inplace=True)
+        say(f"mock: primary CMB at nside {spec.nside}, lmax {lmax}")
+        values += hp.alm2map(alm, spec.nside, lmax=lmax)[foot]
+    return values
 
-    # truth: realised pairwise velocities, linear theory, aperture response
-    edges = _DEFAULT_EDGES
-    v3d, _ = mean_pairwise_velocity_3d(pos, vel, edges)
-    # what the measurement sees: the Ferreira estimator on the true line-of-sight velocities, after
-    # the same redshift-trend removal the pipeline applies to temperatures (default sigma_z), which
-    # also removes the radial flow of any large-scale mode of the volume
+
+def _painted_sources(spec: _MockSpec, tracers: _Tracers, amplitudes: _Amplitudes):
+    """(pixels, values) of the kSZ and of the 150 GHz tSZ painted as beam-shaped sources whose solid-angle
+    integral is the aperture temperature times pi theta_ap^2."""
+    area = math.pi * (spec.aperture_radius_arcmin * ARCMIN_RAD) ** 2
+    return tuple(paint_beam_sources(spec.nside, tracers.ra, tracers.dec, amp * area, spec.beam_fwhm_arcmin)
+                 for amp in (amplitudes.dt_ksz_uk, amplitudes.tsz_uk))
+
+
+def _sky_maps(spec: _MockSpec, foot, cmb, ksz, tsz, rng) -> dict:
+    """{frequency in GHz: values at ``foot``} for 150 GHz, then each extra frequency, in that drawing order
+    (so the extra maps leave the 150 GHz one unchanged): CMB + kSZ + tSZ(nu) + white noise."""
+    from ..model.sz import tsz_spectrum
+
+    maps = {150.0: _frequency_map(foot, cmb, ksz, tsz, 1.0, spec.noise_uk_arcmin, spec.nside, rng)}
+    for nu, noise_nu in spec.extra_noise.items():
+        scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz tSZ is _TSZ_F150 times the amplitude
+        maps[nu] = _frequency_map(foot, cmb, ksz, tsz, scale, noise_nu, spec.nside, rng)
+    return maps
+
+
+def _frequency_map(foot, cmb_values, ksz, tsz, tsz_scale, noise_uk_arcmin, nside, rng):
+    """CMB + kSZ + ``tsz_scale`` times the 150 GHz tSZ + white noise, on the footprint pixels."""
+    values = cmb_values.copy()
+    for (pix, val), factor in ((ksz, 1.0), (tsz, tsz_scale)):
+        _add_to_footprint(values, foot, pix, factor * val)
+    return values + _white_noise(noise_uk_arcmin, nside, foot.size, rng)
+
+
+@dataclass(frozen=True, eq=False)
+class _PairwiseTruth:
+    """Pairwise velocity curves (km/s) over the separation bins ``edges_mpc`` (see :class:`MockTruth`):
+    ``v12_los`` after the redshift-trend removal, ``v12_los_no_trend`` without it."""
+
+    edges_mpc: np.ndarray
+    v12_3d: np.ndarray
+    v12_los: np.ndarray
+    v12_los_no_trend: np.ndarray
+    v12_linear: np.ndarray
+    z_eff: float
+
+
+def _pairwise_truth(tracers: _Tracers, spec: _MockSpec) -> _PairwiseTruth:
+    """Realised pairwise velocities of the tracers, and linear theory at their pair-weighted redshift.
+
+    What the measurement sees is the Ferreira estimator on the true line-of-sight velocities after the
+    same redshift-trend removal the pipeline applies to temperatures (default sigma_z), which also
+    removes the radial flow of any large-scale mode of the volume.
+    """
+    from ..maps.trend import remove_redshift_trend
+    from ..model.theory import binned_pairwise_velocity
+    from ..pairs.estimator import mean_pairwise_velocity_3d, pairwise_momentum
+
+    edges, pos, z, v_r = _DEFAULT_EDGES, tracers.pos, tracers.z, tracers.v_r
+    v3d, _ = mean_pairwise_velocity_3d(pos, tracers.vel, edges)
     los_raw = pairwise_momentum(pos, -v_r, edges)
     los = pairwise_momentum(pos, -remove_redshift_trend(v_r, z, sigma_z=_TREND_SIGMA_Z), edges, redshifts=z)
     z_eff = float(np.nansum(los.z_eff * los.denominator) / los.denominator.sum())
-    v_lin = binned_pairwise_velocity(edges, z_eff, bias, cosmo=cosmo)
-    ksz_only = SkyMap(nside, False, pix_k, val_k, np.ones(pix_k.size, np.float32))
-    resp = measure_apertures(ksz_only, ra, dec, aperture_radius_arcmin, max_masked_fraction=1.0).temperatures[0]
+    v_lin = binned_pairwise_velocity(edges, z_eff, spec.bias, cosmo=spec.cosmo)
+    return _PairwiseTruth(edges, v3d, los.p, los_raw.p, v_lin, z_eff)
+
+
+def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> float:
+    """Slope of the compensated-aperture temperatures against ``dt_ksz_uk`` on the noiseless map of the
+    painted kSZ sources ``ksz`` (pixels, values); nan, with a warning, when it cannot be measured."""
+    from ..maps.photometry import measure_apertures
+    from ..maps.skymap import SkyMap
+
+    pix, val = ksz
+    ksz_only = SkyMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))
+    resp = measure_apertures(ksz_only, tracers.ra, tracers.dec, spec.aperture_radius_arcmin,
+                             max_masked_fraction=1.0).temperatures[0]
     ok = np.isfinite(resp)
-    norm = float(np.sum(dt_ksz[ok] ** 2))
-    response = float(np.sum(resp[ok] * dt_ksz[ok]) / norm) if norm > 0 else math.nan
-    if not math.isfinite(response):
+    norm = float(np.sum(dt_ksz_uk[ok] ** 2))
+    response = float(np.sum(resp[ok] * dt_ksz_uk[ok]) / norm) if norm > 0 else math.nan
+    if not math.isfinite(response):  # stacklevel 3: the line that called make_mock_survey
         warnings.warn(f"mock aperture response could not be measured ({int(ok.sum())} usable apertures, "
-                      f"tau_mean = {tau_mean}); truth.json records it as null", PairvelWarning, stacklevel=2)
-    timings["truth"] = time.perf_counter() - t0 - sum(timings.values())
+                      f"tau_mean = {spec.tau_mean}); truth.json records it as null", PairvelWarning, stacklevel=3)
+    return response
+
+
+def _write_survey(out: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot, maps: dict) -> dict:
+    """Write the catalogue and one partial map per frequency into ``out``; the truth's ``files`` entry."""
+    from astropy.table import Table
+
+    from ..maps.skymap import write_partial_map
 
     out.mkdir(parents=True, exist_ok=True)
-    table = Table({"ra": ra, "dec": dec, "z": z, "log_mass": log_mass})
+    table = Table({"ra": tracers.ra, "dec": tracers.dec, "z": tracers.z, "log_mass": log_mass})
     table["ra"].unit = table["dec"].unit = "deg"
     table.meta.update({"SURVEY": SURVEY_NAME, "COMMENT": "synthetic catalogue made by pairvel mock"})
     table.write(out / CATALOGUE_FILE)
-    write_partial_map(out / MAP_FILE, foot, values.astype(np.float32), nside=nside, nest=False, unit="uK_CMB",
-                      extra_header={"TELESCOP": TELESCOPE_NAME, "FREQ": ("150 GHz", "observing frequency"),
-                                    "BEAMFWHM": (beam_fwhm_arcmin, "arcmin")})
-    for nu, vals in extra_maps.items():
-        write_partial_map(out / extra_map_file(nu), foot, vals.astype(np.float32), nside=nside, nest=False,
-                          unit="uK_CMB", extra_header={"TELESCOP": TELESCOPE_NAME,
-                                                       "FREQ": (f"{nu:g} GHz", "observing frequency"),
-                                                       "BEAMFWHM": (beam_fwhm_arcmin, "arcmin")})
-    options = {"n_tracers": n_tracers, "nside": nside, "ra_min": ra_min, "ra_max": ra_max, "dec_min": dec_min,
-               "dec_max": dec_max, "z_min": z_min, "z_max": z_max, "tau_mean": tau_mean, "bias": bias,
-               "cell_mpc": cell_mpc, "beam_fwhm_arcmin": beam_fwhm_arcmin, "noise_uk_arcmin": noise_uk_arcmin,
-               "aperture_radius_arcmin": aperture_radius_arcmin, "include_cmb": include_cmb,
-               "tsz_amplitude_uk": tsz_amplitude_uk, "cosmology": asdict(cosmo)}
+    files = {"catalogue": CATALOGUE_FILE}
+    for nu, values in maps.items():
+        key, name = ("map", MAP_FILE) if nu == 150 else (f"map_{nu:g}ghz", extra_map_file(nu))
+        write_partial_map(out / name, foot, values.astype(np.float32), nside=spec.nside, nest=False, unit="uK_CMB",
+                          extra_header={"TELESCOP": TELESCOPE_NAME, "FREQ": (f"{nu:g} GHz", "observing frequency"),
+                                        "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
+        files[key] = name
+    return files
+
+
+def _options_record(spec: _MockSpec) -> dict:
+    """Every option of the call, JSON-ready: the cosmology as a dict, the extra maps by frequency."""
+    options = asdict(spec)
+    extra_noise = options.pop("extra_noise")
+    options["cosmology"] = options.pop("cosmo")
     if extra_noise:
         options["extra_frequencies_ghz"] = {f"{nu:g}": noise_nu for nu, noise_nu in extra_noise.items()}
+    return _plain(options)
+
+
+def _truth_record(truth: MockTruth, spec: _MockSpec, curves: _PairwiseTruth) -> dict:
+    """truth.json's content: ``truth`` with the scenario, the definitions and the curves' ratio."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = los.p / v_lin
-    truth = MockTruth(
-        n_tracers=int(n), tau_mean=float(tau_mean), bias=float(bias),
-        seed=int(seed) if isinstance(seed, (int, np.integer)) else None,
-        options=_plain(options), edges_mpc=edges.tolist(), v12_3d_realised_km_s=v3d.tolist(),
-        v12_los_realised_km_s=los.p.tolist(), v12_linear_km_s=v_lin.tolist(), z_eff=z_eff,
-        aperture_response=response, clipped_cell_fraction=clipped / max(total, 1),
-        files={"catalogue": CATALOGUE_FILE, "map": MAP_FILE,
-               **{f"map_{nu:g}ghz": extra_map_file(nu) for nu in extra_maps}}, timings_s={k: round(v, 2) for k, v in timings.items()},
-        position_roundtrip_mpc=roundtrip)
+        ratio = curves.v12_los / curves.v12_linear
     record = asdict(truth)
     record.update({
         "scenario": {"survey": SURVEY_NAME, "telescope": TELESCOPE_NAME, "frequency_ghz": 150,
                      "note": "invented names; every number here was generated by pairvel mock"},
         "tau_definition": f"mean aperture optical depth: each tracer's kSZ is a beam-shaped source whose solid-angle "
-                          f"integral is dT pi theta_ap^2 with theta_ap = {aperture_radius_arcmin} arcmin",
+                          f"integral is dT pi theta_ap^2 with theta_ap = {spec.aperture_radius_arcmin} arcmin",
         "realised_over_linear": ratio.tolist(),
-        "v12_los_realised_no_trend_removal_km_s": los_raw.p.tolist(),
+        "v12_los_realised_no_trend_removal_km_s": curves.v12_los_no_trend.tolist(),
         "velocity_note": "v12_los_realised is the Ferreira estimator applied to the tracers' true line-of-sight "
                          f"velocities after the pipeline's redshift-trend removal (sigma_z = {_TREND_SIGMA_Z}), "
                          "i.e. what the kSZ measurement sees; v12_los_realised_no_trend_removal skips that removal; "
@@ -636,5 +682,4 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         "redshift_note": "cosmological redshifts only (no redshift-space distortion); comoving positions recomputed "
                          "from (ra, dec, z) with the recorded cosmology are the true ones (position_roundtrip_mpc)",
     })
-    (out / "truth.json").write_text(json.dumps(_plain(record), indent=2, allow_nan=False) + "\n")
-    return truth
+    return _plain(record)

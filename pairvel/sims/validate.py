@@ -224,8 +224,8 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     2.4-4.6% below b over 0.1 < z < 0.4; the returned effective bias is its mean over the kept
     tracers, and the validation's template uses it (the mock's true bias).
     """
-    from .mock import _field_variance
-    from .mock import _cone_box, _gaussian_fields, _gaussian_fields_at, _inverse_distance, _patch_frame
+    from ._fields import _cone_box, _field_variance, _patch_frame
+    from .mock import _inverse_distance
     from ..model.theory import growth_factor, growth_rate
 
     cosmo = DEFAULT_COSMOLOGY
@@ -245,14 +245,7 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     ra_r, dec_r = np.radians(ra), np.radians(dec)
     unit = np.column_stack([np.cos(dec_r) * np.cos(ra_r), np.cos(dec_r) * np.sin(ra_r), np.sin(dec_r)])
     q = (unit * dist[:, None]) @ frame.T  # grid frame
-    if opt.exact_fields:
-        delta, u = _gaussian_fields_at(q, lo, shape, opt.cell_mpc, cosmo, rng)
-    else:
-        delta0, u0 = _gaussian_fields(shape, opt.cell_mpc, cosmo, rng)
-        idx = np.clip(np.floor((q - lo) / opt.cell_mpc).astype(np.int64), 0, np.array(shape) - 1)
-        delta = delta0[tuple(idx.T)].astype(np.float64)
-        u = np.column_stack([c[tuple(idx.T)] for c in u0]).astype(np.float64)
-        del delta0, u0
+    delta, u = _fields_at_points(opt, q, lo, shape, cosmo, rng)
     z = _inverse_distance(cosmo, opt.z_max)(dist)
     zg = np.linspace(opt.z_min, opt.z_max, 256)  # D and f vary slowly: interpolate (error < 1e-6)
     growth = np.interp(z, zg, growth_factor(zg, cosmo=cosmo))
@@ -269,24 +262,31 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     return ra % 360.0, dec, z, v_r, bias_eff
 
 
+def _fields_at_points(opt: ValidationOptions, q, lo, shape, cosmo, rng):
+    """delta_0 (N,) and u_0 (N, 3), Mpc, at the grid-frame points ``q`` (N, 3) of a periodic box with corner
+    ``lo`` and ``shape`` cells: summed exactly at each point (``exact_fields``) or read at the nearest node."""
+    from ._fields import _gaussian_fields, _gaussian_fields_at
+
+    if opt.exact_fields:
+        return _gaussian_fields_at(q, lo, shape, opt.cell_mpc, cosmo, rng)
+    delta0, u0 = _gaussian_fields(shape, opt.cell_mpc, cosmo, rng)
+    idx = tuple(np.clip(np.floor((q - lo) / opt.cell_mpc).astype(np.int64), 0, np.array(shape) - 1).T)
+    return delta0[idx].astype(np.float64), np.column_stack([c[idx] for c in u0]).astype(np.float64)
+
+
 def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     """Paint dT onto a partial HEALPix map with white noise; compensated apertures at the tracers."""
-    import healpy as hp
-
     from ..maps.sources import paint_beam_sources
-    from .mock import _footprint_pixels
+    from .mock import _add_to_footprint, _footprint_pixels, _white_noise
     from ..maps.photometry import measure_apertures
     from ..maps.skymap import SkyMap
 
     foot = _footprint_pixels(opt.nside, -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg,
                              margin_deg=0.5)
     area = math.pi * (opt.aperture_radius_arcmin * ARCMIN_RAD) ** 2
-    sigma_pix = opt.noise_uk_arcmin / math.sqrt(hp.nside2pixarea(opt.nside, degrees=True) * 3600.0)
-    values = rng.normal(0.0, sigma_pix, foot.size)
+    values = _white_noise(opt.noise_uk_arcmin, opt.nside, foot.size, rng)
     pix, val = paint_beam_sources(opt.nside, ra, dec, dt_uk * area, opt.beam_fwhm_arcmin)
-    where = np.searchsorted(foot, pix)
-    ok = (where < foot.size) & (foot[np.minimum(where, foot.size - 1)] == pix)
-    np.add.at(values, where[ok], val[ok])
+    _add_to_footprint(values, foot, pix, val)
     sky = SkyMap(opt.nside, False, foot, values)
     res = measure_apertures(sky, ra, dec, opt.aperture_radius_arcmin, max_masked_fraction=0.1)
     return res.temperatures[0], res.usable
@@ -339,10 +339,30 @@ def _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended=None, 
     return pr, p_obj, p_re
 
 
+def _jackknife_regions(opt: ValidationOptions, ra, dec, rng) -> np.ndarray:
+    """Region index per tracer, made as the pipeline makes them: k-means (seeded from ``rng``) or HEALPix."""
+    from ..stats.covariance import healpix_regions, kmeans_regions
+
+    cov_cfg = CovarianceConfig(regions=opt.regions, n_regions=opt.n_regions, healpix_nside=opt.healpix_nside)
+    if cov_cfg.regions == "healpix":
+        return healpix_regions(ra, dec, cov_cfg.healpix_nside, min_tracers=cov_cfg.min_region_tracers)
+    return kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
+
+
+def _retrended(temps, z, regions, n_jk, sigma_z) -> np.ndarray:
+    """(n_jk, N): row k holds ``temps`` with the redshift trend estimated without region k (and zero in
+    region k), for the pipeline's jackknife, which redoes the trend removal inside each delete-one sample."""
+    from ..maps.trend import remove_redshift_trend
+
+    out = np.zeros((n_jk, temps.size))
+    for k in range(n_jk):
+        kept = regions != k
+        out[k, kept] = remove_redshift_trend(temps[kept], z[kept], sigma_z=sigma_z)
+    return out
+
+
 def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: np.ndarray) -> dict:
     """Draw one mock, run the pipeline's stages on it and return one row of results."""
-    from ..stats.covariance import healpix_regions, jackknife_covariance, kmeans_regions
-    from ..stats.fit import fit_amplitude
     from ..pairs.geometry import comoving_positions
     from ..model.template import template_for_run
     from ..maps.trend import remove_redshift_trend
@@ -361,18 +381,9 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     sets = remove_redshift_trend(raw, z, sigma_z=trend_cfg.sigma_z) if opt.trend else raw
 
     pos = comoving_positions(ra, dec, z, cosmo=DEFAULT_COSMOLOGY)
-    cov_cfg = CovarianceConfig(regions=opt.regions, n_regions=opt.n_regions, healpix_nside=opt.healpix_nside)
-    if cov_cfg.regions == "healpix":
-        regions = healpix_regions(ra, dec, cov_cfg.healpix_nside, min_tracers=cov_cfg.min_region_tracers)
-    else:
-        regions = kmeans_regions(ra, dec, cov_cfg.n_regions, seed=rng)
+    regions = _jackknife_regions(opt, ra, dec, rng)
     n_jk = int(regions.max()) + 1
-    retrended = None
-    if opt.trend:  # jackknife sample k with the trend re-estimated without region k, as the pipeline does
-        retrended = np.zeros((n_jk, ra.size))
-        for k in range(n_jk):
-            out = regions != k
-            retrended[k, out] = remove_redshift_trend(raw[0, out], z[out], sigma_z=trend_cfg.sigma_z)
+    retrended = _retrended(raw[0], z, regions, n_jk, trend_cfg.sigma_z) if opt.trend else None
     pr, p_obj_jk, p_retrend_jk = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended,
                                                          object_split=opt.diagnostics)
 
@@ -391,27 +402,41 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
         template = template * transfer.factor
         row["trend_transfer"] = transfer.ratio
     # "" : the pipeline's jackknife on the measured temperatures; "signal_": same on the noiseless kSZ;
-    # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones
-    cases = [("", 0, pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk), ("signal_", 1, pr.p_jk[1])]
+    # "objsplit_": the object-split jackknife (a diagnostic, see _pairs_and_object_split) on the measured ones;
+    # "plainjk_": the plain delete-one jackknife of the measured ones, trend removed once (a diagnostic)
+    cases = [("", pr.p[0], pr.p_jk[0] if p_retrend_jk is None else p_retrend_jk), ("signal_", pr.p[1], pr.p_jk[1])]
     if opt.diagnostics:
-        cases += [("objsplit_", 0, p_obj_jk[0]), ("plainjk_", 0, pr.p_jk[0])]
-    for label, k, samples in cases:
+        cases += [("objsplit_", pr.p[0], p_obj_jk[0]), ("plainjk_", pr.p[0], pr.p_jk[0])]
+    row.update(_fit_cases(opt, cases, template, in_fit, n_jk))
+    row["dof"] = int(in_fit.sum()) - 1
+    row["template_uk"] = template
+    row["in_fit"] = in_fit
+    return row
+
+
+def _fit_cases(opt: ValidationOptions, cases, template, in_fit, n_jk) -> dict:
+    """Row entries of the amplitude fit of each case (label, curve p(r) in uK, jackknife samples):
+    tau_hat, tau_err, the 68% interval, chi2_min and chi2_null, prefixed by the label; the curve
+    itself for the "" and "signal_" cases and its jackknife errors for all.  Without a signal
+    (tau_mean = 0) the "signal_" fit is not made and its columns hold nan."""
+    from ..stats.covariance import jackknife_covariance
+    from ..stats.fit import fit_amplitude
+
+    row = {}
+    for label, p, samples in cases:
         cov = jackknife_covariance(samples)
         if label == "signal_" and opt.tau_mean == 0:  # no signal to fit: keep the columns, fill with nan
             nan = float("nan")
             row.update({f"{label}{key}": nan for key in ("tau_hat", "tau_err", "lower_68", "upper_68", "chi2_min",
                                                           "chi2_null")})
-            row[f"{label}p_uk"], row[f"{label}p_err_uk"] = pr.p[k], np.full(pr.p[k].shape, nan)
+            row[f"{label}p_uk"], row[f"{label}p_err_uk"] = p, np.full(p.shape, nan)
             continue
-        f = fit_amplitude(pr.p[k], template, cov, n_samples=n_jk, use=in_fit, likelihood=opt.likelihood)
+        f = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit, likelihood=opt.likelihood)
         row.update({f"{label}tau_hat": f.amplitude, f"{label}tau_err": f.error, f"{label}lower_68": f.lower_68,
                     f"{label}upper_68": f.upper_68, f"{label}chi2_min": f.chi2_min, f"{label}chi2_null": f.chi2_null})
         if label in ("", "signal_"):
-            row[f"{label}p_uk"] = pr.p[k]
+            row[f"{label}p_uk"] = p
         row[f"{label}p_err_uk"] = np.sqrt(np.diag(cov))
-    row["dof"] = int(in_fit.sum()) - 1
-    row["template_uk"] = template
-    row["in_fit"] = in_fit
     return row
 
 

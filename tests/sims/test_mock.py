@@ -184,6 +184,26 @@ def test_same_seed_same_survey_and_none_is_recorded(tmp_path):
     assert d.v12_3d_realised_km_s == c.v12_3d_realised_km_s
 
 
+def test_random_draws_keep_their_order(tmp_path):
+    """Internal regression: values written by make_mock_survey before it was split into stages (commit
+    f063bce).  Any change to the order of the draws (field, Poisson counts, positions, masses, CMB a_lm,
+    150 GHz noise, extra-frequency noise) changes them; update them only with a deliberate change of the
+    mock's randomness."""
+    from pairvel.sims.mock import extra_map_file
+
+    truth = make_mock_survey(tmp_path / "m", seed=11, **dict(TINY, include_cmb=True, extra_frequencies_ghz=(90,)))
+    cat = Table.read(tmp_path / "m" / CATALOGUE_FILE)
+    assert truth.n_tracers == len(cat) == 619
+    np.testing.assert_allclose([cat["ra"][0], cat["z"][0], cat["log_mass"][0], cat["log_mass"][-1]],
+                               [42.06746975102437, 0.1005206292673904, 14.050565626940577, 14.14121278759036],
+                               rtol=1e-9)
+    # first and last footprint pixel of each map (float32): the CMB plus that map's own noise draw
+    for name, expected in ((MAP_FILE, [-93.65811920166016, 75.28042602539062]),
+                           (extra_map_file(90), [-93.59326934814453, 75.01764678955078])):
+        values = read_map(tmp_path / "m" / name).values
+        np.testing.assert_allclose([values[0], values[-1]], expected, rtol=1e-6)
+
+
 def test_velocity_rms_matches_linear_theory():
     """sigma_v^2 (1D) = (a H f D)^2 / (6 pi^2) int P(k) dk over the grid's k-range (analytic)."""
     from pairvel.model.cosmology import DEFAULT_COSMOLOGY as cosmo
