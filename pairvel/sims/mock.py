@@ -44,7 +44,6 @@ from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..core.errors import InputError, OutputError, PairvelWarning
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
-from ._fields import _gaussian_fields_at, _power_at  # noqa: F401  (tests import them from here)
 
 SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"

@@ -207,7 +207,7 @@ def test_random_draws_keep_their_order(tmp_path):
 def test_velocity_rms_matches_linear_theory():
     """sigma_v^2 (1D) = (a H f D)^2 / (6 pi^2) int P(k) dk over the grid's k-range (analytic)."""
     from pairvel.model.cosmology import DEFAULT_COSMOLOGY as cosmo
-    from pairvel.sims.mock import _gaussian_fields
+    from pairvel.sims._fields import _gaussian_fields
     from pairvel.model.theory import linear_power
 
     shape, cell = (96, 96, 96), 8.0
@@ -242,7 +242,7 @@ def test_refuses_non_empty_folder(tmp_path):
 
 def _direct_fields(points, lo, shape, cell, seed):
     """Slow reference: the Fourier series of the mock's fields summed mode by mode at each point."""
-    from pairvel.sims.mock import _power_at
+    from pairvel.sims._fields import _power_at
 
     k1 = [2 * np.pi * np.fft.fftfreq(n, d=cell) for n in shape]
     kk = np.stack(np.meshgrid(*k1, indexing="ij"), axis=-1).reshape(-1, 3)
@@ -263,7 +263,7 @@ def _direct_fields(points, lo, shape, cell, seed):
 def test_fields_at_points_match_a_direct_fourier_sum():
     """The non-uniform FFT evaluation equals the mode-by-mode Fourier sum off the grid (odd grid: no
     Nyquist planes), to the requested NUFFT accuracy."""
-    from pairvel.sims.mock import _gaussian_fields_at
+    from pairvel.sims._fields import _gaussian_fields_at
 
     shape, cell, lo = (7, 9, 5), 8.0, np.array([10.0, -30.0, 400.0])
     pts = lo + np.random.default_rng(3).uniform(0, 1, (50, 3)) * np.array(shape) * cell
@@ -275,7 +275,7 @@ def test_fields_at_points_match_a_direct_fourier_sum():
 
 def test_fields_at_grid_nodes_equal_the_grid_fields():
     """At the grid nodes, the point evaluation reproduces the FFT grid of _gaussian_fields (same draw)."""
-    from pairvel.sims.mock import _gaussian_fields, _gaussian_fields_at
+    from pairvel.sims._fields import _gaussian_fields, _gaussian_fields_at
 
     shape, cell, lo = (9, 7, 11), 6.0, np.zeros(3)
     idx = np.stack(np.meshgrid(*[np.arange(n) for n in shape], indexing="ij"), axis=-1).reshape(-1, 3)
