@@ -8,4 +8,4 @@ and those temperatures with the redshift trend removed.
 Depends on :mod:`pairvel.core` and :mod:`pairvel.model`.
 """
 
-__all__ = ["multifreq", "photometry", "prefilter", "radii", "skymap", "sources", "trend"]
+__all__ = ["harmonics", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources", "trend"]

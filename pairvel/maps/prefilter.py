@@ -43,6 +43,7 @@ import numpy as np
 
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import ConfigError, InputError
+from .harmonics import gaussian_beam
 
 _MAX_LMAX = 16384
 
@@ -87,12 +88,10 @@ def read_beam_table(path, lmax: int) -> np.ndarray:
 
 
 def _beam(pc, lmax: int) -> np.ndarray:
-    import healpy as hp
-
     if pc.beam_path is not None:
         return read_beam_table(pc.beam_path, lmax)
     if pc.beam_fwhm_arcmin is not None:
-        return hp.gauss_beam(pc.beam_fwhm_arcmin * ARCMIN_RAD, lmax=lmax)
+        return gaussian_beam(pc.beam_fwhm_arcmin, lmax)
     return np.ones(lmax + 1)
 
 

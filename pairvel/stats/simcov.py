@@ -19,6 +19,7 @@ import numpy as np
 from ..core.rng import as_generator
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import InputError
+from ..maps.harmonics import alm_ell_m, gaussian_beam
 
 
 def aperture_pixels(nside: int, ra_deg, dec_deg, radius_arcmin: float) -> np.ndarray:
@@ -75,13 +76,11 @@ def synthesise_pixels(alm, nside: int, lmax: int, pixels_ring, *, geometry=None,
 
 
 def _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl):
-    import healpy as hp
-
     cl = np.zeros(lmax + 1)
     if cmb_cl is not None:
         n = min(lmax + 1, len(cmb_cl))
         cl[:n] = cmb_cl[:n]
-    bl = hp.gauss_beam(beam_fwhm_arcmin * ARCMIN_RAD, lmax=lmax) if beam_fwhm_arcmin else np.ones(lmax + 1)
+    bl = gaussian_beam(beam_fwhm_arcmin, lmax) if beam_fwhm_arcmin else np.ones(lmax + 1)
     total = cl * bl**2
     if noise_cl is not None:
         nl = np.zeros(lmax + 1)
@@ -92,7 +91,7 @@ def _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl):
 
 
 def _draw_alm(amp, m0, rng) -> np.ndarray:
-    """Gaussian a_lm (healpy ordering) with <|a_lm|^2> = amp^2; real for the indices ``m0`` (m = 0)."""
+    """Gaussian a_lm (layout of :mod:`pairvel.maps.harmonics`) with <|a_lm|^2> = amp^2; real at ``m0`` (m = 0)."""
     alm = rng.standard_normal(2 * amp.size).view(np.complex128)      # independent (re, im) pairs
     alm *= amp / np.sqrt(2.0)
     alm[m0] = alm[m0].real * np.sqrt(2.0)                            # m = 0: real with variance amp^2
@@ -154,9 +153,9 @@ def simulate_aperture_temperatures(nside: int, ra_deg, dec_deg, radius_arcmin: f
         spec = (spec + (white_noise_uk_arcmin * ARCMIN_RAD) ** 2) * transfer**2
         sigma_pix = 0.0
     harmonic = bool(np.any(spec > 0))
-    ell, m = hp.Alm.getlm(lmax)
+    ell, m = alm_ell_m(lmax)
     amp = np.sqrt(spec[ell])
-    m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries in healpy ordering
+    m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries
     out = np.empty((int(n_sim), len(ra_deg)))
     for k in range(int(n_sim)):
         values = np.zeros(pix.size)
