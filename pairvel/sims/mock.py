@@ -448,7 +448,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     from ..pairs.estimator import mean_pairwise_velocity_3d, pairwise_momentum
     from ..pairs.geometry import comoving_positions
     from ..maps.photometry import measure_apertures
-    from ..maps.skymap import SkyMap, write_partial_map
+    from ..maps.healpix import HealpixMap
+    from ..maps.healpix_io import write_partial_map
     from ..model.theory import binned_pairwise_velocity, growth_factor, growth_rate
     from ..maps.trend import remove_redshift_trend
 
@@ -580,7 +581,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     los = pairwise_momentum(pos, -remove_redshift_trend(v_r, z, sigma_z=_TREND_SIGMA_Z), edges, redshifts=z)
     z_eff = float(np.nansum(los.z_eff * los.denominator) / los.denominator.sum())
     v_lin = binned_pairwise_velocity(edges, z_eff, bias, cosmo=cosmo)
-    ksz_only = SkyMap(nside, False, pix_k, val_k, np.ones(pix_k.size, np.float32))
+    ksz_only = HealpixMap(nside, False, pix_k, val_k, np.ones(pix_k.size, np.float32))
     resp = measure_apertures(ksz_only, ra, dec, aperture_radius_arcmin, max_masked_fraction=1.0).temperatures[0]
     ok = np.isfinite(resp)
     norm = float(np.sum(dt_ksz[ok] ** 2))

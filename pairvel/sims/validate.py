@@ -276,7 +276,7 @@ def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     from ..maps.sources import paint_beam_sources
     from .mock import _footprint_pixels
     from ..maps.photometry import measure_apertures
-    from ..maps.skymap import SkyMap
+    from ..maps.healpix import HealpixMap
 
     foot = _footprint_pixels(opt.nside, -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg,
                              margin_deg=0.5)
@@ -287,7 +287,7 @@ def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     where = np.searchsorted(foot, pix)
     ok = (where < foot.size) & (foot[np.minimum(where, foot.size - 1)] == pix)
     np.add.at(values, where[ok], val[ok])
-    sky = SkyMap(opt.nside, False, foot, values)
+    sky = HealpixMap(opt.nside, False, foot, values)
     res = measure_apertures(sky, ra, dec, opt.aperture_radius_arcmin, max_masked_fraction=0.1)
     return res.temperatures[0], res.usable
 

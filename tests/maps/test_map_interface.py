@@ -14,7 +14,6 @@ from pathlib import Path
 
 import healpy as hp
 import numpy as np
-import pytest
 
 from pairvel.input.config import PrefilterConfig
 from pairvel.maps.multifreq import combine_maps, pixel_difference_covariance
@@ -142,9 +141,9 @@ def _beam_table(folder: Path) -> Path:
 
 
 def _map_class():
-    from pairvel.maps.skymap import SkyMap
+    from pairvel.maps.healpix import HealpixMap
 
-    return SkyMap
+    return HealpixMap
 
 
 def test_stages_give_the_numbers_recorded_before_the_interface(tmp_path):
