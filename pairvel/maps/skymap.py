@@ -51,7 +51,7 @@ _FILE_FORMATS = ("pairvel.maps.healpix_io",)
 
 
 def frame_letter(coordsys) -> str | None:
-    """"C", "G" or "E" for an accepted spelling of a frame (``"ICRS"``, ``"galactic"``, ...), else None."""
+    """The frame letter, C, G or E, of an accepted spelling (``"ICRS"``, ``"galactic"``, ...); None for others."""
     return _FRAMES.get(str(coordsys).strip().upper())
 
 
