@@ -334,6 +334,18 @@ def _file_format(path):
     return next((m for m in modules if m.claims_file(path)), modules[0])
 
 
+def _read(reader, path, options):
+    """``reader(path, **options)``, its warnings passed on as if raised where read_map/read_mask was called."""
+    caught = []
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            return reader(path, **options)
+    finally:
+        for w in caught:
+            warnings.warn(w.message, w.category, stacklevel=3)
+
+
 def read_map(path, **options) -> SkyMap:
     """Read a temperature map into uK_CMB with the reader of the pixelisation the file holds.
 
@@ -345,7 +357,7 @@ def read_map(path, **options) -> SkyMap:
         ``ordering`` (the config's ``map.ordering``, for grids whose files may omit their pixel
         order).  See :func:`pairvel.maps.healpix_io.read_map`.
     """
-    return _file_format(path).read_map(path, **options)
+    return _read(_file_format(path).read_map, path, options)
 
 
 def read_mask(path, **options) -> SkyMap:
@@ -355,7 +367,7 @@ def read_mask(path, **options) -> SkyMap:
     ``options`` are keywords of that reader (``coordsys``, ``ordering``; see
     :func:`pairvel.maps.healpix_io.read_mask`).
     """
-    return _file_format(path).read_mask(path, **options)
+    return _read(_file_format(path).read_mask, path, options)
 
 
 # ---------------------------------------------------------------------- monopole and dipole

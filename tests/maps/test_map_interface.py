@@ -227,6 +227,13 @@ def test_reading_picks_the_pixelisation_from_the_file(tmp_path):
         read_map(junk)
     with pytest.raises(MapError, match="image.fits is not a HEALPix FITS map"):
         read_mask(image)
+    # the reader's warnings point at the line that called read_map, as its own would
+    from pairvel.core.errors import PairvelWarning
+
+    hp.write_map(tmp_path / "nocoord.fits", np.zeros(12 * 4 ** 2), column_units="uK_CMB", dtype=np.float64)
+    with pytest.warns(PairvelWarning, match="no COORDSYS keyword") as record:
+        read_map(tmp_path / "nocoord.fits")
+    assert [w.filename for w in record] == [__file__]
 
 
 def test_simulated_skies_follow_the_grid_and_frame_of_the_map():
