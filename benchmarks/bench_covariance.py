@@ -29,7 +29,8 @@ from pairvel.pairs.estimator import pairwise_momentum
 from pairvel.pairs.geometry import comoving_positions
 from pairvel.model.cmb import load_cmb_cl
 from pairvel.stats.nulltests import evaluate_null, shuffled_sets
-from pairvel.stats.simcov import aperture_pixels, simulate_aperture_temperatures
+from pairvel.maps.healpix import HealpixMap
+from pairvel.stats.simcov import simulate_aperture_temperatures
 
 
 def catalogue(n, seed=1):
@@ -85,10 +86,11 @@ def main(argv=None):
     if a.sims:
         cl = load_cmb_cl()[1]
         t0 = time.perf_counter()
-        npix = aperture_pixels(a.nside, ra, dec, a.radius_arcmin).size
+        grid = HealpixMap(a.nside, False, np.zeros(0, np.int64), np.zeros(0))  # the grid alone, no pixel held
+        npix = grid.aperture_support(ra, dec, np.sqrt(2.0) * a.radius_arcmin).values.size
         t_pix = time.perf_counter() - t0
         t0 = time.perf_counter()
-        sims = simulate_aperture_temperatures(a.nside, ra, dec, a.radius_arcmin, a.sims, seed=3, cmb_cl=cl,
+        sims = simulate_aperture_temperatures(grid, ra, dec, a.radius_arcmin, a.sims, seed=3, cmb_cl=cl,
                                               beam_fwhm_arcmin=1.4, white_noise_uk_arcmin=15.0, n_threads=a.threads)
         t_sim = time.perf_counter() - t0
         sims = np.where(np.isfinite(sims), sims, 0.0)

@@ -21,7 +21,7 @@ import time
 import numpy as np
 
 from pairvel.maps.photometry import measure_apertures
-from pairvel.maps.skymap import SkyMap
+from pairvel.maps.healpix import HealpixMap
 
 
 def main(argv=None):
@@ -41,7 +41,7 @@ def main(argv=None):
     t0 = time.perf_counter()
     values = rng.standard_normal(12 * nside ** 2, dtype=np.float32)
     values *= np.float32(args.noise)
-    sm = SkyMap.from_array(values)
+    sm = HealpixMap.from_array(values)
     ra = rng.uniform(0.0, 360.0, n)
     dec = np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, n)))
     print(f"map: nside {nside}, {sm.npix:,} pixels float32, white noise {args.noise:g} uK; made in "

@@ -23,7 +23,7 @@ import numpy as np
 
 from pairvel.input.config import PrefilterConfig
 from pairvel.maps.prefilter import apply_prefilter
-from pairvel.maps.skymap import SkyMap
+from pairvel.maps.healpix import HealpixMap
 
 
 def main(argv=None):
@@ -44,7 +44,7 @@ def main(argv=None):
             scale = 2048 / nside  # the demo's 1.4 arcmin beam and 2.1 arcmin aperture at nside 2048, scaled
             pc = PrefilterConfig(kind="matched", beam_fwhm_arcmin=1.4 * scale, noise_uk_arcmin=15.0, normalise=norm)
             t0 = time.perf_counter()
-            apply_prefilter(SkyMap.from_array(m), pc, radius_arcmin=2.1 * scale, seed=1)
+            apply_prefilter(HealpixMap.from_array(m), pc, radius_arcmin=2.1 * scale, seed=1)
             times.append(time.perf_counter() - t0)
         print(f"{nside:>6} {lmax:>6} {base:>11.2f} {times[0]:>11.2f} {times[1]:>11.2f} "
               f"{times[0] / base:>7.1f} {times[1] / base:>7.1f}")

@@ -86,7 +86,7 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
                  "rotated": rotated}
     sims = np.zeros((0, len(cat)))
     if cfg.covariance.estimator == "simulations":
-        with progress.stage(f"simulated maps: {cfg.covariance.n_sim} Gaussian skies at nside {sky.skymap.nside}"):
+        with progress.stage(f"simulated maps: {cfg.covariance.n_sim} Gaussian skies at {sky.skymap.grid_label}"):
             sims = simulated_sets(cfg, sky, cat, rng, progress)
     stack = TemperatureStack.build(temps, null_sets, retrended, sims)
     edges = cfg.bins.edges()
@@ -141,10 +141,7 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
     """Read (or combine) the map, apply the mask, remove monopole and dipole, pre-filter."""
     skymap, combination = read_input_map(cfg)  # one map, or the combination of [multifrequency]
     if cfg.map.mask_path is not None:
-        mask = read_mask(cfg.map.mask_path, nside=skymap.nside,
-                         nest=None if cfg.map.ordering is None else cfg.map.ordering == "NESTED",
-                         coordsys=skymap.coordsys)
-        skymap = skymap.with_mask(mask)
+        skymap = skymap.with_mask(read_mask(cfg.map.mask_path, ordering=cfg.map.ordering, coordsys=skymap.coordsys))
     dipole_fit = None
     if cfg.map.remove_dipole:
         skymap, dipole_fit = remove_monopole_dipole(skymap)
@@ -294,7 +291,7 @@ def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: P
 
         cmb_cl = load_cmb_cl()[1]
     pf = sky.prefilter
-    sims = simulate_aperture_temperatures(sky.skymap.nside, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
+    sims = simulate_aperture_temperatures(sky.skymap, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
                                           seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
                                           white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin,
                                           noise_cl=_noise_cl(cc.sim_noise_cl_path),

@@ -82,11 +82,11 @@ def test_per_tracer_radius_equals_measuring_each_tracer_alone(method, weighting)
     import healpy as hp
 
     from pairvel.maps.photometry import measure_apertures
-    from pairvel.maps.skymap import SkyMap
+    from pairvel.maps.healpix import HealpixMap
 
     nside = 128
     rng = np.random.default_rng(5)
-    sm = SkyMap.from_array(rng.normal(0, 10, 12 * nside ** 2))
+    sm = HealpixMap.from_array(rng.normal(0, 10, 12 * nside ** 2))
     ra, dec = rng.uniform(0, 360, 40), rng.uniform(-60, 60, 40)
     scale = rng.uniform(0.6, 1.8, 40)
     radii = np.array([60.0, 90.0])

@@ -6,6 +6,10 @@ In: map and mask files (or arrays), tracer positions and redshifts, the ``[map]`
 Out: a :class:`~pairvel.maps.skymap.SkyMap`, aperture temperatures per tracer and radius (uK),
 and those temperatures with the redshift trend removed.
 Depends on :mod:`pairvel.core` and :mod:`pairvel.model`.
+
+``skymap`` is the map interface the stages use; ``healpix`` (with ``healpix_io`` for its FITS
+files and the private ``_aperture_kernels``) is its HEALPix implementation.
 """
 
-__all__ = ["multifreq", "photometry", "prefilter", "radii", "skymap", "sources", "trend"]
+__all__ = ["harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
+           "trend"]

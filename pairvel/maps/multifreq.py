@@ -6,8 +6,9 @@ and kSZ unchanged when sum_i w_i = 1 and removes the tSZ when sum_i w_i f_i = 0.
 the one of least noise variance w^T N w is the closed form below (a constrained least-variance
 combination, solved with Lagrange multipliers).
 
-The maps are combined pixel by pixel after each is read with :func:`pairvel.maps.skymap.read_map`; the
-result is one :class:`~pairvel.maps.skymap.SkyMap` that every later stage uses as it would a single map.
+The maps are combined pixel by pixel after each is read with :func:`pairvel.maps.skymap.read_map`; they
+must share one pixel grid and frame.  The result is one :class:`~pairvel.maps.skymap.SkyMap` that every
+later stage uses as it would a single map.
 """
 
 from __future__ import annotations
@@ -18,7 +19,6 @@ __all__ = ["combination_weights", "noise_cost", "combine_maps", "pixel_differenc
 import math
 import warnings
 
-import healpy as hp
 import numpy as np
 
 from ..core.errors import ConfigError, MapError, PairvelWarning
@@ -102,31 +102,26 @@ def noise_cost(weights, noise_cov) -> float:
 
 
 def _common_support(maps):
-    """All maps in the first map's ordering: its held pixels and every map's values and weights there."""
+    """Every map's values on the first map's held pixels, and the least of their weights there."""
     first = maps[0]
-    pix = first.held_pixels()
     vals, wts = [], []
     for m in maps:
-        m = m.reordered(nest=first.nest)
-        if first.pixels is None and m.pixels is None:
-            v, w = m.values, m.weight  # full sky in the same ordering: no copy
-        else:
-            v, w = m.lookup(pix)
+        v, w = m.values_on(first)
         vals.append(v)
         wts.append(w)
-    return pix, vals, np.minimum.reduce(wts)
+    return vals, np.minimum.reduce(wts)
 
 
 def combine_maps(maps, weights, *, path=None) -> SkyMap:
-    """Pixel-wise sum_i w_i m_i of maps of one nside and frame.
+    """Pixel-wise sum_i w_i m_i of maps of one pixel grid and frame.
 
     Parameters
     ----------
     maps : sequence of SkyMap
-        Same nside and coordsys; any ordering (converted to the first map's).
+        Same grid (for HEALPix, the same nside, in any ordering) and coordsys.
     weights : array_like of shape (len(maps),)
     path : str, optional
-        Label of the result for messages and provenance.
+        Label of the result for messages and provenance; default "combination of k maps".
 
     Returns
     -------
@@ -136,23 +131,22 @@ def combine_maps(maps, weights, *, path=None) -> SkyMap:
     """
     _check_compatible(maps)
     w = np.asarray(weights, dtype=float)
-    pix, vals, weight = _common_support(maps)
-    total = np.zeros(pix.size)
+    vals, weight = _common_support(maps)
+    total = np.zeros(weight.size)
     for wi, v in zip(w, vals):
         total += wi * np.where(weight > 0, v, 0.0)
     total[weight == 0] = np.nan
     dtype = np.result_type(*[m.values.dtype for m in maps])
-    first = maps[0]
-    return SkyMap(first.nside, first.nest, first.pixels, total.astype(dtype), weight, path=path,
-                  coordsys=first.coordsys)
+    label = path if path is not None else f"combination of {len(maps)} maps"
+    return maps[0].with_values(total.astype(dtype), weight=weight, path=label)
 
 
 def _check_compatible(maps):
     first = maps[0]
     for m in maps[1:]:
-        if m.nside != first.nside:
-            raise MapError(f"map {m.path} has nside {m.nside} but map {first.path} has nside {first.nside}; the "
-                           f"frequency maps must share one nside", path=m.path, key="NSIDE")
+        if not first.same_grid(m):
+            raise MapError(f"map {m.path} has {m.grid_label} but map {first.path} has {first.grid_label}; the "
+                           f"frequency maps must share one pixel grid", path=m.path)
         if m.coordsys != first.coordsys:
             raise MapError(f"map {m.path} is in frame {m.coordsys} but map {first.path} is in frame "
                            f"{first.coordsys}; the frequency maps must share one frame", path=m.path, key="COORDSYS")
@@ -188,21 +182,18 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
         Fewer than 100 usable pixels with usable neighbours, or a noise variance left <= 0.
     """
     _check_compatible(maps)
-    pix, vals, weight = _common_support(maps)
+    vals, weight = _common_support(maps)
     first = maps[0]
     sel = np.flatnonzero(weight > 0)
     sel = sel[:: max(1, sel.size // _MAX_NOISE_PIXELS)]
-    nb = hp.get_all_neighbours(first.nside, pix[sel], nest=first.nest)  # (8, n), -1 where none
-    ok = np.all(nb >= 0, axis=0)
     diffs = []
-    nb_weight = np.ones(nb.shape, dtype=np.float32)
+    nb_weight = np.ones((8, sel.size), dtype=np.float32)
     nb_vals = []
     for m in maps:
-        m = m.reordered(nest=first.nest)
-        v, w = m.lookup(np.where(nb >= 0, nb, 0))
+        v, w = m.neighbour_values_on(first, sel)  # weight 0 where a neighbour is missing
         nb_vals.append(v)
         nb_weight = np.minimum(nb_weight, w)
-    ok &= np.all(nb_weight > 0, axis=0)
+    ok = np.all(nb_weight > 0, axis=0)
     if ok.sum() < 100:
         raise MapError(f"map {first.path}: only {int(ok.sum())} usable pixels with 8 usable neighbours in every "
                        f"map; too few to measure the noise (set multifrequency.noise_uk_arcmin)", path=first.path)
@@ -228,8 +219,8 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
 
 def _read_each(cfg):
     mc, mf = cfg.map, cfg.multifrequency
-    nest = None if mc.ordering is None else mc.ordering == "NESTED"
-    return [read_map(p, field=mc.field, unit=mc.unit, nest=nest, coordsys=mc.coordsys) for p in mf.map_paths]
+    return [read_map(p, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys)
+            for p in mf.map_paths]
 
 
 def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
@@ -251,8 +242,7 @@ def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
     """
     mc, mf = cfg.map, cfg.multifrequency
     if not mf.map_paths:
-        nest = None if mc.ordering is None else mc.ordering == "NESTED"
-        return read_map(mc.path, field=mc.field, unit=mc.unit, nest=nest, coordsys=mc.coordsys), None
+        return read_map(mc.path, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys), None
     maps = _read_each(cfg)
     _check_compatible(maps)
     freqs = np.asarray(mf.frequencies_ghz, dtype=float)

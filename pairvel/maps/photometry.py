@@ -1,4 +1,4 @@
-"""Compensated top-hat aperture photometry on HEALPix maps, full or partial sky.
+"""Compensated top-hat aperture photometry on a sky map, full or partial sky.
 
 For a tracer at direction n and a disc radius theta,
 
@@ -10,24 +10,20 @@ gradient cancels up to pixelisation.  Each pixel enters its mean with the map's 
 (1 = usable, 0 = masked), so masked pixels, and pixels a partial map does not hold, are left
 out; the masked fraction of each region is 1 - (sum of weights) / (number of pixel centres).
 
-One ``healpy.query_disc`` of radius sqrt(2) theta_max per tracer (RING scheme, the fast one),
-then numpy for everything else: exact chord distances of the pixel centres split disc and
-annulus, and ``bincount`` sums give the means ("direct" method).  The default "kernel" method
-gets the same sums from a compiled walk over the RING pixel rings (``_aperture_kernels.py``),
-with no Python loop over positions.  Pixels can count whole by their centre, or by a fraction
-near the edges (a linear ramp in distance, or sub-pixel centres).
+This module validates, rotates the tracers into the map's frame and turns region sums into
+temperatures; the sums themselves (which pixels a disc covers, by their centres or by a fraction
+near the edges) come from the map's :meth:`~pairvel.maps.skymap.SkyMap.aperture_sums`, for
+HEALPix a compiled walk over the pixel rings or one disc query per position.
 """
 
 from __future__ import annotations
 
-__all__ = ["ApertureResult", "aperture_temperatures", "measure_apertures", "random_positions_in_footprint",
-           "measure_random_apertures"]
+__all__ = ["ApertureResult", "measure_apertures", "random_positions_in_footprint", "measure_random_apertures"]
 
 import math
 import warnings
 from dataclasses import dataclass
 
-import healpy as hp
 import numpy as np
 
 from ..core.rng import as_generator
@@ -35,9 +31,7 @@ from ..core.constants import ARCMIN_RAD
 from ..core.errors import InputError, MapError, PairvelWarning
 from .skymap import SkyMap
 
-_CHUNK = 4096               # tracers per vectorised batch (and per progress call)
 _MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" is not what anyone wants
-_SUBPIXEL_LEVELS = 10       # random positions: uniform over 4^10 sub-pixels of the chosen pixel
 
 
 @dataclass(frozen=True, eq=False)
@@ -106,11 +100,6 @@ def _check_fraction(max_masked_fraction) -> float:
     return float(f)
 
 
-def _chord2(angle_rad):
-    """Squared chord length of an angle on the unit sphere: (2 sin(a/2))^2."""
-    return (2.0 * np.sin(0.5 * np.asarray(angle_rad))) ** 2
-
-
 def _ang2vec(ra, dec) -> np.ndarray:
     ra_r, dec_r = np.radians(ra), np.radians(dec)
     cd = np.cos(dec_r)
@@ -121,118 +110,13 @@ _WEIGHTINGS = ("centre", "fraction", "subsample")
 _METHODS = ("auto", "kernel", "direct")
 
 
-def _half_ramp(nside: int) -> float:
-    """Half-width (chord, radians) of the ramp of the "fraction" weighting: half the mean pixel size."""
-    return 0.5 * math.sqrt(4.0 * math.pi / (12.0 * nside ** 2))
-
-
-def _region_fractions(d2, c2_in, c2_out, weighting, nside, half):
-    """Fraction of each candidate pixel in the disc and in the annulus, for one radius (numpy path)."""
-    if weighting == "centre":
-        fd = (d2 <= c2_in).astype(np.float64)
-        return fd, ((d2 > c2_in) & (d2 <= c2_out)).astype(np.float64)
-    d = np.sqrt(d2)
-    fd = np.clip((np.sqrt(c2_in) + half - d) / (2.0 * half), 0.0, 1.0)
-    fo = np.clip((np.sqrt(c2_out) + half - d) / (2.0 * half), 0.0, 1.0)
-    return fd, fo - fd
-
-
-def _subsample_fractions(nside, pix_ring, vb, owner, d2, c2_in, c2_out, level):
-    """Fractions in disc and annulus from 4^level sub-pixel centres, for pixels near an edge only."""
-    edge_c = 2.0 * hp.max_pixrad(nside)  # a pixel whose centre is farther than this from an edge is whole
-    d = np.sqrt(d2)
-    near = (np.abs(d - np.sqrt(c2_in)) < edge_c) | (np.abs(d - np.sqrt(c2_out)) < edge_c)
-    fd = (d2 <= c2_in).astype(np.float64)
-    fo = (d2 <= c2_out).astype(np.float64)
-    idx = np.flatnonzero(near)
-    n_child = 4 ** level
-    for c0 in range(0, idx.size, max(1, (1 << 21) // n_child)):
-        part = idx[c0: c0 + max(1, (1 << 21) // n_child)]
-        children = (hp.ring2nest(nside, pix_ring[part])[:, None] * n_child + np.arange(n_child)[None, :]).ravel()
-        cx, cy, cz = hp.pix2vec(nside << level, children, nest=True)
-        o = np.repeat(owner[part], n_child)
-        cd2 = (cx - vb[o, 0]) ** 2 + (cy - vb[o, 1]) ** 2 + (cz - vb[o, 2]) ** 2
-        fd[part] = (cd2 <= np.repeat(c2_in[part], n_child)).reshape(-1, n_child).mean(axis=1)
-        fo[part] = (cd2 <= np.repeat(c2_out[part], n_child)).reshape(-1, n_child).mean(axis=1)
-    return fd, fo - fd
-
-
-def _sums_direct(skymap, vec, c2_in, c2_out, weighting, level, progress):
-    """(6, R, N) region sums with one healpy.query_disc per position and numpy for the rest; c2_in, c2_out (R, N)."""
-    n, nr = vec.shape[0], c2_in.shape[0]
-    nside = skymap.nside
-    half = _half_ramp(nside)
-    pad = {"centre": 0.0, "fraction": half, "subsample": 2.0 * hp.max_pixrad(nside)}[weighting]
-    r_query = min(math.pi, 2.0 * math.asin(min(1.0, 0.5 * (math.sqrt(float(c2_out.max())) + pad))) + 1e-12)
-    sums = np.zeros((6, nr, n))
-    chunk = _CHUNK if weighting != "subsample" else max(64, _CHUNK // 4 ** max(level - 1, 0))
-    for b0 in range(0, n, chunk):
-        b1 = min(b0 + chunk, n)
-        m = b1 - b0
-        vb = vec[b0:b1]
-        lists = [hp.query_disc(nside, vb[k], r_query, inclusive=False) for k in range(m)]
-        lens = np.fromiter((p.size for p in lists), dtype=np.int64, count=m)
-        pix_ring = np.concatenate(lists) if m else np.zeros(0, np.int64)
-        owner = np.repeat(np.arange(m), lens)
-        px, py, pz = hp.pix2vec(nside, pix_ring)
-        d2 = (px - vb[owner, 0]) ** 2 + (py - vb[owner, 1]) ** 2 + (pz - vb[owner, 2]) ** 2
-        pix = hp.ring2nest(nside, pix_ring) if skymap.nest else pix_ring
-        vals, w = skymap.lookup(pix)
-        w = w.astype(np.float64)
-        wv = np.where(w > 0, vals, 0.0) * w
-        for r in range(nr):
-            ci, co = c2_in[r, b0:b1][owner], c2_out[r, b0:b1][owner]
-            if weighting == "subsample":
-                fd, fa = _subsample_fractions(nside, pix_ring, vb, owner, d2, ci, co, level)
-            else:
-                fd, fa = _region_fractions(d2, ci, co, weighting, nside, half)
-            for k, f in enumerate((fd, fd * w, fd * wv, fa, fa * w, fa * wv)):
-                sums[k, r, b0:b1] = np.bincount(owner, weights=f, minlength=m)
-        if progress is not None:
-            progress(b1, n)
-    return sums
-
-
-def _sums_kernel(skymap, vec, c2_in, c2_out, weighting, progress):
-    """(6, R, N) region sums from the compiled ring walk (no Python loop over positions)."""
-    from ._aperture_kernels import aperture_sums
-
-    ring = skymap.reordered(nest=False)
-    full = ring.pixels is None
-    held = np.zeros(0, np.int64) if full else ring.pixels
-    values = ring.values if ring.values.dtype in (np.float32, np.float64) else ring.values.astype(np.float64)
-    half = _half_ramp(skymap.nside) if weighting == "fraction" else 0.0
-    n, nr = vec.shape[0], c2_in.shape[0]
-    # visit positions in RING pixel order of the map, so neighbouring apertures read neighbouring memory
-    order = np.argsort(hp.vec2pix(skymap.nside, vec[:, 0], vec[:, 1], vec[:, 2]), kind="stable")
-    vec_sorted = vec[order]
-    sums = np.zeros((6, nr, n))
-    step = _CHUNK
-    for b0 in range(0, n, step):
-        b1 = min(b0 + step, n)
-        part = np.zeros((6, nr, b1 - b0))
-        rows = order[b0:b1]
-        aperture_sums(skymap.nside, np.ascontiguousarray(vec_sorted[b0:b1]), np.sqrt(c2_in[:, rows]),
-                      np.sqrt(c2_out[:, rows]), half, held, full, values, ring.weight, part)
-        sums[:, :, order[b0:b1]] = part
-        if progress is not None:
-            progress(b1, n)
-    return sums
-
-
 def _measure(skymap: SkyMap, ra, dec, radii, max_masked_fraction, progress, *, weighting="centre", method="auto",
              level=3, scale=None) -> ApertureResult:
     """Validated inputs (positions already in the map's frame) in, ApertureResult out (see measure_apertures)."""
     vec = _ang2vec(ra, dec)
     theta = radii[:, None] * ARCMIN_RAD * (np.ones(ra.size) if scale is None else scale)[None, :]  # (R, N)
-    c2_in = _chord2(theta)
-    c2_out = _chord2(math.sqrt(2.0) * theta)
-    use_kernel = method == "kernel" or (method == "auto" and weighting != "subsample")
-    if use_kernel:
-        sums = _sums_kernel(skymap, vec, c2_in, c2_out, weighting, progress)
-    else:
-        sums = _sums_direct(skymap, vec, c2_in, c2_out, weighting, level, progress)
-    nd, wd, sd, na, wa, sa = sums
+    nd, wd, sd, na, wa, sa = skymap.aperture_sums(vec, theta, math.sqrt(2.0) * theta, weighting=weighting,
+                                                  method=method, subsample_level=level, progress=progress)
     with np.errstate(invalid="ignore", divide="ignore"):
         temps = np.where((wd > 0) & (wa > 0), sd / np.where(wd > 0, wd, 1.0) - sa / np.where(wa > 0, wa, 1.0), np.nan)
         frac_disc = np.clip(np.where(nd > 0, 1.0 - wd / np.where(nd > 0, nd, 1.0), 1.0), 0.0, 1.0)
@@ -243,16 +127,6 @@ def _measure(skymap: SkyMap, ra, dec, radii, max_masked_fraction, progress, *, w
     n_disc = np.rint(nd).astype(np.int64)
     n_ann = np.rint(na).astype(np.int64)
     return ApertureResult(radii, temps, frac_disc, frac_ann, n_disc, n_ann, usable, max_masked_fraction)
-
-
-def _to_map_frame(skymap: SkyMap, ra, dec, *, inverse=False):
-    """Equatorial (ra, dec) to the map's frame (or back with ``inverse``), degrees; identity for "C"."""
-    if skymap.coordsys == "C":
-        return ra, dec
-    frames = [skymap.coordsys, "C"] if inverse else ["C", skymap.coordsys]
-    lon, lat = hp.Rotator(coord=frames)(np.asarray(ra, dtype=np.float64), np.asarray(dec, dtype=np.float64), lonlat=True)
-    lon = np.mod(lon, 360.0)
-    return lon, np.clip(lat, -90.0, 90.0)
 
 
 def _check_scale(radius_scale, n):
@@ -298,11 +172,12 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
         How a pixel counts in a region: "centre" whole pixels by their centre; "fraction" a linear
         ramp in distance one mean pixel size wide across each edge (a pixel centred on the edge
         counts half); "subsample" the fraction of its 4^subsample_level NESTED sub-pixel centres
-        inside, computed for pixels near an edge.
+        inside, computed for pixels near an edge (for HEALPix, NESTED sub-pixels).
     method : {"auto", "kernel", "direct"}, default "auto"
-        "kernel": compiled ring walk, no Python loop over positions (centre and fraction only);
-        "direct": one healpy.query_disc per position plus numpy.  "auto" takes the kernel unless
-        ``pixel_weighting`` is "subsample".  Both give the same sums (tests compare them).
+        "kernel": the map's compiled path, no Python loop over positions (centre and fraction
+        only; for HEALPix a walk over the pixel rings); "direct": its numpy reference (for HEALPix
+        one disc query per position).  "auto" takes the kernel unless ``pixel_weighting`` is
+        "subsample".  Both give the same sums (tests compare them).
     subsample_level : int, default 3
         Sub-pixels per pixel side = 2^level for "subsample".
     radius_scale : ndarray of shape (N,), optional
@@ -342,61 +217,16 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
                          f"{radii.max() * scale.max():g}")
     expected = math.pi * smallest ** 2 / skymap.pixel_area_arcmin2
     if expected < 3.0:
-        warnings.warn(f"aperture radius {smallest:g} arcmin holds only ~{expected:.1f} pixel centres at nside "
-                      f"{skymap.nside} (pixel size {skymap.pixel_size_arcmin:.2f} arcmin); the aperture temperature "
-                      f"is dominated by pixelisation", PairvelWarning, stacklevel=2)
-    ra, dec = _to_map_frame(skymap, ra, dec)
+        warnings.warn(f"aperture radius {smallest:g} arcmin holds only ~{expected:.1f} pixel centres at "
+                      f"{skymap.grid_label} (pixel size {skymap.pixel_size_arcmin:.2f} arcmin); the aperture "
+                      f"temperature is dominated by pixelisation", PairvelWarning, stacklevel=2)
+    ra, dec = skymap.from_equatorial(ra, dec)
     return _measure(skymap, ra, dec, radii, fmax, progress, weighting=pixel_weighting, method=method,
                     level=int(subsample_level), scale=scale)
 
 
-def aperture_temperatures(hpx_map, ra_deg, dec_deg, radius_arcmin, *, nest=False):
-    """Compensated top-hat aperture temperatures on a full-sky HEALPix array.
-
-    Parameters
-    ----------
-    hpx_map : ndarray of shape (12 nside^2,), uK
-        Full-sky map; UNSEEN and NaN pixels are left out of the means.
-    ra_deg, dec_deg : ndarray of shape (N,), degrees
-    radius_arcmin : float or sequence of float, arcmin
-        Disc radius theta (annulus theta..sqrt(2) theta).
-    nest : bool, default False
-        Ordering of ``hpx_map``.
-
-    Returns
-    -------
-    ndarray of shape (N,) for a scalar radius, (n_radii, N) for a sequence, uK
-        NaN where the disc or the annulus holds no usable pixel.
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> m = np.full(12 * 256**2, 5.0)
-    >>> float(aperture_temperatures(m, [10.0], [20.0], 30.0)[0])
-    0.0
-    """
-    skymap = SkyMap.from_array(hpx_map, nest=nest)
-    ra, dec = _check_positions(ra_deg, dec_deg)
-    radii = _check_radii(radius_arcmin)
-    res = _measure(skymap, ra, dec, radii, 1.0, None)
-    return res.temperatures[0] if np.ndim(radius_arcmin) == 0 else res.temperatures
-
-
-def _candidates(skymap: SkyMap, usable_pix: np.ndarray, k: int, rng: np.random.Generator):
-    """k positions uniform over the area of the usable pixels (ra, dec in degrees)."""
-    nside = skymap.nside
-    levels = min(_SUBPIXEL_LEVELS, 29 - int(round(math.log2(nside))))
-    pix = usable_pix[rng.integers(0, usable_pix.size, k)]
-    nest_pix = pix if skymap.nest else hp.ring2nest(nside, pix)
-    # HEALPix pixels have equal areas, and so do the 4^levels NESTED children of each one: a random
-    # child centre is uniform within the pixel to 1/2^levels of its size.
-    child = nest_pix * (4 ** levels) + rng.integers(0, 4 ** levels, k)
-    return hp.pix2ang(nside * 2 ** levels, child, nest=True, lonlat=True)
-
-
 def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto", scale=None):
-    usable_pix = skymap.usable_pixels()
-    if usable_pix.size == 0:
+    if not np.any(skymap.weight > 0):
         raise MapError(f"map {skymap.path}: no usable pixels to place random apertures on", path=skymap.path)
     ra_parts, dec_parts, t_parts = [], [], []
     have, drawn, accepted = 0, 0, 0
@@ -407,14 +237,14 @@ def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting=
                            f"or too fragmented for this aperture", path=skymap.path)
         rate = max((accepted + 1) / (drawn + 1), 0.01)
         k = int(min(max((n - have) / rate * 1.2 + 64, 256), 1 << 20, max_draws - drawn))
-        ra, dec = _candidates(skymap, usable_pix, k, rng)
+        ra, dec = skymap.random_points(k, rng)  # in the map's frame
         cand_scale = None if scale is None else scale[rng.integers(0, scale.size, k)]
         res = _measure(skymap, ra, dec, radii, fmax, None, weighting=weighting, method=method, scale=cand_scale)
         ok = np.flatnonzero(res.usable)
         drawn += k
         accepted += ok.size
         ok = ok[: n - have]
-        ra_eq, dec_eq = _to_map_frame(skymap, ra[ok], dec[ok], inverse=True)
+        ra_eq, dec_eq = skymap.to_equatorial(ra[ok], dec[ok])
         ra_parts.append(ra_eq)
         dec_parts.append(dec_eq)
         t_parts.append(res.temperatures[:, ok])

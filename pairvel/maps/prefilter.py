@@ -1,7 +1,8 @@
 """Optional harmonic-space filtering of the temperature map before the aperture photometry.
 
 A filter is a function of multipole F_l applied as a_lm -> F_l a_lm to the map (masked and
-unheld pixels set to the mean of the usable ones first; no apodisation).  Kinds:
+unheld pixels set to the mean of the usable ones first; no apodisation), by the map's own
+harmonic transforms (:meth:`~pairvel.maps.skymap.SkyMap.filtered`).  Kinds:
 
 * ``highpass``: 0 below ``highpass_ell - highpass_width``, 1 above ``highpass_ell``, a cosine
   taper between: removes the large-scale primary CMB that the compensated aperture only partly
@@ -24,7 +25,8 @@ divided by the response R of the aperture to a beam-shaped source, filtered over
 * ``normalise = "aperture"``: analytic, R = sum_l (2l+1) p_l B_l W_l F_l / sum_l (2l+1) p_l B_l W_l,
   with W_l the Legendre coefficients of the compensated aperture (disc mean minus annulus mean,
   from the disc window [P_{l-1}(cos t) - P_{l+1}(cos t)] / ((2l+1)(1 - cos t))) and p_l the
-  window of a disc of one pixel's area (an approximation of the HEALPix pixel window);
+  map's pixel window (:meth:`~pairvel.maps.skymap.SkyMap.pixel_window`; for HEALPix, the window
+  of a disc of one pixel's area, an approximation);
 * ``normalise = "injected"``: beam-shaped sources painted at random footprint pixels of an empty
   map, filtered, and measured with the pipeline's own photometry; captures the pixelisation
   the analytic form misses when the filter boosts scales near the pixel size;
@@ -43,6 +45,7 @@ import numpy as np
 
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import ConfigError, InputError
+from .harmonics import gaussian_beam
 
 _MAX_LMAX = 16384
 
@@ -87,12 +90,10 @@ def read_beam_table(path, lmax: int) -> np.ndarray:
 
 
 def _beam(pc, lmax: int) -> np.ndarray:
-    import healpy as hp
-
     if pc.beam_path is not None:
         return read_beam_table(pc.beam_path, lmax)
     if pc.beam_fwhm_arcmin is not None:
-        return hp.gauss_beam(pc.beam_fwhm_arcmin * ARCMIN_RAD, lmax=lmax)
+        return gaussian_beam(pc.beam_fwhm_arcmin, lmax)
     return np.ones(lmax + 1)
 
 
@@ -167,62 +168,16 @@ def aperture_window(radius_arcmin: float, lmax: int) -> np.ndarray:
     return w1 - annulus
 
 
-def _pixel_window(nside: int, lmax: int) -> np.ndarray:
-    """Pixel window of a disc of the HEALPix pixel's area, 2 J1(l t) / (l t) (the tabulated HEALPix
-    windows are downloads; this equal-area approximation is within a few per cent of them below the
-    pixel scale [from memory])."""
-    import healpy as hp
-    from scipy.special import j1
+def aperture_response(transfer, beam, radius_arcmin: float, pixel_window=None) -> float:
+    """Analytic response of the compensated aperture to a beam-shaped source: filtered over unfiltered.
 
-    t = math.sqrt(hp.nside2pixarea(nside) / math.pi)
-    x = np.arange(lmax + 1) * t
-    out = np.ones(lmax + 1)
-    out[1:] = 2 * j1(x[1:]) / x[1:]
-    return out
-
-
-def aperture_response(transfer, beam, radius_arcmin: float, nside: int | None = None) -> float:
-    """Analytic response of the compensated aperture to a beam-shaped source: filtered over unfiltered."""
-
+    ``transfer``, ``beam`` and ``pixel_window`` (default 1) are arrays over l = 0..lmax.
+    """
     lmax = transfer.size - 1
     w = aperture_window(radius_arcmin, lmax)
-    pw = _pixel_window(nside, lmax) if nside is not None else np.ones(lmax + 1)
+    pw = np.ones(lmax + 1) if pixel_window is None else pixel_window
     weights = (2 * np.arange(lmax + 1) + 1) * pw * beam * w
     return float(np.sum(weights * transfer) / np.sum(weights))
-
-
-def _full_sky(skymap) -> np.ndarray:
-    """Ring-ordered full-sky float64 array: usable values, the mean of the usable ones elsewhere."""
-    import healpy as hp
-
-    npix = hp.nside2npix(skymap.nside)
-    usable = skymap.weight > 0
-    vals = np.asarray(skymap.values, dtype=np.float64)
-    mean = float(vals[usable].mean()) if usable.any() else 0.0
-    full = np.full(npix, mean)
-    pix = np.arange(npix) if skymap.pixels is None else skymap.pixels
-    pix = pix[usable]
-    if skymap.nest:
-        pix = hp.nest2ring(skymap.nside, pix)
-    full[pix] = vals[usable]
-    return full
-
-
-def _filter_array(full, nside, transfer, n_iter=3):
-    import healpy as hp
-
-    lmax = transfer.size - 1
-    alm = hp.map2alm(full, lmax=lmax, iter=n_iter, use_pixel_weights=False)
-    hp.almxfl(alm, transfer, inplace=True)
-    return hp.alm2map(alm, nside, lmax=lmax)
-
-
-def _held_values(skymap, full_ring):
-    import healpy as hp
-
-    pix = np.arange(hp.nside2npix(skymap.nside)) if skymap.pixels is None else skymap.pixels
-    ring = hp.nest2ring(skymap.nside, pix) if skymap.nest else pix
-    return full_ring[ring].astype(skymap.values.dtype, copy=False)
 
 
 def _injected_response(skymap, transfer, beam, radius_arcmin, seed, fwhm_arcmin=None, n_sources=300) -> float:
@@ -231,40 +186,30 @@ def _injected_response(skymap, transfer, beam, radius_arcmin, seed, fwhm_arcmin=
     With a Gaussian beam (``fwhm_arcmin``) each source is centred at a random point of a random usable
     pixel and point-sampled at the pixel centres, as a tracer's kSZ is on a real map; with a B_l table,
     the sources are pixel-centred deltas times B_l.  Apertures are measured at the source centres on
-    the painted map and on its filtered copy with the pipeline's own photometry.
+    the painted map and on its filtered copy with the pipeline's own photometry, on every pixel of the
+    map's grid.
     """
-    import healpy as hp
-
-    from .sources import paint_beam_sources
-    from .photometry import measure_apertures
-    from .skymap import SkyMap
+    from .photometry import _measure
 
     rng = np.random.default_rng(seed)
-    nside, lmax = skymap.nside, transfer.size - 1
     usable = np.flatnonzero(skymap.weight > 0)
-    pix = (np.arange(skymap.npix) if skymap.pixels is None else skymap.pixels)[
-        rng.choice(usable, size=min(n_sources, usable.size), replace=False)]
-    ring = hp.nest2ring(nside, pix) if skymap.nest else pix
-    theta, phi = hp.pix2ang(nside, ring)
-    ra, dec = np.degrees(phi), 90.0 - np.degrees(theta)
-    plain = np.zeros(hp.nside2npix(nside))
+    index = rng.choice(usable, size=min(n_sources, usable.size), replace=False)
+    lon, lat = skymap.pixel_lonlat(index)
+    ones = np.full(lon.size, 1.0)
     if fwhm_arcmin:
-        side = math.degrees(math.sqrt(hp.nside2pixarea(nside)))
-        dec = np.clip(dec + side * rng.uniform(-0.5, 0.5, dec.size), -90.0, 90.0)
-        ra = (ra + side * rng.uniform(-0.5, 0.5, ra.size) / np.maximum(np.cos(np.radians(dec)), 1e-3)) % 360.0
-        where, values = paint_beam_sources(nside, ra, dec, np.full(ra.size, 1.0), fwhm_arcmin)
-        plain[where] = values
-        alm = hp.map2alm(plain, lmax=lmax, iter=3)
+        side = math.degrees(math.sqrt(skymap.pixel_area_sr))
+        lat = np.clip(lat + side * rng.uniform(-0.5, 0.5, lat.size), -90.0, 90.0)
+        lon = (lon + side * rng.uniform(-0.5, 0.5, lon.size) / np.maximum(np.cos(np.radians(lat)), 1e-3)) % 360.0
+        plain = skymap.source_map(lon, lat, ones, fwhm_arcmin=fwhm_arcmin)
+        filtered = plain.filtered(transfer, n_iter=3)
     else:
-        plain[ring] = 1.0
-        alm = hp.map2alm(plain, lmax=lmax, iter=0)
-        hp.almxfl(alm, beam, inplace=True)
-        plain = hp.alm2map(alm, nside, lmax=lmax)
-    hp.almxfl(alm, transfer, inplace=True)
-    filtered = hp.alm2map(alm, nside, lmax=lmax)
+        deltas = skymap.source_map(lon, lat, ones)
+        plain = deltas.filtered(beam, n_iter=0)
+        filtered = deltas.filtered(beam * transfer, n_iter=0)
+    radii = np.atleast_1d(np.asarray(radius_arcmin, dtype=np.float64))
     vals = []
     for m in (plain, filtered):
-        res = measure_apertures(SkyMap(nside=nside, nest=False, pixels=None, values=m), ra, dec, radius_arcmin)
+        res = _measure(m, lon, lat, radii, 0.1, None)  # the source positions are in the map's frame
         vals.append(np.where(res.usable, res.temperatures[0], 0.0))
     return float(np.sum(vals[1]) / np.sum(vals[0]))
 
@@ -272,18 +217,16 @@ def _injected_response(skymap, transfer, beam, radius_arcmin, seed, fwhm_arcmin=
 def apply_prefilter(skymap, pc, *, radius_arcmin: float, seed=None, progress=None):
     """Filter ``skymap`` as ``[prefilter]`` says; returns (new SkyMap, PrefilterResult or None).
 
-    The returned map holds the same pixels, ordering and weights; its values are the filtered
+    The returned map holds the same pixels and weights; its values are the filtered
     temperatures divided by the aperture response (``pc.normalise``), so a beam-shaped source keeps
     its unfiltered aperture value.  ``kind = "none"`` returns the map itself and None.
     """
     if pc.kind == "none":
         return skymap, None
-    import dataclasses
-
-    lmax = min(3 * skymap.nside - 1, _MAX_LMAX) if pc.lmax is None else int(pc.lmax)
+    lmax = min(skymap.band_limit, _MAX_LMAX) if pc.lmax is None else int(pc.lmax)
     transfer = filter_transfer(pc, lmax)
     beam = _beam(pc, lmax)
-    analytic = aperture_response(transfer, beam, radius_arcmin, skymap.nside)
+    analytic = aperture_response(transfer, beam, radius_arcmin, skymap.pixel_window(lmax))
     if pc.normalise == "injected":
         response = _injected_response(skymap, transfer, beam, radius_arcmin, seed,
                                       fwhm_arcmin=pc.beam_fwhm_arcmin if pc.beam_path is None else None)
@@ -293,19 +236,14 @@ def apply_prefilter(skymap, pc, *, radius_arcmin: float, seed=None, progress=Non
         response = 1.0
     if not math.isfinite(response):
         raise InputError(f"prefilter: the aperture response could not be measured (no usable {radius_arcmin:g} arcmin "
-                         f"aperture around the test sources at nside {skymap.nside})", key="prefilter.normalise")
+                         f"aperture around the test sources at {skymap.grid_label})", key="prefilter.normalise")
     if abs(response) <= 1e-6:
         raise InputError(f"prefilter: the aperture response of the {pc.kind} filter is {response:g}; the filter removes "
                          f"the scales the {radius_arcmin:g} arcmin aperture measures", key="prefilter.kind")
     if progress is not None:
         progress(f"      {pc.kind} filter to lmax {lmax}: aperture response {response:.4f} "
                  f"(analytic {analytic:.4f}, normalise = {pc.normalise})")
-    full = _full_sky(skymap)
-    filtered = _filter_array(full, skymap.nside, transfer / response)
-    del full
-    values = _held_values(skymap, filtered)
-    out = dataclasses.replace(skymap, values=values)
-    return out, PrefilterResult(pc.kind, lmax, transfer, response, pc.normalise, analytic)
+    return skymap.filtered(transfer / response), PrefilterResult(pc.kind, lmax, transfer, response, pc.normalise, analytic)
 
 
 def prefilter_markdown(info: dict) -> str:

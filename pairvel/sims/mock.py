@@ -616,10 +616,10 @@ def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> fl
     """Slope of the compensated-aperture temperatures against ``dt_ksz_uk`` on the noiseless map of the
     painted kSZ sources ``ksz`` (pixels, values); nan, with a warning, when it cannot be measured."""
     from ..maps.photometry import measure_apertures
-    from ..maps.skymap import SkyMap
+    from ..maps.healpix import HealpixMap
 
     pix, val = ksz
-    ksz_only = SkyMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))
+    ksz_only = HealpixMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))
     resp = measure_apertures(ksz_only, tracers.ra, tracers.dec, spec.aperture_radius_arcmin,
                              max_masked_fraction=1.0).temperatures[0]
     ok = np.isfinite(resp)
@@ -635,7 +635,7 @@ def _write_survey(out: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot,
     """Write the catalogue and one partial map per frequency into ``out``; the truth's ``files`` entry."""
     from astropy.table import Table
 
-    from ..maps.skymap import write_partial_map
+    from ..maps.healpix_io import write_partial_map
 
     out.mkdir(parents=True, exist_ok=True)
     table = Table({"ra": tracers.ra, "dec": tracers.dec, "z": tracers.z, "log_mass": log_mass})

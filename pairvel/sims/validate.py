@@ -279,7 +279,7 @@ def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     from ..maps.sources import paint_beam_sources
     from .mock import _add_to_footprint, _footprint_pixels, _white_noise
     from ..maps.photometry import measure_apertures
-    from ..maps.skymap import SkyMap
+    from ..maps.healpix import HealpixMap
 
     foot = _footprint_pixels(opt.nside, -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg,
                              margin_deg=0.5)
@@ -287,7 +287,7 @@ def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     values = _white_noise(opt.noise_uk_arcmin, opt.nside, foot.size, rng)
     pix, val = paint_beam_sources(opt.nside, ra, dec, dt_uk * area, opt.beam_fwhm_arcmin)
     _add_to_footprint(values, foot, pix, val)
-    sky = SkyMap(opt.nside, False, foot, values)
+    sky = HealpixMap(opt.nside, False, foot, values)
     res = measure_apertures(sky, ra, dec, opt.aperture_radius_arcmin, max_masked_fraction=0.1)
     return res.temperatures[0], res.usable
 

@@ -23,7 +23,8 @@ from pairvel.maps.multifreq import (combination_weights, combine_maps, noise_cos
                                     read_input_map)
 from pairvel.report.outputs import write_outputs
 from pairvel.pipeline import run_pipeline
-from pairvel.maps.skymap import SkyMap, read_map
+from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.skymap import read_map
 
 from conftest import write_healpix
 
@@ -111,11 +112,11 @@ def test_combination_removes_tsz_and_keeps_cmb_exactly():
     cmb, clusters, maps = _sky(4, freqs, noise)
     f = tsz_spectrum(freqs)
     w = combination_weights(f, np.diag([9.0, 4.0, 36.0]))
-    out = combine_maps([SkyMap.from_array(m) for m in maps], w)
+    out = combine_maps([HealpixMap.from_array(m) for m in maps], w)
     np.testing.assert_allclose(out.values, cmb, rtol=0, atol=1e-10 * np.abs(cmb).max())  # noiseless: CMB only
     # with noise: the residual carries no cluster template, while the single 150 GHz map carries f(150) of it
     cmb, clusters, maps = _sky(5, freqs, (40.0, 30.0, 90.0))
-    out = combine_maps([SkyMap.from_array(m) for m in maps], w)
+    out = combine_maps([HealpixMap.from_array(m) for m in maps], w)
     resid = out.values - cmb
     slope = resid @ clusters / (clusters @ clusters)
     slope_err = resid.std() / math.sqrt(clusters @ clusters)
@@ -129,7 +130,7 @@ def test_noise_cost_matches_monte_carlo_rms():
     sig = np.array([12.0, 7.0, 30.0])  # per-pixel noise, uK
     f = tsz_spectrum([90.0, 150.0, 220.0])
     w = combination_weights(f, np.diag(sig**2))
-    maps = [SkyMap.from_array(rng.normal(0, s, hp.nside2npix(nside))) for s in sig]
+    maps = [HealpixMap.from_array(rng.normal(0, s, hp.nside2npix(nside))) for s in sig]
     rms = combine_maps(maps, w).values.std()
     # predicted sqrt(w^T N w), 786k pixels: statistical error 0.08% [analytic]
     assert rms / sig.min() == pytest.approx(noise_cost(w, np.diag(sig**2)), rel=0.01)
@@ -146,7 +147,7 @@ def test_pixel_difference_noise_estimate_recovers_white_noise_levels():
     f = tsz_spectrum(freqs)
     levels = np.array([60.0, 40.0, 150.0])  # uK-arcmin
     pix_sigma = levels / hp.nside2resol(nside, arcmin=True)
-    maps = [SkyMap.from_array(cmb + fi * clusters + rng.normal(0, s, cmb.size)) for fi, s in zip(f, pix_sigma)]
+    maps = [HealpixMap.from_array(cmb + fi * clusters + rng.normal(0, s, cmb.size)) for fi, s in zip(f, pix_sigma)]
     cov, n = pixel_difference_covariance(maps, f)
     # every pixel but 24: the 3 pixels at each of the 8 points where three base faces meet have 7 neighbours
     # (HEALPix grid, Gorski et al. 2005, ApJ 622, 759)
@@ -163,14 +164,14 @@ def test_ring_nested_partial_and_masks():
     npix = hp.nside2npix(16)
     a, b = rng.normal(0, 50, npix), rng.normal(0, 50, npix)
     w = np.array([0.3, 0.7])
-    ring = combine_maps([SkyMap.from_array(a), SkyMap.from_array(b)], w)
-    b_nest = SkyMap.from_array(hp.reorder(b, r2n=True), nest=True)
-    mixed = combine_maps([SkyMap.from_array(a), b_nest], w)
+    ring = combine_maps([HealpixMap.from_array(a), HealpixMap.from_array(b)], w)
+    b_nest = HealpixMap.from_array(hp.reorder(b, r2n=True), nest=True)
+    mixed = combine_maps([HealpixMap.from_array(a), b_nest], w)
     np.testing.assert_allclose(mixed.values, ring.values, rtol=1e-12)  # RING vs NESTED input
     # a partial second map and a masked pixel in the first: union of the masks
     keep = np.arange(100, 900)
     a[5] = hp.UNSEEN
-    part = combine_maps([SkyMap.from_array(a), SkyMap(16, False, keep, b[keep])], w)
+    part = combine_maps([HealpixMap.from_array(a), HealpixMap(16, False, keep, b[keep])], w)
     usable = part.weight > 0
     expected = np.zeros(npix, bool)
     expected[keep] = True
@@ -178,7 +179,7 @@ def test_ring_nested_partial_and_masks():
     np.testing.assert_array_equal(usable, expected)
     np.testing.assert_allclose(part.values[usable], (0.3 * a + 0.7 * b)[usable], rtol=1e-12)
     with pytest.raises(MapError, match="nside 32 but map"):
-        combine_maps([SkyMap.from_array(a), SkyMap.from_array(np.zeros(hp.nside2npix(32)))], w)
+        combine_maps([HealpixMap.from_array(a), HealpixMap.from_array(np.zeros(hp.nside2npix(32)))], w)
 
 
 # ---------------------------------------------------------------------- config

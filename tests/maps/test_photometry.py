@@ -5,9 +5,8 @@ import numpy as np
 import pytest
 
 from pairvel.core.errors import InputError, MapError, PairvelWarning
-from pairvel.maps.photometry import (aperture_temperatures, measure_apertures, measure_random_apertures,
-                                random_positions_in_footprint)
-from pairvel.maps.skymap import SkyMap
+from pairvel.maps.photometry import measure_apertures, measure_random_apertures, random_positions_in_footprint
+from pairvel.maps.healpix import HealpixMap, aperture_temperatures
 
 ARCMIN = np.radians(1.0 / 60.0)
 
@@ -22,7 +21,7 @@ def patch_map(nside, ra0, dec0, radius_deg, func, *, nest=False):
     pix = hp.query_disc(nside, hp.ang2vec(ra0, dec0, lonlat=True), np.radians(radius_deg), nest=nest)
     pix = np.sort(pix)
     vec = np.array(hp.pix2vec(nside, pix, nest=nest)).T
-    return SkyMap(nside, nest, pix, func(vec))
+    return HealpixMap(nside, nest, pix, func(vec))
 
 
 def brute_force(m, ra, dec, theta_arcmin, nest=False):
@@ -44,7 +43,7 @@ def brute_force(m, ra, dec, theta_arcmin, nest=False):
 
 def test_pixel_area_of_skymap():
     for nside, ref in ((2048, 2.95064), (4096, 0.737660)):
-        sm = SkyMap(nside, False, np.array([0, 1]), np.zeros(2))
+        sm = HealpixMap(nside, False, np.array([0, 1]), np.zeros(2))
         # [calc] SCIENCE.md: pi / (3 nside^2) sr (Gorski et al. 2005, ApJ 622, 759)
         assert sm.pixel_area_arcmin2 == pytest.approx(ref, rel=2e-6)
         # computed with healpy
@@ -57,7 +56,7 @@ def test_matches_healpy_brute_force_with_masked_pixels():
     ra, dec = sky_positions(60, 2)
     hole = np.random.default_rng(3).random(m.size) < 0.15
     m[hole] = hp.UNSEEN
-    res = measure_apertures(SkyMap.from_array(m), ra, dec, 40.0, max_masked_fraction=1.0)
+    res = measure_apertures(HealpixMap.from_array(m), ra, dec, 40.0, max_masked_fraction=1.0)
     ref, f_disc, f_ann = brute_force(m, ra, dec, 40.0)  # computed with healpy.query_disc
     np.testing.assert_allclose(res.temperatures[0], ref, rtol=1e-10, atol=1e-12)
     np.testing.assert_allclose(res.masked_fraction_disc[0], f_disc, rtol=1e-12)
@@ -120,7 +119,7 @@ def test_gaussian_profile_matches_flat_sky_value(nside, rtol_each, rtol_mean):
         val.append(amp * np.exp(-(d**2) / (2 * s**2)))
     pix, val = np.concatenate(pix), np.concatenate(val)
     order = np.argsort(pix)
-    t = measure_apertures(SkyMap(nside, False, pix[order], val[order]), ra, dec, theta).temperatures[0]
+    t = measure_apertures(HealpixMap(nside, False, pix[order], val[order]), ra, dec, theta).temperatures[0]
     np.testing.assert_allclose(t, expect, rtol=rtol_each)
     assert np.mean(t) == pytest.approx(expect, rel=rtol_mean)
 
@@ -145,9 +144,9 @@ def test_full_and_partial_and_float32_maps_agree():
     m = np.random.default_rng(9).normal(size=hp.nside2npix(nside))
     ra, dec = np.array([10.0, 12.0, 11.0]), np.array([5.0, 6.0, 4.0])
     held = np.sort(hp.query_disc(nside, hp.ang2vec(11.0, 5.5, lonlat=True), np.radians(4)))
-    a = measure_apertures(SkyMap.from_array(m), ra, dec, [10.0, 25.0])
-    b = measure_apertures(SkyMap(nside, False, held, m[held]), ra, dec, [10.0, 25.0])
-    c = measure_apertures(SkyMap(nside, False, held, m[held].astype(np.float32)), ra, dec, [10.0, 25.0])
+    a = measure_apertures(HealpixMap.from_array(m), ra, dec, [10.0, 25.0])
+    b = measure_apertures(HealpixMap(nside, False, held, m[held]), ra, dec, [10.0, 25.0])
+    c = measure_apertures(HealpixMap(nside, False, held, m[held].astype(np.float32)), ra, dec, [10.0, 25.0])
     np.testing.assert_allclose(a.temperatures, b.temperatures, rtol=1e-12)  # analytic: same pixels
     np.testing.assert_allclose(c.temperatures, a.temperatures, atol=1e-6)  # float32 rounding of O(1) values
     np.testing.assert_array_equal(a.n_pixels_disc, b.n_pixels_disc)
@@ -158,11 +157,11 @@ def test_mask_exclusion_fractions_and_usability():
     nside = 256
     m = np.random.default_rng(10).normal(size=hp.nside2npix(nside))
     ra, dec = np.array([10.0, 40.0]), np.array([5.0, -20.0])
-    clean = measure_apertures(SkyMap.from_array(m), ra, dec, 40.0)
+    clean = measure_apertures(HealpixMap.from_array(m), ra, dec, 40.0)
     cpix = hp.ang2pix(nside, 10.0, 5.0, lonlat=True)  # the centre pixel of the first disc
     weight = np.ones(m.size, np.float32)
     weight[cpix] = 0.0
-    masked = measure_apertures(SkyMap(nside, False, None, m, weight), ra, dec, 40.0, max_masked_fraction=0.0)
+    masked = measure_apertures(HealpixMap(nside, False, None, m, weight), ra, dec, 40.0, max_masked_fraction=0.0)
     n_disc = clean.n_pixels_disc[0, 0]
     # analytic: one of n_disc pixels masked
     assert masked.masked_fraction_disc[0, 0] == pytest.approx(1.0 / n_disc, rel=1e-12)
@@ -176,11 +175,11 @@ def test_mask_exclusion_fractions_and_usability():
     assert masked.temperatures[0, 0] == pytest.approx(expect, rel=1e-12)
     np.testing.assert_allclose(masked.temperatures[0, 1], clean.temperatures[0, 1], rtol=1e-14)
     # a looser threshold accepts it
-    assert measure_apertures(SkyMap(nside, False, None, m, weight), ra, dec, 40.0).usable.all()
+    assert measure_apertures(HealpixMap(nside, False, None, m, weight), ra, dec, 40.0).usable.all()
 
 
 def test_outside_a_partial_map_is_unusable():
-    part = SkyMap(256, False, np.arange(1000), np.zeros(1000))
+    part = HealpixMap(256, False, np.arange(1000), np.zeros(1000))
     res = measure_apertures(part, [200.0], [-30.0], 30.0, max_masked_fraction=1.0)
     assert not res.usable[0] and np.isnan(res.temperatures[0, 0])
     assert res.masked_fraction_disc[0, 0] == 1.0 and res.n_pixels_disc[0, 0] > 0
@@ -189,7 +188,7 @@ def test_outside_a_partial_map_is_unusable():
 def test_progress_is_called_to_completion():
     calls = []
     ra, dec = sky_positions(5000, 11)
-    measure_apertures(SkyMap.from_array(np.zeros(12 * 64**2)), ra, dec, 120.0, progress=lambda d, t: calls.append((d, t)))
+    measure_apertures(HealpixMap.from_array(np.zeros(12 * 64**2)), ra, dec, 120.0, progress=lambda d, t: calls.append((d, t)))
     assert calls == [(4096, 5000), (5000, 5000)]
 
 
@@ -217,7 +216,7 @@ def test_random_positions_are_usable_uniform_and_reproducible():
 
 
 def test_random_positions_errors():
-    sm = SkyMap(256, False, np.arange(100), np.zeros(100), np.zeros(100, np.float32))
+    sm = HealpixMap(256, False, np.arange(100), np.zeros(100), np.zeros(100, np.float32))
     with pytest.raises(MapError, match="no usable pixels to place random apertures on"):
         random_positions_in_footprint(sm, 5, seed=0, radius_arcmin=30.0, max_masked_fraction=0.1)
     tiny = patch_map(256, 0.0, 0.0, 0.3, lambda v: np.zeros(len(v)))
@@ -234,8 +233,8 @@ def test_bad_positions_radii_and_small_aperture_warning():
     with pytest.raises(InputError, match=r"ra_deg and dec_deg must be 1-D arrays of equal length"):
         aperture_temperatures(m, [0.0, 1.0], [0.0], 10.0)
     with pytest.raises(InputError, match=r"max_masked_fraction must be a number in \[0, 1\]; got 1.5"):
-        measure_apertures(SkyMap.from_array(m), [0.0], [0.0], 100.0, max_masked_fraction=1.5)
+        measure_apertures(HealpixMap.from_array(m), [0.0], [0.0], 100.0, max_masked_fraction=1.5)
     with pytest.raises(MapError, match=r"hpx_map must be a 1-D full-sky HEALPix array"):
         aperture_temperatures(np.zeros(1000), [0.0], [0.0], 10.0)
     with pytest.warns(PairvelWarning, match=r"aperture radius 10 arcmin holds only ~0.1 pixel centres at nside 64"):
-        measure_apertures(SkyMap.from_array(m), [0.0], [0.0], 10.0)
+        measure_apertures(HealpixMap.from_array(m), [0.0], [0.0], 10.0)

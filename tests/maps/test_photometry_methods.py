@@ -7,7 +7,8 @@ import pytest
 
 from pairvel.core.errors import InputError, MapError
 from pairvel.maps.photometry import measure_apertures, measure_random_apertures
-from pairvel.maps.skymap import SkyMap, read_map, read_mask, write_partial_map
+from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.healpix_io import read_map, read_mask, write_partial_map
 
 ARCMIN = np.radians(1.0 / 60.0)
 
@@ -32,7 +33,7 @@ def test_kernel_matches_direct_on_masked_partial_map(weighting, nest):
     rng = np.random.default_rng(3)
     # a partial map over a cap reaching the north pole, with a random binary mask: edges, holes, the pole
     pix = np.sort(hp.query_disc(nside, hp.ang2vec(40.0, 70.0, lonlat=True), np.radians(35.0), nest=nest))
-    sm = SkyMap(nside, nest, pix, rng.normal(0, 50, pix.size), (rng.random(pix.size) > 0.1).astype(np.float32))
+    sm = HealpixMap(nside, nest, pix, rng.normal(0, 50, pix.size), (rng.random(pix.size) > 0.1).astype(np.float32))
     ra, dec = random_cap(3000, 4, dec_range=(30.0, 90.0))
     ra[:3], dec[:3] = [0.0, 123.0, 359.99], [90.0, 89.9, 36.0]
     radii = [30.0, 55.0, 110.0]
@@ -52,7 +53,7 @@ def test_constant_and_gradient_give_zero_for_every_weighting():
     vec = np.array(hp.pix2vec(nside, np.arange(12 * nside ** 2)))
     ra, dec = random_cap(200, 5)
     for name, m in (("constant", np.full(vec.shape[1], 7.0)), ("gradient", 3.0 * vec[0] - 2.0 * vec[2])):
-        sm = SkyMap.from_array(m)
+        sm = HealpixMap.from_array(m)
         for weighting in ("centre", "fraction", "subsample"):
             t = measure_apertures(sm, ra, dec, 40.0, pixel_weighting=weighting, subsample_level=2).temperatures[0]
             # analytic: a constant cancels exactly; a gradient cancels up to pixelisation. Scale: the change of
@@ -74,7 +75,7 @@ def painted_gaussians(nside, ra, dec, sigma_arcmin):
         idx = np.searchsorted(pix, p)
         ang = np.arccos(np.clip(pvec[idx] @ hp.ang2vec(r, d, lonlat=True), -1, 1))
         values[idx] += np.exp(-ang ** 2 / (2 * (sigma_arcmin * ARCMIN) ** 2))
-    return SkyMap(nside, False, pix, values)
+    return HealpixMap(nside, False, pix, values)
 
 
 def subpixel_table(n_side_grid=14, seed=8):
@@ -143,9 +144,9 @@ def test_rotated_map_gives_the_same_apertures_at_the_same_objects(tmp_path, fram
                              nside=nside, coordsys=frame)
     sm_rot = read_map(path)
     assert sm_rot.coordsys == frame
-    t_eq = measure_apertures(SkyMap.from_array(eq), ra, dec, 60.0, pixel_weighting="fraction").temperatures[0]
+    t_eq = measure_apertures(HealpixMap.from_array(eq), ra, dec, 60.0, pixel_weighting="fraction").temperatures[0]
     t_rot = measure_apertures(sm_rot, ra, dec, 60.0, pixel_weighting="fraction").temperatures[0]
-    unrotated = SkyMap(nside, False, None, sm_rot.values, coordsys="C")
+    unrotated = HealpixMap(nside, False, None, sm_rot.values, coordsys="C")
     t_wrong = measure_apertures(unrotated, ra, dec, 60.0, pixel_weighting="fraction").temperatures[0]
     rms = np.std(t_eq)
     # analytic: the same sky sampled exactly on two pixel grids (pixel 13.7', blobs sigma 30', aperture 60');
@@ -166,7 +167,7 @@ def test_frame_from_config_when_header_has_none(tmp_path):
 
 def test_mask_in_another_frame_is_refused(tmp_path):
     nside = 16
-    m = SkyMap(nside, False, None, np.zeros(12 * nside ** 2), coordsys="G")
+    m = HealpixMap(nside, False, None, np.zeros(12 * nside ** 2), coordsys="G")
     mask_path = write_partial_map(tmp_path / "mask.fits", np.arange(12 * nside ** 2), np.ones(12 * nside ** 2),
                                   nside=nside, coordsys="C")
     with pytest.raises(MapError, match=r"mask .*mask\.fits is in frame C but the map is in frame G"):
@@ -177,7 +178,7 @@ def test_random_positions_come_back_equatorial_for_a_galactic_map():
     nside = 64
     # Galactic map whose usable part is the northern Galactic cap b > 30 deg
     theta, _ = hp.pix2ang(nside, np.arange(12 * nside ** 2))
-    sm = SkyMap(nside, False, None, np.zeros(12 * nside ** 2), (theta < np.radians(60)).astype(np.float32), coordsys="G")
+    sm = HealpixMap(nside, False, None, np.zeros(12 * nside ** 2), (theta < np.radians(60)).astype(np.float32), coordsys="G")
     ra, dec, _ = measure_random_apertures(sm, 300, 30.0, seed=1, max_masked_fraction=0.0)
     _, b = hp.Rotator(coord=["C", "G"])(ra, dec, lonlat=True)
     assert np.all(b > 29.0)  # analytic: every accepted aperture lies in the usable cap (in Galactic latitude)
@@ -186,7 +187,7 @@ def test_random_positions_come_back_equatorial_for_a_galactic_map():
 def test_tracers_outside_partial_coverage_are_counted_not_usable():
     nside = 64
     pix = np.sort(hp.query_disc(nside, hp.ang2vec(0.0, 0.0, lonlat=True), np.radians(10.0)))
-    sm = SkyMap(nside, False, pix, np.zeros(pix.size))
+    sm = HealpixMap(nside, False, pix, np.zeros(pix.size))
     ra = np.array([0.0, 1.0, 90.0, 180.0, 9.9])
     dec = np.array([0.0, 2.0, 0.0, -40.0, 0.0])
     res = measure_apertures(sm, ra, dec, 60.0)
@@ -195,7 +196,7 @@ def test_tracers_outside_partial_coverage_are_counted_not_usable():
 
 
 def test_bad_method_choices():
-    sm = SkyMap.from_array(np.zeros(12 * 16 ** 2))
+    sm = HealpixMap.from_array(np.zeros(12 * 16 ** 2))
     with pytest.raises(InputError, match="pixel_weighting must be one of centre, fraction, subsample; got 'area'"):
         measure_apertures(sm, [1.0], [1.0], 300.0, pixel_weighting="area")
     with pytest.raises(InputError, match="method 'kernel' supports pixel_weighting 'centre' and 'fraction'"):
@@ -229,7 +230,7 @@ def test_monopole_dipole_removal_matches_healpy_on_a_masked_map():
     x, y, z = hp.pix2vec(nside, np.arange(12 * nside ** 2))
     m = 40.0 + 3000.0 * x - 1200.0 * y + 500.0 * z + rng.normal(0, 80, x.size)
     m[np.abs(z) < 0.3] = hp.UNSEEN  # a Galactic-plane-like cut
-    full = SkyMap.from_array(m)
+    full = HealpixMap.from_array(m)
     cleaned, coef = remove_monopole_dipole(full)
     _, mono, dip = hp.remove_dipole(m, fitval=True, verbose=False) if "verbose" in hp.remove_dipole.__code__.co_varnames \
         else hp.remove_dipole(m, fitval=True)
@@ -239,5 +240,5 @@ def test_monopole_dipole_removal_matches_healpy_on_a_masked_map():
     assert abs(np.mean(cleaned.values[good])) < 1.0 and np.all(cleaned.weight[~good] == 0)
     # partial map of the usable pixels gives the same fit (internal equivalence)
     pix = np.flatnonzero(good)
-    _, coef_partial = remove_monopole_dipole(SkyMap(nside, False, pix, m[pix]))
+    _, coef_partial = remove_monopole_dipole(HealpixMap(nside, False, pix, m[pix]))
     np.testing.assert_allclose(coef_partial, coef, rtol=1e-10)

@@ -12,7 +12,7 @@ from pairvel.core.constants import ARCMIN_RAD
 from pairvel.maps.prefilter import (aperture_window, apply_prefilter, filter_transfer,
                                read_beam_table)
 from pairvel.maps.photometry import measure_apertures
-from pairvel.maps.skymap import SkyMap
+from pairvel.maps.healpix import HealpixMap
 
 
 def test_highpass_shape():
@@ -58,14 +58,14 @@ def test_single_multipole_map_is_scaled_by_its_gain():
     # lmax = 2 nside: where the HEALPix quadrature of map2alm is accurate (beyond it, aliasing)
     pc = PrefilterConfig(kind="highpass", highpass_ell=60, highpass_width=40, normalise="none", lmax=2 * nside)
     f = filter_transfer(pc, 2 * nside)
-    out, res = apply_prefilter(SkyMap.from_array(m), pc, radius_arcmin=60.0)
+    out, res = apply_prefilter(HealpixMap.from_array(m), pc, radius_arcmin=60.0)
     assert 0.1 < f[ell0] < 0.9
     np.testing.assert_allclose(out.values, f[ell0] * m, atol=1e-4 * np.abs(m).max())  # 3 map2alm iterations
     assert res.kind == "highpass" and res.response == 1.0
 
 
 def test_none_returns_the_map_untouched():
-    sky = SkyMap.from_array(np.arange(12 * 16**2, dtype=float))
+    sky = HealpixMap.from_array(np.arange(12 * 16**2, dtype=float))
     out, res = apply_prefilter(sky, PrefilterConfig(), radius_arcmin=10.0)
     assert out is sky and res is None
 
@@ -89,14 +89,14 @@ def test_response_division_keeps_source_apertures_and_analytic_agrees_with_injec
     rng = np.random.default_rng(1)
     nside, fwhm, radius = 256, 30.0, 25.0
     m, ra, dec = _sources_map(nside, fwhm, 150, rng)
-    plain = measure_apertures(SkyMap.from_array(m), ra, dec, radius).temperatures[0]
+    plain = measure_apertures(HealpixMap.from_array(m), ra, dec, radius).temperatures[0]
     pc = PrefilterConfig(kind="highpass", highpass_ell=200, highpass_width=100, normalise="injected")
-    out, res = apply_prefilter(SkyMap.from_array(m), pc, radius_arcmin=radius, seed=3)
+    out, res = apply_prefilter(HealpixMap.from_array(m), pc, radius_arcmin=radius, seed=3)
     # (the injected response comes from beam-shaped sources of the filter's own beam: here unit beam)
     filt = measure_apertures(out, ra, dec, radius).temperatures[0]
     assert 0.3 < res.response < 1.0
     pc_b = PrefilterConfig(kind="matched", beam_fwhm_arcmin=fwhm, noise_uk_arcmin=50.0, normalise="injected")
-    out_b, res_b = apply_prefilter(SkyMap.from_array(m), pc_b, radius_arcmin=radius, seed=3)
+    out_b, res_b = apply_prefilter(HealpixMap.from_array(m), pc_b, radius_arcmin=radius, seed=3)
     filt_b = measure_apertures(out_b, ra, dec, radius).temperatures[0]
     assert np.mean(filt_b) == pytest.approx(np.mean(plain), rel=0.03)
     # the aperture here is under 2 pixels in radius: the analytic window (continuous disc, approximate pixel
@@ -126,7 +126,7 @@ def test_matched_filter_raises_the_signal_to_noise_of_faint_sources():
 
     def snr(filtered):
         def ap(m):
-            m = apply_prefilter(SkyMap.from_array(m), pc, radius_arcmin=radius)[0] if filtered else SkyMap.from_array(m)
+            m = apply_prefilter(HealpixMap.from_array(m), pc, radius_arcmin=radius)[0] if filtered else HealpixMap.from_array(m)
             return measure_apertures(m, ra, dec, radius).temperatures[0]
         return np.nanmean(ap(src)) / np.nanstd(ap(sky))  # a few 1-pixel discs hold no pixel centre
 
@@ -139,7 +139,7 @@ def test_partial_map_keeps_its_pixels_and_mask():
     rng = np.random.default_rng(4)
     vals = rng.normal(0, 10, pix.size)
     vals[:50] = hp.UNSEEN
-    sky = SkyMap(nside=nside, nest=False, pixels=pix, values=vals)
+    sky = HealpixMap(nside=nside, nest=False, pixels=pix, values=vals)
     out, _ = apply_prefilter(sky, PrefilterConfig(kind="highpass", highpass_ell=20, highpass_width=10,
                                                   normalise="none"), radius_arcmin=60.0)
     np.testing.assert_array_equal(out.pixels, sky.pixels)

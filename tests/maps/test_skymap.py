@@ -9,7 +9,9 @@ import pytest
 from astropy.io import fits
 
 from pairvel.core.errors import MapError, OutputError, PairvelWarning
-from pairvel.maps.skymap import SkyMap, footprint_fraction, read_map, read_mask, unit_to_uk, write_partial_map
+from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.healpix_io import read_map, read_mask, write_partial_map
+from pairvel.maps.skymap import footprint_fraction, unit_to_uk
 
 
 def table_file(path, values, *, ordering="RING", unit="K_CMB", nside=None, coordsys="C", pixels=None,
@@ -184,14 +186,14 @@ def test_mask_nside_mismatch_orderings_and_application(tmp_path):
 
 def test_skymap_validation_and_partial_lookup():
     with pytest.raises(MapError, match=r"nside must be a power of 2 between 1 and 2\^29; got 3"):
-        SkyMap(3, False, None, np.zeros(108))
+        HealpixMap(3, False, None, np.zeros(108))
     with pytest.raises(MapError, match=r"a full-sky map at nside 4 must have 192 values; got 10"):
-        SkyMap(4, False, None, np.zeros(10))
+        HealpixMap(4, False, None, np.zeros(10))
     with pytest.raises(MapError, match=r"pixels must be sorted, unique and in \[0, 192\)"):
-        SkyMap(4, False, np.array([3, 1]), np.zeros(2))
+        HealpixMap(4, False, np.array([3, 1]), np.zeros(2))
     with pytest.raises(MapError, match=r"weight must lie in \[0, 1\]; 1 pixels do not \(first: index 1, weight=2.0\)"):
-        SkyMap(4, False, np.array([1, 3]), np.zeros(2), np.array([1.0, 2.0]))
-    sm = SkyMap(4, False, np.array([1, 3, 190]), np.array([1.0, np.nan, 3.0]))
+        HealpixMap(4, False, np.array([1, 3]), np.zeros(2), np.array([1.0, 2.0]))
+    sm = HealpixMap(4, False, np.array([1, 3, 190]), np.array([1.0, np.nan, 3.0]))
     vals, w = sm.lookup([0, 1, 3, 190, 191])
     np.testing.assert_array_equal(w, [0, 1, 0, 1, 0])
     assert vals[1] == 1.0 and vals[3] == 3.0

@@ -42,7 +42,7 @@ def test_rotated_sets_equal_photometry_on_an_explicitly_rotated_map():
     from pairvel.core.errors import PairvelWarning
     from pairvel.stats.nulltests import rotated_sets
     from pairvel.maps.photometry import measure_apertures
-    from pairvel.maps.skymap import SkyMap
+    from pairvel.maps.healpix import HealpixMap
 
     nside = 64
     rng = np.random.default_rng(8)
@@ -50,15 +50,15 @@ def test_rotated_sets_equal_photometry_on_an_explicitly_rotated_map():
     lon, lat = hp.pix2ang(nside, np.arange(m.size), lonlat=True)
     m_rot = m[hp.ang2pix(nside, np.mod(lon - 90.0, 360.0), lat, lonlat=True)]
     ra, dec = rng.uniform(0, 360, 50), rng.uniform(-60, 60, 50)
-    sets, kept = rotated_sets(SkyMap.from_array(m), ra, dec, [90.0], radius_arcmin=100.0, max_masked_fraction=0.1)
-    direct = measure_apertures(SkyMap.from_array(m_rot), ra, dec, 100.0).temperatures[0]
+    sets, kept = rotated_sets(HealpixMap.from_array(m), ra, dec, [90.0], radius_arcmin=100.0, max_masked_fraction=0.1)
+    direct = measure_apertures(HealpixMap.from_array(m_rot), ra, dec, 100.0).temperatures[0]
     np.testing.assert_allclose(sets[0], direct, rtol=1e-9, atol=1e-9)
     assert kept == [(90.0, 1.0)]
     partial = np.full(m.size, hp.UNSEEN)
     partial[np.abs(lon - 180) < 40] = m[np.abs(lon - 180) < 40]
     ra_in = rng.uniform(160, 200, 30)
     with pytest.warns(PairvelWarning, match="rotation by 180 deg leaves only 0% of the tracers"):
-        sets, kept = rotated_sets(SkyMap.from_array(partial), ra_in, np.zeros(30), [5.0, 180.0], radius_arcmin=60.0,
+        sets, kept = rotated_sets(HealpixMap.from_array(partial), ra_in, np.zeros(30), [5.0, 180.0], radius_arcmin=60.0,
                                   max_masked_fraction=0.1)
     assert sets.shape == (1, 30) and kept[0][0] == 5.0 and kept[0][1] > 0.5
 

@@ -120,7 +120,7 @@ def test_alm_draw_has_the_requested_power():
 
 def test_ring_synthesis_equals_healpy_alm2map_at_the_pixels():
     # reference: healpy.alm2map, a full-sky synthesis (general-purpose library)
-    from pairvel.stats.simcov import synthesise_pixels
+    from pairvel.maps.healpix import synthesise_pixels
 
     nside, lmax = 64, 150
     rng = np.random.default_rng(4)
