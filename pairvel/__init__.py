@@ -19,7 +19,8 @@ The pieces
     load_catalogue(catalogue_cfg) -> Catalogue
         Read a tracer table with the checks and cuts of a ``[catalogue]`` section.
     read_map(path, ...) -> SkyMap
-        Read a HEALPix temperature map (full or partial sky, RING or NESTED) in uK_CMB.
+        Read a temperature map in uK_CMB; the reader is chosen from the file (HEALPix today: full
+        or partial sky, RING or NESTED).
     measure_apertures(skymap, ra_deg, dec_deg, radius_arcmin, ...) -> ApertureResult
         Compensated aperture photometry at every position, one or several radii.
     pairwise_momentum(positions, temperatures, edges, ...) -> PairwiseResult
