@@ -24,12 +24,12 @@ import time
 
 import numpy as np
 
-from pairvel.stats.covariance import kmeans_regions
+from pairvel.maps.healpix import HealpixMap
+from pairvel.model.cmb import load_cmb_cl
 from pairvel.pairs.estimator import pairwise_momentum
 from pairvel.pairs.geometry import comoving_positions
-from pairvel.model.cmb import load_cmb_cl
+from pairvel.stats.covariance import kmeans_regions
 from pairvel.stats.nulltests import evaluate_null, shuffled_sets
-from pairvel.maps.healpix import HealpixMap
 from pairvel.stats.simcov import simulate_aperture_temperatures
 
 

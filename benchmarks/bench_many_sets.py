@@ -20,8 +20,8 @@ import time
 import numpy as np
 from bench_pairs import shell_quarter_sky
 
-from pairvel.stats.covariance import kmeans_regions
 from pairvel.pairs.estimator import LINEAR_MIN_SETS, pairwise_momentum
+from pairvel.stats.covariance import kmeans_regions
 
 
 def best_time(fn, repeat):

@@ -22,12 +22,12 @@ from pathlib import Path
 
 import numpy as np
 
-from pairvel.input.config import config_from_dict
 from pairvel.core.errors import PairvelWarning
-from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, extra_map_file, make_mock_survey
+from pairvel.input.config import config_from_dict
 from pairvel.maps.multifreq import combination_weights, noise_cost, read_input_map
 from pairvel.model.sz import tsz_spectrum
 from pairvel.pipeline import run_pipeline
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, extra_map_file, make_mock_survey
 
 FREQS = (90.0, 150.0, 220.0)
 

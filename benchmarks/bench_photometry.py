@@ -20,8 +20,8 @@ import time
 
 import numpy as np
 
-from pairvel.maps.photometry import measure_apertures
 from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.photometry import measure_apertures
 
 
 def main(argv=None):

@@ -22,8 +22,8 @@ import healpy as hp
 import numpy as np
 
 from pairvel.input.config import PrefilterConfig
-from pairvel.maps.prefilter import apply_prefilter
 from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.prefilter import apply_prefilter
 
 
 def main(argv=None):

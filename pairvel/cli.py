@@ -28,8 +28,8 @@ import traceback
 import warnings
 from pathlib import Path
 
-from .core.provenance import __version__
 from .core.errors import PairvelError
+from .core.provenance import __version__
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
 
@@ -118,8 +118,8 @@ def _closing_summary(result, out: Path) -> str:
 def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool) -> int:
     from .core.progress import Progress
     from .input.config import load_config
-    from .report.outputs import prepare_output_dir, write_outputs
     from .pipeline import run_pipeline
+    from .report.outputs import prepare_output_dir, write_outputs
 
     cfg = load_config(config_path)
     out = prepare_output_dir(args.out if args.out else default_out, force=args.force)

@@ -41,8 +41,14 @@ from .pairs.distributed import pairwise_momentum_units
 from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
-from .stats.covariance import (bootstrap_covariance, bootstrap_samples, healpix_regions, jackknife_covariance,
-                               kmeans_regions, region_half_sums)
+from .stats.covariance import (
+    bootstrap_covariance,
+    bootstrap_samples,
+    healpix_regions,
+    jackknife_covariance,
+    kmeans_regions,
+    region_half_sums,
+)
 from .stats.covdiag import covariance_diagnostics, diagnostics_markdown
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale

@@ -9,9 +9,9 @@ import healpy as hp
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import write_healpix
 
 from pairvel.cli import main
-from conftest import write_healpix
 
 
 def run(folder, *extra):

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from pairvel.input.config import config_from_dict
-from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
 from pairvel.pipeline import run_pipeline
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
 
 TAU = 1.0e-2
 MOCK = dict(n_tracers=6000, nside=512, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
@@ -60,10 +60,10 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
     jackknife's (common practice: the two agree to tens of per cent for region resampling)."""
     import warnings
 
-    from pairvel.input.config import load_config
     from pairvel.core.errors import PairvelWarning
-    from pairvel.report.outputs import write_outputs
+    from pairvel.input.config import load_config
     from pairvel.pipeline import run_pipeline
+    from pairvel.report.outputs import write_outputs
 
     text = (tiny_survey / "run.toml").read_text().replace("n_regions = 12",
                                                           'n_regions = 12\nestimator = "bootstrap"\nn_bootstrap = 300')
@@ -91,8 +91,8 @@ def test_bootstrap_estimator_and_covariance_diagnostics(tiny_survey):
 
 def test_too_few_samples_warns():
     """Common practice: a Hartlap factor below 0.8 means too few samples for the bins."""
-    from pairvel.stats.covdiag import covariance_diagnostics
     from pairvel.core.errors import PairvelWarning
+    from pairvel.stats.covdiag import covariance_diagnostics
 
     cov = np.diag([1.0, 2.0, 4.0, 8.0])
     with pytest.warns(PairvelWarning, match="'jackknife' comes from 10 samples for 4 bins"):
@@ -106,10 +106,10 @@ def test_jackknife_sample_is_the_whole_chain_without_the_region():
     region k with the trend estimated from them alone (the delete-one definition, computed directly)."""
     from types import SimpleNamespace
 
+    from pairvel.maps.trend import remove_redshift_trend
     from pairvel.pairs.estimator import pairwise_momentum
     from pairvel.pairs.geometry import comoving_positions
     from pairvel.pipeline import retrended_sets
-    from pairvel.maps.trend import remove_redshift_trend
 
     rng = np.random.default_rng(12)
     n, n_jk = 1500, 5

@@ -7,10 +7,10 @@ import pytest
 from astropy.table import Table
 
 from pairvel.cli import main
-from pairvel.input.config import load_config
 from pairvel.core.errors import ConfigError
-from pairvel.pipeline import run_pipeline
+from pairvel.input.config import load_config
 from pairvel.maps.radii import aperture_radii
+from pairvel.pipeline import run_pipeline
 
 
 def with_aperture(folder, text, name):
@@ -64,8 +64,8 @@ def test_outputs_have_the_table_figure_and_report_line(tiny_survey):
 
 
 def test_physical_radius_against_astropy():
-    from pairvel.model.cosmology import Cosmology
     from pairvel.maps.radii import angular_radius_arcmin
+    from pairvel.model.cosmology import Cosmology
 
     cosmo = Cosmology()
     z = np.array([0.1, 0.5, 1.0, 2.0])
@@ -81,8 +81,8 @@ def test_physical_radius_against_astropy():
 def test_per_tracer_radius_equals_measuring_each_tracer_alone(method, weighting):
     import healpy as hp
 
-    from pairvel.maps.photometry import measure_apertures
     from pairvel.maps.healpix import HealpixMap
+    from pairvel.maps.photometry import measure_apertures
 
     nside = 128
     rng = np.random.default_rng(5)

@@ -4,8 +4,8 @@ import json
 
 import numpy as np
 
-from pairvel.model import theory as th
 from pairvel.cli import main
+from pairvel.model import theory as th
 
 
 def run(folder, theory_toml, *extra):

@@ -39,9 +39,9 @@ from pathlib import Path
 
 import numpy as np
 
+from ..core.errors import ConfigError
 from ..model.cosmology import Cosmology
 from ..model.sz import tsz_spectrum
-from ..core.errors import ConfigError
 
 
 def _key(default, doc, **extra):

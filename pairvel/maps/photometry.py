@@ -26,9 +26,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core.rng import as_generator
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import InputError, MapError, PairvelWarning
+from ..core.rng import as_generator
+from ..core.sphere import unit_vectors
 from .skymap import SkyMap
 
 _MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" is not what anyone wants
@@ -100,12 +101,6 @@ def _check_fraction(max_masked_fraction) -> float:
     return float(f)
 
 
-def _ang2vec(ra, dec) -> np.ndarray:
-    ra_r, dec_r = np.radians(ra), np.radians(dec)
-    cd = np.cos(dec_r)
-    return np.column_stack([cd * np.cos(ra_r), cd * np.sin(ra_r), np.sin(dec_r)])
-
-
 _WEIGHTINGS = ("centre", "fraction", "subsample")
 _METHODS = ("auto", "kernel", "direct")
 
@@ -113,7 +108,7 @@ _METHODS = ("auto", "kernel", "direct")
 def _measure(skymap: SkyMap, ra, dec, radii, max_masked_fraction, progress, *, weighting="centre", method="auto",
              level=3, scale=None) -> ApertureResult:
     """Validated inputs (positions already in the map's frame) in, ApertureResult out (see measure_apertures)."""
-    vec = _ang2vec(ra, dec)
+    vec = unit_vectors(ra, dec)
     theta = radii[:, None] * ARCMIN_RAD * (np.ones(ra.size) if scale is None else scale)[None, :]  # (R, N)
     nd, wd, sd, na, wa, sa = skymap.aperture_sums(vec, theta, math.sqrt(2.0) * theta, weighting=weighting,
                                                   method=method, subsample_level=level, progress=progress)

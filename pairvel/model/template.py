@@ -41,8 +41,8 @@ __all__ = ["PHOTOZ_MODELS", "bin_averaged_velocity", "load_power", "los_error_mp
 import numpy as np
 
 from ..core.constants import C_KM_S
-from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..core.errors import TheoryError
+from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 from .theory import growth_rate, pairwise_velocity, sigma_radius
 
 PHOTOZ_MODELS = ("convolution", "exponential")

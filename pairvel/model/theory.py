@@ -20,8 +20,8 @@ import numpy as np
 from scipy import fft, integrate
 from scipy.interpolate import CubicSpline
 
-from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..core.errors import TheoryError
+from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 
 _K_MIN, _K_MAX, _N_K = 1e-5, 1e3, 4096
 _XI_RTOL = 2e-3  # agreement demanded between two FFTLog set-ups (relative to the local |xi| scale)

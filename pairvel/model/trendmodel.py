@@ -43,8 +43,8 @@ from dataclasses import dataclass
 import numba as nb
 import numpy as np
 
-from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..core.errors import InputError
+from .cosmology import DEFAULT_COSMOLOGY, Cosmology
 
 _S_MIN, _S_MAX = 0.5, 1000.0      # Mpc: range of the tabulated streaming law (U = 0 beyond; |U| there < 1e-3 of its peak)
 _CUT_SIGMA = 6.0                  # shell kernel cut, in sigma_z (weight exp(-18) ~ 1.5e-8)

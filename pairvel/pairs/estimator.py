@@ -16,8 +16,8 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from . import _kernels
 from ..core.errors import InputError
+from . import _kernels
 
 # from this many temperature sets on, method='auto' takes the linear path (measured with
 # benchmarks/bench_many_sets.py at 1e5 tracers and 50 regions: below ~200 sets the direct loop is cheaper)

@@ -381,7 +381,6 @@ def _plot_nulls(result, path: Path) -> None:
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-
     from scipy import stats
 
     fig, axes = plt.subplots(2, len(result.nulls), figsize=(4.2 * len(result.nulls), 6.8), sharey="row",

@@ -37,12 +37,12 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core.rng import as_generator
 from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
+from ..core.errors import InputError, OutputError, PairvelWarning
+from ..core.rng import as_generator
 from ..maps.sources import paint_beam_sources
 from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
-from ..core.errors import InputError, OutputError, PairvelWarning
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 
 SURVEY_NAME = "Larkspur Cluster Survey"
@@ -615,8 +615,8 @@ def _pairwise_truth(tracers: _Tracers, spec: _MockSpec) -> _PairwiseTruth:
 def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> float:
     """Slope of the compensated-aperture temperatures against ``dt_ksz_uk`` on the noiseless map of the
     painted kSZ sources ``ksz`` (pixels, values); nan, with a warning, when it cannot be measured."""
-    from ..maps.photometry import measure_apertures
     from ..maps.healpix import HealpixMap
+    from ..maps.photometry import measure_apertures
 
     pix, val = ksz
     ksz_only = HealpixMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))

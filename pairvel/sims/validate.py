@@ -48,11 +48,11 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
+from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
+from ..core.errors import InputError
 from ..core.provenance import __version__
 from ..input.config import CovarianceConfig, TheoryConfig, TrendConfig
-from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
 from ..model.cosmology import DEFAULT_COSMOLOGY
-from ..core.errors import InputError
 from .mock import _plain
 
 #: Targets stated in the issue; never tuned to the results.
@@ -224,9 +224,9 @@ def _draw_catalogue(opt: ValidationOptions, rng: np.random.Generator):
     2.4-4.6% below b over 0.1 < z < 0.4; the returned effective bias is its mean over the kept
     tracers, and the validation's template uses it (the mock's true bias).
     """
+    from ..model.theory import growth_factor, growth_rate
     from ._fields import _cone_box, _field_variance, _patch_frame
     from .mock import _inverse_distance
-    from ..model.theory import growth_factor, growth_rate
 
     cosmo = DEFAULT_COSMOLOGY
     ra0, ra1, de0, de1 = -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg
@@ -276,10 +276,10 @@ def _fields_at_points(opt: ValidationOptions, q, lo, shape, cosmo, rng):
 
 def _map_temperatures(opt: ValidationOptions, ra, dec, dt_uk, rng):
     """Paint dT onto a partial HEALPix map with white noise; compensated apertures at the tracers."""
+    from ..maps.healpix import HealpixMap
+    from ..maps.photometry import measure_apertures
     from ..maps.sources import paint_beam_sources
     from .mock import _add_to_footprint, _footprint_pixels, _white_noise
-    from ..maps.photometry import measure_apertures
-    from ..maps.healpix import HealpixMap
 
     foot = _footprint_pixels(opt.nside, -opt.ra_half_deg, opt.ra_half_deg, -opt.dec_half_deg, opt.dec_half_deg,
                              margin_deg=0.5)
@@ -363,10 +363,10 @@ def _retrended(temps, z, regions, n_jk, sigma_z) -> np.ndarray:
 
 def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: np.ndarray) -> dict:
     """Draw one mock, run the pipeline's stages on it and return one row of results."""
-    from ..pairs.geometry import comoving_positions
-    from ..model.template import template_for_run
     from ..maps.trend import remove_redshift_trend
+    from ..model.template import template_for_run
     from ..model.trendmodel import trend_transfer
+    from ..pairs.geometry import comoving_positions
 
     rng = np.random.default_rng(seed_seq)
     ra, dec, z, v_r, bias_eff = _draw_catalogue(opt, rng)

@@ -7,8 +7,8 @@ __all__ = ["kmeans_regions", "healpix_regions", "jackknife_covariance", "region_
 
 import numpy as np
 
-from ..core.rng import as_generator
 from ..core.errors import InputError
+from ..core.rng import as_generator
 from ..core.sphere import unit_vectors
 
 

@@ -24,8 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .covariance import jackknife_covariance
 from ..core.errors import PairvelWarning
+from .covariance import jackknife_covariance
 from .fit import chi2_against_zero
 
 NULL_KINDS = {

@@ -17,9 +17,9 @@ import math
 
 import numpy as np
 
-from ..core.rng import as_generator
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import InputError
+from ..core.rng import as_generator
 from ..maps.harmonics import alm_ell_m, gaussian_beam
 from ..maps.photometry import measure_apertures
 from ..maps.skymap import SkyMap

@@ -18,11 +18,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core.constants import C_KM_S, T_CMB_UK
-from .covariance import jackknife_covariance
 from ..core.errors import InputError, PairvelError
-from ..pairs.estimator import pairwise_momentum
-from .fit import AmplitudeFit, fit_amplitude
 from ..model.template import template_for_run
+from ..pairs.estimator import pairwise_momentum
+from .covariance import jackknife_covariance
+from .fit import AmplitudeFit, fit_amplitude
 
 
 @dataclass(frozen=True)

@@ -5,9 +5,9 @@ import pandas as pd
 import pytest
 from astropy.table import Table
 
+from pairvel.core.errors import CatalogueError, PairvelWarning
 from pairvel.input.catalogue import load_catalogue
 from pairvel.input.config import CatalogueConfig
-from pairvel.core.errors import CatalogueError, PairvelWarning
 
 
 def frame(n=50, seed=1):

@@ -6,8 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pairvel.input.config import config_from_dict, iter_config_keys, load_config
 from pairvel.core.errors import ConfigError
+from pairvel.input.config import config_from_dict, iter_config_keys, load_config
 
 MINIMAL = '[catalogue]\npath = "cat.fits"\n[map]\npath = "map.fits"\n'
 

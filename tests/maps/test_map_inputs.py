@@ -6,9 +6,9 @@ import json
 import healpy as hp
 import numpy as np
 import pandas as pd
+from conftest import write_healpix
 
 from pairvel.cli import main
-from conftest import write_healpix
 
 
 def run(folder, *extra):

@@ -11,22 +11,20 @@ import pytest
 import scipy.constants
 import scipy.linalg
 import scipy.optimize
+from conftest import write_healpix
 
 from pairvel.cli import _parser
-from pairvel.input.config import config_from_dict
 from pairvel.core.constants import T_CMB_K
 from pairvel.core.errors import ConfigError, InputError, MapError, PairvelWarning
+from pairvel.input.config import config_from_dict
+from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.multifreq import combination_weights, combine_maps, noise_cost, pixel_difference_covariance, read_input_map
+from pairvel.maps.skymap import read_map
 from pairvel.model.cmb import load_cmb_cl
 from pairvel.model.sz import tsz_spectrum
-from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, _gaussian_alm, extra_map_file, make_mock_survey
-from pairvel.maps.multifreq import (combination_weights, combine_maps, noise_cost, pixel_difference_covariance,
-                                    read_input_map)
-from pairvel.report.outputs import write_outputs
 from pairvel.pipeline import run_pipeline
-from pairvel.maps.healpix import HealpixMap
-from pairvel.maps.skymap import read_map
-
-from conftest import write_healpix
+from pairvel.report.outputs import write_outputs
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, _gaussian_alm, extra_map_file, make_mock_survey
 
 
 # ---------------------------------------------------------------------- the tSZ spectrum

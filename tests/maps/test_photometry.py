@@ -5,8 +5,8 @@ import numpy as np
 import pytest
 
 from pairvel.core.errors import InputError, MapError, PairvelWarning
-from pairvel.maps.photometry import measure_apertures, measure_random_apertures, random_positions_in_footprint
 from pairvel.maps.healpix import HealpixMap, aperture_temperatures
+from pairvel.maps.photometry import measure_apertures, measure_random_apertures, random_positions_in_footprint
 
 ARCMIN = np.radians(1.0 / 60.0)
 

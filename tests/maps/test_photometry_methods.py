@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 
 from pairvel.core.errors import InputError, MapError
-from pairvel.maps.photometry import measure_apertures, measure_random_apertures
 from pairvel.maps.healpix import HealpixMap
 from pairvel.maps.healpix_io import read_map, read_mask, write_partial_map
+from pairvel.maps.photometry import measure_apertures, measure_random_apertures
 
 ARCMIN = np.radians(1.0 / 60.0)
 

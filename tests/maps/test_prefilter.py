@@ -6,13 +6,12 @@ import healpy as hp
 import numpy as np
 import pytest
 
-from pairvel.input.config import PrefilterConfig, config_from_dict
-from pairvel.core.errors import ConfigError, InputError
 from pairvel.core.constants import ARCMIN_RAD
-from pairvel.maps.prefilter import (aperture_window, apply_prefilter, filter_transfer,
-                               read_beam_table)
-from pairvel.maps.photometry import measure_apertures
+from pairvel.core.errors import ConfigError, InputError
+from pairvel.input.config import PrefilterConfig, config_from_dict
 from pairvel.maps.healpix import HealpixMap
+from pairvel.maps.photometry import measure_apertures
+from pairvel.maps.prefilter import aperture_window, apply_prefilter, filter_transfer, read_beam_table
 
 
 def test_highpass_shape():

@@ -6,9 +6,9 @@ from astropy import units as u
 from astropy.cosmology import units as cu
 from astropy.table import Table
 
+from pairvel.core.errors import InputError
 from pairvel.model import theory as th
 from pairvel.model.cosmology import DEFAULT_COSMOLOGY
-from pairvel.core.errors import InputError
 from pairvel.model.power import read_power_table
 
 C = DEFAULT_COSMOLOGY

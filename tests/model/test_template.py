@@ -3,10 +3,10 @@
 import numpy as np
 import pytest
 
+from pairvel.core.errors import TheoryError
 from pairvel.model import template as tp
 from pairvel.model import theory as th
 from pairvel.model.cosmology import DEFAULT_COSMOLOGY
-from pairvel.core.errors import TheoryError
 
 C = DEFAULT_COSMOLOGY
 EDGES = np.arange(0.0, 201.0, 20.0)

@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from scipy import integrate
 
+from pairvel.core.errors import TheoryError
 from pairvel.model import theory as th
 from pairvel.model.cosmology import DEFAULT_COSMOLOGY, Cosmology
-from pairvel.core.errors import TheoryError
 
 LCDM_03 = Cosmology(h=0.7, omega_m=0.3, omega_b=0.05)
 

@@ -5,10 +5,10 @@ import math
 import numpy as np
 import pytest
 
-from pairvel.model.cosmology import DEFAULT_COSMOLOGY
 from pairvel.core.errors import InputError
-from pairvel.pairs.geometry import comoving_positions
+from pairvel.model.cosmology import DEFAULT_COSMOLOGY
 from pairvel.model.trendmodel import _kernel_sums, _shell_streaming, trend_transfer
+from pairvel.pairs.geometry import comoving_positions
 
 
 def _cone(n, seed, half_deg=10.0, z_range=(0.1, 0.4)):

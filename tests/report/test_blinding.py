@@ -68,8 +68,8 @@ def test_blinded_run_unblinds_to_the_unblinded_run(tiny_survey, capsys):
 
 @pytest.mark.filterwarnings("ignore")
 def test_unblind_refuses_wrong_key_and_unblinded_folder(tiny_survey, tmp_path):
-    from pairvel.report.blinding import unblind_folder, write_key
     from pairvel.core.errors import InputError, OutputError
+    from pairvel.report.blinding import unblind_folder, write_key
 
     assert main(["run", str(tiny_survey / "run.toml"), "--out", str(tmp_path / "plain"), "--quiet"]) == 0
     key = tmp_path / "k.json"

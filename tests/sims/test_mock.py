@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from pairvel.model.cosmology import DEFAULT_COSMOLOGY
 from pairvel.core.errors import InputError, OutputError
-from pairvel.model.cmb import load_cmb_cl
-from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, _cone_box, _patch_frame, make_mock_survey
 from pairvel.maps.skymap import read_map
+from pairvel.model.cmb import load_cmb_cl
+from pairvel.model.cosmology import DEFAULT_COSMOLOGY
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, _cone_box, _patch_frame, make_mock_survey
 
 SMALL = dict(n_tracers=4000, nside=256, ra_min=-10, ra_max=10, dec_min=-6, dec_max=6, z_min=0.15, z_max=0.4,
              cell_mpc=8.0, beam_fwhm_arcmin=10.0, aperture_radius_arcmin=15.0, include_cmb=False)
@@ -207,8 +207,8 @@ def test_random_draws_keep_their_order(tmp_path):
 def test_velocity_rms_matches_linear_theory():
     """sigma_v^2 (1D) = (a H f D)^2 / (6 pi^2) int P(k) dk over the grid's k-range (analytic)."""
     from pairvel.model.cosmology import DEFAULT_COSMOLOGY as cosmo
-    from pairvel.sims._fields import _gaussian_fields
     from pairvel.model.theory import linear_power
+    from pairvel.sims._fields import _gaussian_fields
 
     shape, cell = (96, 96, 96), 8.0
     _, u = _gaussian_fields(shape, cell, cosmo, np.random.default_rng(0))

@@ -10,10 +10,9 @@ from astropy.table import Table
 
 from pairvel.cli import main
 from pairvel.core.errors import InputError, OutputError
-from pairvel.stats.fit import ONE_SIGMA
 from pairvel.report.outputs import OUTPUT_MARKER, write_folder_atomically
 from pairvel.sims.validate import ValidationOptions, _calibration, _draw_catalogue, run_validation
-
+from pairvel.stats.fit import ONE_SIGMA
 
 # --- the harness itself: it must pass calibrated fits and catch miscalibrated ones ------------------
 

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from pairvel.stats.covariance import jackknife_covariance, kmeans_regions
 from pairvel.core.errors import InputError
+from pairvel.stats.covariance import jackknife_covariance, kmeans_regions
 
 
 def test_jackknife_of_a_mean_reproduces_var_over_n():
@@ -94,8 +94,8 @@ def test_jackknife_and_bootstrap_agree_with_iid_variance_of_a_ratio_mean():
 
 def test_region_shares_add_up_and_match_a_pair_list():
     """The shares add to the full sums, and region 0's shares equal a numpy pair-list sum."""
-    from pairvel.stats.covariance import bootstrap_samples, region_half_sums
     from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.stats.covariance import bootstrap_samples, region_half_sums
 
     rng = np.random.default_rng(3)
     pos = rng.uniform(0, 200, size=(400, 3)) + [0, 0, 800]
@@ -131,9 +131,9 @@ def test_region_shares_add_up_and_match_a_pair_list():
 def test_region_bootstrap_variance_on_white_noise_matches_the_scatter():
     """300 independent white-noise sets on one geometry: the bootstrap variance of p per bin is
     within 0.7-1.3 of the scatter across sets (analytic truth: the scatter itself)."""
-    from pairvel.stats.covariance import bootstrap_covariance, bootstrap_samples, kmeans_regions, region_half_sums
     from pairvel.pairs.estimator import pairwise_momentum
     from pairvel.pairs.geometry import comoving_positions
+    from pairvel.stats.covariance import bootstrap_covariance, bootstrap_samples, kmeans_regions, region_half_sums
 
     rng = np.random.default_rng(3)
     n = 8000

@@ -40,9 +40,9 @@ def test_rotated_sets_equal_photometry_on_an_explicitly_rotated_map():
     import healpy as hp
 
     from pairvel.core.errors import PairvelWarning
-    from pairvel.stats.nulltests import rotated_sets
-    from pairvel.maps.photometry import measure_apertures
     from pairvel.maps.healpix import HealpixMap
+    from pairvel.maps.photometry import measure_apertures
+    from pairvel.stats.nulltests import rotated_sets
 
     nside = 64
     rng = np.random.default_rng(8)
@@ -72,8 +72,8 @@ def test_null_ptes_are_uniform_without_signal():
     up towards 1 - checked here too, so that a change in that behaviour is seen."""
     from scipy import stats
 
-    from pairvel.stats.covariance import jackknife_covariance
     from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.stats.covariance import jackknife_covariance
 
     rng = np.random.default_rng(12)
     n = 3000
