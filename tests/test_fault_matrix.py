@@ -20,13 +20,16 @@ case folder, which is all that checks (c) and (d) look at.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
+import importlib
 import io
 import re
 import sys
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from unittest import mock
 
 import healpy as hp
 import numpy as np
@@ -297,6 +300,24 @@ def two_column_ra(path: Path) -> None:
     Table({"ra": np.full((5, 2), 30.0), "dec": np.zeros(5), "z": np.full(5, 0.1)}).write(path)
 
 
+def denied(target: str, name: str) -> Callable[[list[str]], int]:
+    """A ``run`` for :class:`Case`: main with ``target`` (a dotted callable) refusing files called ``name``
+    with PermissionError, as a file without read permission does for anyone but root."""
+    module, attr = target.rsplit(".", 1)
+    original = getattr(importlib.import_module(module), attr)
+
+    def guarded(path, *args, **kwargs):
+        if Path(str(path)).name == name:
+            raise PermissionError(errno.EACCES, "Permission denied", str(path))
+        return original(path, *args, **kwargs)
+
+    def run(argv: list[str]) -> int:
+        with mock.patch(target, guarded):
+            return main(argv)
+
+    return run
+
+
 def both(*steps) -> Callable[[Path], None]:
     def prepare(folder: Path) -> None:
         for step in steps:
@@ -347,6 +368,10 @@ CONFIG_CASES = [
     Case("config-is-a-folder", "config", lambda folder: (folder / "settings").mkdir(),
          r"config \S*settings: cannot be read \(Is a directory\)",
          argv=("run", "{dir}/settings", "--out", "{dir}/out")),
+    Case("parent-is-a-file", "config", lambda folder: None, r"config \S*cat\.csv/run\.toml: cannot be read "
+         r"\(Not a directory\)", argv=("run", "{dir}/cat.csv/run.toml", "--out", "{dir}/out")),
+    Case("permission-denied", "config", lambda folder: None,
+         r"config \S*run\.toml: cannot be read \(Permission denied\)", run=denied("builtins.open", "run.toml")),
     Case("section-not-a-table", "config", write_config('aperture = 3\n' + "[catalogue]\npath = 'cat.csv'\n"),
          r"run\.toml: \[aperture\] must be a table; got 3"),
     Case("seed-not-an-int", "config", replace_in_config("seed = 3", "seed = 3.5"),
@@ -436,6 +461,10 @@ CATALOGUE_CASES = [
          r"catalogue \S*cat\.csv: file not found"),
     Case("path-is-a-folder", "catalogue", write_file("cat.csv", lambda p: p.mkdir()),
          r"catalogue \S*cat\.csv: file not found"),
+    Case("parent-is-a-file", "catalogue", replace_in_config('path = "cat.csv"', 'path = "map.fits/cat.csv"'),
+         r"catalogue \S*map\.fits/cat\.csv: file not found"),
+    Case("permission-denied", "catalogue", lambda folder: None,
+         r"catalogue \S*cat\.csv: cannot be read as csv \(.*Permission denied", run=denied("pandas.read_csv", "cat.csv")),
     Case("unknown-suffix", "catalogue", catalogue_as("txt"),
          r"cat\.txt: cannot tell the format from the suffix; set catalogue\.format"),
     Case("format-says-fits", "catalogue", set_in_config("catalogue", 'format = "fits"'),
@@ -467,6 +496,8 @@ MAP_CASES = [
     Case("not-found", "map", write_file("map.fits", lambda p: None), r"map \S*map\.fits cannot be read: no such file"),
     Case("path-is-a-folder", "map", write_file("map.fits", lambda p: p.mkdir()),
          r"map \S*map\.fits cannot be read: no such file"),
+    Case("permission-denied", "map", lambda folder: None, r"map \S*map\.fits cannot be read as FITS \(.*Permission denied",
+         run=denied("astropy.io.fits.open", "map.fits")),
     Case("image-not-table", "map", write_file("map.fits", lambda p: fits.PrimaryHDU(np.zeros((8, 8))).writeto(p)),
          r"map\.fits is not a HEALPix FITS map: it has no binary table extension"),
     Case("table-not-healpix", "map", rewrite_map(drop=("PIXTYPE", "NSIDE")),
