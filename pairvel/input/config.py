@@ -71,6 +71,10 @@ class CatalogueConfig:
     proxy_min: float = _key(-math.inf, "keep tracers with proxy >= proxy_min (needs proxy_column)")
     proxy_max: float = _key(math.inf, "keep tracers with proxy < proxy_max (needs proxy_column)")
     drop_invalid_rows: bool = _key(False, "drop rows with NaN or out-of-range ra/dec/z (counted) instead of stopping")
+    duplicate_rows: str = _key("error", "rows (after the cuts) whose ra, dec and z equal another row's exactly: error "
+                                        "(stop, naming them), warn (keep them, with a warning) or drop (keep one of "
+                                        "each group, the lowest proxy then weight, and count the rest)",
+                               choices=("error", "warn", "drop"))
 
 
 @dataclass(frozen=True)
