@@ -69,8 +69,9 @@ def assert_same_outputs(first, other):
 
 
 SETTINGS = {
-    # k-means regions, jackknife re-trended per region, random positions, both shuffles, trend-loss draws
-    "jackknife": "",
+    # k-means regions (and one more seed), jackknife re-trended per region, random positions, both
+    # shuffles, trend-loss draws
+    "jackknife": "extra_region_seeds = 1\n",
     "bootstrap": 'estimator = "bootstrap"\nn_bootstrap = 200\n',
 }
 
@@ -91,5 +92,6 @@ def test_permuted_rows_give_the_same_run(tiny_survey, estimator):
     assert summary["n_tracers"] > 500 and {n["kind"] for n in summary["null_tests"]} >= {
         "random_positions", "shuffled", "shuffled_in_z"}
     assert summary["covariance"]["n_regions"] == 12
+    assert ("region_seed_spread" in summary["covariance"]) == (estimator == "jackknife")
     for label in permutations:
         assert_same_outputs(runs["as_written"], runs[label])
