@@ -26,7 +26,7 @@ from .core.constants import C_KM_S, T_CMB_UK
 from .core.errors import InputError, PairvelWarning
 from .core.progress import Progress
 from .core.provenance import __version__, file_sha256, package_versions
-from .core.rng import as_generator
+from .core.rng import as_generator, derived_generators
 from .input.catalogue import Catalogue, load_catalogue
 from .input.config import Config
 from .maps.multifreq import combination_markdown, map_provenance, read_input_map
@@ -54,6 +54,7 @@ from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
 from .stats.radii import fit_radii, radius_report
+from .stats.regionseeds import SECTION_TITLE, spread_markdown, summarise_spread
 from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
 from .stats.subsamples import fit_proxy_bins
 
@@ -107,7 +108,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood)
-    extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, cat=cat, positions=positions,
+        spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
+    extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
     return RunResult(
         config=cfg, edges=edges, p=cov.p, covariance=cov.matrix, p_jk=cov.p_jk, pair_counts=pr.pair_counts,
@@ -466,11 +468,49 @@ def evaluate_nulls(cfg: Config, pr, stack: TemperatureStack, cov: CovarianceResu
             for kind, rows in stack.null_rows.items() if rows.stop > rows.start]
 
 
+def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps, cov: CovarianceResult,
+                       model: TemplateResult, quoted_error: float) -> dict | None:
+    """tau_mean refitted with the jackknife covariance of k-means regions drawn with other seeds.
+
+    Entry 0 is the run's own regions (``cov.jackknife``); each of ``covariance.extra_region_seeds``
+    more assignments gets a pair pass of the data and its re-trended jackknife sets.  None when
+    the option is off or the regions are HEALPix pixels (which have no seed).
+    """
+    cc = cfg.covariance
+    if cc.regions != "kmeans" or cc.extra_region_seeds == 0:
+        return None
+    th, edges, quiet = cfg.theory, cfg.bins.edges(), Progress(1, quiet=True)
+
+    def refit(matrix, n_jk):
+        return fit_amplitude(cov.p, model.template_uk, matrix, n_samples=n_jk, use=model.in_fit,
+                             likelihood=th.likelihood)
+
+    fits, skipped = [refit(cov.jackknife, cov.n_jk)], 0
+    for gen in derived_generators(cfg.run.seed, "jackknife region seeds", cc.extra_region_seeds):
+        regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=gen)
+        stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg),
+                                       np.zeros((0, len(cat))))
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet)
+        p_jk = _jackknife_rows(pr, stack, cc.n_regions)[0]
+        if not np.all(np.isfinite(p_jk)):
+            skipped += 1
+            continue
+        fits.append(refit(jackknife_covariance(p_jk), cc.n_regions))
+    if skipped:
+        warnings.warn(f"covariance.extra_region_seeds: {skipped} of {cc.extra_region_seeds} region seeds skipped, "
+                      f"a jackknife sample had a bin without pairs", PairvelWarning, stacklevel=2)
+    return summarise_spread([f.amplitude for f in fits], [f.error for f in fits], quoted_error=quoted_error,
+                            n_regions=cc.n_regions, skipped=skipped)
+
+
 # ---------------------------------------------------------------------------- what else is kept
 def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult, radius_fits, sky: SkyInputs,
-                  rotations, **data) -> dict:
+                  rotations, spread, **data) -> dict:
     """Everything beyond the main curve and fit: optional fits, map-stage records, report sections."""
     extra, sections = {"template": model.info}, {}
+    if spread is not None:
+        extra["region_seed_spread"] = spread
+        sections[SECTION_TITLE] = spread_markdown(spread)
     if len(radius_fits) > 1:
         extra["radius_fits"] = radius_fits
         sections["Signal against aperture radius"] = radius_report(radius_fits)

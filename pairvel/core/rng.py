@@ -2,15 +2,33 @@
 
 from __future__ import annotations
 
+import zlib
+
 import numpy as np
 
 from .errors import ConfigError
+
+
+def _is_int_seed(seed) -> bool:
+    return seed is None or (isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0)
 
 
 def as_generator(seed) -> np.random.Generator:
     """Return a Generator for ``seed`` (None, a non-negative int, or a Generator, passed through)."""
     if isinstance(seed, np.random.Generator):
         return seed
-    if seed is None or (isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0):
+    if _is_int_seed(seed):
         return np.random.default_rng(seed)
     raise ConfigError(f"seed must be None, a non-negative integer or a numpy Generator; got {seed!r}")
+
+
+def derived_generators(seed, purpose: str, n: int) -> list[np.random.Generator]:
+    """``n`` independent Generators for one ``purpose``, fixed by ``seed`` and the purpose's name.
+
+    They come from ``numpy.random.SeedSequence([seed, crc32(purpose)]).spawn(n)``, so they neither
+    repeat nor shift the stream of ``as_generator(seed)``; ``seed`` None gives fresh entropy.
+    """
+    if not _is_int_seed(seed):
+        raise ConfigError(f"seed must be None or a non-negative integer; got {seed!r}")
+    entropy = None if seed is None else [int(seed), zlib.crc32(purpose.encode())]
+    return [np.random.default_rng(child) for child in np.random.SeedSequence(entropy).spawn(int(n))]

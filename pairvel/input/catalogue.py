@@ -4,6 +4,20 @@ Reads FITS and ECSV (astropy), CSV and Parquet (pandas/pyarrow).  The input file
 read.  Rows with NaN or out-of-range positions or redshifts stop the run with the count and the
 first offending row, unless the config allows dropping them, in which case they are counted in
 the selection report and a warning is issued.
+
+Canonical order.  The tracers that pass are put into one order fixed by their values, not by the
+order of the rows in the file: sorted by ra, then dec, z, proxy and weight (the columns a run
+uses), with ties only between rows equal in all of them, which no later stage can tell apart.
+Every later step that draws random numbers per tracer (k-means regions, null positions and
+shuffles, the Monte Carlo of the trend loss, bootstrap, simulated skies) or sums over tracers in
+floating point then sees the same arrays for any permutation of the input rows, so a run gives
+the same numbers bit for bit.  Sorting once here, rather than making each random step
+order-free, keeps that guarantee for steps added later.  ``Catalogue.row`` keeps each tracer's
+row in the file for anything reported per tracer.
+
+Duplicates.  Two kept rows (after the validity checks and cuts) are duplicates when their ra
+(wrapped to [0, 360)), dec and z are equal as read, to the last bit; ``duplicate_rows`` chooses
+between stopping, warning and dropping the repeats.
 """
 
 from __future__ import annotations
@@ -44,7 +58,10 @@ class Catalogue:
     sha256 : str
         Checksum of the file read.
     selection : dict
-        Counts at each step: rows read, invalid rows dropped, cut by z, cut by proxy, kept.
+        Counts at each step: rows read, invalid rows dropped, cut by z, cut by proxy, duplicates
+        dropped, kept.
+
+    The tracers are in the canonical order of the module docstring, not in file order.
     """
 
     ra: np.ndarray
@@ -189,18 +206,68 @@ def load_catalogue(cfg) -> Catalogue:
     in_z = (z >= cfg.z_min) & (z < cfg.z_max)
     in_proxy = np.ones(n_read, dtype=bool) if proxy is None else (proxy >= cfg.proxy_min) & (proxy < cfg.proxy_max)
     keep = valid & in_z & in_proxy
+    order = canonical_order([ra, dec, z, proxy, weight], np.flatnonzero(keep))
+    repeat = _repeats(ra[order], dec[order], z[order])
+    if repeat.any():
+        _report_duplicates(path, cfg.duplicate_rows, order, repeat)
+        if cfg.duplicate_rows == "drop":
+            order = order[~repeat]
     selection = {
         "rows_read": int(n_read),
         "invalid_dropped": int((~valid).sum()),
         "outside_z_range": int((valid & ~in_z).sum()),
         "outside_proxy_range": int((valid & in_z & ~in_proxy).sum()),
-        "kept": int(keep.sum()),
+        "duplicates_dropped": int(keep.sum() - order.size),
+        "kept": int(order.size),
     }
     if selection["kept"] < 2:
         raise CatalogueError(f"catalogue {path}: {selection['kept']} tracers left after cuts {selection}; need at least 2",
                              path=path)
     return Catalogue(
-        ra=ra[keep], dec=dec[keep], z=z[keep], proxy=None if proxy is None else proxy[keep],
-        row=np.flatnonzero(keep), path=str(path), sha256=file_sha256(path), selection=selection,
-        weight=None if weight is None else weight[keep],
+        ra=ra[order], dec=dec[order], z=z[order], proxy=None if proxy is None else proxy[order],
+        row=order, path=str(path), sha256=file_sha256(path), selection=selection,
+        weight=None if weight is None else weight[order],
     )
+
+
+def canonical_order(columns, rows) -> np.ndarray:
+    """``rows`` sorted by the values of ``columns`` (first column first; None entries skipped).
+
+    Parameters
+    ----------
+    columns : list of ndarray of shape (n,) or None
+        Finite values; the first column is the primary key.
+    rows : ndarray of int
+        The rows to order.
+
+    Returns
+    -------
+    ndarray of int
+        ``rows`` reordered; rows equal in every column keep their relative order (the sort is
+        stable), so the order of the values is the same for any permutation of the rows.
+    """
+    keys = [c[rows] for c in reversed(columns) if c is not None]
+    return rows[np.lexsort(keys)] if keys else rows
+
+
+def _repeats(ra, dec, z) -> np.ndarray:
+    """For tracers sorted with ra, dec, z as leading keys: true where a row repeats the one before."""
+    same = np.zeros(ra.size, dtype=bool)
+    same[1:] = (ra[1:] == ra[:-1]) & (dec[1:] == dec[:-1]) & (z[1:] == z[:-1])
+    return same
+
+
+def _report_duplicates(path, action, order, repeat) -> None:
+    """Stop or warn about repeated (ra, dec, z): the count, and the first repeats in file order,
+    each named with the lowest row of its group."""
+    group = np.cumsum(~repeat) - 1
+    lowest = np.full(group[-1] + 1, order.max() + 1)
+    np.minimum.at(lowest, group, order)
+    pairs = sorted((int(r), int(lowest[g])) for r, g in zip(order, group) if r != lowest[g])
+    shown = ", ".join(f"row {r} repeats row {o}" for r, o in pairs[:3]) + (", ..." if len(pairs) > 3 else "")
+    message = (f"catalogue {path}: {len(pairs)} rows repeat the ra, dec and z of another kept row ({shown})")
+    if action == "error":
+        raise CatalogueError(message + '; set catalogue.duplicate_rows = "warn" to keep them or "drop" to drop '
+                             "the repeats", path=path, key="catalogue.duplicate_rows", row=pairs[0][0])
+    warnings.warn(message + ("; dropped the repeats" if action == "drop" else "; kept"), PairvelWarning,
+                  stacklevel=3)

@@ -71,6 +71,10 @@ class CatalogueConfig:
     proxy_min: float = _key(-math.inf, "keep tracers with proxy >= proxy_min (needs proxy_column)")
     proxy_max: float = _key(math.inf, "keep tracers with proxy < proxy_max (needs proxy_column)")
     drop_invalid_rows: bool = _key(False, "drop rows with NaN or out-of-range ra/dec/z (counted) instead of stopping")
+    duplicate_rows: str = _key("error", "rows (after the cuts) whose ra, dec and z equal another row's exactly: error "
+                                        "(stop, naming them), warn (keep them, with a warning) or drop (keep one of "
+                                        "each group, the lowest proxy then weight, and count the rest)",
+                               choices=("error", "warn", "drop"))
 
 
 @dataclass(frozen=True)
@@ -144,6 +148,10 @@ class CovarianceConfig:
     jackknife_retrend: bool = _key(True, "re-estimate the redshift trend without region k for jackknife sample k "
                                          "(the whole chain deleted-one; false: trend from all tracers, which "
                                          "inflates large-separation errors)")
+    extra_region_seeds: int = _key(0, "with k-means regions: assign the regions again with this many other seeds "
+                                      "(derived from run.seed), refit tau_mean with each one's jackknife covariance "
+                                      "and report the spread of tau_mean against its quoted error (0: off)",
+                                   bounds=(0, 1000))
     n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
     n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
     sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")

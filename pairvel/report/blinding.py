@@ -95,6 +95,16 @@ def apply_factor(result, factor: float, *, blinding: dict, divide: bool = False)
         sections = dict(extra.get("report_sections", {}))
         sections["Covariance diagnostics"] = diagnostics_markdown(diag, result.edges)
         extra["report_sections"] = sections
+    spread = extra.get("region_seed_spread")
+    if spread is not None:
+        from ..stats.regionseeds import SECTION_TITLE, spread_markdown, summarise_spread
+
+        spread = summarise_spread([sc(t) for t in spread["tau_mean"]], [sc(e) for e in spread["tau_error"]],
+                                  quoted_error=sc(spread["quoted_error"]), n_regions=spread["n_regions"],
+                                  skipped=spread["skipped"])
+        extra["region_seed_spread"] = spread
+        extra["report_sections"] = dict(extra.get("report_sections", {}),
+                                        **{SECTION_TITLE: spread_markdown(spread)})
     return dataclasses.replace(result, p=sc(result.p), covariance=sc(sc(result.covariance)), p_jk=sc(result.p_jk),
                                fit=fit, nulls=nulls, extra=extra)
 
@@ -162,6 +172,8 @@ def load_result(folder):
         diag = summary["covariance"]["diagnostics"]
         extra["covariance_diagnostics"] = diag
         extra["report_sections"] = {"Covariance diagnostics": diagnostics_markdown(diag, edges)}
+    if "region_seed_spread" in summary.get("covariance", {}):
+        extra["region_seed_spread"] = summary["covariance"]["region_seed_spread"]
     extra["blinding"] = summary.get("blinding", {"blinded": False})
     return RunResult(config=cfg, edges=edges, p=np.array(table["p_uK"], dtype=float), covariance=cov, p_jk=p_jk,
                      pair_counts=np.array(table["n_pairs"]), z_eff_bins=np.array(table["z_pair"], dtype=float),

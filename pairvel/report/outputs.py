@@ -153,6 +153,8 @@ def summary_dict(result) -> dict:
         out["null_rotations_used"] = result.extra["rotations_used"]
     if "covariance_diagnostics" in result.extra:
         out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
+    if "region_seed_spread" in result.extra:  # tau_mean refitted with the regions of other seeds
+        out["covariance"]["region_seed_spread"] = result.extra["region_seed_spread"]
     if "multifrequency" in result.extra:  # several frequency maps: weights, f_tSZ, noise cost
         out["multifrequency"] = result.extra["multifrequency"]
     if "prefilter" in result.extra:  # harmonic-space filter of the map
