@@ -146,7 +146,7 @@ def read_table_columns(path, columns, *, fmt="auto") -> dict:
             raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be one number per row",
                                  path=path, key=key)
         values = np.ma.filled(np.ma.asarray(raw), np.nan) if np.ma.isMaskedArray(raw) else np.asarray(raw)
-        if values.dtype.kind not in "fiub":
+        if values.size and values.dtype.kind not in "fiub":  # a header-only text table reads as object
             raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be numeric; got {values.dtype}",
                                  path=path, key=key)
         out[name] = values.astype(np.float64)

@@ -52,7 +52,8 @@ def _key(default, doc, **extra):
 @dataclass(frozen=True)
 class RunConfig:
     name: str = _key("pairvel-run", "label written into every output")
-    seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs")
+    seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs",
+                     bounds=(0, 2**63 - 1))
 
 
 @dataclass(frozen=True)

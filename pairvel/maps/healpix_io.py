@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 from astropy.io import fits
+from astropy.io.fits.verify import VerifyWarning
 
 from ..core.errors import MapError, OutputError, PairvelWarning
 from .healpix import UNSEEN, HealpixMap, bad_pixels, is_power_of_two
@@ -30,12 +31,32 @@ _UNIT_KEYS = ("BUNIT", "UNIT", "UNITS")
 def claims_file(path) -> bool:
     """True when ``path`` is a FITS file whose first binary table says it is HEALPix (PIXTYPE or NSIDE)."""
     try:
-        with fits.open(str(path), memmap=True) as hdul:
-            table = next((h for h in hdul if isinstance(h, fits.BinTableHDU)), None)
-            return table is not None and (str(table.header.get("PIXTYPE", "")).strip().upper() == "HEALPIX"
-                                          or "NSIDE" in table.header)
+        with warnings.catch_warnings():  # a damaged file is reported once, by the reader
+            warnings.simplefilter("ignore", VerifyWarning)
+            with fits.open(str(path), memmap=True) as hdul:
+                table = next((h for h in hdul if isinstance(h, fits.BinTableHDU)), None)
+                return table is not None and (str(table.header.get("PIXTYPE", "")).strip().upper() == "HEALPIX"
+                                              or "NSIDE" in table.header)
     except (OSError, ValueError, TypeError):
         return False
+
+
+def _tables(hdul, what, spath) -> list:
+    """The binary tables of an open FITS file; a truncated or damaged file is a MapError.
+
+    astropy reports a header cut short only as a multi-line VerifyWarning and then stops listing
+    HDUs, which would surface as a misleading "no binary table"; other warnings pass through.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", VerifyWarning)
+        tables = [h for h in hdul if isinstance(h, fits.BinTableHDU)]
+    for w in caught:
+        text = str(w.message)
+        if issubclass(w.category, VerifyWarning) and ("corrupted" in text or "truncated" in text):
+            raise MapError(f"{what} cannot be read: the FITS file is truncated or damaged "
+                           f"({text.splitlines()[-1].strip()})", path=spath)
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return tables
 
 
 def _nest_option(nest, ordering, what, spath):
@@ -94,7 +115,7 @@ def _read_table(path, *, field_index: int, nest, kind: str, coordsys=None) -> _R
 
 def _healpix_table(hdul, what, spath):
     """The first binary table of the file, which must say it is HEALPix."""
-    tables = [h for h in hdul if isinstance(h, fits.BinTableHDU)]
+    tables = _tables(hdul, what, spath)
     if not tables:
         raise MapError(f"{what} is not a HEALPix FITS map: it has no binary table extension", path=spath)
     hdr = tables[0].header
@@ -111,7 +132,12 @@ def _columns(hdu, field_index, what, spath):
     scheme = str(hdr.get("INDXSCHM", "")).strip().upper()
     explicit = scheme == "EXPLICIT" or (scheme != "IMPLICIT" and names and names[0].upper() == "PIXEL")
     if explicit:
-        pix_name = next((n for n in names if n.upper() == "PIXEL"), names[0])
+        pix_name = next((n for n in names if n.upper() == "PIXEL"), None)
+        if pix_name is None:
+            if scheme == "EXPLICIT":
+                raise MapError(f"{what}: INDXSCHM = 'EXPLICIT' (a partial map) but the table has no PIXEL column; "
+                               f"columns are {names}", path=spath, key="PIXEL")
+            pix_name = names[0]
         signal = [n for n in names if n != pix_name]
     else:
         pix_name, signal = None, names
@@ -119,6 +145,9 @@ def _columns(hdu, field_index, what, spath):
         raise MapError(f"{what}: field must be in [0, {len(signal) - 1}] (columns {signal}); "
                        f"got {field_index}", path=spath, key="field")
     col = signal[field_index]
+    if hdu.columns[col].dtype.base.kind not in "fiub":  # base: a vector column (1024E) is a subarray
+        raise MapError(f"{what}: column {col!r} must be numeric; its FITS format is {hdu.columns[col].format}",
+                       path=spath, key=col)
     unit = hdu.columns[col].unit
     if not unit:
         unit = next((str(hdr[k]) for k in _UNIT_KEYS if str(hdr.get(k, "")).strip()), None)
