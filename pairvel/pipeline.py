@@ -29,9 +29,9 @@ from .core.provenance import __version__, file_sha256, package_versions
 from .core.rng import as_generator, derived_generators
 from .input.catalogue import Catalogue, load_catalogue
 from .input.config import Config
-from .maps.multifreq import combination_markdown, map_provenance, read_input_map
+from .maps.multifreq import map_provenance, read_input_map
 from .maps.photometry import measure_apertures, measure_random_apertures
-from .maps.prefilter import apply_prefilter, prefilter_markdown
+from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
 from .maps.trend import remove_redshift_trend
@@ -49,12 +49,12 @@ from .stats.covariance import (
     kmeans_regions,
     region_half_sums,
 )
-from .stats.covdiag import covariance_diagnostics, diagnostics_markdown
+from .stats.covdiag import covariance_diagnostics
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
-from .stats.radii import fit_radii, radius_report
-from .stats.regionseeds import SECTION_TITLE, spread_markdown, summarise_spread
+from .stats.radii import fit_radii
+from .stats.regionseeds import summarise_spread
 from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
 from .stats.subsamples import fit_proxy_bins
 
@@ -506,26 +506,24 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
 # ---------------------------------------------------------------------------- what else is kept
 def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult, radius_fits, sky: SkyInputs,
                   rotations, spread, **data) -> dict:
-    """Everything beyond the main curve and fit: optional fits, map-stage records, report sections."""
-    extra, sections = {"template": model.info}, {}
+    """Everything beyond the main curve and fit: optional fits and map-stage records, as data.
+
+    Each key needs a blinding rule (``pairvel.report.blinding.EXTRA_RULES``); report sections are
+    made from these data when the outputs are written, so a blinded run gets blinded sections.
+    """
+    extra = {"template": model.info}
     if spread is not None:
         extra["region_seed_spread"] = spread
-        sections[SECTION_TITLE] = spread_markdown(spread)
     if len(radius_fits) > 1:
         extra["radius_fits"] = radius_fits
-        sections["Signal against aperture radius"] = radius_report(radius_fits)
     extra.update(extra_fits(cfg, fit, model, cov.n_samples, **data))
     if sky.prefilter is not None:  # harmonic-space filter of the map
         extra["prefilter"] = sky.prefilter.info()
         extra["prefilter_transfer"] = sky.prefilter.transfer
-        sections["Map pre-filter"] = prefilter_markdown(extra["prefilter"])
     if sky.combination is not None:  # several frequency maps
         extra["multifrequency"] = sky.combination
-        sections["Several frequency maps"] = combination_markdown(sky.combination)
-    sections["Covariance diagnostics"] = diagnostics_markdown(cov.diagnostics, data["edges"])
     extra.update({"covariance_diagnostics": cov.diagnostics,
-                  "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rotations],
-                  "report_sections": sections})
+                  "rotations_used": [{"angle_deg": a, "usable_fraction": f} for a, f in rotations]})
     return extra
 
 

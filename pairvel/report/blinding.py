@@ -1,23 +1,28 @@
 """Blinding: hide the amplitude of the measured curve behind a random factor kept in a key file.
 
 A blinded run multiplies everything that carries the signal's scale - the measured curve, its
-jackknife or bootstrap samples, the null-test curves, the errors (covariance by the factor squared)
-and the fitted amplitude - by one hidden factor f drawn from fresh operating-system entropy, never
-from the run seed.  Every chi-square, PTE and signal-to-noise is unchanged, so the null tests can be
-judged blind; only the scale is hidden.  The factor lives in a JSON key file outside the output
-folder; ``pairvel unblind`` reads a blinded folder and the key and writes a new, unblinded folder.
+jackknife or bootstrap samples, the null-test curves, the errors (covariance by the factor squared),
+the fitted amplitude and its interval, the fit and curve of every aperture radius, the fit of every
+proxy bin - by one hidden factor f drawn from fresh operating-system entropy, never from the run
+seed, and makes the joint tau_mean x f sigma_8 fit again from the blinded amplitude.  Every
+chi-square, PTE and signal-to-noise is unchanged, so the null tests can be judged blind; only the
+scale is hidden.  How each quantity of a result scales is declared once (:data:`RESULT_RULES`,
+:data:`EXTRA_RULES`); report sections and figures are made from the blinded data when the outputs
+are written.  The factor lives in a JSON key file outside the output folder; ``pairvel unblind``
+reads a blinded folder and the key and writes a new, unblinded folder.
 """
 
 from __future__ import annotations
 
-__all__ = ["BLIND_RANGE", "apply_factor", "blind_result", "default_key_path", "load_result", "read_key",
-           "unblind_folder", "write_key"]
+__all__ = ["BLIND_RANGE", "EXTRA_RULES", "RESULT_RULES", "UndeclaredQuantityError", "apply_factor", "blind_result",
+           "check_declared", "default_key_path", "load_result", "read_key", "unblind_folder", "write_key"]
 
 import dataclasses
 import datetime as _dt
 import json
 import secrets
 import types
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -70,43 +75,150 @@ def read_key(path) -> dict:
     return key
 
 
+# ------------------------------------------------------------- what scales with the factor
+# Every quantity a RunResult holds is declared here once, with the power of the factor f it is
+# multiplied by: 1 for an amplitude, a curve or an error, 2 for a covariance, 0 for what does not
+# carry the signal's scale (chi2, PTE, S/N, counts, shapes, provenance).  A dict declares the fields
+# of a dataclass (or the keys of a plain dict); a callable re-derives a quantity from the scaled
+# main fit.  A field or an ``extra`` key that is not declared stops blinding and the output writer
+# (UndeclaredQuantityError), so a new option cannot leak its true amplitude by being forgotten.
+
+class UndeclaredQuantityError(RuntimeError):
+    """A result holds a quantity whose scaling under blinding is not declared (a programming error)."""
+
+
+class _Each:
+    """Rule for a dict with free keys (e.g. one entry per covariance estimator): each value by ``rule``."""
+
+    def __init__(self, rule):
+        self.rule = rule
+
+
+def _refuse(name: str):
+    def rule(value, scale, fit):
+        raise UndeclaredQuantityError(f"result.extra[{name!r}] is made from the true amplitude and cannot be "
+                                      f"blinded; keep data in extra and build text or comparisons at write time")
+    return rule
+
+
+def _velocity_scale_again(vfit, scale, fit):
+    """The joint fit made again from the scaled main fit, with the configured prior on tau_mean.
+
+    Without a prior this is the true posterior with its tau_mean axis scaled and its f sigma_8 axis
+    unchanged; with a prior (stated in true units in the config) the f sigma_8 constraint it gives
+    is scaled too, so neither the prior nor f sigma_8 reveals the factor.
+    """
+    return _joint_fit(fit, vfit.s_fid, vfit.n_samples, vfit.prior, (vfit.tau_grid.size, vfit.s_grid.size))
+
+
+def _joint_fit(fit, s_fid, n_samples, prior, grid_size):
+    from ..stats.joint import fit_velocity_scale
+
+    with warnings.catch_warnings():  # the run gave the edge warning (or not) already
+        warnings.simplefilter("ignore")
+        return fit_velocity_scale(fit, s_fid, n_samples=n_samples, tau_prior=prior, n_tau=grid_size[0],
+                                  n_s=grid_size[1])
+
+
+#: AmplitudeFit: the amplitude, its error and interval scale; goodness of fit does not.
+FIT_RULES = {"amplitude": 1, "error": 1, "lower_68": 1, "upper_68": 1, "snr": 0, "snr_delta_chi2": 0,
+             "chi2_min": 0, "chi2_null": 0, "dof": 0, "pte_min": 0, "pte_null": 0, "n_bins": 0,
+             "precision_factor": 0, "likelihood": 0}
+
+#: RunResult (``extra`` by :data:`EXTRA_RULES`).
+RESULT_RULES = {
+    "config": 0, "edges": 0, "p": 1, "covariance": 2, "p_jk": 1, "pair_counts": 0, "z_eff_bins": 0, "z_eff": 0,
+    "v12_template": 0, "in_fit": 0, "fit": FIT_RULES, "n_tracers": 0, "selection": 0, "provenance": 0,
+    "nulls": {"kind": 0, "p": 1, "chi2": 0, "pte": 0, "chi2_mean": 0, "pte_mean": 0, "dof": 0, "threshold": 0,
+              "mean_error": 1},
+    "extra": None,
+}
+
+#: Every key the pipeline (or the output reader) may put into ``RunResult.extra``.
+EXTRA_RULES = {
+    "blinding": 0,                     # replaced by the caller
+    "template": 0,                     # the model's shape and how it was made
+    "rotations_used": 0, "prefilter": 0, "prefilter_transfer": 0, "multifrequency": 0,
+    "covariance_diagnostics": {"used": 0, "condition_number": 0, "errors": _Each(1), "n_samples": 0,
+                               "too_few_samples": 0},
+    "radius_fits": {"radius_arcmin": 0, "primary": 0, "fit": FIT_RULES, "p": 1, "p_err": 1, "problem": 0},
+    "proxy_bins": {"proxy_min": 0, "proxy_max": 0, "proxy_median": 0, "n_tracers": 0, "n_pairs": 0,
+                   "n_regions": 0, "z_mean": 0, "fit": FIT_RULES, "problem": 0},
+    "velocity_scale_fit": _velocity_scale_again,
+    "region_seed_spread": {"tau_mean": 1, "tau_error": 1, "tau_mean_std": 1, "quoted_error": 1,
+                           "std_over_error": 0, "error_std_over_error": 0, "n_regions": 0, "n_seeds": 0,
+                           "skipped": 0},
+    # the demo's comparison with its injected truth, and free report text: true by construction
+    "demo_check": _refuse("demo_check"), "plot_curves": _refuse("plot_curves"),
+    "report_sections": _refuse("report_sections"),
+}
+
+
+def check_declared(result) -> None:
+    """Raise UndeclaredQuantityError when ``result`` holds a field or extra key not declared above."""
+    fields = {f.name for f in dataclasses.fields(result)}
+    if fields != RESULT_RULES.keys():
+        raise UndeclaredQuantityError(f"RunResult fields {sorted(fields ^ RESULT_RULES.keys())} have no blinding "
+                                      f"rule; declare them in pairvel.report.blinding.RESULT_RULES")
+    unknown = sorted(set(result.extra) - EXTRA_RULES.keys())
+    if unknown:
+        raise UndeclaredQuantityError(f"result.extra keys {unknown} have no blinding rule; declare how they scale "
+                                      f"in pairvel.report.blinding.EXTRA_RULES")
+
+
+class _Scale:
+    """Multiply (or divide) by the factor, following a rule of the tables above."""
+
+    def __init__(self, factor: float, divide: bool):
+        self.factor, self.divide = float(factor), divide
+
+    def number(self, x, power: int):
+        if isinstance(x, list):
+            return [self.number(v, power) for v in x]
+        for _ in range(power):  # dividing rather than multiplying by 1/f: back to within one rounding
+            x = x / self.factor if self.divide else x * self.factor
+        return x
+
+    def __call__(self, value, rule, fit=None):
+        if value is None or rule == 0:
+            return value
+        if isinstance(value, (tuple, list)) and not isinstance(rule, int):
+            return type(value)(self(v, rule, fit) for v in value)
+        if isinstance(rule, int):
+            return self.number(value, rule)
+        if isinstance(rule, _Each):
+            return {k: self(v, rule.rule, fit) for k, v in value.items()}
+        if callable(rule):
+            return rule(value, self, fit)
+        names = [f.name for f in dataclasses.fields(value)] if dataclasses.is_dataclass(value) else list(value)
+        if set(names) != rule.keys():
+            raise UndeclaredQuantityError(f"{type(value).__name__} fields {sorted(set(names) ^ rule.keys())} have no "
+                                          f"blinding rule; declare them in pairvel.report.blinding")
+        changed = {k: self(_get(value, k), rule[k], fit) for k in names if rule[k] != 0}
+        return dataclasses.replace(value, **changed) if dataclasses.is_dataclass(value) else {**value, **changed}
+
+
+def _get(value, name):
+    return getattr(value, name) if dataclasses.is_dataclass(value) else value[name]
+
+
 def apply_factor(result, factor: float, *, blinding: dict, divide: bool = False):
     """A copy of a RunResult with every signal-scale number multiplied (or divided) by ``factor``.
 
-    ``blinding`` (stored as ``extra["blinding"]``) says whether the copy is blinded.  Unblinding
-    divides by the same factor rather than multiplying by its reciprocal, so each number comes
-    back to within one rounding of the unblinded value.
+    What scales, and how, is declared in :data:`RESULT_RULES` and :data:`EXTRA_RULES`; a quantity
+    declared nowhere raises :class:`UndeclaredQuantityError`.  ``blinding`` (stored as
+    ``extra["blinding"]``) says whether the copy is blinded.  Unblinding divides by the same factor
+    rather than multiplying by its reciprocal, so each number comes back to within one rounding of
+    the unblinded value; re-derived quantities (the joint fit) are made again from the restored fit.
     """
-    from ..stats.covdiag import diagnostics_markdown
-
-    f = float(factor)
-
-    def sc(x):
-        return x / f if divide else x * f
-
-    fit = dataclasses.replace(result.fit, amplitude=sc(result.fit.amplitude), error=sc(result.fit.error))
-    nulls = tuple(dataclasses.replace(n, p=sc(n.p), mean_error=sc(n.mean_error)) for n in result.nulls)
-    extra = dict(result.extra)
+    check_declared(result)
+    scale = _Scale(factor, divide)
+    changed = {name: scale(getattr(result, name), rule) for name, rule in RESULT_RULES.items()
+               if rule is not None and rule != 0}
+    extra = {key: scale(value, EXTRA_RULES[key], changed["fit"]) for key, value in result.extra.items()
+             if key != "blinding"}
     extra["blinding"] = blinding
-    diag = extra.get("covariance_diagnostics")
-    if diag is not None:
-        diag = dict(diag, errors={k: [sc(e) for e in v] for k, v in diag["errors"].items()})
-        extra["covariance_diagnostics"] = diag
-        sections = dict(extra.get("report_sections", {}))
-        sections["Covariance diagnostics"] = diagnostics_markdown(diag, result.edges)
-        extra["report_sections"] = sections
-    spread = extra.get("region_seed_spread")
-    if spread is not None:
-        from ..stats.regionseeds import SECTION_TITLE, spread_markdown, summarise_spread
-
-        spread = summarise_spread([sc(t) for t in spread["tau_mean"]], [sc(e) for e in spread["tau_error"]],
-                                  quoted_error=sc(spread["quoted_error"]), n_regions=spread["n_regions"],
-                                  skipped=spread["skipped"])
-        extra["region_seed_spread"] = spread
-        extra["report_sections"] = dict(extra.get("report_sections", {}),
-                                        **{SECTION_TITLE: spread_markdown(spread)})
-    return dataclasses.replace(result, p=sc(result.p), covariance=sc(sc(result.covariance)), p_jk=sc(result.p_jk),
-                               fit=fit, nulls=nulls, extra=extra)
+    return dataclasses.replace(result, **changed, extra=extra)
 
 
 def blind_result(result, key_path) -> tuple:
@@ -136,7 +248,6 @@ def load_result(folder):
     from astropy.io import fits
     from astropy.table import Table
 
-    from ..stats.fit import AmplitudeFit
     from ..stats.nulltests import NullTestResult
     from .result import RunResult
 
@@ -158,29 +269,63 @@ def load_result(folder):
                                         chi2_mean=entry["chi2_mean_curve"], pte_mean=entry["pte_mean_curve"],
                                         dof=entry["dof"], threshold=entry["pte_threshold"],
                                         mean_error=np.array(nt["p_mean_err_uK"], dtype=float)))
-    except (OSError, KeyError, ValueError) as err:
+        fit = _stored_fit(summary["fit"])
+        extra = _stored_extra(summary, fit)
+    except (OSError, KeyError, ValueError, TypeError) as err:
         raise InputError(f"output folder {folder}: cannot be read back as a pairvel output ({err})", path=folder) from None
     cfg = _StoredConfig(**{k: _namespace(v) for k, v in summary["config"].items()})
     cfg._stored = summary["config"]
-    fit = AmplitudeFit(**{k: (float("nan") if v is None else v) for k, v in summary["fit"].items()})
-    extra = {k: summary[k] for k in ("demo_check",) if k in summary}
-    if "null_rotations_used" in summary:
-        extra["rotations_used"] = summary["null_rotations_used"]
-    if "diagnostics" in summary.get("covariance", {}):
-        from ..stats.covdiag import diagnostics_markdown
-
-        diag = summary["covariance"]["diagnostics"]
-        extra["covariance_diagnostics"] = diag
-        extra["report_sections"] = {"Covariance diagnostics": diagnostics_markdown(diag, edges)}
-    if "region_seed_spread" in summary.get("covariance", {}):
-        extra["region_seed_spread"] = summary["covariance"]["region_seed_spread"]
-    extra["blinding"] = summary.get("blinding", {"blinded": False})
     return RunResult(config=cfg, edges=edges, p=np.array(table["p_uK"], dtype=float), covariance=cov, p_jk=p_jk,
                      pair_counts=np.array(table["n_pairs"]), z_eff_bins=np.array(table["z_pair"], dtype=float),
                      z_eff=summary["z_eff"], v12_template=np.array(table["v12_lin_km_s"], dtype=float),
                      in_fit=np.array(table["in_fit"], dtype=bool), fit=fit, nulls=tuple(nulls),
                      n_tracers=summary["n_tracers"], selection=summary["selection"], provenance=summary["provenance"],
                      extra=extra)
+
+
+def _stored_fit(d: dict):
+    from ..stats.fit import AmplitudeFit
+
+    return AmplitudeFit(**{k: (float("nan") if v is None else v) for k, v in d.items()})
+
+
+def _whole_fits(entries) -> bool:
+    return entries is not None and all("fit" in d or d["problem"] for d in entries)
+
+
+def _stored_extra(summary: dict, fit) -> dict:
+    """``RunResult.extra`` as far as summary.json keeps it: every amplitude-carrying fit, the template,
+    the map-stage records and the covariance diagnostics (report sections are rebuilt from these).
+
+    Folders written before the per-radius, per-proxy-bin and joint fits were blinded do not store
+    those fits whole (no ``fit`` entry, no ``n_samples``); they are left out rather than divided by a
+    factor they never carried.
+    """
+    from ..stats.radii import RadiusFit
+    from ..stats.subsamples import ProxyBinFit
+
+    extra = {k: summary[k] for k in ("demo_check", "template", "prefilter", "multifrequency") if k in summary}
+    if "null_rotations_used" in summary:
+        extra["rotations_used"] = summary["null_rotations_used"]
+    if "diagnostics" in summary.get("covariance", {}):
+        extra["covariance_diagnostics"] = summary["covariance"]["diagnostics"]
+    if "region_seed_spread" in summary.get("covariance", {}):
+        extra["region_seed_spread"] = summary["covariance"]["region_seed_spread"]
+    if _whole_fits(summary.get("aperture_radii")):
+        extra["radius_fits"] = [RadiusFit(d["radius_arcmin"], d["primary"], _stored_fit(d["fit"]) if "fit" in d else None,
+                                          np.array(d["p_uk"], dtype=float), np.array(d["p_err_uk"], dtype=float),
+                                          d["problem"]) for d in summary["aperture_radii"]]
+    if _whole_fits(summary.get("proxy_bins", {}).get("bins")):
+        keys = ("proxy_min", "proxy_max", "proxy_median", "n_tracers", "n_pairs", "n_regions", "z_mean")
+        extra["proxy_bins"] = tuple(ProxyBinFit(*(float("nan") if d[k] is None else d[k] for k in keys),
+                                                _stored_fit(d["fit"]) if "fit" in d else None, d["problem"])
+                                    for d in summary["proxy_bins"]["bins"])
+    if "n_samples" in summary.get("velocity_scale_fit", {}):
+        v = summary["velocity_scale_fit"]
+        prior = None if v["tau_prior"] is None else (v["tau_prior"]["mean"], v["tau_prior"]["sigma"])
+        extra["velocity_scale_fit"] = _joint_fit(fit, v["f_sigma8_template"], v["n_samples"], prior, v["grid_size"])
+    extra["blinding"] = summary.get("blinding", {"blinded": False})
+    return extra
 
 
 def unblind_folder(blinded_dir, key_path, out_dir, *, run_log=None) -> Path:

@@ -9,7 +9,7 @@ deleted.
 
 from __future__ import annotations
 
-__all__ = ["write_outputs", "OUTPUT_MARKER", "RUN_LOG", "prepare_output_dir", "write_folder_atomically"]
+__all__ = ["write_outputs", "OUTPUT_MARKER", "RUN_LOG", "prepare_output_dir", "report_sections", "write_folder_atomically"]
 
 import json
 import logging
@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from ..core.errors import OutputError
+from .blinding import check_declared
 
 #: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
 OUTPUT_MARKER = ".pairvel-output"
@@ -410,6 +411,24 @@ def _plot_nulls(result, path: Path) -> None:
     plt.close(fig)
 
 
+def report_sections(result) -> dict:
+    """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
+    blinded sections), then the free-text sections a caller added (the demo's truth check)."""
+    from ..maps.multifreq import combination_markdown
+    from ..maps.prefilter import prefilter_markdown
+    from ..stats.covdiag import diagnostics_markdown
+    from ..stats.radii import radius_report
+    from ..stats.regionseeds import SECTION_TITLE, spread_markdown
+
+    builders = (("radius_fits", "Signal against aperture radius", radius_report),
+                ("region_seed_spread", SECTION_TITLE, spread_markdown),
+                ("prefilter", "Map pre-filter", prefilter_markdown),
+                ("multifrequency", "Several frequency maps", combination_markdown),
+                ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)))
+    sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
+    return sections | result.extra.get("report_sections", {})
+
+
 def _report(result, summary: dict) -> str:
     f = result.fit
     lines = [
@@ -444,7 +463,7 @@ def _report(result, summary: dict) -> str:
                      f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.4f} | {'yes' if result.in_fit[k] else 'no'} |")
     lines += _theory_report(result)
     lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
-    for section, body in result.extra.get("report_sections", {}).items():
+    for section, body in report_sections(result).items():
         lines += ["", f"## {section}", "", body]
     prov = result.provenance
     lines += ["", "## Provenance", "",
@@ -476,6 +495,7 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path
     OutputError
         The folder exists (without ``force``), is not a pairvel output, or cannot be written.
     """
+    check_declared(result)  # every quantity has a blinding rule, blinded or not
     summary = summary_dict(result)
 
     def fill(tmp: Path) -> None:

@@ -51,6 +51,10 @@ class VelocityScaleFit:
         Marginal of f sigma_8 (nan without a prior: it is then set by the grid's bounds).
     tau_mean_post, tau_std_post : float
         Marginal of tau_mean.
+    likelihood : str
+    n_samples : int or None
+        Jackknife regions behind the covariance (what the Sellentin-Heavens likelihood needs), kept
+        so the fit can be made again from another amplitude fit (blinding, unblinding).
     """
 
     tau_grid: np.ndarray
@@ -67,6 +71,7 @@ class VelocityScaleFit:
     tau_mean_post: float
     tau_std_post: float
     likelihood: str
+    n_samples: int | None = None
 
     def as_dict(self) -> dict:
         """Headline numbers (no grids) for summary.json."""
@@ -78,7 +83,8 @@ class VelocityScaleFit:
                 "f_sigma8_mean": self.s_mean, "f_sigma8_std": self.s_std,
                 "f_sigma8_68": [self.s_lower_68, self.s_upper_68],
                 "tau_mean_posterior_mean": self.tau_mean_post, "tau_mean_posterior_std": self.tau_std_post,
-                "f_sigma8_prior_range": [0.0, S_MAX_OVER_FID * self.s_fid]}
+                "f_sigma8_prior_range": [0.0, S_MAX_OVER_FID * self.s_fid], "n_samples": self.n_samples,
+                "grid_size": [int(self.tau_grid.size), int(self.s_grid.size)]}
 
 
 def hpd_levels(posterior, masses=(ONE_SIGMA, 0.9545)):
@@ -163,7 +169,7 @@ def fit_velocity_scale(fit: AmplitudeFit, s_fid: float, *, n_samples=None, tau_p
                       PairvelWarning, stacklevel=2)
     return VelocityScaleFit(tau, s, post, float(s_fid), float(a_hat), float(a_err),
                             None if tau_prior is None else (mu, sig), s_m, s_sd, lo, hi, tau_m, tau_sd,
-                            fit.likelihood)
+                            fit.likelihood, None if n_samples is None else int(n_samples))
 
 
 def plot_velocity_scale(vfit: VelocityScaleFit, path) -> None:

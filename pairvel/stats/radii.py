@@ -34,9 +34,9 @@ class RadiusFit:
     def as_dict(self) -> dict:
         out = {"radius_arcmin": self.radius_arcmin, "primary": self.primary, "problem": self.problem,
                "p_uk": self.p.tolist(), "p_err_uk": self.p_err.tolist()}
-        if self.fit is not None:
+        if self.fit is not None:  # the flat headline numbers, and the whole fit to read back
             out.update(tau_mean=self.fit.amplitude, tau_mean_error=self.fit.error, snr=self.fit.snr,
-                       chi2_min=self.fit.chi2_min, pte_min=self.fit.pte_min)
+                       chi2_min=self.fit.chi2_min, pte_min=self.fit.pte_min, fit=self.fit.as_dict())
         return out
 
 

@@ -43,10 +43,10 @@ class ProxyBinFit:
         out = {"proxy_min": self.proxy_min, "proxy_max": self.proxy_max, "proxy_median": self.proxy_median,
                "n_tracers": self.n_tracers, "n_pairs": self.n_pairs, "n_regions": self.n_regions,
                "z_mean": self.z_mean, "problem": self.problem}
-        if self.fit is not None:
+        if self.fit is not None:  # the flat headline numbers, and the whole fit to read back
             f = self.fit
             out.update(tau_mean=f.amplitude, tau_mean_error=f.error, snr=f.snr, chi2_min=f.chi2_min,
-                       pte_min=f.pte_min, chi2_null=f.chi2_null, pte_null=f.pte_null)
+                       pte_min=f.pte_min, chi2_null=f.chi2_null, pte_null=f.pte_null, fit=f.as_dict())
         return out
 
 
