@@ -126,6 +126,7 @@ def load_result(folder):
     from astropy.io import fits
     from astropy.table import Table
 
+    from ..core.warnlog import RunWarning
     from ..stats.fit import AmplitudeFit
     from ..stats.nulltests import NullTestResult
     from .result import RunResult
@@ -168,7 +169,7 @@ def load_result(folder):
                      z_eff=summary["z_eff"], v12_template=np.array(table["v12_lin_km_s"], dtype=float),
                      in_fit=np.array(table["in_fit"], dtype=bool), fit=fit, nulls=tuple(nulls),
                      n_tracers=summary["n_tracers"], selection=summary["selection"], provenance=summary["provenance"],
-                     extra=extra)
+                     extra=extra, warnings=tuple(RunWarning(**w) for w in summary.get("run_warnings", [])))
 
 
 def unblind_folder(blinded_dir, key_path, out_dir, *, run_log=None) -> Path:
