@@ -20,7 +20,9 @@ import datetime as _dt
 import functools
 import io
 import logging
+import os
 import platform
+import select
 import shlex
 import sys
 import time
@@ -335,7 +337,9 @@ def main(argv=None) -> int:
         warnings.showwarning = functools.partial(_log_warning, debug=debug)
         _log.debug("pairvel %s on Python %s; working folder %s", __version__, platform.python_version(), Path.cwd())
         try:
-            return _dispatch(args, run_log)
+            code = _dispatch(args, run_log)
+            sys.stdout.flush()  # buffered output meets a closed pipe here
+            return code
         except PairvelError as err:
             if debug:
                 traceback.print_exc()
@@ -345,11 +349,37 @@ def main(argv=None) -> int:
             print("pairvel: interrupted; no output written", file=sys.stderr)
             return 130
         except Exception as err:  # a bug: say so in one line, traceback with --debug
+            if isinstance(err, BrokenPipeError) and _stdout_closed():  # the reader stopped early: not a fault
+                _discard_stdout()
+                return EXIT_OK
             if debug:
                 traceback.print_exc()
             print(f"pairvel: internal error: {type(err).__name__}: {err} (rerun with --debug and report it)",
                   file=sys.stderr)
             return EXIT_INTERNAL
+
+
+def _stdout_closed() -> bool:
+    """True when nobody reads standard output any more (``pairvel keys | head``), or when that cannot be told."""
+    try:
+        poller = select.poll()
+        poller.register(sys.stdout.fileno(), select.POLLOUT)
+        return any(event & select.POLLERR for _, event in poller.poll(0))
+    except (AttributeError, OSError, ValueError):  # no poll() on this platform, or stdout is no file
+        return True
+
+
+def _discard_stdout() -> None:
+    """Point stdout at the null device, so that Python's flush at exit finds no closed pipe.
+
+    What the Python documentation recommends for SIGPIPE (library/signal, "Note on SIGPIPE"): a
+    reader that stops early (``| head``) is not an error, and nothing more is reported.
+    """
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (AttributeError, OSError, ValueError):  # stdout is no file (an in-process caller's buffer)
+        pass
 
 
 def _run_name(config_path) -> str:
@@ -360,7 +390,7 @@ def _run_name(config_path) -> str:
         with open(config_path, "rb") as fh:
             name = tomllib.load(fh).get("run", {}).get("name", "pairvel-run")
         return name if isinstance(name, str) and name and "/" not in name else "pairvel-run"
-    except (OSError, tomllib.TOMLDecodeError, AttributeError):
+    except (OSError, ValueError, AttributeError):  # ValueError: not UTF-8 or not TOML; load_config says which
         return "pairvel-run"
 
 

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 __all__ = ["run_pipeline", "TemperatureStack"]
 
+import dataclasses
 import datetime as _dt
 import platform
 import warnings
@@ -27,6 +28,7 @@ from .core.errors import InputError, PairvelWarning
 from .core.progress import Progress
 from .core.provenance import __version__, file_sha256, package_versions
 from .core.rng import as_generator, derived_generators
+from .core.warnlog import collect_warnings
 from .input.catalogue import Catalogue, load_catalogue
 from .input.config import Config
 from .maps.multifreq import map_provenance, read_input_map
@@ -68,8 +70,21 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
         A validated configuration (see :func:`pairvel.input.config.load_config`).
     progress : Progress, optional
         Where stage lines go; silent when None.
+
+    Returns
+    -------
+    RunResult
+        Its ``warnings`` keep every Python warning and ``pairvel`` WARNING record of the run, with
+        the stage that raised it (each is also shown as usual).
     """
     progress = progress or Progress(10, quiet=True)
+    with collect_warnings(lambda: progress.current) as kept:
+        result = run_stages(cfg, progress)
+    return dataclasses.replace(result, warnings=tuple(kept))
+
+
+def run_stages(cfg: Config, progress: Progress) -> RunResult:
+    """The stages of :func:`run_pipeline`, in order."""
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass

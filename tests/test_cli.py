@@ -222,3 +222,200 @@ def test_failed_write_leaves_no_folder_and_no_log(tiny_survey, capsys, monkeypat
     assert sorted(p.name for p in tiny_survey.iterdir()) == ["cat.csv", "map.fits", "run.toml"]
     assert not (Path.cwd() / "run.log").exists()
     assert pairvel_logger_state() == state
+
+
+# --- configs that are not configs: one error line naming the file, exit 2, nothing written
+@pytest.mark.parametrize("make, match", [
+    (lambda p: p.write_bytes("[run]\nname = 'caf\u00e9'\n".encode("latin-1")), "is not UTF-8 text"),
+    (lambda p: p.mkdir(), "is a folder, not a TOML file"),
+    (lambda p: p.write_text(""), "holds no settings"),
+    (lambda p: p.write_text("name: tiny\nseed: 3\n"), "not valid TOML"),
+])
+def test_config_files_that_cannot_be_used(tmp_path, capsys, make, match):
+    config = tmp_path / "bad.toml"
+    make(config)
+    assert main(["run", str(config), "--out", str(tmp_path / "out"), "--quiet"]) == 2
+    line = only_error_line(capsys)
+    assert str(config) in line and match in line, line
+    assert not (tmp_path / "out").exists() and not (tmp_path / "pairvel-run").exists()
+
+
+def test_unreadable_config(tiny_survey, capsys, monkeypatch):
+    real_open = open
+
+    def refuse(path, *args, **kwargs):  # root reads any file: the refusal is simulated at the open call
+        if str(path).endswith("run.toml"):
+            raise PermissionError(13, "Permission denied", str(path))
+        return real_open(path, *args, **kwargs)
+
+    monkeypatch.setattr("builtins.open", refuse)
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "run.toml: cannot be read (Permission denied)" in line
+
+
+# --- a reader that stops early is not a fault
+def test_keys_into_a_pipe_closed_early():
+    import os
+    import subprocess
+    import sys
+
+    read_end, write_end = os.pipe()
+    os.close(read_end)  # nobody will read: the first write meets a closed pipe, whatever the buffer size
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    for argv in (["keys"], ["keys", "--markdown"], ["--version"]):
+        proc = subprocess.run([sys.executable, "-m", "pairvel.cli", *argv], stdout=write_end, stderr=subprocess.PIPE,
+                              env=env, timeout=120)
+        assert proc.stderr == b"" and proc.returncode == 0, (argv, proc.returncode, proc.stderr)
+    os.close(write_end)
+
+
+def test_keys_into_head():
+    import os
+    import subprocess
+    import sys
+
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    producer = subprocess.Popen([sys.executable, "-m", "pairvel.cli", "keys"], stdout=subprocess.PIPE,
+                                stderr=subprocess.PIPE, env=env)
+    first = producer.stdout.readline()
+    producer.stdout.close()  # like `| head -n 1`: the reader goes away while pairvel may still be writing
+    err = producer.stderr.read()
+    assert producer.wait(timeout=120) == 0 and err == b"", err
+    assert first.startswith(b"run.name ")
+
+
+def test_other_broken_pipes_are_still_faults(capsys, monkeypatch):
+    import pairvel.cli as cli
+
+    def broken(args):
+        raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setattr(cli, "_cmd_keys", broken)
+    monkeypatch.setattr(cli, "_stdout_closed", lambda: False)  # stdout is fine: the pipe was another one
+    assert main(["keys"]) == 1
+    assert "internal error: BrokenPipeError" in capsys.readouterr().err
+
+
+# --- a map unit wrong by 10^6 stops the run
+def _relabel(path, unit):
+    from astropy.io import fits
+
+    with fits.open(path, mode="update") as hdul:
+        hdul[1].header[f"TUNIT{hdul[1].columns.names.index('T') + 1}"] = unit
+
+
+@pytest.mark.parametrize("unit, scale, expected_rms", [("K_CMB", 100 / 30, 1e8), ("uK_CMB", 1e-6, 30e-6)])
+def test_map_unit_wrong_by_a_million_stops_the_run(tiny_survey, capsys, unit, scale, expected_rms):
+    """tiny_survey's map is 30 uK white noise labelled uK_CMB.  Scaled to a CMB-like 100 uK and labelled
+    K it reads as 1e8 uK; written in K but labelled uK it reads as 3e-5 uK (analytic).  (The 30 uK map
+    itself labelled K would read 3e7 uK, on the stop bound: a uK map labelled K stops from 30 uK rms up.)"""
+    from astropy.io import fits
+
+    path = tiny_survey / "map.fits"
+    with fits.open(path, mode="update") as hdul:
+        hdul[1].data["T"] = hdul[1].data["T"] * scale
+    _relabel(path, unit)
+    before = path.read_bytes()
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert str(path) in line and f"unit '{unit}'" in line and "map.rms_unit_check = false" in line, line
+    rms = float(re.search(r"pixel rms is (\S+) uK", line).group(1))
+    assert rms == pytest.approx(expected_rms, rel=0.05)  # analytic: the map's 30 uK noise, misread by 10^6
+    assert not (tiny_survey / "out").exists() and path.read_bytes() == before
+    # the key turns the stop into the old warning, for maps that really are that faint or bright
+    toml = tiny_survey / "run.toml"
+    toml.write_text(toml.read_text().replace('path = "map.fits"\n', 'path = "map.fits"\nrms_unit_check = false\n'))
+    assert run(tiny_survey) == 0
+    assert "is the unit really" in capsys.readouterr().err
+
+
+def test_map_unit_check_covers_every_frequency_map(tiny_survey, capsys):
+    import shutil
+
+    from astropy.io import fits
+
+    shutil.copy(tiny_survey / "map.fits", tiny_survey / "map_90.fits")
+    with fits.open(tiny_survey / "map_90.fits", mode="update") as hdul:  # 100 uK, labelled K: 1e8 uK
+        hdul[1].data["T"] = hdul[1].data["T"] * (100 / 30)
+    _relabel(tiny_survey / "map_90.fits", "K_CMB")
+    toml = tiny_survey / "run.toml"
+    toml.write_text(toml.read_text().replace('path = "map.fits"\n', "")
+                    + '[multifrequency]\nmap_paths = ["map.fits", "map_90.fits"]\nfrequencies_ghz = [150, 90]\n'
+                      'noise_uk_arcmin = [20, 30]\n')
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "map_90.fits" in line and "unit 'K_CMB'" in line and "map.rms_unit_check" in line, line
+
+
+# --- an empty rotation list: no rotated-map null, as documented
+def test_empty_rotation_list_runs_without_that_null(tiny_survey):
+    toml = tiny_survey / "run.toml"
+    toml.write_text(toml.read_text().replace("[nulls]\n", "[nulls]\nrotation_deg = []\n"))
+    assert run(tiny_survey) == 0
+    summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
+    assert summary["null_rotations_used"] == [] and summary["config"]["nulls"]["rotation_deg"] == []
+    assert "rotated" not in {n["kind"] for n in summary["null_tests"]}
+    assert "random_positions" in {n["kind"] for n in summary["null_tests"]}
+
+
+# --- every warning of a run is kept in summary.json and report.md
+def test_every_warning_reaches_summary_and_report(tiny_survey, capsys):
+    assert main(["run", str(tiny_survey / "run.toml"), "--out", str(tiny_survey / "out")]) == 0
+    err = capsys.readouterr().err.splitlines()
+    shown = [line.removeprefix("pairvel: warning: ") for line in err if line.startswith("pairvel: warning: ")]
+    summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
+    kept = summary["run_warnings"]
+    assert [w["text"] for w in kept] == shown and len(shown) >= 2, (kept, shown)
+    by_text = {w["text"].split(";")[0]: w for w in kept}
+    coordsys = next(w for t, w in by_text.items() if "has no COORDSYS keyword" in t)
+    assert coordsys["stage"] == "sky map" and coordsys["source"] == "PairvelWarning in pairvel.maps.multifreq"  # where read_map was called
+    rotation = next(w for t, w in by_text.items() if "rotation skipped" in t or "rotation by" in t)
+    assert rotation["stage"].startswith("null-test photometry: map rotated")
+    report = (tiny_survey / "out" / "report.md").read_text()
+    section = report.split("## Warnings during the run\n", 1)[1].split("\n## ", 1)[0]
+    assert f"{len(kept)} warnings, in the order raised:" in section
+    assert all(w["text"] in section for w in kept)
+
+
+def test_run_pipeline_keeps_warnings_for_library_callers(tiny_survey):
+    import logging
+    import warnings
+
+    from pairvel.input.config import load_config
+    from pairvel.pipeline import run_pipeline
+
+    cfg = load_config(tiny_survey / "run.toml")
+    with warnings.catch_warnings(record=True) as shown:  # the filters in force stay as they are
+        first = run_pipeline(cfg)
+        n_first = len(shown)
+        logging.getLogger("pairvel.stats").warning("a logged warning")  # outside a run: not kept
+        second = run_pipeline(cfg)  # the same warnings again, although shown once already
+    assert first.warnings and all(w.stage for w in first.warnings)
+    assert [str(s.message) for s in shown[:n_first]] == [w.text for w in first.warnings]  # kept and still shown
+    assert [w.text for w in second.warnings] == [w.text for w in first.warnings]
+    assert [str(s.message) for s in shown[n_first:]] == [w.text for w in second.warnings]
+    assert not any(type(h).__name__ == "_Keeper" for h in logging.getLogger("pairvel").handlers)
+
+
+def test_logged_warnings_are_kept_with_their_logger():
+    import logging
+    import warnings
+
+    from pairvel.core.progress import Progress
+    from pairvel.core.warnlog import collect_warnings
+
+    progress = Progress(2, quiet=True)
+    with collect_warnings(lambda: progress.current) as kept:
+        with progress.stage("first"):
+            logging.getLogger("pairvel.maps.trend").warning("trend %s", "odd")
+            logging.getLogger("pairvel.maps.trend").info("not a warning")
+            logging.getLogger("elsewhere").warning("not pairvel's")
+        with progress.stage("second"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # a filter that hides a warning hides it from the record too
+            warnings.warn("hidden", stacklevel=1)
+        warnings.warn("plain", UserWarning, stacklevel=1)
+    assert [w.as_dict() for w in kept] == [
+        {"text": "trend odd", "source": "pairvel.maps.trend", "stage": "first"},
+        {"text": "plain", "source": "UserWarning in test_cli", "stage": None},
+    ]

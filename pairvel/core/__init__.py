@@ -2,7 +2,7 @@
 
 In: nothing from the rest of pairvel (standard library and numpy only).
 Out: the :class:`~pairvel.core.errors.PairvelError` hierarchy, physical constants, seed
-normalisation, the progress reporter, version and checksum records, unit vectors on the sphere.
+normalisation, the progress reporter, the keeper of a run's warnings, version and checksum records, unit vectors on the sphere.
 Every other subpackage may import from here; nothing here imports from them.
 
 Messages go through the standard :mod:`logging` module, to the ``pairvel`` logger or its children
@@ -15,4 +15,4 @@ import logging
 
 logging.getLogger("pairvel").addHandler(logging.NullHandler())
 
-__all__ = ["constants", "errors", "progress", "provenance", "rng", "sphere"]
+__all__ = ["constants", "errors", "progress", "provenance", "rng", "sphere", "warnlog"]

@@ -31,6 +31,7 @@ class Progress:
         self.stream = stream
         self._k = 0
         self._t0 = time.perf_counter()
+        self.current: str | None = None  # name of the stage running now, for messages that name it
 
     def say(self, text: str) -> None:
         if self.quiet:
@@ -41,7 +42,7 @@ class Progress:
 
     def stage(self, name: str) -> "_Stage":
         self._k += 1
-        return _Stage(self, f"[{self._k}/{self.n_stages}] {name}")
+        return _Stage(self, f"[{self._k}/{self.n_stages}] {name}", name)
 
     def counter(self, label: str):
         """A ``callable(done, total)`` that logs a percentage now and then."""
@@ -61,16 +62,18 @@ class Progress:
 
 
 class _Stage:
-    def __init__(self, progress: Progress, label: str):
-        self.progress, self.label = progress, label
+    def __init__(self, progress: Progress, label: str, name: str):
+        self.progress, self.label, self.name = progress, label, name
 
     def __enter__(self):
         self.t0 = time.perf_counter()
+        self.progress.current = self.name
         self.progress.say(f"{self.label} ...")
         return self
 
     def __exit__(self, exc_type, exc, tb):
         seconds = time.perf_counter() - self.t0
+        self.progress.current = None
         if exc_type is None:
             self.progress.say(f"{self.label}: done in {seconds:.1f} s")
         elif not self.progress.quiet:

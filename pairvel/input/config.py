@@ -45,7 +45,13 @@ from ..model.sz import tsz_spectrum
 
 
 def _key(default, doc, **extra):
-    """A config field with a default and its documentation line."""
+    """A config field with a default and its documentation line.
+
+    ``extra`` may hold ``bounds=(lo, hi)`` (inclusive, checked for a number and for every item of a
+    list), ``choices=(...)``, ``increasing=True`` (a list of edges: strictly increasing) and
+    ``may_be_empty=True`` (an empty list is accepted; the doc says what it means).  Lists are
+    otherwise non-empty, and their items finite.
+    """
     return field(default=default, metadata={"doc": doc, **extra})
 
 
@@ -93,6 +99,12 @@ class MapConfig:
                                       "photometry")
     max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",
                                       bounds=(0.0, 1.0))
+    # Plausible CMB temperature maps have a pixel rms of 1 uK (filtered) to 3e4 uK (noisy pixels,
+    # foregrounds); a factor 10^3 beyond either end is a unit label wrong by 10^6 (maps.skymap).
+    rms_unit_check: bool = _key(True, "stop when a map's pixel rms (uK after the unit conversion, over its pixels "
+                                      "with data) is below 1e-3 or above 3e7 uK, a factor 10^3 beyond the 1 uK-30 mK "
+                                      "of any plausible CMB temperature map: a unit label wrong by 10^6 (K vs uK); "
+                                      "applies to every map read; false: only warn")
 
 
 @dataclass(frozen=True)
@@ -125,7 +137,9 @@ class BinsConfig:
     r_min_mpc: float = _key(0.0, "lowest comoving separation, Mpc", bounds=(0.0, 1e4))
     r_max_mpc: float = _key(300.0, "highest comoving separation, Mpc", bounds=(0.0, 1e4))
     width_mpc: float = _key(20.0, "bin width, Mpc", bounds=(1e-3, 1e4))
-    edges_mpc: tuple[float, ...] | None = _key(None, "explicit increasing bin edges in Mpc (overrides the three above)")
+    edges_mpc: tuple[float, ...] | None = _key(None, "explicit bin edges in Mpc, at least two, finite and strictly "
+                                                     "increasing (overrides the three above)",
+                                               bounds=(0.0, 1e4), increasing=True)
 
     def edges(self) -> np.ndarray:
         """The separation bin edges in Mpc, (nbins + 1,)."""
@@ -192,7 +206,8 @@ class TheoryConfig:
                            "or sellentin-heavens (marginalised over the jackknife covariance)",
                            choices=("hartlap", "sellentin-heavens"))
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
-                                                    "with these increasing edges (needs catalogue.proxy_column)")
+                                                    "with these edges, at least two, finite and strictly increasing "
+                                                    "(needs catalogue.proxy_column)", increasing=True)
     fit_velocity_scale: bool = _key(False, "also fit tau_mean and the velocity amplitude f sigma_8 jointly "
                                            "(degenerate; see tau_prior_mean)")
     tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
@@ -210,7 +225,8 @@ class NullConfig:
     pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
                                 bounds=(0.0, 0.5))
     rotation_deg: tuple[float, ...] = _key((90.0, 180.0, 270.0), "longitude rotations of the map (degrees) for the "
-                                           "rotated-map null; empty list: no such null")
+                                           "rotated-map null; empty list: no such null",
+                                           bounds=(-360.0, 360.0), may_be_empty=True)
     rotation_min_usable: float = _key(0.5, "skip a rotation when fewer tracers than this fraction land on usable sky",
                                       bounds=(0.0, 1.0))
 
@@ -344,7 +360,10 @@ def iter_config_keys():
         hints = typing.get_type_hints(cls)
         for f in dataclasses.fields(cls):
             doc = f.metadata.get("doc") or _COSMOLOGY_DOCS[f.name]
-            yield f"{sec_name}.{f.name}", _type_text(hints[f.name]), f.default, doc
+            typ = _type_text(hints[f.name])
+            if typ.startswith("list"):  # say whether [] is accepted (its meaning is in the doc)
+                typ = f"{typ} (may be empty)" if f.metadata.get("may_be_empty") else f"non-empty {typ}"
+            yield f"{sec_name}.{f.name}", typ, f.default, doc
 
 
 def _type_text(tp) -> str:
@@ -364,9 +383,10 @@ def _coerce(value, tp, where: str, base_dir: Path):
         inner = [a for a in typing.get_args(tp) if a is not type(None)][0]
         return _coerce(value, inner, where, base_dir)
     if origin is tuple:
-        if not isinstance(value, list) or not value:
-            raise ConfigError(f"{where} must be a non-empty list of numbers; got {value!r}")
-        return tuple(_coerce(v, typing.get_args(tp)[0], where, base_dir) for v in value)
+        item = typing.get_args(tp)[0]
+        if not isinstance(value, list):
+            raise ConfigError(f"{where} must be a list of {_type_text(item)}s; got {value!r}")
+        return tuple(_coerce(v, item, f"{where} item {k + 1} of {len(value)}", base_dir) for k, v in enumerate(value))
     if tp is bool:
         if not isinstance(value, bool):
             raise ConfigError(f"{where} must be true or false; got {value!r}")
@@ -378,6 +398,8 @@ def _coerce(value, tp, where: str, base_dir: Path):
     if tp is float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise ConfigError(f"{where} must be a number; got {value!r}")
+        if math.isnan(value):
+            raise ConfigError(f"{where} must be a number, not nan")
         return float(value)
     if tp is str:
         if not isinstance(value, str):
@@ -408,20 +430,47 @@ def _build_section(cls, table, sec_name: str, where_file: str, base_dir: Path):
             typed = _coerce(value, hints[key], where, base_dir)
         except ConfigError as err:
             raise ConfigError(str(err), path=where_file, key=dotted) from None
-        meta = fields[key].metadata
-        if "choices" in meta and typed not in meta["choices"]:
-            shown = ", ".join(repr(c) for c in meta["choices"] if c is not None)
-            raise ConfigError(f"{where} must be one of {shown}; got {typed!r}", path=where_file, key=dotted)
-        if "bounds" in meta and typed is not None:
-            lo, hi = meta["bounds"]
-            vals = typed if isinstance(typed, tuple) else (typed,)
-            if any(not (lo <= v <= hi) for v in vals):
-                raise ConfigError(f"{where} must lie in [{lo}, {hi}]; got {typed!r}", path=where_file, key=dotted)
+        problem = _value_problem(typed, fields[key])
+        if problem:
+            raise ConfigError(f"{where} {problem}", path=where_file, key=dotted)
         kwargs[key] = typed
     try:
         return cls(**kwargs)
     except ConfigError as err:  # Cosmology validates itself
         raise ConfigError(f"config {where_file}: {err}", path=where_file, key=err.key) from None
+
+
+def _value_problem(typed, fld) -> str | None:
+    """What is wrong with a typed value against its field's declaration (choices, bounds, list rules), or None.
+
+    A number may be infinite only where the key's default is or its bounds reach infinity; list
+    items are always finite.
+    """
+    meta = fld.metadata
+    if "choices" in meta and typed not in meta["choices"]:
+        return f"must be one of {', '.join(repr(c) for c in meta['choices'] if c is not None)}; got {typed!r}"
+    declared = meta.get("bounds")
+    lo, hi = declared or (-math.inf, math.inf)
+    if isinstance(typed, float) and math.isinf(typed):
+        if typed != fld.default and not (declared and math.isinf(declared[typed > 0])):
+            return f"must be finite; got {typed!r}"
+    if isinstance(typed, (int, float)) and not isinstance(typed, bool):
+        return None if lo <= typed <= hi else f"must lie in [{lo}, {hi}]; got {typed!r}"
+    if not isinstance(typed, tuple):
+        return None
+    if not typed and not meta.get("may_be_empty"):
+        return "must be a non-empty list (leave the key out for none); got []"
+    numbers = [v for v in typed if isinstance(v, float)]
+    n = len(typed)
+    for k, v in enumerate(numbers):
+        if not math.isfinite(v):
+            return f"must hold finite numbers; item {k + 1} of {n} is {v!r}"
+        if not lo <= v <= hi:
+            return f"must lie in [{lo}, {hi}]; item {k + 1} of {n} is {v!r}"
+        if meta.get("increasing") and k and v <= numbers[k - 1]:
+            return (f"must increase strictly; item {k + 1} of {n} ({v:g}) is not above item {k} "
+                    f"({numbers[k - 1]:g})")
+    return None
 
 
 def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
@@ -517,16 +566,30 @@ def load_config(path) -> Config:
         wrong type or range.  The message names the file and the dotted key.
     """
     path = Path(path)
+    data = _read_toml(path)
+    if not data:
+        raise ConfigError(f"config {path}: holds no settings (an empty file or only comments); see configs/README.md",
+                          path=path)
+    return config_from_dict(data, source=path.resolve())
+
+
+def _read_toml(path) -> dict:
+    """The parsed TOML document in ``path``; every reason it cannot be read is a ConfigError naming the file."""
+    path = Path(path)
     try:
         with open(path, "rb") as fh:
-            data = tomllib.load(fh)
+            return tomllib.load(fh)
     except FileNotFoundError:
         raise ConfigError(f"config {path}: file not found", path=path) from None
+    except IsADirectoryError:
+        raise ConfigError(f"config {path}: is a folder, not a TOML file", path=path) from None
     except OSError as err:
-        raise ConfigError(f"config {path}: cannot be read ({err.strerror})", path=path) from None
+        raise ConfigError(f"config {path}: cannot be read ({err.strerror or err})", path=path) from None
+    except UnicodeDecodeError as err:
+        raise ConfigError(f"config {path}: is not UTF-8 text (byte {err.object[err.start:err.start + 1]!r} at "
+                          f"offset {err.start}); TOML files must be UTF-8", path=path) from None
     except tomllib.TOMLDecodeError as err:
         raise ConfigError(f"config {path}: not valid TOML ({err})", path=path) from None
-    return config_from_dict(data, source=path.resolve())
 
 
 def _check_multifrequency(cfg, bad) -> None:

@@ -250,7 +250,7 @@ def _sorted_unique(pixels, values, nside, what, spath):
     return pixels, values
 
 
-def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None) -> HealpixMap:
+def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None, rms_check=False) -> HealpixMap:
     """Read a HEALPix temperature map from FITS, full sky or partial sky, into uK_CMB.
 
     Parameters
@@ -272,6 +272,10 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
         either, equatorial with a warning.  The header wins when both are present.
     ordering : {"RING", "NESTED"}, optional
         The same as ``nest``, spelled as the config's ``map.ordering``; give one or the other.
+    rms_check : bool, default False
+        Raise :class:`MapError` when the rms of the pixels with data, in uK after the conversion, is
+        below 1e-3 uK or above 3e7 uK (a unit label wrong by ~10^6); otherwise only warn outside
+        1e-2..1e5 uK.  See :func:`pairvel.maps.skymap.check_unit_scale`.
 
     Returns
     -------
@@ -282,7 +286,8 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     ------
     MapError
         Unreadable or non-HEALPix file, missing ORDERING (and no ``nest``), bad NSIDE, pixel
-        count inconsistent with NSIDE, unknown or missing unit, unknown COORDSYS.
+        count inconsistent with NSIDE, unknown or missing unit, unknown COORDSYS, and (with
+        ``rms_check``) a pixel rms no CMB temperature map has.
     """
     if isinstance(field, bool) or not isinstance(field, (int, np.integer)):
         raise MapError(f"map {path}: field must be a non-negative integer; got {field!r}", path=path, key="field")
@@ -307,7 +312,7 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     if bad.all():
         raise MapError(f"{what}: every pixel is UNSEEN or NaN", path=path)
     weight = np.where(bad, np.float32(0.0), np.float32(1.0))
-    check_unit_scale(values, bad, what, raw.unit if unit is None else unit)
+    check_unit_scale(values, bad, what, raw.unit if unit is None else unit, stop=rms_check, path=str(path))
     return HealpixMap(raw.nside, raw.nest, raw.pixels, values, weight, path=str(path), coordsys=raw.coordsys)
 
 

@@ -219,8 +219,13 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
 
 def _read_each(cfg):
     mc, mf = cfg.map, cfg.multifrequency
-    return [read_map(p, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys)
-            for p in mf.map_paths]
+    return [_read_one(p, mc) for p in mf.map_paths]
+
+
+def _read_one(path, mc):
+    """One temperature map with the options of ``[map]`` (``mc``), its unit checked on its pixel rms."""
+    return read_map(path, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys,
+                    rms_check=mc.rms_unit_check)
 
 
 def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
@@ -242,7 +247,7 @@ def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
     """
     mc, mf = cfg.map, cfg.multifrequency
     if not mf.map_paths:
-        return read_map(mc.path, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys), None
+        return _read_one(mc.path, mc), None
     maps = _read_each(cfg)
     _check_compatible(maps)
     freqs = np.asarray(mf.frequencies_ghz, dtype=float)

@@ -305,20 +305,39 @@ def unit_to_uk(unit: str, *, where: str = "map") -> float:
     return factor
 
 
-# A CMB temperature map (sky, noise, or both, filtered or not) has an rms between about 1 uK and a few mK
-# [common practice]; far outside [1e-2 uK, 1e5 uK] the unit is almost surely wrong (K read as uK, or
-# the reverse).
-_RMS_RANGE_UK = (1e-2, 1e5)
+# The pixel rms of a CMB temperature map, in uK_CMB [common practice]: the primary anisotropies give
+# ~100 uK on degree scales; instrument noise in arcminute pixels runs from ~10 uK (deep maps) to a
+# few mK (shallow or high-frequency ones, where foregrounds also reach tens of mK); high-passed or
+# matched-filtered maps keep a few uK.  So 1 uK to 3e4 uK (30 mK) covers every plausible map.
+_PLAUSIBLE_RMS_UK = (1.0, 3e4)
+# Outside 1e-2..1e5 uK the unit is suspicious (a warning).  A factor 10^3 beyond the plausible range,
+# below 1e-3 uK or above 3e7 uK, no temperature map is left: the label is wrong by ~10^6 (K read as
+# uK, or the reverse), and a run on it would give a tau_mean off by 10^6, so a run stops there.
+_RMS_WARN_UK = (1e-2, 1e5)
+_RMS_STOP_UK = (_PLAUSIBLE_RMS_UK[0] * 1e-3, _PLAUSIBLE_RMS_UK[1] * 1e3)
+RMS_CHECK_KEY = "map.rms_unit_check"
 
 
-def check_unit_scale(values, bad, what, unit, *, stacklevel=3):
-    """Warn when the rms of the good pixels (after conversion to uK) points at a wrong unit."""
+def check_unit_scale(values, bad, what, unit, *, stop=False, path=None, stacklevel=3):
+    """Judge the unit of a map from the rms of its good pixels (in uK after the conversion).
+
+    Warns outside 1e-2..1e5 uK; with ``stop``, raises :class:`MapError` (naming ``path``) below
+    1e-3 uK or above 3e7 uK, a factor 10^3 beyond any plausible CMB temperature map (1 uK to 30 mK), which is where
+    a unit label wrong by 10^6 lands.  A constant map (rms 0) is not judged.
+    """
     good = values[~bad]
     if good.size == 0:
         return
     step = max(1, good.size // 1_000_000)  # a strided sample is enough for an order of magnitude
     rms = float(np.std(good[::step], dtype=np.float64))
-    lo, hi = _RMS_RANGE_UK
+    lo, hi = _RMS_STOP_UK
+    if stop and rms > 0.0 and not lo <= rms <= hi:
+        raise MapError(f"{what}: pixel rms is {rms:.3g} uK after reading it as unit {unit!r}, outside the "
+                       f"{lo:g}-{hi:g} uK possible for a CMB temperature map (plausible: "
+                       f"{_PLAUSIBLE_RMS_UK[0]:g}-{_PLAUSIBLE_RMS_UK[1]:g} uK); the unit label is likely wrong by "
+                       f"10^6: fix the file's unit or map.unit (or set {RMS_CHECK_KEY} = false to run anyway)",
+                       path=path, key=RMS_CHECK_KEY)
+    lo, hi = _RMS_WARN_UK
     if rms == 0.0 or lo <= rms <= hi:
         return
     guess = "K_CMB" if rms < lo else "a smaller unit (mK or uK)"
@@ -353,9 +372,10 @@ def read_map(path, **options) -> SkyMap:
     ----------
     path : str or Path
     **options
-        Keywords of that reader; every reader takes ``field``, ``unit``, ``coordsys`` and
+        Keywords of that reader; every reader takes ``field``, ``unit``, ``coordsys``,
         ``ordering`` (the config's ``map.ordering``, for grids whose files may omit their pixel
-        order).  See :func:`pairvel.maps.healpix_io.read_map`.
+        order) and ``rms_check`` (stop on a pixel rms no CMB temperature map has, see
+        :func:`check_unit_scale`).  See :func:`pairvel.maps.healpix_io.read_map`.
     """
     return _read(_file_format(path).read_map, path, options)
 

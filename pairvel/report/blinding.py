@@ -132,6 +132,7 @@ RESULT_RULES = {
     "nulls": {"kind": 0, "p": 1, "chi2": 0, "pte": 0, "chi2_mean": 0, "pte_mean": 0, "dof": 0, "threshold": 0,
               "mean_error": 1},
     "extra": None,
+    "warnings": 0,  # texts about the inputs and the method; none quotes an amplitude (test_blinding_holds reads them)
 }
 
 #: Every key the pipeline (or the output reader) may put into ``RunResult.extra``.
@@ -248,6 +249,7 @@ def load_result(folder):
     from astropy.io import fits
     from astropy.table import Table
 
+    from ..core.warnlog import RunWarning
     from ..stats.nulltests import NullTestResult
     from .result import RunResult
 
@@ -280,7 +282,7 @@ def load_result(folder):
                      z_eff=summary["z_eff"], v12_template=np.array(table["v12_lin_km_s"], dtype=float),
                      in_fit=np.array(table["in_fit"], dtype=bool), fit=fit, nulls=tuple(nulls),
                      n_tracers=summary["n_tracers"], selection=summary["selection"], provenance=summary["provenance"],
-                     extra=extra)
+                     extra=extra, warnings=tuple(RunWarning(**w) for w in summary.get("run_warnings", [])))
 
 
 def _stored_fit(d: dict):

@@ -137,6 +137,7 @@ def summary_dict(result) -> dict:
         "null_tests": [n.as_dict() for n in result.nulls],
         "null_tests_passed": all(n.passed for n in result.nulls),
         "selection": result.selection,
+        "run_warnings": [w.as_dict() for w in result.warnings],
         "config": result.config.as_dict(),
         "provenance": result.provenance,
     }
@@ -465,6 +466,7 @@ def _report(result, summary: dict) -> str:
     lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
     for section, body in report_sections(result).items():
         lines += ["", f"## {section}", "", body]
+    lines += _warnings_report(result.warnings)
     prov = result.provenance
     lines += ["", "## Provenance", "",
               f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')})",
@@ -474,6 +476,18 @@ def _report(result, summary: dict) -> str:
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
               "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
     return "\n".join(lines)
+
+
+def _warnings_report(kept) -> list:
+    """The report's list of every warning the run raised (summary.json: run_warnings)."""
+    lines = ["", "## Warnings during the run", ""]
+    if not kept:
+        return lines + ["None: the run raised no warning."]
+    lines.append(f"{len(kept)} warning{'s' if len(kept) > 1 else ''}, in the order raised:")
+    lines.append("")
+    for w in kept:
+        lines.append(f"- [{w.stage or 'before the first stage'}; {w.source}] {w.text}")
+    return lines
 
 
 def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path:

@@ -33,6 +33,7 @@ class RunResult:
     selection: dict
     provenance: dict
     extra: dict = field(default_factory=dict)
+    warnings: tuple = ()  # RunWarning of every warning the run raised or logged (pairvel.core.warnlog)
 
     @property
     def r_mid(self) -> np.ndarray:

@@ -47,7 +47,8 @@ def test_unknown_section(tmp_path):
     ("[map]\nordering = \"ring\"\n", r"'map\.ordering' must be one of 'RING', 'NESTED'; got 'ring'"),
     ("[map]\nmax_masked_fraction = 1.5\n", r"'map\.max_masked_fraction' must lie in \[0\.0, 1\.0\]; got 1\.5"),
     ("[bins]\nwidth_mpc = 7.0\n", r"'bins\.width_mpc' must divide"),
-    ("[bins]\nedges_mpc = [0, 20, 10]\n", r"'bins\.edges_mpc' must be at least two increasing"),
+    ("[bins]\nedges_mpc = [0, 20, 10]\n", r"'bins\.edges_mpc' must increase strictly; item 3 of 3 \(10\) is not above item 2 \(20\)"),
+    ("[bins]\nedges_mpc = [30]\n", r"'bins\.edges_mpc' must be at least two increasing"),
     ("[cosmology]\nomega_b = 0.5\n", r"cosmology parameter 'omega_b' is out of range"),
     ("[catalogue]\nproxy_min = 14.0\n", r"'catalogue\.proxy_column' is required"),
 ])
@@ -88,3 +89,81 @@ def test_every_key_is_documented_in_configs_readme():
 def test_config_from_dict_without_file():
     cfg = config_from_dict({"catalogue": {"path": "/a/c.csv"}, "map": {"path": "/a/m.fits"}})
     assert cfg.source is None and math.isinf(cfg.catalogue.z_max)
+
+
+# --- every list in the config is checked when the file is read, naming the key and the bad item
+@pytest.mark.parametrize("section, key, value, match", [
+    ("bins", "edges_mpc", "[0, nan, 60]", r"'bins\.edges_mpc' item 2 of 3 must be a number, not nan"),
+    ("bins", "edges_mpc", "[0, 30, inf]", r"'bins\.edges_mpc' must hold finite numbers; item 3 of 3 is inf"),
+    ("bins", "edges_mpc", "[0, 30, 30, 60]", r"'bins\.edges_mpc' must increase strictly; item 3 of 4 \(30\) is not above"),
+    ("bins", "edges_mpc", "[-10, 30]", r"'bins\.edges_mpc' must lie in \[0\.0, 10000\.0\]; item 1 of 2 is -10\.0"),
+    ("bins", "edges_mpc", "[]", r"'bins\.edges_mpc' must be a non-empty list \(leave the key out for none\); got \[\]"),
+    ("theory", "proxy_bin_edges", "[14.0, -inf]", r"'theory\.proxy_bin_edges' must hold finite numbers; item 2 of 2 is -inf"),
+    ("theory", "proxy_bin_edges", "[14.5, 14.0]", r"'theory\.proxy_bin_edges' must increase strictly; item 2 of 2 \(14\)"),
+    ("theory", "fit_r_min_mpc", "nan", r"'theory\.fit_r_min_mpc' must be a number, not nan"),
+    ("theory", "fit_r_max_mpc", "-inf", r"'theory\.fit_r_max_mpc' must be finite; got -inf"),
+    ("catalogue", "z_min", "inf", r"'catalogue\.z_min' must be finite; got inf"),
+    ("theory", "tau_prior_mean", "nan", r"'theory\.tau_prior_mean' must be a number, not nan"),
+    ("aperture", "radii_arcmin", "[1.0, nan]", r"'aperture\.radii_arcmin' item 2 of 2 must be a number, not nan"),
+    ("aperture", "radii_arcmin", "[1.0, 90.0]", r"'aperture\.radii_arcmin' must lie in \[0\.05, 60\.0\]; item 2 of 2"),
+    ("aperture", "radii_arcmin", "[]", r"'aperture\.radii_arcmin' must be a non-empty list"),
+    ("nulls", "rotation_deg", "[90, inf]", r"'nulls\.rotation_deg' must hold finite numbers; item 2 of 2 is inf"),
+    ("nulls", "rotation_deg", "[90, 400]", r"'nulls\.rotation_deg' must lie in \[-360\.0, 360\.0\]"),
+    ("nulls", "rotation_deg", "90", r"'nulls\.rotation_deg' must be a list of floats; got 90"),
+    ("multifrequency", "map_paths", "[]", r"'multifrequency\.map_paths' must be a non-empty list"),
+    ("multifrequency", "map_paths", "[3]", r"'multifrequency\.map_paths' item 1 of 1 must be a file path"),
+    ("multifrequency", "weights", "[0.5, nan]", r"'multifrequency\.weights' item 2 of 2 must be a number, not nan"),
+    ("multifrequency", "frequencies_ghz", "[150, inf]", r"'multifrequency\.frequencies_ghz' must hold finite numbers"),
+])
+def test_lists_and_numbers_are_checked_at_load(tmp_path, section, key, value, match):
+    text = MINIMAL.replace(f"[{section}]\n", f"[{section}]\n{key} = {value}\n") if f"[{section}]" in MINIMAL \
+        else MINIMAL + f"[{section}]\n{key} = {value}\n"
+    with pytest.raises(ConfigError, match=match) as caught:
+        load_config(write(tmp_path, text))
+    assert caught.value.key == f"{section}.{key}" and "run.toml" in str(caught.value)
+
+
+def test_every_list_key_says_whether_it_may_be_empty():
+    lists = {key: typ for key, typ, *_ in iter_config_keys() if "list" in typ}
+    assert lists["nulls.rotation_deg"] == "list of float (may be empty)"
+    assert all(typ.startswith("non-empty list") for key, typ in lists.items() if key != "nulls.rotation_deg"), lists
+
+
+def test_empty_rotation_list_means_no_rotated_null(tmp_path):
+    cfg = load_config(write(tmp_path, MINIMAL + "[nulls]\nrotation_deg = []\n"))
+    assert cfg.nulls.rotation_deg == ()
+    assert cfg.as_dict()["nulls"]["rotation_deg"] == []
+
+
+def test_infinite_where_the_key_allows_it(tmp_path):
+    cfg = load_config(write(tmp_path, MINIMAL.replace("[catalogue]\n", "[catalogue]\nz_max = inf\nproxy_min = -inf\n")
+                            + "[theory]\nfit_r_max_mpc = inf\n"))
+    assert math.isinf(cfg.catalogue.z_max) and math.isinf(cfg.theory.fit_r_max_mpc)
+
+
+def test_files_that_are_not_configs(tmp_path, monkeypatch):
+    latin1 = tmp_path / "latin1.toml"
+    latin1.write_bytes(MINIMAL.encode() + '[run]\nname = "caf\u00e9"\n'.encode("latin-1"))
+    with pytest.raises(ConfigError, match=r"latin1\.toml: is not UTF-8 text \(byte b'\\xe9' at offset \d+\)"):
+        load_config(latin1)
+    (tmp_path / "folder.toml").mkdir()
+    with pytest.raises(ConfigError, match=r"folder\.toml: is a folder, not a TOML file"):
+        load_config(tmp_path / "folder.toml")
+    for name, text in (("empty.toml", ""), ("comments.toml", "# nothing yet\n")):
+        with pytest.raises(ConfigError, match=rf"{name}: holds no settings"):
+            load_config(write(tmp_path, text, name=name))
+    (tmp_path / "binary.toml").write_bytes(bytes(range(128, 256)))
+    with pytest.raises(ConfigError, match=r"binary\.toml: is not UTF-8 text"):
+        load_config(tmp_path / "binary.toml")
+    with pytest.raises(ConfigError, match=r"prose\.toml: not valid TOML"):
+        load_config(write(tmp_path, "This is a note, not a config.\n", name="prose.toml"))
+    # a path whose parent is a regular file fails for root too
+    with pytest.raises(ConfigError, match=r"latin1\.toml/run\.toml: cannot be read \(Not a directory\)"):
+        load_config(latin1 / "run.toml")
+
+    def refuse(*args, **kwargs):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr("builtins.open", refuse)  # root reads any file: unreadable is simulated
+    with pytest.raises(ConfigError, match=r"locked\.toml: cannot be read \(Permission denied\)"):
+        load_config(tmp_path / "locked.toml")

@@ -213,3 +213,35 @@ def test_retrended_and_object_split_samples_match_direct_computations():
         for k in range(n_jk):
             own = sets[:, regions == k] @ w[regions == k]
             np.testing.assert_allclose(p_obj[:, k, bin_], -(num - own) / (den - share[k]), rtol=1e-9)
+
+
+def test_map_pixels_too_coarse_for_the_aperture_fail_before_the_mocks():
+    """Pixel side sqrt(4 pi / 12 nside^2): 13.7 arcmin at nside 256, so a 2.1-arcmin disc holds ~0.07
+    pixel centres (analytic) and no aperture is usable; nside 1024 (3.4 arcmin, ~1.2 centres) is the first
+    that is not refused."""
+    with pytest.raises(InputError, match=r"validation option 'nside' must be at least 1024 \(--nside\) for the "
+                                         r"2\.1-arcmin aperture: pixels of 13\.7 arcmin leave ~0\.07 pixel centres"):
+        ValidationOptions(with_map=True, nside=256)
+    assert ValidationOptions(with_map=True, nside=1024).nside == 1024
+    assert ValidationOptions(with_map=False, nside=256).nside == 256  # no map, no apertures
+
+
+def test_too_few_usable_apertures_stop_at_the_first_mock(monkeypatch):
+    """When the prediction lets a grid through that leaves most apertures unusable, the first mock stops
+    with the same option named."""
+    import pairvel.sims.validate as validate
+
+    monkeypatch.setattr(validate, "_centres_per_disc", lambda nside, radius: 10.0)  # fool the prediction
+    opt = ValidationOptions(with_map=True, nside=256, n_tracers=100)
+    rng = np.random.default_rng(2)
+    ra, dec = rng.uniform(-10, 10, 200), rng.uniform(-10, 10, 200)
+    with pytest.raises(InputError, match=r"validation option 'nside' \(--nside\) is too coarse for the 2\.1-arcmin "
+                                         r"aperture: only 0 of 200 mock tracers have a usable aperture at nside 256"):
+        validate._map_temperatures(opt, ra, dec, np.zeros(200), rng)
+
+
+def test_validate_command_with_too_coarse_a_map(tmp_path, capsys):
+    assert main(["validate", str(tmp_path / "v"), "--map", "--nside", "256", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("pairvel: error: validation option 'nside' must be at least 1024 (--nside)")
+    assert not (tmp_path / "v").exists()
