@@ -1,7 +1,10 @@
 """Command line: ``pairvel run | demo | mock | validate | keys``.
 
 A thin layer over the library.  Every :class:`~pairvel.core.errors.PairvelError` becomes one line on
-stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.
+stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.  Commands
+that write a folder claim it before their work (:mod:`pairvel.report.folders`).  SIGTERM, what batch
+schedulers send at the time limit, unwinds like Ctrl-C: the claim is released, nothing is left, and
+the exit code is 143 (130 for Ctrl-C).
 
 Logging is set up here and nowhere else: for one call of :func:`main` the ``pairvel`` logger sends
 its records to stderr (bare progress lines, ``pairvel: warning: ...``; ``--quiet`` keeps warnings
@@ -24,7 +27,9 @@ import os
 import platform
 import select
 import shlex
+import signal
 import sys
+import threading
 import time
 import traceback
 import warnings
@@ -34,6 +39,7 @@ from .core.errors import PairvelError
 from .core.provenance import __version__
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+EXIT_INTERRUPTED, EXIT_TERMINATED = 128 + signal.SIGINT, 128 + signal.SIGTERM
 
 #: Line format of run.log: UTC time, level, message.
 _RUN_LOG_FORMAT = "%(asctime)s.%(msecs)03dZ %(levelname)-7s %(message)s"
@@ -62,14 +68,14 @@ def _parser() -> argparse.ArgumentParser:
                          description="Run the whole measurement described by CONFIG and write a new output folder.")
     run.add_argument("config", help="TOML config file (see configs/README.md)")
     run.add_argument("--out", help="new output folder (default: ./<run.name>)")
-    run.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    run.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(run)
 
     demo = sub.add_parser("demo", help="run configs/demo.toml on the shipped synthetic survey and compare with its truth",
                           description="Run the invented demo survey shipped in demo_data/ and check the result "
                                       "against the injected optical depth.")
     demo.add_argument("--out", help="new output folder (default: ./pairvel-demo-<timestamp>)")
-    demo.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    demo.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(demo)
 
     mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json)",
@@ -121,31 +127,45 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
     from .core.progress import Progress
     from .input.config import load_config
     from .pipeline import run_pipeline
-    from .report.outputs import prepare_output_dir, write_outputs
+    from .report.folders import claim_output_dir
+    from .report.outputs import write_outputs
 
     cfg = load_config(config_path)
-    out = prepare_output_dir(args.out if args.out else default_out, force=args.force)
-    _log.debug("config %s; output folder %s", cfg.source, out)
-    _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
-    progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
-    result = run_pipeline(cfg, progress=progress)
-    if demo:
-        from .sims.demo import attach_truth_check
+    with claim_output_dir(args.out if args.out else default_out, force=args.force,
+                          protect=cfg.named_paths()) as claim:  # before the work; released if it fails
+        out = claim.path
+        key_path = _usable_key_path(cfg, out)
+        _log.debug("config %s; output folder %s", cfg.source, out)
+        _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
+        progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
+        result = run_pipeline(cfg, progress=progress)
+        if demo:
+            from .sims.demo import attach_truth_check
 
-        result = attach_truth_check(result)
-    if cfg.blinding.enabled:
-        from .report.blinding import blind_result, default_key_path
+            result = attach_truth_check(result)
+        if cfg.blinding.enabled:
+            from .report.blinding import blind_result
 
-        key_path = cfg.blinding.key_path or default_key_path(out)
-        result, _ = blind_result(result, key_path)
-        progress.say(f"      outputs blinded; key kept in {key_path}")
-    with progress.stage("writing outputs"):
-        write_outputs(result, out, force=args.force, run_log=run_log)
+            if not key_path.exists():
+                claim.remove_on_failure(key_path)
+            result, _ = blind_result(result, key_path)
+            progress.say(f"      outputs blinded; key kept in {key_path}")
+        with progress.stage("writing outputs"):
+            write_outputs(result, out, run_log=run_log, claim=claim)
     print(_closing_summary(result, out))
     if demo:
         print(result.extra["demo_check"]["verdict"])
     progress.say(f"finished in {progress.elapsed:.0f} s")
     return EXIT_OK
+
+
+def _usable_key_path(cfg, out: Path):
+    """The blinding key path of a blinded run, checked before the work (None when not blinded)."""
+    if not cfg.blinding.enabled:
+        return None
+    from .report.blinding import check_key_path, default_key_path
+
+    return check_key_path(cfg.blinding.key_path or default_key_path(out), out_dir=out)
 
 
 def _cmd_unblind(args, run_log) -> int:
@@ -233,12 +253,12 @@ def _add_validate_parser(sub, common) -> None:
                      help="fit the plain template, without the predicted signal loss of the trend removal")
     val.add_argument("--no-diagnostics", action="store_true",
                      help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
-    val.add_argument("--force", action="store_true", help="replace an existing pairvel output folder")
+    val.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(val)
 
 
 def _cmd_validate(args, run_log) -> int:
-    from .report.outputs import prepare_output_dir
+    from .report.folders import claim_output_dir
     from .sims.validate import ValidationOptions, format_summary, run_validation, write_validation
 
     opt = ValidationOptions(n_mocks=args.n_mocks, seed=args.seed, n_tracers=args.n_tracers, tau_mean=args.tau_mean,
@@ -249,10 +269,10 @@ def _cmd_validate(args, run_log) -> int:
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
                             exact_fields=not args.grid_fields, box_padding=args.box_padding,
                             trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics)
-    out = prepare_output_dir(args.out, force=args.force)  # fail before the mocks, not after
-    _log.debug("output folder %s", out)
-    result = run_validation(opt, progress=_log.info)
-    out = write_validation(result, args.out, force=args.force, run_log=run_log)
+    with claim_output_dir(args.out, force=args.force) as claim:  # fail before the mocks, not after
+        _log.debug("output folder %s", claim.path)
+        result = run_validation(opt, progress=_log.info)
+        out = write_validation(result, claim.path, run_log=run_log, claim=claim)
     print(format_summary(result))
     print(f"  outputs: {out}")
     return EXIT_OK
@@ -309,6 +329,28 @@ def _log_warning(message, category, filename, lineno, file=None, line=None, *, d
         _warnings_log.warning("%s", message)
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, raised wherever the program is, so that it unwinds like Ctrl-C."""
+
+
+@contextlib.contextmanager
+def _sigterm_unwinds():
+    """Turn SIGTERM into :class:`_Terminated` for one command (main thread only; restored on exit)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def on_sigterm(signum, frame):
+        signal.signal(signal.SIGTERM, signal.SIG_IGN)  # a second SIGTERM must not break off the clean-up
+        raise _Terminated()
+
+    previous = signal.signal(signal.SIGTERM, on_sigterm)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def _dispatch(args, run_log) -> int:
     if args.command == "run":
         return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log, demo=False)
@@ -333,7 +375,7 @@ def main(argv=None) -> int:
     debug = getattr(args, "debug", False)
     logging_setup = _command_logging(shlex.join(["pairvel", *argv]), quiet=getattr(args, "quiet", False),
                                      verbose=getattr(args, "verbose", False))
-    with logging_setup as run_log, warnings.catch_warnings():
+    with logging_setup as run_log, warnings.catch_warnings(), _sigterm_unwinds():
         warnings.showwarning = functools.partial(_log_warning, debug=debug)
         _log.debug("pairvel %s on Python %s; working folder %s", __version__, platform.python_version(), Path.cwd())
         try:
@@ -345,9 +387,12 @@ def main(argv=None) -> int:
                 traceback.print_exc()
             print(f"pairvel: error: {err}", file=sys.stderr)
             return EXIT_USER
-        except KeyboardInterrupt:
-            print("pairvel: interrupted; no output written", file=sys.stderr)
-            return 130
+        except KeyboardInterrupt as err:
+            how = "terminated" if isinstance(err, _Terminated) else "interrupted"
+            written = getattr(err, "output_written", None)  # set when the outputs were in place already
+            print(f"pairvel: {how}; " + (f"outputs complete in {written}" if written else "no output written"),
+                  file=sys.stderr)
+            return EXIT_TERMINATED if isinstance(err, _Terminated) else EXIT_INTERRUPTED
         except Exception as err:  # a bug: say so in one line, traceback with --debug
             if isinstance(err, BrokenPipeError) and _stdout_closed():  # the reader stopped early: not a fault
                 _discard_stdout()
@@ -383,13 +428,16 @@ def _discard_stdout() -> None:
 
 
 def _run_name(config_path) -> str:
-    """Default output folder name: the config's run.name, read leniently (the full check comes later)."""
+    """Default output folder name: the config's run.name, read leniently (the full check comes later
+    and refuses a name that :func:`~pairvel.input.config.is_folder_name` rejects)."""
     import tomllib
+
+    from .input.config import is_folder_name
 
     try:
         with open(config_path, "rb") as fh:
             name = tomllib.load(fh).get("run", {}).get("name", "pairvel-run")
-        return name if isinstance(name, str) and name and "/" not in name else "pairvel-run"
+        return name if is_folder_name(name) else "pairvel-run"
     except (OSError, ValueError, AttributeError):  # ValueError: not UTF-8 or not TOML; load_config says which
         return "pairvel-run"
 

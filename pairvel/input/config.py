@@ -26,6 +26,7 @@ __all__ = [
     "iter_config_keys",
     "MultifrequencyConfig",
     "PrefilterConfig",
+    "is_folder_name",
 ]
 
 import dataclasses
@@ -55,9 +56,16 @@ def _key(default, doc, **extra):
     return field(default=default, metadata={"doc": doc, **extra})
 
 
+def is_folder_name(name) -> bool:
+    """Whether ``name`` can be ``run.name``, the default output folder's name: a non-empty string,
+    not ``.`` or ``..``, without ``/``, ``\\`` or NUL (so the folder is a new one in the working folder)."""
+    return isinstance(name, str) and name not in ("", ".", "..") and not any(c in name for c in "/\\\0")
+
+
 @dataclass(frozen=True)
 class RunConfig:
-    name: str = _key("pairvel-run", "label written into every output")
+    name: str = _key("pairvel-run", "label written into every output, and the default output folder ./<name>: "
+                                    "a plain folder name (not '.' or '..', no '/', '\\' or NUL)")
     seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs",
                      bounds=(0, 2**63 - 1))
 
@@ -336,6 +344,18 @@ class Config:
             out[sec.name] = {f.name: plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
         return out
 
+    def named_paths(self) -> dict:
+        """Every path the config names, by dotted key (``key[i]`` in a list), and the config file itself."""
+        out = {} if self.source is None else {"the config file": self.source}
+        for sec in dataclasses.fields(self):
+            obj = getattr(self, sec.name)
+            for f in dataclasses.fields(obj) if dataclasses.is_dataclass(obj) else ():
+                value = getattr(obj, f.name)
+                for i, v in enumerate(value if isinstance(value, tuple) else (value,)):
+                    if isinstance(v, Path):
+                        out[f"{sec.name}.{f.name}" + (f"[{i}]" if isinstance(value, tuple) else "")] = v
+        return out
+
 
 _COSMOLOGY_DOCS = {
     "h": "H0 / (100 km/s/Mpc)",
@@ -501,6 +521,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
     def bad(key, msg):
         raise ConfigError(f"config {where_file}: '{key}' {msg}", path=where_file, key=key)
 
+    if not is_folder_name(cfg.run.name):
+        bad("run.name", f"must be a plain folder name (not empty, '.' or '..'; no '/', '\\' or NUL character); "
+                        f"got {cfg.run.name!r}")
     if cfg.catalogue.path is None:
         bad("catalogue.path", "is required")
     if cfg.map.path is None and not cfg.multifrequency.map_paths:

@@ -2,8 +2,9 @@
 blinding and unblinding.
 
 In: a :class:`~pairvel.report.result.RunResult` and an output folder path.
-Out: files in a new output folder, written to a temporary folder and renamed into place.
+Out: files in a new output folder, claimed before the work, written to a hidden folder and swapped
+into place (folders.py).
 Depends on every stage below it; nothing below imports from here.
 """
 
-__all__ = ["blinding", "outputs", "result"]
+__all__ = ["blinding", "folders", "outputs", "result"]

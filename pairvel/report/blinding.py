@@ -15,11 +15,13 @@ reads a blinded folder and the key and writes a new, unblinded folder.
 from __future__ import annotations
 
 __all__ = ["BLIND_RANGE", "EXTRA_RULES", "RESULT_RULES", "UndeclaredQuantityError", "apply_factor", "blind_result",
-           "check_declared", "default_key_path", "load_result", "read_key", "unblind_folder", "write_key"]
+           "check_declared", "check_key_path", "default_key_path", "load_result", "read_key", "unblind_folder",
+           "write_key"]
 
 import dataclasses
 import datetime as _dt
 import json
+import os
 import secrets
 import types
 import warnings
@@ -42,8 +44,31 @@ def default_key_path(out_dir) -> Path:
     return out.parent / f"{out.name}.blinding-key.json"
 
 
+def check_key_path(path, *, out_dir) -> Path:
+    """Check before a blinded run that its key file can be used; return it as an absolute Path.
+
+    The key must lie outside the output folder ``out_dir``; an existing key must be a valid one
+    (:func:`read_key`), and for a new key the folder that will hold it must exist and be writable.
+    """
+    path = Path(path).expanduser().resolve()
+    out = Path(out_dir).expanduser().resolve()
+    if path == out or out in path.parents:
+        raise OutputError(f"blinding key {path}: must lie outside the output folder {out}", path=path,
+                          key="blinding.key_path")
+    if path.exists():
+        read_key(path)
+    elif not path.parent.is_dir():
+        what = "is not a folder" if path.parent.exists() else "does not exist"
+        raise OutputError(f"blinding key {path}: folder {path.parent} {what}", path=path, key="blinding.key_path")
+    elif not os.access(path.parent, os.W_OK | os.X_OK):
+        raise OutputError(f"blinding key {path}: folder {path.parent} is not writable", path=path,
+                          key="blinding.key_path")
+    return path
+
+
 def write_key(path, *, run_name: str) -> dict:
-    """Draw a new factor from OS entropy and write the key file (refuses to overwrite one)."""
+    """Draw a new factor from OS entropy and write the key file, readable by its owner alone (0600;
+    refuses to overwrite one)."""
     path = Path(path)
     if path.exists():
         raise OutputError(f"blinding key {path}: already exists; reuse it with blinding.key_path or move it away",
@@ -54,7 +79,7 @@ def write_key(path, *, run_name: str) -> dict:
            "created_utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")}
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        with open(path, "x") as fh:
+        with os.fdopen(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600), "w") as fh:
             fh.write(json.dumps(key, indent=2) + "\n")
     except OSError as err:
         raise OutputError(f"blinding key {path}: cannot be written ({err.strerror or err})", path=path) from None

@@ -1,10 +1,9 @@
 """Write a run's tables, figure, summary and report into a new folder, all or nothing.
 
-Files are written into a hidden temporary folder beside the target and renamed into place at the
-end, so a failure leaves no half-written output; a run log captured by the caller (``run.log``) is
-the last file written there.  An existing folder is replaced only with ``force=True`` and only
-when it carries the marker file of an earlier pairvel output, so nothing a user made is ever
-deleted.
+The files are written by :func:`write_outputs` through :mod:`pairvel.report.folders`, which
+claims the output path, fills a hidden work folder beside it and swaps it in at the end; its
+docstring says exactly what is guaranteed (concurrent commands, ``--force``, signals, runs that
+were killed).  A run log captured by the caller (``run.log``) is the last output file written.
 """
 
 from __future__ import annotations
@@ -12,39 +11,13 @@ from __future__ import annotations
 __all__ = ["write_outputs", "OUTPUT_MARKER", "RUN_LOG", "prepare_output_dir", "report_sections", "write_folder_atomically"]
 
 import json
-import logging
 import math
-import os
-import shutil
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
-from ..core.errors import OutputError
 from .blinding import check_declared
-
-#: Empty file that marks a folder as a pairvel output (so ``--force`` may replace it).
-OUTPUT_MARKER = ".pairvel-output"
-
-#: The run's log inside an output folder (written only when a ``run_log`` is given).
-RUN_LOG = "run.log"
-
-_log = logging.getLogger(__name__)
-
-
-def prepare_output_dir(out_dir, *, force: bool = False) -> Path:
-    """Check that ``out_dir`` may be written; return it as an absolute Path (nothing is created)."""
-    out = Path(out_dir).expanduser().resolve()
-    if out.exists():
-        if not force:
-            raise OutputError(f"output folder {out} exists already; choose another --out or pass --force", path=out)
-        if not (out / OUTPUT_MARKER).is_file():
-            raise OutputError(f"output folder {out} exists and is not a pairvel output; --force only replaces "
-                              f"folders that pairvel wrote", path=out)
-    if not out.parent.is_dir():
-        raise OutputError(f"output folder {out}: parent folder {out.parent} does not exist", path=out)
-    return out
+from .folders import OUTPUT_MARKER, RUN_LOG, prepare_output_dir, write_folder_atomically
 
 
 def _json_default(obj):
@@ -490,7 +463,7 @@ def _warnings_report(kept) -> list:
     return lines
 
 
-def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path:
+def write_outputs(result, out_dir, *, force: bool = False, run_log=None, claim=None) -> Path:
     """Write every output of ``result`` into ``out_dir`` atomically; return the folder.
 
     Parameters
@@ -503,11 +476,15 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path
         Replace an existing folder that pairvel wrote.
     run_log : callable() -> str, optional
         Returns the text of ``run.log``; see :func:`write_folder_atomically`.  Default: no log file.
+    claim : OutputClaim, optional
+        The caller's claim on ``out_dir`` (:func:`pairvel.report.folders.claim_output_dir`);
+        default: claim it here.
 
     Raises
     ------
     OutputError
-        The folder exists (without ``force``), is not a pairvel output, or cannot be written.
+        The folder exists (without ``force``), may not be replaced, is claimed by another command,
+        or cannot be written.
     """
     check_declared(result)  # every quantity has a blinding rule, blinded or not
     summary = summary_dict(result)
@@ -530,36 +507,4 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None) -> Path
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary))
 
-    return write_folder_atomically(out_dir, fill, force=force, run_log=run_log)
-
-
-def write_folder_atomically(out_dir, fill, *, force: bool = False, run_log=None) -> Path:
-    """Call ``fill(tmp_folder)`` on a hidden temporary folder and rename it to ``out_dir``.
-
-    The same all-or-nothing rules as :func:`write_outputs`: an existing folder is replaced only
-    with ``force`` and only when it carries :data:`OUTPUT_MARKER`; on failure nothing is left.
-    ``run_log``, a callable returning text, is called after ``fill`` and its text written to
-    :data:`RUN_LOG` in the temporary folder, so the log holds every record up to the rename.
-    """
-    out = prepare_output_dir(out_dir, force=force)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    _log.debug("filling %s, to be renamed to %s", tmp, out)
-    try:
-        fill(tmp)
-        if run_log is not None:
-            (tmp / RUN_LOG).write_text(run_log())
-        (tmp / OUTPUT_MARKER).write_text("written by pairvel\n")
-        if out.exists():  # force: only reached for a folder that pairvel wrote
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
-            os.rename(out, old / out.name)
-            os.rename(tmp, out)
-            shutil.rmtree(old)
-        else:
-            os.rename(tmp, out)
-    except OSError as err:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise OutputError(f"output folder {out}: cannot be written ({err.strerror or err})", path=out) from None
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return out
+    return write_folder_atomically(out_dir, fill, force=force, run_log=run_log, claim=claim)

@@ -38,11 +38,12 @@ from pathlib import Path
 import numpy as np
 
 from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
-from ..core.errors import InputError, OutputError, PairvelWarning
+from ..core.errors import InputError, PairvelWarning
 from ..core.rng import as_generator
 from ..maps.sources import paint_beam_sources
 from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
+from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 
 SURVEY_NAME = "Larkspur Cluster Survey"
@@ -239,7 +240,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     Parameters
     ----------
     out_dir : path-like
-        New or empty folder; created if missing.
+        New or empty folder; claimed before the work and filled all or nothing, as every output
+        folder (:mod:`pairvel.report.folders`).
     n_tracers : int, default 30000
         Expected number of tracers in the light cone (the realised number is a Poisson draw).
     nside : int, default 2048
@@ -289,7 +291,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     Raises
     ------
     OutputError
-        ``out_dir`` exists and is not an empty folder.
+        ``out_dir`` exists and is not an empty folder, is claimed by another command, or cannot be
+        written.
     InputError
         An option is out of range, or the grid would be too large.
 
@@ -306,8 +309,6 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     its mean over the written tracers is ``tau_mean``.
     """
     out = Path(out_dir)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise OutputError(f"mock folder {out} exists and is not empty; choose a new folder", path=out)
     options = dict(n_tracers=n_tracers, nside=nside, ra_min=ra_min, ra_max=ra_max, dec_min=dec_min, dec_max=dec_max,
                    z_min=z_min, z_max=z_max, tau_mean=tau_mean, bias=bias, cell_mpc=cell_mpc,
                    beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
@@ -316,43 +317,50 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     spec = _MockSpec(**options, extra_noise=extra_noise)
-    if seed is None:
-        seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
-    rng = as_generator(seed)  # the stages draw from it in the order they run, which fixes every output
-    say = progress or (lambda text: None)
-    timings, t0 = {}, time.perf_counter()
+    with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
+        if seed is None:
+            seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
+        rng = as_generator(seed)  # the stages draw from it in the order they run, which fixes every output
+        say = progress or (lambda text: None)
+        timings, t0 = {}, time.perf_counter()
 
-    cone = _cone_grid(spec)
-    say(f"mock: Gaussian field on a {'x'.join(map(str, cone.shape))} grid of {cell_mpc:g} Mpc cells")
-    delta0, u0 = _gaussian_fields(cone.shape, cell_mpc, cosmo, rng)
-    _lap(timings, "fields", t0)
-    cells, clipped_fraction = _poisson_cells(cone, delta0, spec, rng)
-    tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
-    del delta0, u0
-    amplitudes = _sz_amplitudes(tracers, spec, rng)
-    _lap(timings, "tracers", t0)
-    say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
+        cone = _cone_grid(spec)
+        say(f"mock: Gaussian field on a {'x'.join(map(str, cone.shape))} grid of {cell_mpc:g} Mpc cells")
+        delta0, u0 = _gaussian_fields(cone.shape, cell_mpc, cosmo, rng)
+        _lap(timings, "fields", t0)
+        cells, clipped_fraction = _poisson_cells(cone, delta0, spec, rng)
+        tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
+        del delta0, u0
+        amplitudes = _sz_amplitudes(tracers, spec, rng)
+        _lap(timings, "tracers", t0)
+        say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
 
-    foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0)
-    cmb = _cmb_on_footprint(spec, foot, rng, say)
-    _lap(timings, "cmb", t0)
-    ksz, tsz = _painted_sources(spec, tracers, amplitudes)
-    maps = _sky_maps(spec, foot, cmb, ksz, tsz, rng)
-    _lap(timings, "map", t0)
+        foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0)
+        cmb = _cmb_on_footprint(spec, foot, rng, say)
+        _lap(timings, "cmb", t0)
+        ksz, tsz = _painted_sources(spec, tracers, amplitudes)
+        maps = _sky_maps(spec, foot, cmb, ksz, tsz, rng)
+        _lap(timings, "map", t0)
 
-    curves = _pairwise_truth(tracers, spec)
-    response = _aperture_response(spec, tracers, ksz, amplitudes.dt_ksz_uk)
-    _lap(timings, "truth", t0)
+        curves = _pairwise_truth(tracers, spec)
+        response = _aperture_response(spec, tracers, ksz, amplitudes.dt_ksz_uk)
+        _lap(timings, "truth", t0)
 
-    files = _write_survey(out, spec, tracers, amplitudes.log_mass, foot, maps)
-    truth = MockTruth(
-        n_tracers=int(tracers.z.size), tau_mean=float(tau_mean), bias=float(bias),
-        seed=int(seed) if isinstance(seed, (int, np.integer)) else None, options=_options_record(spec),
-        edges_mpc=curves.edges_mpc.tolist(), v12_3d_realised_km_s=curves.v12_3d.tolist(),
-        v12_los_realised_km_s=curves.v12_los.tolist(), v12_linear_km_s=curves.v12_linear.tolist(),
-        z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
-        timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
-    (out / "truth.json").write_text(json.dumps(_truth_record(truth, spec, curves), indent=2, allow_nan=False) + "\n")
+        files = _survey_files(maps)
+        truth = MockTruth(
+            n_tracers=int(tracers.z.size), tau_mean=float(tau_mean), bias=float(bias),
+            seed=int(seed) if isinstance(seed, (int, np.integer)) else None, options=_options_record(spec),
+            edges_mpc=curves.edges_mpc.tolist(), v12_3d_realised_km_s=curves.v12_3d.tolist(),
+            v12_los_realised_km_s=curves.v12_los.tolist(), v12_linear_km_s=curves.v12_linear.tolist(),
+            z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
+            timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
+        record = _truth_record(truth, spec, curves)
+
+        def fill(folder: Path) -> None:
+            _write_survey(folder, spec, tracers, amplitudes.log_mass, foot, maps)
+            (folder / "truth.json").write_text(json.dumps(record, indent=2, allow_nan=False) + "\n")
+
+        claim.write(fill)
     return truth
 
 
@@ -631,25 +639,31 @@ def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> fl
     return response
 
 
-def _write_survey(out: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot, maps: dict) -> dict:
-    """Write the catalogue and one partial map per frequency into ``out``; the truth's ``files`` entry."""
+def _map_file(nu) -> tuple:
+    """(key in the truth's ``files``, file name) of the map at ``nu`` GHz."""
+    return ("map", MAP_FILE) if nu == 150 else (f"map_{nu:g}ghz", extra_map_file(nu))
+
+
+def _survey_files(maps: dict) -> dict:
+    """The truth's ``files`` entry: the catalogue and one map per frequency of ``maps``."""
+    return {"catalogue": CATALOGUE_FILE, **dict(_map_file(nu) for nu in maps)}
+
+
+def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot, maps: dict) -> None:
+    """Write the catalogue and one partial map per frequency into ``folder``."""
     from astropy.table import Table
 
     from ..maps.healpix_io import write_partial_map
 
-    out.mkdir(parents=True, exist_ok=True)
     table = Table({"ra": tracers.ra, "dec": tracers.dec, "z": tracers.z, "log_mass": log_mass})
     table["ra"].unit = table["dec"].unit = "deg"
     table.meta.update({"SURVEY": SURVEY_NAME, "COMMENT": "synthetic catalogue made by pairvel mock"})
-    table.write(out / CATALOGUE_FILE)
-    files = {"catalogue": CATALOGUE_FILE}
+    table.write(folder / CATALOGUE_FILE)
     for nu, values in maps.items():
-        key, name = ("map", MAP_FILE) if nu == 150 else (f"map_{nu:g}ghz", extra_map_file(nu))
-        write_partial_map(out / name, foot, values.astype(np.float32), nside=spec.nside, nest=False, unit="uK_CMB",
-                          extra_header={"TELESCOP": TELESCOPE_NAME, "FREQ": (f"{nu:g} GHz", "observing frequency"),
-                                        "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
-        files[key] = name
-    return files
+        write_partial_map(folder / _map_file(nu)[1], foot, values.astype(np.float32), nside=spec.nside, nest=False,
+                          unit="uK_CMB", extra_header={"TELESCOP": TELESCOPE_NAME,
+                                                       "FREQ": (f"{nu:g} GHz", "observing frequency"),
+                                                       "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
 
 
 def _options_record(spec: _MockSpec) -> dict:

@@ -645,11 +645,12 @@ def _plot(result: ValidationResult, path) -> None:
     plt.close(fig)
 
 
-def write_validation(result: ValidationResult, out_dir, *, force: bool = False, run_log=None):
+def write_validation(result: ValidationResult, out_dir, *, force: bool = False, run_log=None, claim=None):
     """Write mocks.ecsv (one row per mock), summary.json and calibration.png atomically.
 
-    ``run_log`` (callable() -> str, optional) adds ``run.log``, as in
-    :func:`pairvel.report.outputs.write_folder_atomically`.
+    ``run_log`` (callable() -> str, optional) adds ``run.log`` and ``claim`` (the caller's claim on
+    ``out_dir``, optional) is used instead of claiming here, as in
+    :func:`pairvel.report.folders.write_folder_atomically`.
     """
     from astropy.table import Table
 
@@ -665,7 +666,7 @@ def write_validation(result: ValidationResult, out_dir, *, force: bool = False, 
         (tmp / "summary.json").write_text(json.dumps(_plain(record), indent=2, allow_nan=False) + "\n")
         _plot(result, tmp / "calibration.png")
 
-    return write_folder_atomically(out_dir, fill, force=force, run_log=run_log)
+    return write_folder_atomically(out_dir, fill, force=force, run_log=run_log, claim=claim)
 
 
 def format_summary(result: ValidationResult) -> str:

@@ -3,6 +3,7 @@
 import pytest
 
 from pairvel.core.errors import OutputError
+from pairvel.report.folders import MANIFEST_FILE, read_manifest
 from pairvel.report.outputs import OUTPUT_MARKER, RUN_LOG, write_folder_atomically
 
 
@@ -20,7 +21,8 @@ def test_run_log_is_the_last_file_written_before_the_rename(tmp_path):
     out = write_folder_atomically(tmp_path / "out", fill, run_log=run_log)
     assert calls == ["fill", "log"]
     assert (out / RUN_LOG).read_text() == "2026-01-01T00:00:00.000Z INFO    a line\n"
-    assert sorted(p.name for p in out.iterdir()) == sorted([OUTPUT_MARKER, RUN_LOG, "table.txt"])
+    assert sorted(p.name for p in out.iterdir()) == sorted([OUTPUT_MARKER, MANIFEST_FILE, RUN_LOG, "table.txt"])
+    assert sorted(read_manifest(out)) == [RUN_LOG, "table.txt"]  # the log is listed with the outputs
 
 
 def test_no_run_log_by_default(tmp_path):
