@@ -44,17 +44,22 @@ def write_healpix(path, values, *, nside, pixels=None, unit="uK_CMB", ordering="
     fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path)
 
 
-@pytest.fixture
-def tiny_survey(tmp_path):
-    """A 600-tracer catalogue, a partial nside-256 white-noise map, and a config; returns the folder."""
+def make_tiny_survey(folder):
+    """Write the 600-tracer catalogue, the partial nside-256 white-noise map and the config into ``folder``."""
     rng = np.random.default_rng(11)
     n = 600
     ra = rng.uniform(20, 50, n)
     dec = np.degrees(np.arcsin(rng.uniform(np.sin(np.radians(-10)), np.sin(np.radians(15)), n)))
     pd.DataFrame({"ra": ra, "dec": dec, "z": rng.uniform(0.1, 0.2, n),
-                  "log_mass": rng.uniform(14, 15, n)}).to_csv(tmp_path / "cat.csv", index=False)
+                  "log_mass": rng.uniform(14, 15, n)}).to_csv(folder / "cat.csv", index=False)
     nside = 256
     pix = np.sort(hp.query_disc(nside, hp.ang2vec(35, 2.5, lonlat=True), np.radians(25)))
-    write_healpix(tmp_path / "map.fits", rng.normal(0, 30, pix.size).astype(np.float32), nside=nside, pixels=pix)
-    (tmp_path / "run.toml").write_text(TINY_CONFIG)
+    write_healpix(folder / "map.fits", rng.normal(0, 30, pix.size).astype(np.float32), nside=nside, pixels=pix)
+    (folder / "run.toml").write_text(TINY_CONFIG)
+
+
+@pytest.fixture
+def tiny_survey(tmp_path):
+    """A 600-tracer catalogue, a partial nside-256 white-noise map, and a config; returns the folder."""
+    make_tiny_survey(tmp_path)
     return tmp_path

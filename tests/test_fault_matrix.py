@@ -5,7 +5,8 @@ A case is data: a :class:`Case` names the fault, writes it into a copy of the ti
 come out (exit code, a pattern the one error line must match).  The four checks:
 
 (a) the exit code;
-(b) stderr holds exactly one ``pairvel: error: ...`` line, last, matching the case's pattern,
+(b) stderr holds exactly one ``pairvel: error: ...`` line (for a run stopped by a signal, exit 130
+    or 143: one ``pairvel: interrupted|terminated; ...`` line), last, matching the case's pattern,
     and otherwise only ``pairvel: warning: ...`` lines (no traceback, no internal error);
 (c) the case folder (inputs and the intended ``--out``) holds the same entries after the run as
     before: no output folder, no hidden partial folder, no key file;
@@ -24,8 +25,16 @@ import errno
 import hashlib
 import importlib
 import io
+import json
+import os
 import re
+import shutil
+import signal
+import socket
+import subprocess
 import sys
+import tempfile
+import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,7 +46,7 @@ import pandas as pd
 import pytest
 from astropy.io import fits
 from astropy.table import Table
-from conftest import write_healpix
+from conftest import make_tiny_survey, write_healpix
 
 from pairvel.cli import main
 
@@ -124,8 +133,10 @@ def problems(case: Case, out: Outcome) -> list[str]:
     if out.code != case.exit_code:
         found.append(f"(a) exit code {out.code}, expected {case.exit_code}")
     lines = out.stderr.strip().splitlines()
-    errors = [line for line in lines if line.startswith("pairvel: error: ")]
-    others = [line for line in lines if not line.startswith(("pairvel: error: ", "pairvel: warning: "))]
+    prefix = "pairvel: error: " if case.exit_code == 2 else "pairvel: "  # 130/143: interrupted, terminated
+    errors = [line for line in lines if line.startswith(prefix) and not line.startswith("pairvel: warning: ")]
+    others = [line for line in lines if not line.startswith(("pairvel: error: ", "pairvel: warning: "))
+              and line not in errors]
     if len(errors) != 1 or others or not lines or lines[-1] != errors[0]:
         found.append(f"(b) stderr must end in exactly one error line after warnings only; got {lines}")
     elif not re.search(case.pattern, errors[0]):
@@ -556,10 +567,245 @@ MAP_CASES = [
          r"map\.fits: INDXSCHM = 'EXPLICIT' .* no PIXEL column"),
 ]
 
-# ---------------------------------------------------------------------- later categories
-OUTPUT_CASES: list[Case] = []       # --out problems: a parent that is a file, an existing folder, a key file
-SIGNAL_CASES: list[Case] = []       # interrupted runs (a case's own ``run`` raising KeyboardInterrupt, ...)
-CONCURRENCY_CASES: list[Case] = []  # two runs racing for one --out
+# ---------------------------------------------------------------------- output folder cases
+_EARLIER = {}
+
+
+def _earlier_output_template() -> Path:
+    """A real output of the tiny survey, made once per session and copied into cases that need one."""
+    if "path" not in _EARLIER:
+        holder = tempfile.TemporaryDirectory(prefix="pairvel-matrix-")
+        _EARLIER["holder"] = holder  # removed when the session ends
+        base = Path(holder.name)
+        survey = base / "survey"
+        survey.mkdir()
+        make_tiny_survey(survey)  # the same inputs as every case folder
+        with contextlib.redirect_stderr(io.StringIO()), contextlib.redirect_stdout(io.StringIO()):
+            code = main(["run", str(survey / "run.toml"), "--out", str(base / "out"), "--quiet"])
+        assert code == 0, "the tiny survey must run to make the earlier output"
+        _EARLIER["path"] = base / "out"
+    return _EARLIER["path"]
+
+
+def earlier_output(edit: Callable[[Path], None] | None = None) -> Callable[[Path], None]:
+    """Put a finished pairvel output at ``out`` in the case folder, then apply ``edit(out)``."""
+
+    def prepare(folder: Path) -> None:
+        shutil.copytree(_earlier_output_template(), folder / "out")
+        if edit is not None:
+            edit(folder / "out")
+
+    return prepare
+
+
+def _add_note(out: Path) -> None:
+    (out / "notes.txt").write_text("my notes on this run\n")
+
+
+def _change_summary(out: Path) -> None:
+    (out / "summary.json").write_text((out / "summary.json").read_text() + " ")
+
+
+def _drop_manifest(out: Path) -> None:
+    (out / ".pairvel-manifest.json").unlink()
+
+
+def _config_inside(out: Path) -> None:
+    """A copy of the config, with absolute input paths, kept inside the earlier output."""
+    text = config_text(out.parent).replace('"cat.csv"', f'"{out.parent}/cat.csv"')
+    (out / "run.toml").write_text(text.replace('"map.fits"', f'"{out.parent}/map.fits"'))
+
+
+def _catalogue_inside(folder: Path) -> None:
+    shutil.copy(folder / "cat.csv", folder / "out" / "cat.csv")
+    replace_in_config('path = "cat.csv"', 'path = "out/cat.csv"')(folder)
+
+
+def user_folder(folder: Path) -> None:
+    (folder / "out").mkdir()
+    (folder / "out" / "thesis.tex").write_text("\\section{Results}\n")
+
+
+def in_case_folder(argv: list[str]) -> int:
+    """main() run from the case folder, so the default output folder ./<run.name> lies there."""
+    with contextlib.chdir(Path(argv[1]).parent):
+        return main(argv)
+
+
+def mkdir_denied(argv: list[str]) -> int:
+    """main() where creating any folder named ``out`` fails as in a folder without write permission."""
+    original = os.mkdir
+
+    def guarded(path, *args, **kwargs):
+        if Path(str(path)).name == "out":
+            raise PermissionError(errno.EACCES, "Permission denied", str(path))
+        return original(path, *args, **kwargs)
+
+    with mock.patch("os.mkdir", guarded):
+        return main(argv)
+
+
+def blinded(key_line: str = "") -> Callable[[Path], None]:
+    return set_in_config("blinding", f"enabled = true\n{key_line}".rstrip())
+
+
+def a_key(folder: Path) -> None:
+    """A valid blinding key k.json (of another run)."""
+    from pairvel.report.blinding import write_key
+
+    write_key(folder / "k.json", run_name="another")
+
+
+FORCE_ARGV = RUN_ARGV + ("--force",)
+NO_OUT_ARGV = ("run", "{dir}/run.toml")
+
+OUTPUT_CASES = [
+    Case("exists-without-force", "output", earlier_output(), r"out exists already.*--force"),
+    Case("user-folder-with-force", "output", user_folder, r"out exists and is not a pairvel output", argv=FORCE_ARGV),
+    Case("user-folder-without-force", "output", user_folder, r"out exists already", argv=RUN_ARGV),
+    Case("force-with-a-note-inside", "output", earlier_output(_add_note),
+         r"out holds notes\.txt \(not written by pairvel\)", argv=FORCE_ARGV),
+    Case("force-with-a-changed-output", "output", earlier_output(_change_summary),
+         r"out holds summary\.json \(changed since pairvel wrote it\)", argv=FORCE_ARGV),
+    Case("force-with-a-subfolder-inside", "output", earlier_output(lambda out: (out / "plots").mkdir()),
+         r"out holds plots \(not written by pairvel\)", argv=FORCE_ARGV),
+    Case("force-without-manifest", "output", earlier_output(_drop_manifest),
+         r"without a list of its files \(\.pairvel-manifest\.json\)", argv=FORCE_ARGV),
+    Case("force-config-inside", "output", earlier_output(_config_inside), r"holds the config file \S*out/run\.toml",
+         argv=("run", "{dir}/out/run.toml", "--out", "{dir}/out", "--force")),
+    Case("force-catalogue-inside", "output", both(earlier_output(), _catalogue_inside), r"holds catalogue\.path \S*out/cat\.csv",
+         argv=FORCE_ARGV),
+    Case("force-working-folder-inside", "output", earlier_output(), r"must not hold an input of the run",
+         argv=("run", "{dir}/run.toml", "--out", "{dir}", "--force")),
+    Case("parent-missing", "output", lambda folder: None, r"missing.*does not exist",
+         argv=("run", "{dir}/run.toml", "--out", "{dir}/missing/out")),
+    Case("parent-is-a-file", "output", lambda folder: None, r"parent folder \S*cat\.csv is not a folder",
+         argv=("run", "{dir}/run.toml", "--out", "{dir}/cat.csv/out")),
+    Case("out-is-a-file", "output", lambda folder: None, r"cat\.csv",
+         argv=("run", "{dir}/run.toml", "--out", "{dir}/cat.csv", "--force")),
+    Case("parent-not-writable", "output", lambda folder: None, r"out: cannot be created \(Permission denied\)", run=mkdir_denied),
+    Case("run-name-dot-dot", "output", replace_in_config('name = "tiny"', 'name = ".."'), r"run\.name",
+         argv=NO_OUT_ARGV + ("--force",), run=in_case_folder),
+    Case("run-name-dot", "output", replace_in_config('name = "tiny"', 'name = "."'), r"run\.name",
+         argv=NO_OUT_ARGV + ("--force",), run=in_case_folder),
+    Case("run-name-slash", "output", replace_in_config('name = "tiny"', 'name = "a/b"'), r"run\.name",
+         argv=NO_OUT_ARGV, run=in_case_folder),
+    Case("run-name-backslash", "output", replace_in_config('name = "tiny"', 'name = "a\\\\b"'), r"run\.name",
+         argv=NO_OUT_ARGV, run=in_case_folder),
+    Case("run-name-empty", "output", replace_in_config('name = "tiny"', 'name = ""'), r"run\.name",
+         argv=NO_OUT_ARGV, run=in_case_folder),
+    Case("key-inside-output", "output", blinded('key_path = "out/key.json"'), r"holds blinding\.key_path \S*out/key\.json"),
+    Case("key-not-a-key", "output", both(write_file("key.json", b'{"factor": "big"}'), blinded('key_path = "key.json"')),
+         r"key\.json: not a pairvel blinding key"),
+    Case("key-folder-missing", "output", blinded('key_path = "keys/key.json"'), r"folder \S*keys does not exist"),
+    Case("unblind-not-an-output", "output", a_key, r"output folder \S+: cannot be read back as a pairvel output",
+         argv=("unblind", "{dir}", "--key", "{dir}/k.json", "--out", "{dir}/out")),
+    Case("unblind-bad-key", "output", both(earlier_output(), write_file("k.json", b"not json")), r"k\.json: cannot be read as JSON",
+         argv=("unblind", "{dir}/out", "--key", "{dir}/k.json", "--out", "{dir}/unblinded")),
+    Case("unblind-unblinded-output", "output", both(earlier_output(), a_key), r"out: is not blinded",
+         argv=("unblind", "{dir}/out", "--key", "{dir}/k.json", "--out", "{dir}/unblinded")),
+    Case("validate-into-existing", "output", user_folder, r"out exists already",
+         argv=("validate", "{dir}/out", "--n-mocks", "2")),
+    Case("mock-into-non-empty", "output", user_folder, r"out exists and is not empty",
+         argv=("mock", "{dir}/out", "--n-tracers", "100", "--nside", "64")),
+    Case("demo-into-existing", "output", user_folder, r"out exists already", argv=("demo", "--out", "{dir}/out")),
+]
+
+
+# ---------------------------------------------------------------------- signals and concurrency
+ROOT = Path(__file__).resolve().parents[1]
+
+
+slow = set_in_config("nulls", "n_shuffle = 2000")  # a tiny run long enough to be interrupted
+
+
+def _slow_run(folder: Path, argv: list[str]) -> subprocess.Popen:
+    """``pairvel <argv>`` in a subprocess (the case's config made :data:`slow`); returns once it holds
+    its output folder (the claim file is there)."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    proc = subprocess.Popen([sys.executable, "-m", "pairvel.cli", *argv], cwd=folder, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while not (folder / "out" / ".pairvel-claim").is_file():
+        if proc.poll() is not None or time.monotonic() > deadline:
+            proc.kill()
+            raise RuntimeError(f"the slow run never claimed its output: {proc.communicate()}")
+        time.sleep(0.02)
+    return proc
+
+
+def signalled(sig: int, *, after_s: float = 0.0) -> Callable[[list[str]], int]:
+    """A ``run``: pairvel in a subprocess, sent ``sig`` ``after_s`` seconds after it claimed its output;
+    its stderr is passed on and its exit code returned."""
+
+    def run(argv: list[str]) -> int:
+        folder = Path(argv[1]).parent
+        proc = _slow_run(folder, argv)
+        time.sleep(after_s)
+        proc.send_signal(sig)
+        _, err = proc.communicate(timeout=120)
+        sys.stderr.write(err)
+        return proc.returncode
+
+    return run
+
+
+def while_another_runs(argv: list[str]) -> int:
+    """A second command into the output path a running pairvel holds; the first is then stopped with
+    SIGTERM (and must clean up), so only the second command's answer is judged."""
+    folder = Path(argv[1]).parent
+    first = _slow_run(folder, ["run", str(folder / "run.toml"), "--out", str(folder / "out"), "--quiet"])
+    try:
+        code = main(argv)
+    finally:
+        first.send_signal(signal.SIGTERM)
+        first.communicate(timeout=120)
+    if first.returncode != 143:
+        raise AssertionError(f"the first run ended with {first.returncode}, not 143")
+    return code
+
+
+def claimed_by(*, host: str | None = None, pid: int | None = None) -> Callable[[Path], None]:
+    """``out`` held by the claim record of another command (this test process, or another host)."""
+
+    def prepare(folder: Path) -> None:
+        (folder / "out").mkdir()
+        record = {"kind": "pairvel output claim", "role": "target", "token": "matrix", "created": True,
+                  "pid": pid or os.getpid(), "host": host or socket.gethostname(), "process_start": None,
+                  "started_utc": "2026-12-04T00:00:00+00:00", "command": "pairvel run other.toml"}
+        (folder / "out" / ".pairvel-claim").write_text(json.dumps(record))
+
+    return prepare
+
+
+SIGNAL_CASES = [
+    Case("sigterm-at-claim", "signals", slow, r"pairvel: terminated; no output written",
+         exit_code=143, run=signalled(signal.SIGTERM)),
+    Case("sigterm-during-work", "signals", slow, r"pairvel: terminated; no output written",
+         exit_code=143, run=signalled(signal.SIGTERM, after_s=2.0)),
+    Case("sigint-during-work", "signals", slow, r"pairvel: interrupted; no output written",
+         exit_code=130, run=signalled(signal.SIGINT, after_s=1.0)),
+    Case("sigterm-blinded-run", "signals", both(slow, blinded()), r"pairvel: terminated; no output written",
+         exit_code=143, run=signalled(signal.SIGTERM, after_s=1.0)),
+    Case("sigterm-force-over-earlier", "signals", both(slow, earlier_output()), r"pairvel: terminated; no output written",
+         argv=FORCE_ARGV, exit_code=143, run=signalled(signal.SIGTERM, after_s=1.0)),
+]
+
+CONCURRENCY_CASES = [
+    Case("second-run-same-out", "concurrency", slow, r"out.*claimed by another pairvel command",
+         run=while_another_runs),
+    Case("second-run-same-out-force", "concurrency", slow, r"out.*claimed by another pairvel command",
+         argv=FORCE_ARGV, run=while_another_runs),
+    Case("validate-into-running-out", "concurrency", slow, r"claimed by another pairvel command",
+         argv=("validate", "{dir}/out", "--n-mocks", "2"), run=while_another_runs),
+    Case("mock-into-running-out", "concurrency", slow, r"claimed by another pairvel command",
+         argv=("mock", "{dir}/out", "--n-tracers", "100", "--nside", "64"), run=while_another_runs),
+    Case("claim-of-a-live-process", "concurrency", claimed_by(), r"claimed by another pairvel command"),
+    Case("claim-of-a-live-process-force", "concurrency", claimed_by(), r"claimed by another pairvel command",
+         argv=FORCE_ARGV),
+    Case("claim-from-another-host", "concurrency", claimed_by(host="elsewhere.invalid", pid=1),
+         r"claimed by another pairvel command"),
+]
 
 
 def fault(case: Case, reason: str):
@@ -627,3 +873,14 @@ def test_harness_reports_each_broken_check(fake, broken, tmp_path):
         assert found == []
     else:
         assert [p[:3] for p in found] == [broken], found
+
+
+def test_the_output_cases_refuse_for_their_fault_alone(tiny_survey, capsys):
+    """Control for the --force cases: the same earlier output, untouched, is replaced (exit 0), and
+    the same slow config runs to the end when nothing interrupts it."""
+    earlier_output()(tiny_survey)
+    old = json.loads((tiny_survey / "out" / "summary.json").read_text())["provenance"]["started_utc"]
+    assert main([a.format(dir=tiny_survey) for a in FORCE_ARGV] + ["--quiet"]) == 0
+    new = json.loads((tiny_survey / "out" / "summary.json").read_text())["provenance"]["started_utc"]
+    assert (tiny_survey / "out" / ".pairvel-output").is_file() and new >= old
+    assert not [p for p in tiny_survey.iterdir() if p.name.startswith(".")]
