@@ -502,6 +502,8 @@ CATALOGUE_CASES = [
          r"cat\.parquet: column 'ra' \(catalogue\.ra_column\) must be numeric"),
     Case("parquet-not-parquet", "catalogue", both(catalogue_as("parquet"), write_file("cat.parquet", b"ra,dec,z\n1,2,3\n")),
          r"cat\.parquet: cannot be read as parquet"),
+    Case("duplicate-rows", "catalogue", edit_catalogue(lambda f: pd.concat([f, f.iloc[[5, 9]]])),
+         r"cat\.csv: 2 rows repeat the ra, dec and z .*row 600 repeats row 5.*catalogue\.duplicate_rows"),
     Case("header-only", "catalogue", edit_catalogue(lambda f: f.iloc[:0]), r"cat\.csv: has no rows"),
 ]
 
@@ -561,6 +563,10 @@ MAP_CASES = [
     Case("field-negative", "map", set_in_config("map", "field = -1"), r"map\.fits: field must be in \[0, 0\] .*got -1"),
     Case("mask-not-found", "map", replace_in_config('path = "map.fits"', 'path = "map.fits"\nmask_path = "no.fits"'),
          r"mask \S*no\.fits cannot be read: no such file"),
+    Case("kelvin-labelled-uk", "map", rewrite_map(values=lambda pix, val: val * 1e-6),
+         r"map\.fits: pixel rms is 3e-05 uK .*'uK_CMB'.*map\.rms_unit_check = false"),
+    Case("uk-labelled-kelvin", "map", rewrite_map(values=lambda pix, val: val * 10, unit="K_CMB"),
+         r"map\.fits: pixel rms is 3e\+08 uK .*'K_CMB'.*map\.rms_unit_check = false"),
     Case("text-column", "map", write_file("map.fits", text_column_map), r"map\.fits.*numeric"),
     Case("truncated-in-header", "map", truncate("map.fits", 5000), r"map\.fits cannot be read: .*truncated"),
     Case("explicit-without-pixel-column", "map", write_file("map.fits", explicit_map_without_pixel_column),
