@@ -114,6 +114,10 @@ def _closing_summary(result, out: Path) -> str:
         f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
         f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
     ]
+    spread = result.extra.get("region_seed_spread")
+    if spread is not None:
+        lines.append(f"  tau_mean over {spread['n_seeds']} region seeds: std {spread['std_over_error']:.2f} of its error "
+                     f"(range {min(spread['tau_mean']):.3e} to {max(spread['tau_mean']):.3e})")
     for n in result.nulls:
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
                      f"(PTE {n.pte_mean:.2g}): {'pass' if n.passed else 'FAIL'}")
