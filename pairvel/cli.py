@@ -186,12 +186,41 @@ def _cmd_unblind(args, run_log) -> int:
 def _cmd_keys(args) -> int:
     from .input.config import iter_config_keys
 
+    rows = [(key, typ, "(required)" if key.endswith(".path") and default is None else repr(default), doc)
+            for key, typ, default, doc in iter_config_keys()]
     if args.markdown:
         print("| key | type | default | meaning |\n|---|---|---|---|")
-    for key, typ, default, doc in iter_config_keys():
-        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
-        print(f"| `{key}` | {typ} | {shown} | {doc} |" if args.markdown else f"{key:34s} {typ:22s} {shown:12s} {doc}")
+        for row in rows:
+            print("| `{}` | {} | {} | {} |".format(*row))
+    else:
+        print("Config keys by [section]: key, type, default, meaning (--markdown: one Markdown table)\n")
+        print("\n".join(_keys_table(rows)))
     return EXIT_OK
+
+
+#: Width of `pairvel keys` (every line fits) and the widest type and default columns (wrapped beyond).
+_KEYS_WIDTH, _KEYS_TYPE_MAX, _KEYS_DEFAULT_MAX = 100, 16, 19
+
+
+def _keys_table(rows) -> list[str]:
+    """The config keys as a plain-text table: a ``[section]`` line, then key, type, default and
+    meaning in columns, each cell wrapped within its column so that no line exceeds _KEYS_WIDTH."""
+    import itertools
+    import textwrap
+
+    lines = []
+    for section, group in itertools.groupby(rows, key=lambda row: row[0].split(".", 1)[0]):
+        cells = [(key.split(".", 1)[1], typ, default, doc) for key, typ, default, doc in group]
+        widths = [max(len(c[0]) for c in cells),
+                  min(_KEYS_TYPE_MAX, max(len(c[1]) for c in cells)),
+                  min(_KEYS_DEFAULT_MAX, max(len(c[2]) for c in cells))]
+        widths.append(_KEYS_WIDTH - 2 - sum(w + 2 for w in widths))
+        lines += ["" if lines else None, f"[{section}]"]
+        for row in cells:
+            wrapped = [textwrap.wrap(text, width, break_on_hyphens=False) or [""] for text, width in zip(row, widths)]
+            for parts in itertools.zip_longest(*wrapped, fillvalue=""):
+                lines.append(("  " + "  ".join(f"{p:{w}s}" for p, w in zip(parts, widths))).rstrip())
+    return [line for line in lines if line is not None]
 
 
 def _cmd_mock(args) -> int:
@@ -218,7 +247,7 @@ def _add_validate_parser(sub, common) -> None:
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
                          description="Make many cheap mock light cones with linear-theory velocities and a known "
                                      "optical depth, push each through the pipeline's estimator, jackknife and fit, "
-                                     "and report the bias, the 68%% coverage and the jackknife error / scatter ratio.")
+                                     "and report the bias, the 68% coverage and the jackknife error / scatter ratio.")
     val.add_argument("out", help="new output folder (mocks.ecsv, summary.json, calibration.png)")
     val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks})")
     val.add_argument("--seed", type=int, default=d.seed, help=f"master seed (default {d.seed})")

@@ -104,10 +104,66 @@ def test_force_never_replaces_a_folder_pairvel_did_not_write(tiny_survey, capsys
 
 def test_keys_and_help(capsys):
     assert main(["keys"]) == 0
-    assert "aperture.radius_arcmin" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "\n[aperture]\n  radius_arcmin " in out
     with pytest.raises(SystemExit) as exc:
         main(["run", "--help"])
     assert exc.value.code == 0
+
+
+def test_keys_table_groups_by_section_within_100_columns(capsys):
+    from pairvel.input.config import iter_config_keys
+
+    assert main(["keys"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert max(len(line) for line in lines) <= 100
+    keys = list(iter_config_keys())
+    sections = list(dict.fromkeys(key.split(".")[0] for key, *_ in keys))
+    assert [line for line in lines if line.startswith("[")] == [f"[{s}]" for s in sections]
+    # each row: a line whose four cells start the columns, then continuation lines in the same columns
+    section, rows = None, {}
+    for line in lines:
+        if line.startswith("["):
+            section = line.strip("[]")
+        elif section is not None and re.match(r"  \S", line):
+            starts = [2] + [2 + m.end() - 1 for m in re.finditer(r" {2,}\S", line[2:])]
+            assert len(starts) == 4, line
+            rows[f"{section}.{line.split()[0]}"] = [[] for _ in starts]
+            current = (starts, rows[f"{section}.{line.split()[0]}"])
+        if section is not None and line.startswith("  "):
+            starts, cells = current
+            for k, (a, b) in enumerate(zip(starts, starts[1:] + [None])):
+                cells[k] += line[a:b].split()
+    assert list(rows) == [key for key, *_ in keys]
+    for key, typ, default, doc in keys:
+        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
+        assert rows[key] == [[key.split(".")[1]], typ.split(), shown.split(), doc.split()], key
+
+
+def test_keys_markdown_is_the_readme_table(capsys):
+    assert main(["keys", "--markdown"]) == 0
+    printed = capsys.readouterr().out.splitlines()
+    assert printed[:2] == ["| key | type | default | meaning |", "|---|---|---|---|"]
+    readme = (Path(__file__).resolve().parents[1] / "configs" / "README.md").read_text().splitlines()
+    assert printed[2:] == [line for line in readme if line.startswith("| `")]
+
+
+def subcommands():
+    from pairvel.cli import _parser
+
+    action = next(a for a in _parser()._actions if a.dest == "command")
+    return sorted(action.choices)
+
+
+@pytest.mark.parametrize("argv", [[]] + [[name] for name in subcommands()])
+def test_help_texts_print_percent_signs_once(argv, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main([*argv, "--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    assert "%%" not in out and "%(" not in out
+    if argv == ["validate"]:
+        assert "68% coverage" in out
 
 
 def test_healpix_jackknife_regions(tiny_survey):
@@ -282,7 +338,7 @@ def test_keys_into_head():
     producer.stdout.close()  # like `| head -n 1`: the reader goes away while pairvel may still be writing
     err = producer.stderr.read()
     assert producer.wait(timeout=120) == 0 and err == b"", err
-    assert first.startswith(b"run.name ")
+    assert first.startswith(b"Config keys by [section]")
 
 
 def test_other_broken_pipes_are_still_faults(capsys, monkeypatch):
