@@ -241,7 +241,7 @@ def _cmd_mock(args) -> int:
 
 
 def _add_validate_parser(sub, common) -> None:
-    from .sims.validate import ValidationOptions
+    from .sims.validate import MIN_MOCKS_FOR_VERDICTS, ValidationOptions
 
     d = ValidationOptions()
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
@@ -249,7 +249,8 @@ def _add_validate_parser(sub, common) -> None:
                                      "optical depth, push each through the pipeline's estimator, jackknife and fit, "
                                      "and report the bias, the 68% coverage and the jackknife error / scatter ratio.")
     val.add_argument("out", help="new output folder (mocks.ecsv, summary.json, calibration.png)")
-    val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks})")
+    val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks}; with fewer than "
+                                                                    f"{MIN_MOCKS_FOR_VERDICTS} the verdicts mean little)")
     val.add_argument("--seed", type=int, default=d.seed, help=f"master seed (default {d.seed})")
     val.add_argument("--n-tracers", type=int, default=d.n_tracers, help=f"tracers per mock (default {d.n_tracers})")
     val.add_argument("--tau-mean", type=float, default=d.tau_mean, help=f"injected optical depth (default {d.tau_mean:g})")
