@@ -78,7 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(demo)
 
-    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json)",
+    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json, run.toml)",
                           description="Generate a self-consistent synthetic survey with a known kSZ signal.")
     mock.add_argument("out", help="new folder for the mock files")
     mock.add_argument("--n-tracers", type=int, default=30000, help="number of tracers (default 30000)")
@@ -127,7 +127,7 @@ def _closing_summary(result, out: Path) -> str:
     return "\n".join(lines)
 
 
-def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool) -> int:
+def _cmd_run(args, config_path: Path, default_out: Path, run_log) -> int:
     from .core.progress import Progress
     from .input.config import load_config
     from .pipeline import run_pipeline
@@ -143,10 +143,6 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
         _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
         progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
         result = run_pipeline(cfg, progress=progress)
-        if demo:
-            from .sims.demo import attach_truth_check
-
-            result = attach_truth_check(result)
         if cfg.blinding.enabled:
             from .report.blinding import blind_result
 
@@ -157,8 +153,8 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
         with progress.stage("writing outputs"):
             write_outputs(result, out, run_log=run_log, claim=claim)
     print(_closing_summary(result, out))
-    if demo:
-        print(result.extra["demo_check"]["verdict"])
+    if "truth_check" in result.extra:  # run.truth_path (the demo sets it)
+        print(result.extra["truth_check"]["verdict"])
     progress.say(f"finished in {progress.elapsed:.0f} s")
     return EXIT_OK
 
@@ -225,6 +221,7 @@ def _keys_table(rows) -> list[str]:
 
 def _cmd_mock(args) -> int:
     from .sims.mock import make_mock_survey
+    from .sims.mockconfig import RUN_CONFIG_FILE
 
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
@@ -237,6 +234,9 @@ def _cmd_mock(args) -> int:
     if args.extra_frequency:
         print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
               " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
+    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
+    print(f"  run it with: pairvel run {config}   (a ready-to-run config with the mock's assumptions; "
+          f"compares tau_mean with truth.json; add --out DIR to choose the output folder)")
     return EXIT_OK
 
 
@@ -387,12 +387,12 @@ def _sigterm_unwinds():
 
 def _dispatch(args, run_log) -> int:
     if args.command == "run":
-        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log, demo=False)
+        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log)
     if args.command == "demo":
         from .sims.demo import demo_config_path
 
         stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
-        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log, demo=True)
+        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log)
     if args.command == "mock":
         return _cmd_mock(args)
     if args.command == "unblind":

@@ -475,3 +475,59 @@ def test_logged_warnings_are_kept_with_their_logger():
         {"text": "trend odd", "source": "pairvel.maps.trend", "stage": "first"},
         {"text": "plain", "source": "UserWarning in test_cli", "stage": None},
     ]
+
+
+# --- any run checked against a truth.json (run.truth_path)
+
+def with_truth(folder, truth, *, extra=""):
+    (folder / "truth.json").write_text(truth if isinstance(truth, str) else json.dumps(truth))
+    cfg = folder / "run.toml"
+    cfg.write_text(cfg.read_text().replace('seed = 3\n', 'seed = 3\ntruth_path = "truth.json"\n') + extra)
+
+
+def test_run_compares_tau_mean_with_a_truth_file(tiny_survey, capsys):
+    with_truth(tiny_survey, {"tau_mean": 1.5e-3, "aperture_response": 0.98})
+    assert run(tiny_survey) == 0
+    printed = capsys.readouterr().out
+    summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
+    check = summary["truth_check"]
+    assert check["tau_mean_injected"] == 1.5e-3 and check["truth_file"] == str(tiny_survey / "truth.json")
+    # the pull from the run's own fit (internal consistency, to rounding)
+    assert check["pull_sigma"] == pytest.approx((summary["tau_mean"] - 1.5e-3) / summary["tau_mean_error"], rel=1e-12)
+    assert "tau_mean_vs_realised_velocity" not in check  # this truth holds no realised velocity curve
+    verdict = check["verdict"]
+    assert verdict.startswith("truth check: injected tau_mean = 1.500e-03") and verdict in printed
+    assert printed.index("outputs:") < printed.index("truth check:")
+    report = (tiny_survey / "out" / "report.md").read_text()
+    assert "## Comparison with the injected truth" in report and verdict in report
+    assert "expected recovered value is about 1.470e-03" in report  # 1.5e-3 x 0.98
+
+
+def test_run_without_truth_path_has_no_truth_check(tiny_survey, capsys):
+    assert run(tiny_survey) == 0
+    assert "truth check" not in capsys.readouterr().out
+    assert "truth_check" not in json.loads((tiny_survey / "out" / "summary.json").read_text())
+
+
+@pytest.mark.parametrize("truth, match", [
+    (None, r"run\.truth_path .*truth\.json: file not found"),
+    ("{not json", r"run\.truth_path .*truth\.json: is not JSON"),
+    ("[1, 2]", r"run\.truth_path .*truth\.json: must hold a JSON object .*; got list"),
+    ('{"tau_mean": "2e-3"}', r"run\.truth_path .*truth\.json: 'tau_mean' must be a finite number .*; got '2e-3'"),
+    ('{"bias": 0.4}', r"run\.truth_path .*truth\.json: 'tau_mean' must be a finite number .*; got None"),
+])
+def test_unusable_truth_file_stops_before_the_work(tiny_survey, capsys, truth, match):
+    with_truth(tiny_survey, "" if truth is None else truth)
+    if truth is None:
+        (tiny_survey / "truth.json").unlink()
+    assert run(tiny_survey) == 2
+    assert re.search(match, only_error_line(capsys))
+    assert not (tiny_survey / "out").exists()
+
+
+def test_truth_check_and_blinding_exclude_each_other(tiny_survey, capsys):
+    with_truth(tiny_survey, {"tau_mean": 1e-3}, extra="\n[blinding]\nenabled = true\n")
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "'run.truth_path' cannot be used with blinding.enabled" in line and "run.toml" in line
+    assert not (tiny_survey / "out").exists()
