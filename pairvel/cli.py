@@ -211,12 +211,12 @@ def _keys_table(rows) -> list[str]:
                   min(_KEYS_TYPE_MAX, max(len(c[1]) for c in cells)),
                   min(_KEYS_DEFAULT_MAX, max(len(c[2]) for c in cells))]
         widths.append(_KEYS_WIDTH - 2 - sum(w + 2 for w in widths))
-        lines += ["" if lines else None, f"[{section}]"]
+        lines += [""] * bool(lines) + [f"[{section}]"]
         for row in cells:
             wrapped = [textwrap.wrap(text, width, break_on_hyphens=False) or [""] for text, width in zip(row, widths)]
             for parts in itertools.zip_longest(*wrapped, fillvalue=""):
                 lines.append(("  " + "  ".join(f"{p:{w}s}" for p, w in zip(parts, widths))).rstrip())
-    return [line for line in lines if line is not None]
+    return lines
 
 
 def _cmd_mock(args) -> int:
@@ -235,8 +235,8 @@ def _cmd_mock(args) -> int:
         print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
               " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
     config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
-    print(f"  run it with: pairvel run {config}   (a ready-to-run config with the mock's assumptions; "
-          f"compares tau_mean with truth.json; add --out DIR to choose the output folder)")
+    print(f"  run it with: pairvel run {config}\n"
+          f"    (the mock's bias, cosmology and aperture; the run compares tau_mean with truth.json)")
     return EXIT_OK
 
 

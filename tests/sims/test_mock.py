@@ -334,7 +334,7 @@ def test_mock_command_says_how_to_run_it(tmp_path, capsys, monkeypatch):
     monkeypatch.setattr(mock, "make_mock_survey", lambda out, **kw: made(out, **{**kw, **TINY}))
     assert main(["mock", str(tmp_path / "m"), "--seed", "4", "--extra-frequency", "90", "--quiet"]) == 0
     printed = capsys.readouterr().out
-    assert f"run it with: pairvel run {tmp_path / 'm' / 'run.toml'} " in printed
+    assert f"  run it with: pairvel run {tmp_path / 'm' / 'run.toml'}\n" in printed
     text = (tmp_path / "m" / "run.toml").read_text()
     cfg = load_config(tmp_path / "m" / "run.toml")
     assert cfg.map.path == tmp_path / "m" / MAP_FILE and cfg.run.seed == 4
