@@ -189,7 +189,8 @@ def _cmd_keys(args) -> int:
     if args.markdown:
         print("| key | type | default | meaning |\n|---|---|---|---|")
     for key, typ, default, doc in iter_config_keys():
-        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
+        required = default is None and (key.endswith(".path") or "(required:" in doc)
+        shown = "(required)" if required else repr(default)
         print(f"| `{key}` | {typ} | {shown} | {doc} |" if args.markdown else f"{key:34s} {typ:22s} {shown:12s} {doc}")
     return EXIT_OK
 

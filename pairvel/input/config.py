@@ -187,7 +187,8 @@ class CovarianceConfig:
 
 @dataclass(frozen=True)
 class TheoryConfig:
-    bias: float = _key(1.0, "linear bias of the tracers in the pairwise-velocity template", bounds=(0.01, 20.0))
+    bias: float | None = _key(None, "linear bias b of the tracers in the pairwise-velocity template (required: "
+                                    "tau_mean scales as 1/b, so no value is assumed)", bounds=(0.01, 20.0))
     wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
     fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
     fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
@@ -528,6 +529,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("catalogue.path", "is required")
     if cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
+    if cfg.theory.bias is None:
+        bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
+                           "tracers under [theory] (pairvel does not derive it from masses)")
     if not cfg.catalogue.z_min < cfg.catalogue.z_max:
         bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
     if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
