@@ -364,7 +364,10 @@ _COSMOLOGY_DOCS = {
     "omega_b": "baryon density parameter today",
     "n_s": "scalar spectral index of the primordial power spectrum",
     "sigma_8": "rms linear density contrast in 8 Mpc/h spheres at z = 0 (normalises P(k))",
-    "t_cmb_k": "CMB temperature in K",
+    "t_cmb_k": "CMB temperature in K (sets the photon density of the radiation term)",
+    "n_eff": "effective number of massless neutrino species in the radiation density",
+    "radiation": "include radiation (photons at t_cmb_k, n_eff massless neutrinos) in the distances and H(z); "
+                 "false: matter + Lambda only",
 }
 
 _SECTIONS = {f.name: f for f in dataclasses.fields(Config) if f.name != "source"}
