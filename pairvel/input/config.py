@@ -132,6 +132,11 @@ class ApertureConfig:
                                 choices=("centre", "fraction", "subsample"))
     method: str = _key("auto", "photometry path: kernel (compiled, no Python loop over tracers), direct (one disc "
                        "query per tracer) or auto (kernel unless subsample)", choices=("auto", "kernel", "direct"))
+    beam_fwhm_arcmin: float | None = _key(None, "Gaussian beam FWHM of the map, arcmin; only states what tau_mean "
+                                                "means for point-like tracers (the fraction of a beam-convolved point "
+                                                "source the aperture keeps) in the outputs; unset: "
+                                                "prefilter.beam_fwhm_arcmin when set, else not stated",
+                                          bounds=(0.0, 600.0))
 
 
 @dataclass(frozen=True)
@@ -580,6 +585,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
             bad("prefilter.noise_uk_arcmin", f"is required for kind = '{pf.kind}'")
         if pf.beam_fwhm_arcmin is None and pf.beam_path is None:
             bad("prefilter.beam_fwhm_arcmin", f"or prefilter.beam_path is required for kind = '{pf.kind}'")
+    if None not in (ap.beam_fwhm_arcmin, pf.beam_fwhm_arcmin) and ap.beam_fwhm_arcmin != pf.beam_fwhm_arcmin:
+        bad("aperture.beam_fwhm_arcmin", f"and prefilter.beam_fwhm_arcmin describe the same map beam; got "
+                                         f"{ap.beam_fwhm_arcmin:g} and {pf.beam_fwhm_arcmin:g}")
     if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:

@@ -6,7 +6,7 @@ stage and the mocks all use one expansion history.
 
 from __future__ import annotations
 
-__all__ = ["Cosmology", "DEFAULT_COSMOLOGY"]
+__all__ = ["Cosmology", "DEFAULT_COSMOLOGY", "distance_convention"]
 
 from dataclasses import dataclass
 from functools import cached_property
@@ -86,12 +86,6 @@ class Cosmology:
         return FlatLambdaCDM(H0=100.0 * self.h, Om0=self.omega_m, Ob0=self.omega_b,
                              Tcmb0=self.t_cmb_k if self.radiation else 0.0, Neff=self.n_eff, m_nu=0.0)
 
-    def distance_convention(self) -> str:
-        """One line saying what E(z) includes, for reports."""
-        if not self.radiation:
-            return "flat LCDM distances without radiation (matter + Lambda)"
-        return (f"flat LCDM distances with radiation: photons at T_CMB = {self.t_cmb_k:g} K and N_eff = "
-                f"{self.n_eff:g} massless neutrinos (Omega_r = {float(self.astropy.Onu0 + self.astropy.Ogamma0):.3g})")
 
     def comoving_distance_mpc(self, z):
         """Line-of-sight comoving distance in Mpc at redshift ``z`` (array-like)."""
@@ -111,3 +105,15 @@ class Cosmology:
 
 
 DEFAULT_COSMOLOGY = Cosmology()
+
+
+def distance_convention(cosmo) -> str:
+    """One line saying what the distances and H(z) include, for reports.
+
+    ``cosmo`` is a :class:`Cosmology` or anything with its attributes (a config read back from
+    summary.json); a record without ``radiation`` or ``n_eff`` predates those keys and had the defaults.
+    """
+    if not getattr(cosmo, "radiation", True):
+        return "flat; matter + Lambda, no radiation"
+    return (f"flat; matter + Lambda + radiation (photons at {cosmo.t_cmb_k:g} K, N_eff = "
+            f"{getattr(cosmo, 'n_eff', Cosmology.n_eff):g} massless neutrinos)")

@@ -7,7 +7,7 @@ from scipy import integrate
 
 from pairvel.core.errors import ConfigError
 from pairvel.input.config import config_from_dict
-from pairvel.model.cosmology import Cosmology
+from pairvel.model.cosmology import Cosmology, distance_convention
 from pairvel.pairs.geometry import comoving_positions
 
 Z = np.array([0.1, 0.5, 1.0, 3.0])
@@ -65,11 +65,11 @@ def test_keys_reach_the_geometry_and_are_checked(tmp_path):
     base = {"catalogue": {"path": "c.csv"}, "map": {"path": "m.fits"}, "theory": {"bias": 1.0}}
     cfg = config_from_dict({**base, "cosmology": {"n_eff": 2.0, "radiation": False}})
     assert cfg.cosmology.n_eff == 2.0 and cfg.cosmology.radiation is False
-    assert "without radiation" in cfg.cosmology.distance_convention()
+    assert distance_convention(cfg.cosmology) == "flat; matter + Lambda, no radiation"
     pos = comoving_positions([10.0], [5.0], [1.0], cosmo=cfg.cosmology)
     np.testing.assert_allclose(np.linalg.norm(pos), Cosmology(radiation=False).comoving_distance_mpc(1.0), rtol=1e-12)
     with pytest.raises(ConfigError, match=r"cosmology parameter 'n_eff' is out of range; got -1\.0"):
         config_from_dict({**base, "cosmology": {"n_eff": -1.0}})
     with pytest.raises(ConfigError, match=r"'cosmology\.radiation' must be true or false"):
         config_from_dict({**base, "cosmology": {"radiation": 1}})
-    assert "N_eff = 3.046" in Cosmology().distance_convention()
+    assert "N_eff = 3.046 massless" in distance_convention(Cosmology())
