@@ -217,6 +217,8 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         From :func:`load_power`.
     """
     tc = theory_cfg
+    if tc.bias is None:  # load_config refuses such a config; this catches one built in code
+        raise TheoryError("theory.bias is required: tau_mean scales as 1/b, so no value is assumed")
     if tc.redshift_weighting == "pair_distribution":
         z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo)
     else:
