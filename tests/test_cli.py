@@ -104,7 +104,10 @@ def test_force_never_replaces_a_folder_pairvel_did_not_write(tiny_survey, capsys
 
 def test_keys_and_help(capsys):
     assert main(["keys"]) == 0
-    assert "aperture.radius_arcmin" in capsys.readouterr().out
+    text = capsys.readouterr().out
+    assert "aperture.radius_arcmin" in text
+    bias = [line for line in text.splitlines() if line.startswith("theory.bias ")]
+    assert len(bias) == 1 and "(required)" in bias[0] and "1.0" not in bias[0]  # no default value shown
     with pytest.raises(SystemExit) as exc:
         main(["run", "--help"])
     assert exc.value.code == 0
