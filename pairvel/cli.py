@@ -106,6 +106,8 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _closing_summary(result, out: Path) -> str:
+    from .report.assumptions import closing_lines
+
     f = result.fit
     lines = [
         f"pairvel: {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, z_eff = {result.z_eff:.3f}",
@@ -113,6 +115,7 @@ def _closing_summary(result, out: Path) -> str:
         f"(sqrt(chi2_null - chi2_min) = {f.snr_delta_chi2:.2f})",
         f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
         f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
+        *closing_lines(result),
     ]
     spread = result.extra.get("region_seed_spread")
     if spread is not None:
@@ -182,8 +185,10 @@ def _cmd_unblind(args, run_log) -> int:
 def _cmd_keys(args) -> int:
     from .input.config import iter_config_keys
 
-    rows = [(key, typ, "(required)" if key.endswith(".path") and default is None else repr(default), doc)
-            for key, typ, default, doc in iter_config_keys()]
+    def shown(key, default, doc):
+        return "(required)" if default is None and (key.endswith(".path") or "(required:" in doc) else repr(default)
+
+    rows = [(key, typ, shown(key, default, doc), doc) for key, typ, default, doc in iter_config_keys()]
     if args.markdown:
         print("| key | type | default | meaning |\n|---|---|---|---|")
         for row in rows:

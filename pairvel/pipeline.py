@@ -428,7 +428,7 @@ def covariance(cfg: Config, pr, stack: TemperatureStack, positions, temps, edges
         cov = bootstrap_covariance(bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng))
     covs = {"jackknife": cov_jk, cc.estimator: cov}
     diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
-                                  used=cc.estimator)
+                                  used=cc.estimator, n_fit_bins=int(fit_bins(cfg, edges).sum()))
     return CovarianceResult(p, p_jk, jk_rows, cov_jk, cov, n_cov, n_jk, diag, bool(n_sims))
 
 
@@ -444,10 +444,15 @@ class TemplateResult:
     info: dict
 
 
+def fit_bins(cfg: Config, edges) -> np.ndarray:
+    """(n_bins,) bool: the bins whose centre lies in the fit range [fit_r_min_mpc, fit_r_max_mpc)."""
+    r_mid = 0.5 * (edges[1:] + edges[:-1])
+    return (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+
+
 def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, progress: Progress) -> TemplateResult:
     """The linear template averaged like the estimator, times the predicted trend-removal loss."""
-    r_mid = 0.5 * (edges[1:] + edges[:-1])
-    in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+    in_fit = fit_bins(cfg, edges)
     weight = pr.denominator * in_fit
     z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
     v12, info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,

@@ -106,6 +106,8 @@ def test_keys_and_help(capsys):
     assert main(["keys"]) == 0
     out = capsys.readouterr().out
     assert "\n[aperture]\n  radius_arcmin " in out
+    bias = [line for line in out.split("\n[theory]\n")[1].splitlines() if line.startswith("  bias ")]
+    assert len(bias) == 1 and "(required)" in bias[0] and "1.0" not in bias[0]  # no default value shown
     with pytest.raises(SystemExit) as exc:
         main(["run", "--help"])
     assert exc.value.code == 0
@@ -135,8 +137,12 @@ def test_keys_table_groups_by_section_within_100_columns(capsys):
             for k, (a, b) in enumerate(zip(starts, starts[1:] + [None])):
                 cells[k] += line[a:b].split()
     assert list(rows) == [key for key, *_ in keys]
-    for key, typ, default, doc in keys:
-        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
+    # the same cells as the documented table in configs/README.md (`pairvel keys --markdown`)
+    readme = (Path(__file__).resolve().parents[1] / "configs" / "README.md").read_text().splitlines()
+    documented = [line.strip("|").split(" | ") for line in readme if line.startswith("| `")]
+    assert len(documented) == len(keys)
+    for key, typ, shown, doc in documented:
+        key = key.strip(" `")
         assert rows[key] == [[key.split(".")[1]], typ.split(), shown.split(), doc.split()], key
 
 

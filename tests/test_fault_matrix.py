@@ -415,6 +415,8 @@ CONFIG_CASES = [
          r"'catalogue\.z_max' must exceed catalogue\.z_min; got 0\.3 and 0\.2"),
     Case("proxy-cut-without-column", "config", replace_in_config('proxy_column = "log_mass"', "proxy_min = 14.5"),
          r"'catalogue\.proxy_column' is required when proxy_min or proxy_max is set"),
+    Case("bias-missing", "config", replace_in_config("bias = 1.0\n", ""),
+         r"'theory\.bias' is required: tau_mean scales as 1/b"),
     Case("fit-range-empty", "config", set_in_config("theory", "fit_r_min_mpc = 60.0\nfit_r_max_mpc = 30.0"),
          r"'theory\.fit_r_max_mpc' must exceed theory\.fit_r_min_mpc"),
     Case("prior-half-set", "config", set_in_config("theory", "fit_velocity_scale = true\ntau_prior_mean = 1e-4"),

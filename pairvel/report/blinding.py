@@ -166,7 +166,7 @@ EXTRA_RULES = {
     "template": 0,                     # the model's shape and how it was made
     "rotations_used": 0, "prefilter": 0, "prefilter_transfer": 0, "multifrequency": 0,
     "covariance_diagnostics": {"used": 0, "condition_number": 0, "errors": _Each(1), "n_samples": 0,
-                               "too_few_samples": 0},
+                               "hartlap_factor": 0, "n_fit_bins": 0, "too_few_samples": 0},
     "radius_fits": {"radius_arcmin": 0, "primary": 0, "fit": FIT_RULES, "p": 1, "p_err": 1, "problem": 0},
     "proxy_bins": {"proxy_min": 0, "proxy_max": 0, "proxy_median": 0, "n_tracers": 0, "n_pairs": 0,
                    "n_regions": 0, "z_mean": 0, "fit": FIT_RULES, "problem": 0},

@@ -59,19 +59,20 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
         "catalogue": {"path": files["catalogue"], "ra_column": "ra", "dec_column": "dec", "z_column": "z",
                       "proxy_column": "log_mass", "z_min": float(o["z_min"]), "z_max": float(o["z_max"])},
         "map": {"path": files["map"]},
-        "aperture": {"radius_arcmin": float(o["aperture_radius_arcmin"])},
+        "aperture": {"radius_arcmin": float(o["aperture_radius_arcmin"]), "beam_fwhm_arcmin": float(o["beam_fwhm_arcmin"])},
         "trend": {"enabled": True, "sigma_z": float(trend_sigma_z)},
         "bins": {"edges_mpc": [float(e) for e in record["edges_mpc"]]},
         "theory": {"bias": float(record["bias"])},
-        "cosmology": {k: float(v) for k, v in o["cosmology"].items()},
+        "cosmology": dict(o["cosmology"]),  # every parameter as the mock recorded it (numbers and switches)
     }
     lines = [
         f"# Ready-to-run config written by pairvel {__version__} (`pairvel mock`) beside the synthetic survey it",
         f"# made: {record['n_tracers']} tracers, nside {o['nside']}, injected tau_mean = {record['tau_mean']:g}, "
         f"seed {record.get('seed')}.",
         "# Paths are relative to this file. Run it with:  pairvel run <this folder>/run.toml --out <new folder>",
-        "# The keys below repeat the assumptions the mock was made with (bias, cosmology, aperture, redshift",
-        "# range, bins, trend kernel); run.truth_path makes the run compare tau_mean with the injected value.",
+        "# The keys below repeat the assumptions the mock was made with (bias, cosmology, aperture and",
+        "# beam, redshift range, bins, trend kernel); run.truth_path makes the run compare tau_mean with",
+        "# the injected value.",
     ]
     for section, keys in sections.items():
         lines += ["", f"[{section}]"] + [f"{key} = {_toml(value)}" for key, value in keys.items()]

@@ -54,6 +54,7 @@ width_mpc = 30.0
 n_regions = 12
 
 [theory]
+bias = 1.0
 likelihood = "sellentin-heavens"
 proxy_bin_edges = [14.0, 14.5, 15.0]
 fit_velocity_scale = true

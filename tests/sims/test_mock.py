@@ -299,6 +299,7 @@ def test_run_config_states_the_mock_assumptions(small_mock):
     assert cfg.run.truth_path == out / "truth.json" and cfg.run.name == "survey-run"
     assert cfg.theory.bias == truth.bias == 0.4 and cfg.cosmology == DEFAULT_COSMOLOGY
     assert cfg.aperture.radius_arcmin == SMALL["aperture_radius_arcmin"]
+    assert cfg.aperture.beam_fwhm_arcmin == SMALL["beam_fwhm_arcmin"]
     assert (cfg.catalogue.z_min, cfg.catalogue.z_max) == (SMALL["z_min"], SMALL["z_max"])
     assert cfg.catalogue.proxy_column == "log_mass" and cfg.trend.enabled and cfg.trend.sigma_z == 0.01
     np.testing.assert_array_equal(cfg.bins.edges(), truth.edges_mpc)  # the bins of the realised velocity
