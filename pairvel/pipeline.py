@@ -43,6 +43,7 @@ from .pairs.distributed import pairwise_momentum_units
 from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
+from .sims.truth import attach_truth_check, read_truth
 from .stats.covariance import (
     bootstrap_covariance,
     bootstrap_samples,
@@ -75,11 +76,15 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     -------
     RunResult
         Its ``warnings`` keep every Python warning and ``pairvel`` WARNING record of the run, with
-        the stage that raised it (each is also shown as usual).
+        the stage that raised it (each is also shown as usual).  With ``run.truth_path`` its
+        ``extra["truth_check"]`` compares tau_mean with the injected one (:mod:`pairvel.sims.truth`).
     """
     progress = progress or Progress(10, quiet=True)
+    truth = read_truth(cfg.run.truth_path) if cfg.run.truth_path else None  # a bad truth file fails before the work
     with collect_warnings(lambda: progress.current) as kept:
         result = run_stages(cfg, progress)
+        if truth is not None:
+            result = attach_truth_check(result, truth, path=cfg.run.truth_path)
     return dataclasses.replace(result, warnings=tuple(kept))
 
 

@@ -337,6 +337,11 @@ def both(*steps) -> Callable[[Path], None]:
     return prepare
 
 
+def with_truth(content: bytes) -> Callable[[Path], None]:
+    """A truth.json holding ``content``, named by the config's run.truth_path."""
+    return both(set_in_config("run", 'truth_path = "truth.json"'), write_file("truth.json", content))
+
+
 def full_sky_mask(nside: int, value: float):
     return lambda path: write_healpix(path, np.full(hp.nside2npix(nside), value, np.float32), nside=nside, unit=None)
 
@@ -429,6 +434,17 @@ CONFIG_CASES = [
     Case("bins-nan-edge", "config", set_in_config("bins", "edges_mpc = [0.0, nan]"), r"'bins\.edges_mpc'.*item 2"),
     Case("bins-inf-edge", "config", set_in_config("bins", "edges_mpc = [0.0, inf]"), r"'bins\.edges_mpc'.*item 2"),
     Case("negative-seed", "config", replace_in_config("seed = 3", "seed = -1"), r"run\.toml: 'run\.seed'"),
+    Case("truth-not-found", "config", set_in_config("run", 'truth_path = "truth.json"'),
+         r"run\.truth_path \S*truth\.json: file not found"),
+    Case("truth-not-json", "config", with_truth(b"tau_mean = 2e-3\n"), r"run\.truth_path \S*truth\.json: is not JSON"),
+    Case("truth-without-tau", "config", with_truth(b'{"tau": 2e-3}'),
+         r"run\.truth_path \S*truth\.json: 'tau_mean' must be a finite number .*; got None"),
+    Case("truth-tau-nan", "config", with_truth(b'{"tau_mean": NaN}'),
+         r"run\.truth_path \S*truth\.json: 'tau_mean' must be a finite number .*; got nan"),
+    Case("truth-permission-denied", "config", with_truth(b'{"tau_mean": 2e-3}'),
+         r"run\.truth_path \S*truth\.json: cannot be read \(Permission denied\)", run=denied("io.open", "truth.json")),
+    Case("truth-with-blinding", "config", both(with_truth(b'{"tau_mean": 2e-3}'), set_in_config("blinding", "enabled = true")),
+         r"'run\.truth_path' cannot be used with blinding\.enabled"),
 ]
 
 # ---------------------------------------------------------------------- catalogue cases

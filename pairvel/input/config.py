@@ -68,6 +68,9 @@ class RunConfig:
                                     "a plain folder name (not '.' or '..', no '/', '\\' or NUL)")
     seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs",
                      bounds=(0, 2**63 - 1))
+    truth_path: Path | None = _key(None, "truth.json of a synthetic survey (as `pairvel mock` writes it): compare the "
+                                         "fitted tau_mean with the injected one and report the verdict (not with "
+                                         "blinding)")
 
 
 @dataclass(frozen=True)
@@ -535,6 +538,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
                         f"got {cfg.run.name!r}")
     if cfg.catalogue.path is None:
         bad("catalogue.path", "is required")
+    if cfg.run.truth_path is not None and cfg.blinding.enabled:
+        bad("run.truth_path", "cannot be used with blinding.enabled: comparing with a known truth reveals the "
+                              "amplitude; remove one of them")
     if cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
     if cfg.theory.bias is None:

@@ -117,8 +117,8 @@ def summary_dict(result) -> dict:
         "config": result.config.as_dict(),
         "provenance": result.provenance,
     }
-    if "demo_check" in result.extra:
-        out["demo_check"] = result.extra["demo_check"]
+    if "truth_check" in result.extra:
+        out["truth_check"] = result.extra["truth_check"]
     if "template" in result.extra:
         out["template"].update(result.extra["template"])
     out.update(theory_summary(result))
@@ -390,7 +390,7 @@ def _plot_nulls(result, path: Path) -> None:
 
 def report_sections(result) -> dict:
     """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
-    blinded sections), then the free-text sections a caller added (the demo's truth check)."""
+    blinded sections), then the free-text sections a caller added (the check against a truth)."""
     from ..maps.multifreq import combination_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown

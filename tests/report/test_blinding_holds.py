@@ -323,7 +323,7 @@ def test_an_undeclared_field_and_true_text_stop_blinding():
     fit = wider(**dataclasses.asdict(result.fit), bias_corrected_amplitude=1.0)
     with pytest.raises(UndeclaredQuantityError, match=r"WiderFit fields \['bias_corrected_amplitude'\]"):
         apply_factor(dataclasses.replace(result, fit=fit), FACTOR, blinding={"blinded": True})
-    for key in ("report_sections", "demo_check", "plot_curves"):   # text or comparisons made from true numbers
+    for key in ("report_sections", "truth_check", "plot_curves"):   # text or comparisons made from true numbers
         with pytest.raises(UndeclaredQuantityError, match=f"extra\\['{key}'\\] is made from the true amplitude"):
             apply_factor(_small_result(**{key: {}}), FACTOR, blinding={"blinded": True})
 
