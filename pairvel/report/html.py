@@ -70,10 +70,10 @@ def _figures(figures, folder: Path) -> dict:
 def _assumptions(summary: dict) -> list[tuple[str, str]]:
     """summary["assumptions"] when present, else the bias and the cosmology of the config."""
     if isinstance(summary.get("assumptions"), dict):
-        return [(str(k), fmt(v)) for k, v in summary["assumptions"].items()]
+        return [(str(k), fmt(v, 6)) for k, v in summary["assumptions"].items()]
     config = summary.get("config", {})
-    rows = [("tracer bias (theory.bias)", fmt(config.get("theory", {}).get("bias")))]
-    rows += [(f"cosmology.{k}", fmt(v)) for k, v in (config.get("cosmology") or {}).items()]
+    rows = [("tracer bias (theory.bias)", fmt(config.get("theory", {}).get("bias"), 6))]
+    rows += [(f"cosmology.{k}", fmt(v, 6)) for k, v in (config.get("cosmology") or {}).items()]
     return rows
 
 
