@@ -105,7 +105,7 @@ def plot_curve(result, folder: Path) -> FigureFile:
     """pairwise: the measured curve, the fitted model and a residual panel in units of the error."""
     r, p, err, fit_bins = result.r_mid, result.p, result.p_err, result.in_fit
     f = result.fit
-    fig = new_figure(width="column", height_in=3.9)
+    fig = new_figure(width="column", height_in=4.6)
     top, bottom = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1]})
     top.axhline(0.0, color="0.6", lw=0.7)
     random = [n for n in result.nulls if n.kind == "random_positions"]
@@ -124,7 +124,7 @@ def plot_curve(result, folder: Path) -> FigureFile:
         top.plot(r, curve, ls="--", lw=1.0, label=name)
     top.set_ylabel("p(r) [uK]")
     top.set_title(f"{_title_prefix(result)}{result.config.run.name}: S/N = {f.snr:.1f}")
-    top.legend(loc="best")
+    fig.legend(loc="outside lower center")  # below the panels: never over a data point
     with np.errstate(divide="ignore", invalid="ignore"):
         resid = (p - result.model_uk) / err
     bottom.axhspan(-1, 1, color="0.92", lw=0)
