@@ -26,7 +26,7 @@ import numpy as np
 from .core.constants import C_KM_S, T_CMB_UK
 from .core.errors import InputError, PairvelWarning
 from .core.progress import Progress
-from .core.provenance import __version__, file_sha256, package_versions
+from .core.provenance import __version__, file_sha256, git_commit, package_versions
 from .core.rng import as_generator, derived_generators
 from .core.warnlog import collect_warnings
 from .input.catalogue import Catalogue, load_catalogue
@@ -577,6 +577,8 @@ def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str) -> dic
         "started_utc": started,
         "config_file": None if cfg.source is None else str(cfg.source),
         "config_sha256": None if cfg.source is None else file_sha256(cfg.source),
+        "config_text": None if cfg.source is None else cfg.source.read_text(encoding="utf-8", errors="replace"),
+        "config_git_commit": None if cfg.source is None else git_commit(cfg.source.resolve().parent),
         "catalogue": {"path": cat.path, "sha256": cat.sha256},
         "map": map_provenance(cfg),
         "multifrequency": sky.combination,

@@ -66,3 +66,14 @@ def tiny_survey(tmp_path):
     """A 600-tracer catalogue, a partial nside-256 white-noise map, and a config; returns the folder."""
     make_tiny_survey(tmp_path)
     return tmp_path
+
+
+@pytest.fixture(scope="session")
+def tiny_run(tmp_path_factory):
+    """The output folder of one `pairvel run` on the tiny survey, shared by tests that only read it."""
+    from pairvel.cli import main
+
+    folder = tmp_path_factory.mktemp("tiny_run")
+    make_tiny_survey(folder)
+    assert main(["run", str(folder / "run.toml"), "--out", str(folder / "out"), "--quiet"]) == 0
+    return folder / "out"

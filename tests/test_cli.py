@@ -273,7 +273,7 @@ def test_failed_write_leaves_no_folder_and_no_log(tiny_survey, capsys, monkeypat
     """The log is held in memory: a run that fails while writing leaves neither a folder nor a run.log."""
     import pairvel.report.outputs as outputs
 
-    def full_disk(result, summary):
+    def full_disk(result, summary, figures):
         raise OSError(28, "No space left on device")
 
     monkeypatch.setattr(outputs, "_report", full_disk)

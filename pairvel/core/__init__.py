@@ -2,7 +2,8 @@
 
 In: nothing from the rest of pairvel (standard library and numpy only).
 Out: the :class:`~pairvel.core.errors.PairvelError` hierarchy, physical constants, seed
-normalisation, the progress reporter, the keeper of a run's warnings, version and checksum records, unit vectors on the sphere.
+normalisation, the progress reporter, the keeper of a run's warnings, version and checksum records, unit vectors on the sphere,
+and the style of every figure (plotstyle; matplotlib imported only when a figure is drawn).
 Every other subpackage may import from here; nothing here imports from them.
 
 Messages go through the standard :mod:`logging` module, to the ``pairvel`` logger or its children
@@ -15,4 +16,4 @@ import logging
 
 logging.getLogger("pairvel").addHandler(logging.NullHandler())
 
-__all__ = ["constants", "errors", "progress", "provenance", "rng", "sphere", "warnlog"]
+__all__ = ["constants", "errors", "plotstyle", "progress", "provenance", "rng", "sphere", "warnlog"]

@@ -45,6 +45,7 @@ import numpy as np
 
 from ..core.constants import ARCMIN_RAD
 from ..core.errors import ConfigError, InputError
+from ..core.plotstyle import new_figure, plot_style, save_figure
 from .harmonics import gaussian_beam
 
 _MAX_LMAX = 16384
@@ -262,20 +263,16 @@ def prefilter_markdown(info: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def plot_transfer(transfer, info: dict, path) -> None:
-    """F_l of the filter (peak 1) against multipole."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(6, 3.5))
-    ell = np.arange(transfer.size)
-    ax.plot(ell[2:], transfer[2:] / np.max(transfer), "k-")
-    ax.set_xscale("log")
-    ax.set_xlabel("multipole l")
-    ax.set_ylabel("F_l (peak 1)")
-    ax.set_title(f"map pre-filter: {info['kind']}, aperture response {info['aperture_response']:.3f}")
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+def plot_transfer(transfer, info: dict, folder, stem: str) -> list[str]:
+    """F_l of the filter (peak 1) against multipole; writes ``<stem>.pdf`` and ``<stem>.png`` into
+    ``folder`` and returns their names."""
+    with plot_style():
+        fig = new_figure(width="column", height_in=2.4)
+        ax = fig.subplots()
+        ell = np.arange(transfer.size)
+        ax.plot(ell[2:], transfer[2:] / np.max(transfer), "k-")
+        ax.set_xscale("log")
+        ax.set_xlabel("multipole l")
+        ax.set_ylabel("F_l (peak 1)")
+        ax.set_title(f"map pre-filter: {info['kind']}, aperture response {info['aperture_response']:.3f}")
+        return save_figure(fig, folder, stem)

@@ -2,9 +2,10 @@
 blinding and unblinding.
 
 In: a :class:`~pairvel.report.result.RunResult` and an output folder path.
-Out: files in a new output folder, claimed before the work, written to a hidden folder and swapped
+Out: files in a new output folder (tables, figures as PDF + PNG, summary.json, report.md and a
+self-contained report.html), claimed before the work, written to a hidden folder and swapped
 into place (folders.py).
 Depends on every stage below it; nothing below imports from here.
 """
 
-__all__ = ["blinding", "folders", "outputs", "result"]
+__all__ = ["blinding", "figures", "folders", "html", "outputs", "result"]

@@ -18,7 +18,9 @@ import numpy as np
 
 from .assumptions import assumptions, assumptions_markdown, closing_lines, tau_mean_meaning
 from .blinding import check_declared
+from .figures import PTE_HIGH, PTE_LOW, format_tau, pte_flag, template_label, write_figures
 from .folders import OUTPUT_MARKER, RUN_LOG, prepare_output_dir, write_folder_atomically
+from .html import render_html
 
 
 def _json_default(obj):
@@ -58,27 +60,6 @@ def _covariance_method(cc) -> str:
     if cc.estimator == "bootstrap":
         return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
     return f"delete-one jackknife over {cc.regions} sky regions"
-
-
-def _plot_correlation(result, path: Path) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    sig = np.sqrt(np.diag(result.covariance))
-    corr = result.covariance / np.outer(sig, sig)
-    fig, ax = plt.subplots(figsize=(5.2, 4.4), constrained_layout=True)
-    e = result.edges
-    im = ax.pcolormesh(e, e, corr, cmap="RdBu_r", vmin=-1, vmax=1)
-    fig.colorbar(im, ax=ax, label="correlation")
-    ax.set_xlabel("r [Mpc]")
-    ax.set_ylabel("r [Mpc]")
-    ax.set_aspect("equal")
-    ax.set_title(f"{_covariance_method(result.config.covariance)} ({_blind_tag(result).split(' (')[0]})\ncondition number "
-                 f"{np.linalg.cond(result.covariance):.3g}", fontsize=8)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
 
 
 def summary_dict(result) -> dict:
@@ -176,15 +157,13 @@ def theory_summary(result) -> dict:
 
 
 def _write_theory_outputs(result, folder: Path) -> list:
-    """proxy_bins.ecsv + tau_vs_proxy.png and velocity_scale.png when those fits ran; returns file names."""
+    """proxy_bins.ecsv and aperture_radii.ecsv when those fits ran; returns file names (figures:
+    :func:`pairvel.report.figures.write_figures`)."""
     from astropy.table import Table
 
     written = []
     if "proxy_bins" in result.extra:
-        from ..stats.subsamples import plot_proxy_bins
-
-        bins = result.extra["proxy_bins"]
-        rows = [b.as_dict() for b in bins]
+        rows = [b.as_dict() for b in result.extra["proxy_bins"]]
         table = Table()
         for key in ("proxy_min", "proxy_max", "proxy_median", "n_tracers", "n_pairs", "n_regions", "z_mean"):
             table[key] = [r[key] for r in rows]
@@ -194,19 +173,16 @@ def _write_theory_outputs(result, folder: Path) -> list:
         table.meta["description"] = (f"tau_mean fitted separately in bins of {result.config.catalogue.proxy_column}; "
                                      f"likelihood {result.fit.likelihood}")
         table.write(folder / "proxy_bins.ecsv", format="ascii.ecsv")
-        plot_proxy_bins(bins, folder / "tau_vs_proxy.png", proxy_name=str(result.config.catalogue.proxy_column),
-                        tau_all=result.fit.amplitude, tau_all_error=result.fit.error)
-        written += ["proxy_bins.ecsv", "tau_vs_proxy.png"]
-    if "velocity_scale_fit" in result.extra:
-        from ..stats.joint import plot_velocity_scale
+        written.append("proxy_bins.ecsv")
+    if "radius_fits" in result.extra:
+        from ..stats.radii import write_radius_outputs
 
-        plot_velocity_scale(result.extra["velocity_scale_fit"], folder / "velocity_scale.png")
-        written.append("velocity_scale.png")
+        written += write_radius_outputs(result.extra["radius_fits"], folder)
     return written
 
 
-def _theory_report(result) -> list:
-    """Report lines: template, likelihood, conversion, proxy bins, joint fit."""
+def _theory_report(result, figures=()) -> list:
+    """Report lines: template, likelihood, conversion, proxy bins, joint fit (with their figures)."""
     f = result.fit
     conv = conversion(result)
     info = result.extra.get("template", {})
@@ -247,6 +223,7 @@ def _theory_report(result) -> list:
                        else "- | - | -")
             lines.append(f"| [{b.proxy_min:g}, {b.proxy_max:g}) | {b.proxy_median:.4g} | {b.n_tracers:,} | "
                          f"{b.n_pairs:,} | {b.n_regions} | {fit_txt} | {b.problem or ''} |")
+        lines += _images(figures, "proxy")
     if "velocity_scale_fit" in result.extra:
         v = result.extra["velocity_scale_fit"]
         lines += ["", "## Joint fit of tau_mean and f sigma_8", "",
@@ -260,6 +237,7 @@ def _theory_report(result) -> list:
             lines.append(f"With the prior tau_mean = {v.prior[0]:.4e} ± {v.prior[1]:.4e}: f sigma_8 = {v.s_mean:.4f} "
                          f"± {v.s_std:.4f} (68%: [{v.s_lower_68:.4f}, {v.s_upper_68:.4f}]; flat prior on "
                          f"[0, {v.s_grid[-1]:.3f}])")
+    lines += _images(figures, "joint")
     return lines
 
 
@@ -321,73 +299,6 @@ def _write_tables(result, folder: Path) -> None:
         nt.write(folder / f"null_{null.kind}.ecsv", format="ascii.ecsv")
 
 
-def _plot(result, path: Path) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    r = result.r_mid
-    fig, ax = plt.subplots(figsize=(7.0, 4.6), constrained_layout=True)
-    ax.axhline(0.0, color="0.6", lw=0.8)
-    random = [n for n in result.nulls if n.kind == "random_positions"]
-    if random:
-        n = random[0]
-        spread = n.p.std(axis=0, ddof=1) if n.n_real > 1 else np.zeros_like(r)
-        ax.fill_between(r, n.p.mean(axis=0) - spread, n.p.mean(axis=0) + spread,
-                        color="0.85", label=f"null: random positions (mean ± 1σ of {n.n_real})")
-    ax.errorbar(r[result.in_fit], result.p[result.in_fit], yerr=result.p_err[result.in_fit], fmt="o", color="C0",
-                ms=4, capsize=2, label=f"measured ({result.config.covariance.estimator} errors)")
-    if (~result.in_fit).any():
-        ax.errorbar(r[~result.in_fit], result.p[~result.in_fit], yerr=result.p_err[~result.in_fit], fmt="o",
-                    mfc="none", color="C0", ms=4, capsize=2, label="not fitted")
-    f = result.fit
-    ax.plot(r, result.model_uk, color="C3",
-            label=f"linear theory, τ̄ = ({f.amplitude * 1e4:.2f} ± {f.error * 1e4:.2f})×10⁻⁴, S/N = {f.snr:.1f}")
-    for name, curve in result.extra.get("plot_curves", {}).items():
-        ax.plot(r, curve, ls="--", lw=1.2, label=name)
-    ax.set_xlabel("comoving separation r [Mpc]")
-    ax.set_ylabel("mean pairwise kSZ momentum p(r) [μK]")
-    ax.set_title(("BLINDED - " if _blinding(result).get("blinded") else "") +
-                 f"{result.config.run.name}: {result.n_tracers:,} tracers, "
-                 f"θ = {result.config.aperture.radius_arcmin:g}′, z_eff = {result.z_eff:.2f}", fontsize=10)
-    ax.legend(fontsize=8, loc="lower right")
-    fig.savefig(path, dpi=130)
-    plt.close(fig)
-
-
-def _plot_nulls(result, path: Path) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    from scipy import stats
-
-    fig, axes = plt.subplots(2, len(result.nulls), figsize=(4.2 * len(result.nulls), 6.8), sharey="row",
-                             constrained_layout=True, squeeze=False)
-    for ax, n in zip(axes[1], result.nulls):
-        hi = max(float(np.max(n.chi2)), stats.chi2.ppf(0.995, n.dof))
-        ax.hist(n.chi2, bins=np.linspace(0, hi, 16), density=True, color="C2", alpha=0.6,
-                label=f"{n.n_real} realisations")
-        xs = np.linspace(0, hi, 200)
-        ax.plot(xs, stats.chi2.pdf(xs, n.dof), color="k", lw=1, label=f"χ² pdf, {n.dof} dof")
-        ax.set_xlabel("χ² of one realisation against zero")
-        ax.legend(fontsize=7)
-    axes[1][0].set_ylabel("density")
-    for ax, n in zip(axes[0], result.nulls):
-        ax.axhline(0.0, color="0.6", lw=0.8)
-        for k in range(n.n_real):
-            ax.plot(result.r_mid, n.p[k], color="0.8", lw=0.7)
-        ax.errorbar(result.r_mid, n.p.mean(axis=0), yerr=n.mean_error, fmt="o", ms=3, capsize=2, color="C2")
-        ax.set_title(f"{n.kind}: χ² = {n.chi2_mean:.1f}/{n.dof}, PTE = {n.pte_mean:.2f} "
-                     f"({'pass' if n.passed else 'FAIL'})", fontsize=8.5)
-        ax.set_xlabel("comoving separation r [Mpc]")
-    axes[0][0].set_ylabel("null p(r) [μK]: realisations and mean")
-    fig.suptitle(f"null tests ({_blind_tag(result)})", fontsize=9)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
 def report_sections(result) -> dict:
     """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
     blinded sections), then the free-text sections a caller added (the check against a truth)."""
@@ -406,7 +317,20 @@ def report_sections(result) -> dict:
     return sections | result.extra.get("report_sections", {})
 
 
-def _report(result, summary: dict) -> str:
+#: Report sections (titles of :func:`report_sections`) followed by the figures of a figure section.
+_SECTION_FIGURES = {"Signal against aperture radius": "radii", "Map pre-filter": "prefilter"}
+
+
+def _images(figures, section: str) -> list:
+    """Markdown image links to the PNG copies of the figures of one section."""
+    out = []
+    for f in figures:
+        if f.section == section:
+            out += ["", f"![{f.stem}]({f.png})", "", f"*{f.caption}* ({f.stem}.pdf, {f.png})"]
+    return out
+
+
+def _report(result, summary: dict, figures=()) -> str:
     f = result.fit
     lines = [
         f"# pairvel report: {result.config.run.name}",
@@ -414,48 +338,58 @@ def _report(result, summary: dict) -> str:
         f"**Blinding: {_blind_tag(result)}.**",
         "",
         "## Headline",
-        f"- mean optical depth tau_mean = {f.amplitude:.4e} ± {f.error:.4e} (S/N = {f.snr:.2f})",
-        f"- chi2 against zero: {f.chi2_null:.2f} for {f.n_bins} bins (PTE {f.pte_null:.3g}); "
-        f"best fit: {f.chi2_min:.2f} for {f.dof} dof (PTE {f.pte_min:.3g})",
+        f"- mean optical depth: {format_tau(f.amplitude, f.error)} (S/N = {f.snr:.2f})",
+        f"- chi2 against zero: {f.chi2_null:.3g} for {f.n_bins} bins (PTE {f.pte_null:.3g}); "
+        f"best fit: {f.chi2_min:.3g} for {f.dof} dof (PTE {f.pte_min:.3g})",
         f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
+        f"- model: {template_label(result)}",
         *(f"- {line.strip()}" for line in closing_lines(result)),
         "",
         "## What tau_mean assumes",
         "",
         assumptions_markdown(summary["assumptions"]),
         "",
-        "## Null tests",
-        "",
-        f"Mean curve of each kind against zero; a kind passes when its PTE exceeds "
-        f"{result.config.nulls.pte_threshold:g}.",
-        "",
-        "| null test | realisations | chi2 (mean curve) | dof | PTE | result | realisations with PTE < 0.05 |",
-        "|---|---:|---:|---:|---:|:---:|---:|",
+        "## Measured curve", "",
+        "| r_min [Mpc] | r_max [Mpc] | p [uK] | error [uK] | pairs | model [uK] | fitted |",
+        "|---:|---:|---:|---:|---:|---:|:---:|",
     ]
-    for n in result.nulls:
-        lines.append(f"| {n.description} | {n.n_real} | {n.chi2_mean:.2f} | {n.dof} | {n.pte_mean:.3g} | "
-                     f"{'pass' if n.passed else 'FAIL'} | {int(np.sum(n.pte < 0.05))} |")
-    if not result.nulls:
-        lines.append("| (none configured) | | | | | | |")
-    lines += ["", "## Measured curve", "",
-              "| r_min | r_max | p [uK] | error [uK] | pairs | model [uK] | fitted |",
-              "|---:|---:|---:|---:|---:|---:|:---:|"]
     for k in range(result.edges.size - 1):
-        lines.append(f"| {result.edges[k]:g} | {result.edges[k + 1]:g} | {result.p[k]:+.4f} | {result.p_err[k]:.4f} | "
-                     f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.4f} | {'yes' if result.in_fit[k] else 'no'} |")
-    lines += _theory_report(result)
+        lines.append(f"| {result.edges[k]:g} | {result.edges[k + 1]:g} | {result.p[k]:+.3g} | {result.p_err[k]:.3g} | "
+                     f"{int(result.pair_counts[k]):,} | {result.model_uk[k]:+.3g} | {'yes' if result.in_fit[k] else 'no'} |")
+    lines += _images(figures, "curve")
+    lines += ["", "## Null tests", ""]
+    if result.nulls:
+        lines += [f"Mean curve of each kind against zero; a kind passes when its PTE exceeds "
+                  f"{result.config.nulls.pte_threshold:g}. A PTE below {PTE_LOW:g} or above {PTE_HIGH:g} is flagged.",
+                  "",
+                  "| null test | realisations | chi2 (mean curve) | dof | PTE | PTE flag | result | realisations with PTE < 0.05 |",
+                  "|---|---:|---:|---:|---:|:---:|:---:|---:|"]
+        for n in result.nulls:
+            lines.append(f"| {n.description} | {n.n_real} | {n.chi2_mean:.3g} | {n.dof} | {n.pte_mean:.3g} | "
+                         f"{pte_flag(n.pte_mean).upper() or '-'} | {'pass' if n.passed else 'FAIL'} | "
+                         f"{int(np.sum(n.pte < 0.05))} |")
+        lines += _images(figures, "nulls")
+    else:
+        lines.append("No null test was configured.")
+    lines += ["", "## Covariance", "", f"{_covariance_method(result.config.covariance)}."]
+    lines += _images(figures, "covariance")
+    lines += _theory_report(result, figures)
     lines += ["", "## Selection", ""] + [f"- {k}: {v}" for k, v in result.selection.items()]
+    lines += _images(figures, "diagnostics")
     for section, body in report_sections(result).items():
         lines += ["", f"## {section}", "", body]
+        lines += _images(figures, _SECTION_FIGURES.get(section, ""))
     lines += _warnings_report(result.warnings)
     prov = result.provenance
     lines += ["", "## Provenance", "",
-              f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')})",
+              f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')}; git commit of its folder: "
+              f"{prov.get('config_git_commit') or 'none'})",
               f"- catalogue: {prov['catalogue']['path']} (sha256 {prov['catalogue']['sha256']})",
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
-              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
+              "", "Data files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json; every figure as PDF "
+                  "and PNG; this report also as report.html (self-contained).", ""]
     return "\n".join(lines)
 
 
@@ -499,20 +433,10 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None, claim=N
 
     def fill(tmp: Path) -> None:
         _write_tables(result, tmp)
-        _plot(result, tmp / "pairwise.png")
-        if result.nulls:
-            _plot_nulls(result, tmp / "nulls.png")
         _write_theory_outputs(result, tmp)
-        _plot_correlation(result, tmp / "correlation.png")
-        if "prefilter_transfer" in result.extra:
-            from ..maps.prefilter import plot_transfer
-
-            plot_transfer(result.extra["prefilter_transfer"], result.extra["prefilter"], tmp / "prefilter.png")
-        if "radius_fits" in result.extra:
-            from ..stats.radii import write_radius_outputs
-
-            write_radius_outputs(result.extra["radius_fits"], tmp)
+        figures = write_figures(result, tmp)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
-        (tmp / "report.md").write_text(_report(result, summary))
+        (tmp / "report.md").write_text(_report(result, summary, figures))
+        (tmp / "report.html").write_text(render_html(result, summary, figures, tmp), encoding="utf-8")
 
     return write_folder_atomically(out_dir, fill, force=force, run_log=run_log, claim=claim)

@@ -52,6 +52,7 @@ import numpy as np
 
 from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
 from ..core.errors import InputError, PairvelWarning
+from ..core.plotstyle import new_figure, plot_style, save_figure
 from ..core.provenance import __version__
 from ..input.config import CovarianceConfig, TheoryConfig, TrendConfig
 from ..model.cosmology import DEFAULT_COSMOLOGY
@@ -613,15 +614,19 @@ def run_validation(opt: ValidationOptions, *, progress=None) -> ValidationResult
     return ValidationResult(opt, edges, rows, summary, provenance)
 
 
-def _plot(result: ValidationResult, path) -> None:
-    import matplotlib
+def _plot(result: ValidationResult, folder, stem: str) -> None:
+    with plot_style():
+        fig = new_figure(width="page", height_in=5.6)
+        _draw_calibration(fig.subplots(2, 2), result)
+        few = f" (fewer than {MIN_MOCKS_FOR_VERDICTS}: verdicts mean little)" if "few_mocks" in result.summary else ""
+        fig.suptitle(f"pairvel validate: {result.summary['measured']['n_mocks']} mocks{few}, "
+                     f"tau_true = {result.options.tau_mean:.2e}")
+        save_figure(fig, folder, stem)
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
+def _draw_calibration(ax, result: ValidationResult) -> None:
     rows, s, truth = result.rows, result.summary, result.options.tau_mean
     m = s["measured"]
-    fig, ax = plt.subplots(2, 2, figsize=(10, 8))
     pull = (rows["tau_hat"] - truth) / rows["tau_err"]
     a = ax[0, 0]
     a.hist(pull, bins=max(8, int(np.sqrt(pull.size)) + 2), density=True, alpha=0.6, label="mocks")
@@ -629,8 +634,8 @@ def _plot(result: ValidationResult, path) -> None:
     a.plot(x, np.exp(-0.5 * x**2) / np.sqrt(2 * np.pi), "k-", label="N(0, 1)")
     a.set_xlabel("(tau_hat - tau_true) / sigma")
     a.set_title(f"bias {m['bias_in_sigma']:+.3f} ± {m['bias_in_sigma_se']:.3f} sigma; "
-                f"coverage {m['coverage_68']:.2f} ± {m['coverage_68_se']:.2f}", fontsize=9)
-    a.legend(fontsize=8)
+                f"coverage {m['coverage_68']:.2f} ± {m['coverage_68_se']:.2f}")
+    a.legend()
     a = ax[0, 1]
     order = np.arange(rows["tau_hat"].size)
     a.errorbar(order, rows["tau_hat"], yerr=rows["tau_err"], fmt=".", ms=3, lw=0.6)
@@ -639,8 +644,8 @@ def _plot(result: ValidationResult, path) -> None:
               color="C1", alpha=0.2, label="mean ± scatter")
     a.set_xlabel("mock")
     a.set_ylabel("tau_mean")
-    a.set_title(f"mean jackknife error / scatter = {m['error_ratio']:.3f} ± {m['error_ratio_se']:.3f}", fontsize=9)
-    a.legend(fontsize=8)
+    a.set_title(f"mean jackknife error / scatter = {m['error_ratio']:.3f} ± {m['error_ratio_se']:.3f}")
+    a.legend()
     r_mid = 0.5 * (result.edges[1:] + result.edges[:-1])
     a = ax[1, 0]
     a.plot(r_mid, s["per_bin_jk_error_over_scatter"], "o-")
@@ -656,16 +661,11 @@ def _plot(result: ValidationResult, path) -> None:
     a.axhline(0, color="0.6", lw=0.6)
     a.set_xlabel("r [Mpc]")
     a.set_ylabel("p(r) [uK]")
-    a.legend(fontsize=8)
-    few = f" (fewer than {MIN_MOCKS_FOR_VERDICTS}: verdicts mean little)" if "few_mocks" in s else ""
-    fig.suptitle(f"pairvel validate: {m['n_mocks']} mocks{few}, tau_true = {truth:.2e}", fontsize=10)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    a.legend()
 
 
 def write_validation(result: ValidationResult, out_dir, *, force: bool = False, run_log=None, claim=None):
-    """Write mocks.ecsv (one row per mock), summary.json and calibration.png atomically.
+    """Write mocks.ecsv (one row per mock), summary.json and calibration.pdf/.png atomically.
 
     ``run_log`` (callable() -> str, optional) adds ``run.log`` and ``claim`` (the caller's claim on
     ``out_dir``, optional) is used instead of claiming here, as in
@@ -683,7 +683,7 @@ def write_validation(result: ValidationResult, out_dir, *, force: bool = False, 
         table.write(tmp / "mocks.ecsv", format="ascii.ecsv")
         record = {"summary": result.summary, "provenance": result.provenance, "edges_mpc": result.edges.tolist()}
         (tmp / "summary.json").write_text(json.dumps(_plain(record), indent=2, allow_nan=False) + "\n")
-        _plot(result, tmp / "calibration.png")
+        _plot(result, tmp, "calibration")
 
     return write_folder_atomically(out_dir, fill, force=force, run_log=run_log, claim=claim)
 

@@ -61,9 +61,8 @@ def diagnostics_markdown(diag: dict, edges) -> str:
     """A report section: condition number and the diagonal errors of each estimator side by side."""
     names = list(diag["errors"])
     ref = diag["used"]
-    head = "| r_min | r_max | " + " | ".join(f"σ {n} [uK]" for n in names) + " | " + \
-        " | ".join(f"{n} / {ref}" for n in names if n != ref) + " |"
-    rule = "|---:|---:|" + "---:|" * (2 * len(names) - 1)
+    others = [n for n in names if n != ref]
+    columns = ["r_min", "r_max", *(f"σ {n} [uK]" for n in names), *(f"{n} / {ref}" for n in others)]
     factor = diag.get("hartlap_factor", {}).get(ref)
     lines = [f"Covariance used in the fit: {ref} ({diag['n_samples'].get(ref, '?')} samples); "
              f"condition number {diag['condition_number']:.3g}"
@@ -71,10 +70,10 @@ def diagnostics_markdown(diag: dict, edges) -> str:
                 else "."), ""]
     if diag["too_few_samples"]:
         lines += [f"Warning: too few samples for the number of bins in: {', '.join(diag['too_few_samples'])}.", ""]
-    lines += [head, rule]
+    lines += ["| " + " | ".join(columns) + " |", "|" + "---:|" * len(columns)]
     for k in range(len(edges) - 1):
         sig = [diag["errors"][n][k] for n in names]
-        ratios = [diag["errors"][n][k] / diag["errors"][ref][k] for n in names if n != ref]
-        lines.append(f"| {edges[k]:g} | {edges[k + 1]:g} | " + " | ".join(f"{s:.4g}" for s in sig) + " | " +
-                     " | ".join(f"{r:.3f}" for r in ratios) + " |")
+        ratios = [diag["errors"][n][k] / diag["errors"][ref][k] for n in others]
+        lines.append("| " + " | ".join([f"{edges[k]:g}", f"{edges[k + 1]:g}", *(f"{s:.3g}" for s in sig),
+                                         *(f"{r:.3g}" for r in ratios)]) + " |")
     return "\n".join(lines)

@@ -25,6 +25,7 @@ import numpy as np
 from scipy import stats
 
 from ..core.errors import InputError, PairvelWarning
+from ..core.plotstyle import new_figure, plot_style, save_figure
 from .fit import ONE_SIGMA, AmplitudeFit
 
 #: Upper end of the flat prior on f sigma_8, in units of the template's value.
@@ -172,14 +173,16 @@ def fit_velocity_scale(fit: AmplitudeFit, s_fid: float, *, n_samples=None, tau_p
                             fit.likelihood, None if n_samples is None else int(n_samples))
 
 
-def plot_velocity_scale(vfit: VelocityScaleFit, path) -> None:
-    """Contour plot of the (tau_mean, f sigma_8) posterior with 68% and 95% regions."""
-    import matplotlib
+def plot_velocity_scale(vfit: VelocityScaleFit, folder, stem: str) -> list[str]:
+    """Contour plot of the (tau_mean, f sigma_8) posterior with 68% and 95% regions; writes
+    ``<stem>.pdf`` and ``<stem>.png`` into ``folder`` and returns their names."""
+    with plot_style():
+        fig = new_figure(width="column", height_in=3.0)
+        _draw_velocity_scale(fig.subplots(), vfit)
+        return save_figure(fig, folder, stem)
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(5.6, 4.6), constrained_layout=True)
+def _draw_velocity_scale(ax, vfit: VelocityScaleFit) -> None:
     levels = hpd_levels(vfit.posterior)
     x = vfit.tau_grid * 1e4
     ax.contourf(x, vfit.s_grid, vfit.posterior.T, levels=[levels[1], levels[0], vfit.posterior.max() * 1.001],
@@ -196,7 +199,5 @@ def plot_velocity_scale(vfit: VelocityScaleFit, path) -> None:
     ax.set_ylim(vfit.s_grid.min(), vfit.s_grid.max())
     ax.set_xlabel(r"mean optical depth $\bar\tau$ [$10^{-4}$]")
     ax.set_ylabel(r"velocity amplitude $f\sigma_8$")
-    ax.set_title("joint fit: 68% and 95% regions", fontsize=10)
-    ax.legend(fontsize=7.5, loc="upper right")
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
+    ax.set_title("joint fit: 68% and 95% regions")
+    ax.legend(loc="upper right")

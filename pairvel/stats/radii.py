@@ -9,13 +9,14 @@ result stays the primary radius (``aperture.radius_arcmin``); this module only a
 
 from __future__ import annotations
 
-__all__ = ["RadiusFit", "fit_radii", "write_radius_outputs", "radius_report"]
+__all__ = ["RadiusFit", "fit_radii", "plot_radii", "write_radius_outputs", "radius_report"]
 
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from ..core.plotstyle import new_figure, plot_style, save_figure
 from .covariance import jackknife_covariance
 from .fit import AmplitudeFit, fit_amplitude
 
@@ -71,7 +72,7 @@ def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood
 
 
 def write_radius_outputs(fits: list, folder: Path) -> list:
-    """aperture_radii.ecsv and tau_vs_radius.png; returns the file names written."""
+    """aperture_radii.ecsv (the figure: :func:`plot_radii`); returns the file names written."""
     from astropy.table import Table
 
     table = Table()
@@ -89,18 +90,21 @@ def write_radius_outputs(fits: list, folder: Path) -> list:
                                  "template and fit range; covariance from each radius's own jackknife samples); "
                                  "p_uk and p_err_uk hold the curve per separation bin")
     table.write(folder / "aperture_radii.ecsv", format="ascii.ecsv")
-    _plot(fits, folder / "tau_vs_radius.png")
-    return ["aperture_radii.ecsv", "tau_vs_radius.png"]
+    return ["aperture_radii.ecsv"]
 
 
-def _plot(fits: list, path: Path) -> None:
-    import matplotlib
+def plot_radii(fits: list, folder: Path, stem: str) -> list[str]:
+    """tau_mean and its S/N against the aperture radius; writes ``<stem>.pdf`` and ``<stem>.png``
+    into ``folder`` and returns their names."""
+    with plot_style():
+        fig = new_figure(width="page", height_in=2.8)
+        _draw_radii(fig.subplots(1, 2), fits)
+        fig.suptitle("Signal against aperture radius (one pair pass, same tracers)")
+        return save_figure(fig, folder, stem)
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
+def _draw_radii(axes, fits: list) -> None:
     ok = [f for f in fits if f.fit is not None]
-    fig, axes = plt.subplots(1, 2, figsize=(9.5, 3.8), constrained_layout=True)
     r = np.array([f.radius_arcmin for f in ok])
     order = np.argsort(r)
     tau = np.array([f.fit.amplitude for f in ok])[order]
@@ -109,19 +113,16 @@ def _plot(fits: list, path: Path) -> None:
     axes[0].errorbar(r[order], tau, err, fmt="o-", capsize=3, color="C0")
     axes[0].axhline(0.0, color="0.6", lw=0.8)
     axes[0].set_xlabel("aperture radius θ [arcmin]")
-    axes[0].set_ylabel("fitted τ_mean")
+    axes[0].set_ylabel("fitted tau_mean")
     axes[1].plot(r[order], snr, "s-", color="C1")
     axes[1].axhline(0.0, color="0.6", lw=0.8)
     axes[1].set_xlabel("aperture radius θ [arcmin]")
-    axes[1].set_ylabel("S/N of τ_mean")
+    axes[1].set_ylabel("S/N of tau_mean")
     for f in ok:
         if f.primary:
             for ax, y in ((axes[0], f.fit.amplitude), (axes[1], f.fit.snr)):
                 ax.plot([f.radius_arcmin], [y], marker="*", ms=14, color="C3", ls="none", label="main result")
-    axes[0].legend(loc="best", fontsize=8)
-    fig.suptitle("Signal against aperture radius (one pair pass, same tracers)", fontsize=10)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    axes[0].legend(loc="best")
 
 
 def radius_report(fits: list) -> str:

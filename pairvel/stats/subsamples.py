@@ -19,6 +19,7 @@ import numpy as np
 
 from ..core.constants import C_KM_S, T_CMB_UK
 from ..core.errors import InputError, PairvelError
+from ..core.plotstyle import new_figure, plot_style, save_figure
 from ..model.template import template_for_run
 from ..pairs.estimator import pairwise_momentum
 from .covariance import jackknife_covariance
@@ -118,14 +119,16 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
     return tuple(out)
 
 
-def plot_proxy_bins(bins, path, *, proxy_name: str, tau_all=None, tau_all_error=None) -> None:
-    """tau_mean against the median proxy of each bin, with the whole-sample value as a band."""
-    import matplotlib
+def plot_proxy_bins(bins, folder, stem: str, *, proxy_name: str, tau_all=None, tau_all_error=None) -> list[str]:
+    """tau_mean against the median proxy of each bin, with the whole-sample value as a band;
+    writes ``<stem>.pdf`` and ``<stem>.png`` into ``folder`` and returns their names."""
+    with plot_style():
+        fig = new_figure(width="column", height_in=2.8)
+        _draw_proxy_bins(fig.subplots(), bins, proxy_name, tau_all, tau_all_error)
+        return save_figure(fig, folder, stem)
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(5.8, 4.2), constrained_layout=True)
+def _draw_proxy_bins(ax, bins, proxy_name, tau_all, tau_all_error) -> None:
     done = [b for b in bins if b.fit is not None]
     if tau_all is not None:
         ax.axhspan((tau_all - tau_all_error) * 1e4, (tau_all + tau_all_error) * 1e4, color="0.88",
@@ -139,6 +142,4 @@ def plot_proxy_bins(bins, path, *, proxy_name: str, tau_all=None, tau_all_error=
         ax.errorbar(x, y, xerr=xerr, yerr=yerr, fmt="o", color="C0", capsize=2, label="proxy bins")
     ax.set_xlabel(f"{proxy_name} (median of the bin; bars: bin range)")
     ax.set_ylabel(r"mean optical depth $\bar\tau$ [$10^{-4}$]")
-    ax.legend(fontsize=8)
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
+    ax.legend()

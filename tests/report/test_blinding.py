@@ -43,6 +43,7 @@ def test_blinded_run_unblinds_to_the_unblinded_run(tiny_survey, capsys):
     factor = json.loads(key.read_text())["factor"]
     assert s0["blinded"] is False and s1["blinded"] is True and s1["blinding"]["key_id"]
     assert "BLINDED" in (blinded / "report.md").read_text() and "not blinded" in (plain / "report.md").read_text()
+    assert "BLINDED: the curve" in (blinded / "report.html").read_text() and "BLINDED" not in (plain / "report.html").read_text()
     assert "BLINDED" in t1.meta["blinding"] and fits.getheader(blinded / "covariance.fits")["BLINDED"]
     assert not np.isclose(s1["tau_mean"], s0["tau_mean"], rtol=1e-6)
     np.testing.assert_allclose(s1["tau_mean"], factor * s0["tau_mean"], rtol=1e-12)
@@ -55,6 +56,7 @@ def test_blinded_run_unblinds_to_the_unblinded_run(tiny_survey, capsys):
     assert _digest(blinded) == before                                    # input folder not modified
     s2, t2, c2, jk2, n2 = _numbers(out)
     assert s2["blinded"] is False and "not blinded" in (out / "report.md").read_text()
+    assert "Not blinded." in (out / "report.html").read_text()                # unblind rewrites the HTML report too
     for k in ("tau_mean", "tau_mean_error", "snr", "chi2_null", "pte_null"):
         np.testing.assert_allclose(s2[k], s0[k], rtol=1e-15, atol=0)
     for col in ("p_uK", "p_err_uK", "model_uK"):

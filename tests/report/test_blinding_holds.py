@@ -3,8 +3,8 @@
 One analysis with every option that yields an amplitude (several aperture radii, proxy bins, the
 joint tau_mean x f sigma_8 fit with a prior, the Sellentin-Heavens interval, every null kind) runs
 on an invented survey with an injected infall signal, once plain and once blinded with a key of a
-known factor.  Every file of the blinded folder (text, ECSV, JSON, FITS data and headers, PNG
-metadata, run.log) is read as numbers, each with the number of significant digits it was written
+known factor.  Every file of the blinded folder (text, ECSV, JSON, HTML, FITS data and headers, PNG
+and PDF metadata, run.log) is read as numbers, each with the number of significant digits it was written
 with; the test fails when one of them equals a true amplitude or curve value, or when two of them
 differ by exactly the factor (a true and a blinded version of one quantity side by side).
 """
@@ -95,6 +95,8 @@ def _infall_survey(folder, *, n=700, nside=256, amp_uk=150.0, seed=21):
 
 
 # ----------------------------------------------------------------------- numbers in the files
+_PDF_INFO = re.compile(r"/(Title|Author|Subject|Keywords|Creator|Producer|CreationDate|ModDate) \(([^)]*)\)")
+_DATA_URI = re.compile(r"data:image/png;base64,[A-Za-z0-9+/=]+")
 _NUMBER = re.compile(r"(?<![\w.])[-+]?(?:\d+\.\d*|\.\d+|\d+)(?:[eE][-+]?\d+)?")
 
 
@@ -137,6 +139,11 @@ def folder_numbers(folder) -> dict:
             with Image.open(path) as im:
                 meta = {**im.info, **getattr(im, "text", {})}
             out[name] = list(_text_numbers(" ".join(f"{k} {v}" for k, v in meta.items() if isinstance(v, str))))
+        elif path.suffix == ".pdf":  # drawn like its PNG twin; its document information is text
+            info = _PDF_INFO.findall(path.read_bytes().decode("latin-1"))
+            out[name] = list(_text_numbers(" ".join(v for _, v in info)))
+        elif path.suffix == ".html":  # the embedded PNGs are read as files; base64 text is no number
+            out[name] = list(_text_numbers(_DATA_URI.sub("", path.read_text(encoding="utf-8"))))
         else:
             out[name] = list(_text_numbers(path.read_text(encoding="utf-8")))  # fails loudly on unknown binaries
     return out
@@ -248,7 +255,8 @@ def test_blinded_folder_hides_every_amplitude_and_unblinding_restores_them(tmp_p
 
     # every file is read; none holds a true amplitude or curve value, nor a number and its blinded twin
     numbers = folder_numbers(blinded)
-    assert {"run.log", "report.md", "aperture_radii.ecsv", "proxy_bins.ecsv", "velocity_scale.png"} <= set(numbers)
+    assert {"run.log", "report.md", "report.html", "aperture_radii.ecsv", "proxy_bins.ecsv", "velocity_scale.png",
+            "velocity_scale.pdf"} <= set(numbers)
     truth = true_values(plain)
     assert truth.size > 200
     leaks = leaks_of_true_values(numbers, truth)

@@ -408,7 +408,7 @@ def test_a_failure_after_the_key_was_made_leaves_nothing(tiny_survey, capsys, mo
     cfg.write_text(cfg.read_text() + "\n[blinding]\nenabled = true\n")
     before = snapshot(tiny_survey)
 
-    def full_disk(result, summary):
+    def full_disk(result, summary, figures):
         assert (tiny_survey / "out.blinding-key.json").is_file()  # the key was written, then the outputs failed
         raise OSError(28, "No space left on device")
 

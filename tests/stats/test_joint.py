@@ -38,9 +38,9 @@ def test_wider_prior_wider_constraint_and_no_prior_no_constraint(tmp_path):
     i = np.argmax(free.posterior[:, j])
     np.testing.assert_allclose(free.tau_grid[i], fit.amplitude * S_FID / free.s_grid[j],
                                atol=2 * np.diff(free.tau_grid)[0])
-    plot_velocity_scale(narrow, tmp_path / "c.png")
-    plot_velocity_scale(free, tmp_path / "f.png")
-    assert (tmp_path / "c.png").stat().st_size > 1000
+    assert plot_velocity_scale(narrow, tmp_path, "c") == ["c.pdf", "c.png"]
+    plot_velocity_scale(free, tmp_path, "f")
+    assert (tmp_path / "c.png").stat().st_size > 1000 and (tmp_path / "f.pdf").stat().st_size > 1000
 
 
 def test_sellentin_heavens_joint_fit_matches_its_amplitude_interval():
