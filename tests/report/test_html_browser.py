@@ -42,7 +42,7 @@ def test_report_html_renders_in_headless_chromium(tiny_run, browser, tmp_path):
     browser.get((tiny_run / "report.html").resolve().as_uri())
     assert browser.title == "pairvel report: tiny"
     headline = browser.find_element("id", "headline").text
-    assert "mean optical depth" in headline and "tau_mean = " in headline and "tracer bias" in headline
+    assert "mean optical depth" in headline and "tau_mean = " in headline and "bias b" in headline
     images = browser.execute_script(
         "return Array.from(document.images).map(i => [i.complete, i.naturalWidth, i.alt]);")
     assert len(images) >= 3
