@@ -147,7 +147,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
             from .sims.demo import attach_truth_check
 
             result = attach_truth_check(result)
-        if cfg.blinding.enabled:
+        if cfg.blinding.enabled and not result.extra.get("blinding", {}).get("blinded"):  # not blinded by its input
             from .report.blinding import blind_result
 
             if not key_path.exists():

@@ -445,9 +445,13 @@ def _report(result, summary: dict) -> str:
               f"- config: {prov.get('config_file')} (sha256 {prov.get('config_sha256')})",
               f"- catalogue: {prov['catalogue']['path']} (sha256 {prov['catalogue']['sha256']})",
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
+              *([f"- tracer table: {prov['tracer_table']['path']} (sha256 {prov['tracer_table']['sha256']}); "
+                 "catalogue and map above are the table's"] if "tracer_table" in prov else []),
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
-              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png.", ""]
+              "", "Files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json, pairwise.png, nulls.png, correlation.png"
+              + (", tracers.fits (one row per catalogue row: used or why not, region, aperture temperatures)."
+                 if result.tracers is not None else "."), ""]
     return "\n".join(lines)
 
 
@@ -496,6 +500,10 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None, claim=N
             _plot_nulls(result, tmp / "nulls.png")
         _write_theory_outputs(result, tmp)
         _plot_correlation(result, tmp / "correlation.png")
+        if result.tracers is not None:
+            from .tracers import TRACER_TABLE, write_tracer_table
+
+            write_tracer_table(result.tracers, tmp / TRACER_TABLE, blinding=_blinding(result))
         if "prefilter_transfer" in result.extra:
             from ..maps.prefilter import plot_transfer
 
