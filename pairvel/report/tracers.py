@@ -161,6 +161,7 @@ def read_tracer_table(path) -> StoredTracers:
     except Exception as err:  # any reader failure is an unreadable input, in one line
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise InputError(f"{where}: cannot be read as a pairvel tracer table ({reason})", path=path) from None
+    table.convert_bytestring_to_unicode()  # FITS text columns read as bytes
     if table.meta.get("PVKIND") != _KIND or "PRIMRAD" not in table.meta:
         raise InputError(f"{where}: not a pairvel tracer table (no PVKIND = '{_KIND}' and PRIMRAD cards)", path=path)
     required = ("row", "ra_deg", "dec_deg", "z", "region", "used", "drop_reason", "t_raw_uK", "t_uK")
