@@ -36,8 +36,9 @@ from .skymap import SkyMap
 _MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" is not what anyone wants
 
 #: Why a position's aperture is unusable, in the order they are tested: the disc or annulus holds no
-#: pixel centre at some radius (pixelisation); pixels the map does not hold alone exceed the
-#: masked fraction (outside the map's footprint); otherwise held pixels of weight 0 (mask, bad pixels).
+#: pixel centre at some radius (pixelisation); pixels the map does not hold or holds without data
+#: (NaN, UNSEEN) alone exceed the masked fraction (outside the map's footprint); otherwise pixels
+#: the mask (or a weight of 0) takes out.
 TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED = "too few pixels in the aperture", "outside the map", "masked"
 DROP_REASONS = (TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED)
 
@@ -234,14 +235,15 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
 def _drop_reasons(skymap: SkyMap, ra, dec, radii, res: ApertureResult, options: dict, scale) -> np.ndarray:
     """One of :data:`DROP_REASONS` for each unusable position of ``res`` ("" for the usable ones).
 
-    The footprint test measures the unusable positions again on the map's held pixels, all of
-    weight 1: an aperture still too empty there lies (partly) outside the map.
+    The footprint test measures the unusable positions again with every held pixel that has a value
+    at weight 1 (no mask): an aperture still too empty lies (partly) outside the map, where it has
+    no pixels or only pixels without data (NaN, UNSEEN).
     """
     reason = np.full(ra.size, "", dtype=object)
     bad = np.flatnonzero(~res.usable)
     if bad.size:
         few = np.any((res.n_pixels_disc[:, bad] < 1) | (res.n_pixels_annulus[:, bad] < 1), axis=0)
-        held = skymap.with_values(np.zeros_like(skymap.values), weight=np.ones(skymap.weight.shape, np.float32))
+        held = skymap.with_values(skymap.values, weight=np.ones(skymap.weight.shape, np.float32))  # bad values: 0
         footprint = _measure(held, ra[bad], dec[bad], radii, res.max_masked_fraction, None, **options,
                              scale=None if scale is None else scale[bad])
         reason[bad] = np.where(few, TOO_FEW_PIXELS, np.where(footprint.usable, MASKED, OUTSIDE_MAP))
