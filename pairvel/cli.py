@@ -78,7 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(demo)
 
-    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json)",
+    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json, run.toml)",
                           description="Generate a self-consistent synthetic survey with a known kSZ signal.")
     mock.add_argument("out", help="new folder for the mock files")
     mock.add_argument("--n-tracers", type=int, default=30000, help="number of tracers (default 30000)")
@@ -106,6 +106,8 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _closing_summary(result, out: Path) -> str:
+    from .report.assumptions import closing_lines
+
     f = result.fit
     lines = [
         f"pairvel: {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, z_eff = {result.z_eff:.3f}",
@@ -113,6 +115,7 @@ def _closing_summary(result, out: Path) -> str:
         f"(sqrt(chi2_null - chi2_min) = {f.snr_delta_chi2:.2f})",
         f"  chi2 vs zero = {f.chi2_null:.1f} / {f.n_bins} bins (PTE {f.pte_null:.2g}); "
         f"best fit chi2 = {f.chi2_min:.1f} / {f.dof} dof (PTE {f.pte_min:.2g})",
+        *closing_lines(result),
     ]
     spread = result.extra.get("region_seed_spread")
     if spread is not None:
@@ -127,7 +130,7 @@ def _closing_summary(result, out: Path) -> str:
     return "\n".join(lines)
 
 
-def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool) -> int:
+def _cmd_run(args, config_path: Path, default_out: Path, run_log) -> int:
     from .core.progress import Progress
     from .input.config import load_config
     from .pipeline import run_pipeline
@@ -143,10 +146,6 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
         _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
         progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
         result = run_pipeline(cfg, progress=progress)
-        if demo:
-            from .sims.demo import attach_truth_check
-
-            result = attach_truth_check(result)
         if cfg.blinding.enabled and not result.extra.get("blinding", {}).get("blinded"):  # not blinded by its input
             from .report.blinding import blind_result
 
@@ -157,8 +156,8 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log, *, demo: bool)
         with progress.stage("writing outputs"):
             write_outputs(result, out, run_log=run_log, claim=claim)
     print(_closing_summary(result, out))
-    if demo:
-        print(result.extra["demo_check"]["verdict"])
+    if "truth_check" in result.extra:  # run.truth_path (the demo sets it)
+        print(result.extra["truth_check"]["verdict"])
     progress.say(f"finished in {progress.elapsed:.0f} s")
     return EXIT_OK
 
@@ -186,16 +185,48 @@ def _cmd_unblind(args, run_log) -> int:
 def _cmd_keys(args) -> int:
     from .input.config import iter_config_keys
 
+    def shown(key, default, doc):
+        return "(required)" if default is None and (key.endswith(".path") or "(required:" in doc) else repr(default)
+
+    rows = [(key, typ, shown(key, default, doc), doc) for key, typ, default, doc in iter_config_keys()]
     if args.markdown:
         print("| key | type | default | meaning |\n|---|---|---|---|")
-    for key, typ, default, doc in iter_config_keys():
-        shown = "(required)" if key.endswith(".path") and default is None else repr(default)
-        print(f"| `{key}` | {typ} | {shown} | {doc} |" if args.markdown else f"{key:34s} {typ:22s} {shown:12s} {doc}")
+        for row in rows:
+            print("| `{}` | {} | {} | {} |".format(*row))
+    else:
+        print("Config keys by [section]: key, type, default, meaning (--markdown: one Markdown table)\n")
+        print("\n".join(_keys_table(rows)))
     return EXIT_OK
+
+
+#: Width of `pairvel keys` (every line fits) and the widest type and default columns (wrapped beyond).
+_KEYS_WIDTH, _KEYS_TYPE_MAX, _KEYS_DEFAULT_MAX = 100, 16, 19
+
+
+def _keys_table(rows) -> list[str]:
+    """The config keys as a plain-text table: a ``[section]`` line, then key, type, default and
+    meaning in columns, each cell wrapped within its column so that no line exceeds _KEYS_WIDTH."""
+    import itertools
+    import textwrap
+
+    lines = []
+    for section, group in itertools.groupby(rows, key=lambda row: row[0].split(".", 1)[0]):
+        cells = [(key.split(".", 1)[1], typ, default, doc) for key, typ, default, doc in group]
+        widths = [max(len(c[0]) for c in cells),
+                  min(_KEYS_TYPE_MAX, max(len(c[1]) for c in cells)),
+                  min(_KEYS_DEFAULT_MAX, max(len(c[2]) for c in cells))]
+        widths.append(_KEYS_WIDTH - 2 - sum(w + 2 for w in widths))
+        lines += [""] * bool(lines) + [f"[{section}]"]
+        for row in cells:
+            wrapped = [textwrap.wrap(text, width, break_on_hyphens=False) or [""] for text, width in zip(row, widths)]
+            for parts in itertools.zip_longest(*wrapped, fillvalue=""):
+                lines.append(("  " + "  ".join(f"{p:{w}s}" for p, w in zip(parts, widths))).rstrip())
+    return lines
 
 
 def _cmd_mock(args) -> int:
     from .sims.mock import make_mock_survey
+    from .sims.mockconfig import RUN_CONFIG_FILE
 
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
@@ -208,19 +239,23 @@ def _cmd_mock(args) -> int:
     if args.extra_frequency:
         print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
               " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
+    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
+    print(f"  run it with: pairvel run {config}\n"
+          f"    (the mock's bias, cosmology and aperture; the run compares tau_mean with truth.json)")
     return EXIT_OK
 
 
 def _add_validate_parser(sub, common) -> None:
-    from .sims.validate import ValidationOptions
+    from .sims.validate import MIN_MOCKS_FOR_VERDICTS, ValidationOptions
 
     d = ValidationOptions()
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
                          description="Make many cheap mock light cones with linear-theory velocities and a known "
                                      "optical depth, push each through the pipeline's estimator, jackknife and fit, "
-                                     "and report the bias, the 68%% coverage and the jackknife error / scatter ratio.")
+                                     "and report the bias, the 68% coverage and the jackknife error / scatter ratio.")
     val.add_argument("out", help="new output folder (mocks.ecsv, summary.json, calibration.png)")
-    val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks})")
+    val.add_argument("--n-mocks", type=int, default=d.n_mocks, help=f"number of mocks (default {d.n_mocks}; with fewer than "
+                                                                    f"{MIN_MOCKS_FOR_VERDICTS} the verdicts mean little)")
     val.add_argument("--seed", type=int, default=d.seed, help=f"master seed (default {d.seed})")
     val.add_argument("--n-tracers", type=int, default=d.n_tracers, help=f"tracers per mock (default {d.n_tracers})")
     val.add_argument("--tau-mean", type=float, default=d.tau_mean, help=f"injected optical depth (default {d.tau_mean:g})")
@@ -357,12 +392,12 @@ def _sigterm_unwinds():
 
 def _dispatch(args, run_log) -> int:
     if args.command == "run":
-        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log, demo=False)
+        return _cmd_run(args, Path(args.config), Path.cwd() / _run_name(args.config), run_log)
     if args.command == "demo":
         from .sims.demo import demo_config_path
 
         stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
-        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log, demo=True)
+        return _cmd_run(args, demo_config_path(), Path.cwd() / f"pairvel-demo-{stamp}", run_log)
     if args.command == "mock":
         return _cmd_mock(args)
     if args.command == "unblind":

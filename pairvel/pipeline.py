@@ -44,6 +44,7 @@ from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
 from .report.tracers import StoredTracers, radius_suffix, read_tracer_table, tracer_table
+from .sims.truth import attach_truth_check, read_truth
 from .stats.covariance import (
     bootstrap_covariance,
     bootstrap_samples,
@@ -76,11 +77,15 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     -------
     RunResult
         Its ``warnings`` keep every Python warning and ``pairvel`` WARNING record of the run, with
-        the stage that raised it (each is also shown as usual).
+        the stage that raised it (each is also shown as usual).  With ``run.truth_path`` its
+        ``extra["truth_check"]`` compares tau_mean with the injected one (:mod:`pairvel.sims.truth`).
     """
     progress = progress or Progress(10, quiet=True)
+    truth = read_truth(cfg.run.truth_path) if cfg.run.truth_path else None  # a bad truth file fails before the work
     with collect_warnings(lambda: progress.current) as kept:
         result = run_stages(cfg, progress)
+        if truth is not None:
+            result = attach_truth_check(result, truth, path=cfg.run.truth_path)
     return dataclasses.replace(result, warnings=tuple(kept))
 
 
@@ -568,7 +573,7 @@ def covariance(cfg: Config, pr, stack: TemperatureStack, positions, temps, edges
         cov = bootstrap_covariance(bootstrap_samples(num_k, den_k, cc.n_bootstrap, seed=rng))
     covs = {"jackknife": cov_jk, cc.estimator: cov}
     diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
-                                  used=cc.estimator)
+                                  used=cc.estimator, n_fit_bins=int(fit_bins(cfg, edges).sum()))
     return CovarianceResult(p, p_jk, jk_rows, cov_jk, cov, n_cov, n_jk, diag, bool(n_sims))
 
 
@@ -584,10 +589,15 @@ class TemplateResult:
     info: dict
 
 
+def fit_bins(cfg: Config, edges) -> np.ndarray:
+    """(n_bins,) bool: the bins whose centre lies in the fit range [fit_r_min_mpc, fit_r_max_mpc)."""
+    r_mid = 0.5 * (edges[1:] + edges[:-1])
+    return (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+
+
 def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, progress: Progress) -> TemplateResult:
     """The linear template averaged like the estimator, times the predicted trend-removal loss."""
-    r_mid = 0.5 * (edges[1:] + edges[:-1])
-    in_fit = (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
+    in_fit = fit_bins(cfg, edges)
     weight = pr.denominator * in_fit
     z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
     v12, info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,

@@ -28,6 +28,9 @@ width_mpc = 30.0
 [covariance]
 n_regions = 12
 
+[theory]
+bias = 1.0
+
 [nulls]
 n_random = 2
 """

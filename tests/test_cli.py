@@ -104,10 +104,72 @@ def test_force_never_replaces_a_folder_pairvel_did_not_write(tiny_survey, capsys
 
 def test_keys_and_help(capsys):
     assert main(["keys"]) == 0
-    assert "aperture.radius_arcmin" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "\n[aperture]\n  radius_arcmin " in out
+    bias = [line for line in out.split("\n[theory]\n")[1].splitlines() if line.startswith("  bias ")]
+    assert len(bias) == 1 and "(required)" in bias[0] and "1.0" not in bias[0]  # no default value shown
     with pytest.raises(SystemExit) as exc:
         main(["run", "--help"])
     assert exc.value.code == 0
+
+
+def test_keys_table_groups_by_section_within_100_columns(capsys):
+    from pairvel.input.config import iter_config_keys
+
+    assert main(["keys"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert max(len(line) for line in lines) <= 100
+    keys = list(iter_config_keys())
+    sections = list(dict.fromkeys(key.split(".")[0] for key, *_ in keys))
+    assert [line for line in lines if line.startswith("[")] == [f"[{s}]" for s in sections]
+    # each row: a line whose four cells start the columns, then continuation lines in the same columns
+    section, rows = None, {}
+    for line in lines:
+        if line.startswith("["):
+            section = line.strip("[]")
+        elif section is not None and re.match(r"  \S", line):
+            starts = [2] + [2 + m.end() - 1 for m in re.finditer(r" {2,}\S", line[2:])]
+            assert len(starts) == 4, line
+            rows[f"{section}.{line.split()[0]}"] = [[] for _ in starts]
+            current = (starts, rows[f"{section}.{line.split()[0]}"])
+        if section is not None and line.startswith("  "):
+            starts, cells = current
+            for k, (a, b) in enumerate(zip(starts, starts[1:] + [None])):
+                cells[k] += line[a:b].split()
+    assert list(rows) == [key for key, *_ in keys]
+    # the same cells as the documented table in configs/README.md (`pairvel keys --markdown`)
+    readme = (Path(__file__).resolve().parents[1] / "configs" / "README.md").read_text().splitlines()
+    documented = [line.strip("|").split(" | ") for line in readme if line.startswith("| `")]
+    assert len(documented) == len(keys)
+    for key, typ, shown, doc in documented:
+        key = key.strip(" `")
+        assert rows[key] == [[key.split(".")[1]], typ.split(), shown.split(), doc.split()], key
+
+
+def test_keys_markdown_is_the_readme_table(capsys):
+    assert main(["keys", "--markdown"]) == 0
+    printed = capsys.readouterr().out.splitlines()
+    assert printed[:2] == ["| key | type | default | meaning |", "|---|---|---|---|"]
+    readme = (Path(__file__).resolve().parents[1] / "configs" / "README.md").read_text().splitlines()
+    assert printed[2:] == [line for line in readme if line.startswith("| `")]
+
+
+def subcommands():
+    from pairvel.cli import _parser
+
+    action = next(a for a in _parser()._actions if a.dest == "command")
+    return sorted(action.choices)
+
+
+@pytest.mark.parametrize("argv", [[]] + [[name] for name in subcommands()])
+def test_help_texts_print_percent_signs_once(argv, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main([*argv, "--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    assert "%%" not in out and "%(" not in out
+    if argv == ["validate"]:
+        assert "68% coverage" in out
 
 
 def test_healpix_jackknife_regions(tiny_survey):
@@ -282,7 +344,7 @@ def test_keys_into_head():
     producer.stdout.close()  # like `| head -n 1`: the reader goes away while pairvel may still be writing
     err = producer.stderr.read()
     assert producer.wait(timeout=120) == 0 and err == b"", err
-    assert first.startswith(b"run.name ")
+    assert first.startswith(b"Config keys by [section]")
 
 
 def test_other_broken_pipes_are_still_faults(capsys, monkeypatch):
@@ -419,3 +481,59 @@ def test_logged_warnings_are_kept_with_their_logger():
         {"text": "trend odd", "source": "pairvel.maps.trend", "stage": "first"},
         {"text": "plain", "source": "UserWarning in test_cli", "stage": None},
     ]
+
+
+# --- any run checked against a truth.json (run.truth_path)
+
+def with_truth(folder, truth, *, extra=""):
+    (folder / "truth.json").write_text(truth if isinstance(truth, str) else json.dumps(truth))
+    cfg = folder / "run.toml"
+    cfg.write_text(cfg.read_text().replace('seed = 3\n', 'seed = 3\ntruth_path = "truth.json"\n') + extra)
+
+
+def test_run_compares_tau_mean_with_a_truth_file(tiny_survey, capsys):
+    with_truth(tiny_survey, {"tau_mean": 1.5e-3, "aperture_response": 0.98})
+    assert run(tiny_survey) == 0
+    printed = capsys.readouterr().out
+    summary = json.loads((tiny_survey / "out" / "summary.json").read_text())
+    check = summary["truth_check"]
+    assert check["tau_mean_injected"] == 1.5e-3 and check["truth_file"] == str(tiny_survey / "truth.json")
+    # the pull from the run's own fit (internal consistency, to rounding)
+    assert check["pull_sigma"] == pytest.approx((summary["tau_mean"] - 1.5e-3) / summary["tau_mean_error"], rel=1e-12)
+    assert "tau_mean_vs_realised_velocity" not in check  # this truth holds no realised velocity curve
+    verdict = check["verdict"]
+    assert verdict.startswith("truth check: injected tau_mean = 1.500e-03") and verdict in printed
+    assert printed.index("outputs:") < printed.index("truth check:")
+    report = (tiny_survey / "out" / "report.md").read_text()
+    assert "## Comparison with the injected truth" in report and verdict in report
+    assert "expected recovered value is about 1.470e-03" in report  # 1.5e-3 x 0.98
+
+
+def test_run_without_truth_path_has_no_truth_check(tiny_survey, capsys):
+    assert run(tiny_survey) == 0
+    assert "truth check" not in capsys.readouterr().out
+    assert "truth_check" not in json.loads((tiny_survey / "out" / "summary.json").read_text())
+
+
+@pytest.mark.parametrize("truth, match", [
+    (None, r"run\.truth_path .*truth\.json: file not found"),
+    ("{not json", r"run\.truth_path .*truth\.json: is not JSON"),
+    ("[1, 2]", r"run\.truth_path .*truth\.json: must hold a JSON object .*; got list"),
+    ('{"tau_mean": "2e-3"}', r"run\.truth_path .*truth\.json: 'tau_mean' must be a finite number .*; got '2e-3'"),
+    ('{"bias": 0.4}', r"run\.truth_path .*truth\.json: 'tau_mean' must be a finite number .*; got None"),
+])
+def test_unusable_truth_file_stops_before_the_work(tiny_survey, capsys, truth, match):
+    with_truth(tiny_survey, "" if truth is None else truth)
+    if truth is None:
+        (tiny_survey / "truth.json").unlink()
+    assert run(tiny_survey) == 2
+    assert re.search(match, only_error_line(capsys))
+    assert not (tiny_survey / "out").exists()
+
+
+def test_truth_check_and_blinding_exclude_each_other(tiny_survey, capsys):
+    with_truth(tiny_survey, {"tau_mean": 1e-3}, extra="\n[blinding]\nenabled = true\n")
+    assert run(tiny_survey) == 2
+    line = only_error_line(capsys)
+    assert "'run.truth_path' cannot be used with blinding.enabled" in line and "run.toml" in line
+    assert not (tiny_survey / "out").exists()

@@ -337,6 +337,11 @@ def both(*steps) -> Callable[[Path], None]:
     return prepare
 
 
+def with_truth(content: bytes) -> Callable[[Path], None]:
+    """A truth.json holding ``content``, named by the config's run.truth_path."""
+    return both(set_in_config("run", 'truth_path = "truth.json"'), write_file("truth.json", content))
+
+
 def full_sky_mask(nside: int, value: float):
     return lambda path: write_healpix(path, np.full(hp.nside2npix(nside), value, np.float32), nside=nside, unit=None)
 
@@ -410,6 +415,8 @@ CONFIG_CASES = [
          r"'catalogue\.z_max' must exceed catalogue\.z_min; got 0\.3 and 0\.2"),
     Case("proxy-cut-without-column", "config", replace_in_config('proxy_column = "log_mass"', "proxy_min = 14.5"),
          r"'catalogue\.proxy_column' is required when proxy_min or proxy_max is set"),
+    Case("bias-missing", "config", replace_in_config("bias = 1.0\n", ""),
+         r"'theory\.bias' is required: tau_mean scales as 1/b"),
     Case("fit-range-empty", "config", set_in_config("theory", "fit_r_min_mpc = 60.0\nfit_r_max_mpc = 30.0"),
          r"'theory\.fit_r_max_mpc' must exceed theory\.fit_r_min_mpc"),
     Case("prior-half-set", "config", set_in_config("theory", "fit_velocity_scale = true\ntau_prior_mean = 1e-4"),
@@ -427,6 +434,17 @@ CONFIG_CASES = [
     Case("bins-nan-edge", "config", set_in_config("bins", "edges_mpc = [0.0, nan]"), r"'bins\.edges_mpc'.*item 2"),
     Case("bins-inf-edge", "config", set_in_config("bins", "edges_mpc = [0.0, inf]"), r"'bins\.edges_mpc'.*item 2"),
     Case("negative-seed", "config", replace_in_config("seed = 3", "seed = -1"), r"run\.toml: 'run\.seed'"),
+    Case("truth-not-found", "config", set_in_config("run", 'truth_path = "truth.json"'),
+         r"run\.truth_path \S*truth\.json: file not found"),
+    Case("truth-not-json", "config", with_truth(b"tau_mean = 2e-3\n"), r"run\.truth_path \S*truth\.json: is not JSON"),
+    Case("truth-without-tau", "config", with_truth(b'{"tau": 2e-3}'),
+         r"run\.truth_path \S*truth\.json: 'tau_mean' must be a finite number .*; got None"),
+    Case("truth-tau-nan", "config", with_truth(b'{"tau_mean": NaN}'),
+         r"run\.truth_path \S*truth\.json: 'tau_mean' must be a finite number .*; got nan"),
+    Case("truth-permission-denied", "config", with_truth(b'{"tau_mean": 2e-3}'),
+         r"run\.truth_path \S*truth\.json: cannot be read \(Permission denied\)", run=denied("io.open", "truth.json")),
+    Case("truth-with-blinding", "config", both(with_truth(b'{"tau_mean": 2e-3}'), set_in_config("blinding", "enabled = true")),
+         r"'run\.truth_path' cannot be used with blinding\.enabled"),
 ]
 
 # ---------------------------------------------------------------------- catalogue cases

@@ -95,10 +95,26 @@ def test_too_few_samples_warns():
     from pairvel.stats.covdiag import covariance_diagnostics
 
     cov = np.diag([1.0, 2.0, 4.0, 8.0])
-    with pytest.warns(PairvelWarning, match="'jackknife' comes from 10 samples for 4 bins"):
+    with pytest.warns(PairvelWarning, match="'jackknife' comes from 10 samples for the 4 fitted bins"):
         d = covariance_diagnostics({"jackknife": cov}, {"jackknife": 10}, used="jackknife")
     np.testing.assert_allclose(d["condition_number"], 8.0, rtol=1e-12)  # analytic: max/min eigenvalue
     assert d["too_few_samples"] == ["jackknife"]
+
+
+def test_quoted_hartlap_factor_is_the_one_for_the_fitted_bins():
+    """A fit range of 2 of 4 bins: the diagnostics quote (n - 2 - 2)/(n - 1), the factor the fit applies."""
+    from pairvel.core.errors import PairvelWarning
+    from pairvel.stats.covdiag import covariance_diagnostics
+    from pairvel.stats.fit import fit_amplitude
+
+    cov = np.diag([1.0, 2.0, 4.0, 8.0])
+    use = np.array([False, True, True, False])
+    with pytest.warns(PairvelWarning, match=r"10 samples for the 2 fitted bins \(Hartlap factor 0\.67 < 0\.8\)"):
+        d = covariance_diagnostics({"jackknife": cov}, {"jackknife": 10}, used="jackknife", n_fit_bins=int(use.sum()))
+    fit = fit_amplitude(np.ones(4), np.ones(4), cov, n_samples=10, use=use)
+    assert d["hartlap_factor"]["jackknife"] == fit.precision_factor == 6 / 9  # analytic: (10 - 2 - 2) / (10 - 1)
+    d = covariance_diagnostics({"jackknife": cov}, {"jackknife": 30}, used="jackknife", n_fit_bins=2)
+    assert d["too_few_samples"] == [] and d["hartlap_factor"]["jackknife"] == 26 / 29  # analytic, no warning
 
 
 def test_jackknife_sample_is_the_whole_chain_without_the_region():

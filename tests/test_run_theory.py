@@ -9,7 +9,7 @@ from pairvel.model import theory as th
 
 
 def run(folder, theory_toml, *extra):
-    text = (folder / "run.toml").read_text() + "\n[theory]\n" + theory_toml
+    text = (folder / "run.toml").read_text().replace("[theory]\n", "[theory]\n" + theory_toml)
     (folder / "run2.toml").write_text(text)
     return main(["run", str(folder / "run2.toml"), "--out", str(folder / "out"), "--quiet", *extra])
 

@@ -69,6 +69,9 @@ class RunConfig:
                                     "a plain folder name (not '.' or '..', no '/', '\\' or NUL)")
     seed: int = _key(20261202, "seed of every random step (regions, null positions); recorded in outputs",
                      bounds=(0, 2**63 - 1))
+    truth_path: Path | None = _key(None, "truth.json of a synthetic survey (as `pairvel mock` writes it): compare the "
+                                         "fitted tau_mean with the injected one and report the verdict (not with "
+                                         "blinding)")
 
 
 @dataclass(frozen=True)
@@ -133,6 +136,11 @@ class ApertureConfig:
                                 choices=("centre", "fraction", "subsample"))
     method: str = _key("auto", "photometry path: kernel (compiled, no Python loop over tracers), direct (one disc "
                        "query per tracer) or auto (kernel unless subsample)", choices=("auto", "kernel", "direct"))
+    beam_fwhm_arcmin: float | None = _key(None, "Gaussian beam FWHM of the map, arcmin; only states what tau_mean "
+                                                "means for point-like tracers (the fraction of a beam-convolved point "
+                                                "source the aperture keeps) in the outputs; unset: "
+                                                "prefilter.beam_fwhm_arcmin when set, else not stated",
+                                          bounds=(0.0, 600.0))
 
 
 @dataclass(frozen=True)
@@ -188,7 +196,8 @@ class CovarianceConfig:
 
 @dataclass(frozen=True)
 class TheoryConfig:
-    bias: float = _key(1.0, "linear bias of the tracers in the pairwise-velocity template", bounds=(0.01, 20.0))
+    bias: float | None = _key(None, "linear bias b of the tracers in the pairwise-velocity template (required: "
+                                    "tau_mean scales as 1/b, so no value is assumed)", bounds=(0.01, 20.0))
     wiggles: bool = _key(True, "Eisenstein & Hu transfer function with baryon wiggles (false: no-wiggle form)")
     fit_r_min_mpc: float = _key(0.0, "fit only bins whose centre is >= this separation, Mpc", bounds=(0.0, 1e4))
     fit_r_max_mpc: float = _key(math.inf, "fit only bins whose centre is < this separation, Mpc", bounds=(0.0, math.inf))
@@ -379,7 +388,10 @@ _COSMOLOGY_DOCS = {
     "omega_b": "baryon density parameter today",
     "n_s": "scalar spectral index of the primordial power spectrum",
     "sigma_8": "rms linear density contrast in 8 Mpc/h spheres at z = 0 (normalises P(k))",
-    "t_cmb_k": "CMB temperature in K",
+    "t_cmb_k": "CMB temperature in K (sets the photon density of the radiation term)",
+    "n_eff": "effective number of massless neutrino species in the radiation density",
+    "radiation": "include radiation (photons at t_cmb_k, n_eff massless neutrinos) in the distances and H(z); "
+                 "false: matter + Lambda only",
 }
 
 _SECTIONS = {f.name: f for f in dataclasses.fields(Config) if f.name != "source"}
@@ -540,12 +552,18 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
     if not is_folder_name(cfg.run.name):
         bad("run.name", f"must be a plain folder name (not empty, '.' or '..'; no '/', '\\' or NUL character); "
                         f"got {cfg.run.name!r}")
+    if cfg.run.truth_path is not None and cfg.blinding.enabled:
+        bad("run.truth_path", "cannot be used with blinding.enabled: comparing with a known truth reveals the "
+                              "amplitude; remove one of them")
     if cfg.restart.table_path is not None:
         _check_restart(cfg, bad)
     elif cfg.catalogue.path is None:
         bad("catalogue.path", "is required (or restart.table_path)")
     elif cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
+    if cfg.theory.bias is None:
+        bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
+                           "tracers under [theory] (pairvel does not derive it from masses)")
     if not cfg.catalogue.z_min < cfg.catalogue.z_max:
         bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
     if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
@@ -591,6 +609,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
             bad("prefilter.noise_uk_arcmin", f"is required for kind = '{pf.kind}'")
         if pf.beam_fwhm_arcmin is None and pf.beam_path is None:
             bad("prefilter.beam_fwhm_arcmin", f"or prefilter.beam_path is required for kind = '{pf.kind}'")
+    if None not in (ap.beam_fwhm_arcmin, pf.beam_fwhm_arcmin) and ap.beam_fwhm_arcmin != pf.beam_fwhm_arcmin:
+        bad("aperture.beam_fwhm_arcmin", f"and prefilter.beam_fwhm_arcmin describe the same map beam; got "
+                                         f"{ap.beam_fwhm_arcmin:g} and {pf.beam_fwhm_arcmin:g}")
     if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:

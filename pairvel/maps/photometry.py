@@ -18,7 +18,8 @@ HEALPix a compiled walk over the pixel rings or one disc query per position.
 
 from __future__ import annotations
 
-__all__ = ["ApertureResult", "DROP_REASONS", "measure_apertures", "random_positions_in_footprint", "measure_random_apertures"]
+__all__ = ["ApertureResult", "DROP_REASONS", "measure_apertures", "random_positions_in_footprint",
+           "measure_random_apertures", "point_source_fraction"]
 
 import dataclasses
 import math
@@ -41,6 +42,46 @@ _MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" i
 #: the mask (or a weight of 0) takes out.
 TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED = "too few pixels in the aperture", "outside the map", "masked"
 DROP_REASONS = (TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED)
+
+
+def point_source_fraction(radius_arcmin: float, beam_fwhm_arcmin: float) -> float:
+    """What the compensated aperture returns for a beam-convolved point-like profile, over its integral.
+
+    A profile of solid-angle integral Y seen through a Gaussian beam of FWHM ``beam_fwhm_arcmin``
+    gives the aperture of disc radius theta (annulus theta..sqrt(2) theta) the value
+    f Y / (pi theta^2), with the f returned here; so the aperture optical depth tau_mean of such
+    tracers corresponds to a profile integral tau_mean pi theta^2 / f.
+
+    Parameters
+    ----------
+    radius_arcmin : float, arcmin
+        Disc radius theta.
+    beam_fwhm_arcmin : float, arcmin
+        Beam FWHM; 0 gives f = 1 (a point inside the disc, nothing in the annulus).
+
+    Returns
+    -------
+    float in [0, 1]
+
+    Notes
+    -----
+    Flat sky, sigma = FWHM / sqrt(8 ln 2), profile Y exp(-r^2 / 2 sigma^2) / (2 pi sigma^2).  Its
+    integral inside radius R is Y (1 - exp(-R^2 / 2 sigma^2)).  With x = theta^2 / (2 sigma^2) the
+    disc holds Y (1 - e^-x) and the annulus Y (e^-x - e^-2x) (R = sqrt(2) theta gives e^-2x).  Disc
+    and annulus both have area pi theta^2, so
+
+        T_AP = [Y (1 - e^-x) - Y (e^-x - e^-2x)] / (pi theta^2) = Y (1 - e^-x)^2 / (pi theta^2),
+
+    i.e. f = (1 - e^-x)^2.  Pixelisation (whole pixels by their centres) is left out; it moves the
+    mean over many tracers by well under a per cent once the pixel is a few times smaller than theta.
+    """
+    theta, fwhm = float(radius_arcmin), float(beam_fwhm_arcmin)
+    if not (math.isfinite(theta) and theta > 0 and math.isfinite(fwhm) and fwhm >= 0):
+        raise InputError(f"aperture radius must be > 0 and beam FWHM >= 0, both finite; got {theta!r} and {fwhm!r}")
+    if fwhm == 0:
+        return 1.0
+    sigma = fwhm / math.sqrt(8.0 * math.log(2.0))
+    return math.expm1(-theta**2 / (2.0 * sigma**2)) ** 2  # (1 - e^-x)^2
 
 
 @dataclass(frozen=True, eq=False)

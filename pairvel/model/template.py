@@ -217,6 +217,8 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         From :func:`load_power`.
     """
     tc = theory_cfg
+    if tc.bias is None:  # load_config refuses such a config; this catches one built in code
+        raise TheoryError("theory.bias is required: tau_mean scales as 1/b, so no value is assumed")
     if tc.redshift_weighting == "pair_distribution":
         z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo)
     else:
@@ -244,6 +246,12 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         zb = np.asarray(z_eff_bins, dtype=float)
         info["z_eff_bins_measured_minus_model_max"] = float(np.nanmax(np.abs(zb - z_mean))) if zb.size else None
     # f sigma_8 at the mean pair redshift: the velocity scale the template assumes (for the 2-parameter fit)
-    sigma8_z = sigma_radius(8.0 / cosmo.h, z_mean, cosmo=cosmo, wiggles=tc.wiggles, power=power)
-    info["f_sigma8_template"] = float(growth_rate(z_mean, cosmo=cosmo, method=tc.growth_rate) * sigma8_z)
+    info["f_sigma8_template"] = _f_sigma8(z_mean, tc, cosmo, power)
+    info["f_sigma8_at_z_eff"] = _f_sigma8(z_eff, tc, cosmo, power)
     return v12, info
+
+
+def _f_sigma8(z: float, theory_cfg, cosmo: Cosmology, power) -> float:
+    """f(z) sigma_8(z) of the run's linear power spectrum and growth-rate setting."""
+    sigma8_z = sigma_radius(8.0 / cosmo.h, z, cosmo=cosmo, wiggles=theory_cfg.wiggles, power=power)
+    return float(growth_rate(z, cosmo=cosmo, method=theory_cfg.growth_rate) * sigma8_z)

@@ -175,7 +175,7 @@ EXTRA_RULES = {
     "template": 0,                     # the model's shape and how it was made
     "rotations_used": 0, "prefilter": 0, "prefilter_transfer": 0, "multifrequency": 0,
     "covariance_diagnostics": {"used": 0, "condition_number": 0, "errors": _Each(1), "n_samples": 0,
-                               "too_few_samples": 0},
+                               "hartlap_factor": 0, "n_fit_bins": 0, "too_few_samples": 0},
     "radius_fits": {"radius_arcmin": 0, "primary": 0, "fit": FIT_RULES, "p": 1, "p_err": 1, "problem": 0},
     "proxy_bins": {"proxy_min": 0, "proxy_max": 0, "proxy_median": 0, "n_tracers": 0, "n_pairs": 0,
                    "n_regions": 0, "z_mean": 0, "fit": FIT_RULES, "problem": 0},
@@ -183,8 +183,9 @@ EXTRA_RULES = {
     "region_seed_spread": {"tau_mean": 1, "tau_error": 1, "tau_mean_std": 1, "quoted_error": 1,
                            "std_over_error": 0, "error_std_over_error": 0, "n_regions": 0, "n_seeds": 0,
                            "skipped": 0},
-    # the demo's comparison with its injected truth, and free report text: true by construction
-    "demo_check": _refuse("demo_check"), "plot_curves": _refuse("plot_curves"),
+    # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
+    # when the config is read), and free report text: true by construction
+    "truth_check": _refuse("truth_check"), "plot_curves": _refuse("plot_curves"),
     "report_sections": _refuse("report_sections"),
 }
 
@@ -343,7 +344,9 @@ def _stored_extra(summary: dict, fit) -> dict:
     from ..stats.radii import RadiusFit
     from ..stats.subsamples import ProxyBinFit
 
-    extra = {k: summary[k] for k in ("demo_check", "template", "prefilter", "multifrequency") if k in summary}
+    extra = {k: summary[k] for k in ("truth_check", "template", "prefilter", "multifrequency") if k in summary}
+    if "demo_check" in summary:  # folders written before any run could name a truth file
+        extra["truth_check"] = summary["demo_check"]
     if "null_rotations_used" in summary:
         extra["rotations_used"] = summary["null_rotations_used"]
     if "diagnostics" in summary.get("covariance", {}):

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .assumptions import assumptions, assumptions_markdown, closing_lines, tau_mean_meaning
 from .blinding import check_declared
 from .folders import OUTPUT_MARKER, RUN_LOG, prepare_output_dir, write_folder_atomically
 
@@ -98,6 +99,8 @@ def summary_dict(result) -> dict:
         "dof": fit["dof"],
         "fit": fit,
         "z_eff": result.z_eff,
+        "assumptions": assumptions(result),
+        "tau_mean_meaning": tau_mean_meaning(result.config),
         "n_tracers": result.n_tracers,
         "n_pairs": int(result.pair_counts.sum()),
         "aperture_radius_arcmin": result.config.aperture.radius_arcmin,
@@ -114,8 +117,8 @@ def summary_dict(result) -> dict:
         "config": result.config.as_dict(),
         "provenance": result.provenance,
     }
-    if "demo_check" in result.extra:
-        out["demo_check"] = result.extra["demo_check"]
+    if "truth_check" in result.extra:
+        out["truth_check"] = result.extra["truth_check"]
     if "template" in result.extra:
         out["template"].update(result.extra["template"])
     out.update(theory_summary(result))
@@ -387,7 +390,7 @@ def _plot_nulls(result, path: Path) -> None:
 
 def report_sections(result) -> dict:
     """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
-    blinded sections), then the free-text sections a caller added (the demo's truth check)."""
+    blinded sections), then the free-text sections a caller added (the check against a truth)."""
     from ..maps.multifreq import combination_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown
@@ -415,6 +418,11 @@ def _report(result, summary: dict) -> str:
         f"- chi2 against zero: {f.chi2_null:.2f} for {f.n_bins} bins (PTE {f.pte_null:.3g}); "
         f"best fit: {f.chi2_min:.2f} for {f.dof} dof (PTE {f.pte_min:.3g})",
         f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
+        *(f"- {line.strip()}" for line in closing_lines(result)),
+        "",
+        "## What tau_mean assumes",
+        "",
+        assumptions_markdown(summary["assumptions"]),
         "",
         "## Null tests",
         "",

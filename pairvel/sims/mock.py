@@ -45,6 +45,7 @@ from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
+from .mockconfig import RUN_CONFIG_FILE, mock_run_config
 
 SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"
@@ -235,7 +236,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None) -> MockTruth:
-    """Write a synthetic survey (catalogue, partial HEALPix map, truth.json) into a new folder.
+    """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
     ----------
@@ -298,8 +299,10 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
 
     Notes
     -----
-    Files: ``larkspur_clusters.fits`` (columns ra, dec [deg], z, log_mass) and
-    ``skerry_150ghz_partial.fits`` (float32, uK_CMB, footprint plus a 1 degree margin).
+    Files: ``larkspur_clusters.fits`` (columns ra, dec [deg], z, log_mass),
+    ``skerry_150ghz_partial.fits`` (float32, uK_CMB, footprint plus a 1 degree margin), and
+    ``run.toml``, a config that ``pairvel run`` measures as it is, with the mock's bias, cosmology
+    and aperture, checked against truth.json (:mod:`pairvel.sims.mockconfig`).
 
     Each tracer's kSZ temperature is dT_i = -tau_i T_CMB v_r,i / c (v_r > 0 receding), painted as
     a beam-shaped source whose solid-angle integral is dT_i pi theta_ap^2, so a compensated
@@ -359,6 +362,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         def fill(folder: Path) -> None:
             _write_survey(folder, spec, tracers, amplitudes.log_mass, foot, maps)
             (folder / "truth.json").write_text(json.dumps(record, indent=2, allow_nan=False) + "\n")
+            (folder / RUN_CONFIG_FILE).write_text(mock_run_config(record, folder_name=claim.path.name,
+                                                                  trend_sigma_z=_TREND_SIGMA_Z))
 
         claim.write(fill)
     return truth

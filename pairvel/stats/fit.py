@@ -20,7 +20,7 @@ numerical integration of the likelihood).
 from __future__ import annotations
 
 __all__ = ["LIKELIHOODS", "AmplitudeFit", "chi2_against_zero", "chi2_pte", "fit_amplitude", "hartlap_factor",
-           "sellentin_heavens_interval"]
+           "hartlap_ratio", "sellentin_heavens_interval"]
 
 from dataclasses import asdict, dataclass
 
@@ -71,10 +71,21 @@ def hartlap_factor(n_samples: int, n_bins: int) -> float:
     Hartlap, Simon & Schneider 2007, A&A 464, 399.
     """
     n, p = int(n_samples), int(n_bins)
-    if n - p - 2 <= 0:
+    factor = hartlap_ratio(n, p)
+    if not factor > 0:
         raise InputError(f"the covariance from {n} samples cannot be inverted for {p} bins (Hartlap factor "
                          f"(n - p - 2)/(n - 1) <= 0); use more jackknife regions or fewer bins")
-    return (n - p - 2) / (n - 1)
+    return factor
+
+
+def hartlap_ratio(n_samples: int, n_bins: int) -> float:
+    """(n - p - 2) / (n - 1) as it stands, without the check of :func:`hartlap_factor` (-1 for n <= 1).
+
+    ``n_bins`` is the number of bins the precision matrix is made for: the fitted bins, when a fit
+    range leaves some out.
+    """
+    n, p = int(n_samples), int(n_bins)
+    return (n - p - 2) / (n - 1) if n > 1 else -1.0
 
 
 def chi2_pte(chi2: float, dof: int) -> float:

@@ -9,7 +9,7 @@ import pytest
 from pairvel.core.errors import ConfigError
 from pairvel.input.config import config_from_dict, iter_config_keys, load_config
 
-MINIMAL = '[catalogue]\npath = "cat.fits"\n[map]\npath = "map.fits"\n'
+MINIMAL = '[catalogue]\npath = "cat.fits"\n[map]\npath = "map.fits"\n[theory]\nbias = 1.0\n'
 
 
 def write(tmp_path, text, name="run.toml"):
@@ -65,6 +65,16 @@ def test_missing_required_path(tmp_path):
         load_config(write(tmp_path, '[catalogue]\npath = "c.fits"\n'))
 
 
+def test_bias_is_required_and_says_why(tmp_path):
+    text = '[catalogue]\npath = "c.fits"\n[map]\npath = "m.fits"\n'
+    with pytest.raises(ConfigError, match=r"run\.toml: 'theory\.bias' is required: tau_mean scales as 1/b") as caught:
+        load_config(write(tmp_path, text))
+    assert caught.value.key == "theory.bias" and "\n" not in str(caught.value)
+    with pytest.raises(ConfigError, match=r"'theory\.bias' is required"):  # a [theory] section without it
+        load_config(write(tmp_path, text + "[theory]\nwiggles = false\n"))
+    assert load_config(write(tmp_path, text + "[theory]\nbias = 2.5\n")).theory.bias == 2.5
+
+
 def test_unreadable_and_invalid_files(tmp_path):
     with pytest.raises(ConfigError, match=r"nope\.toml: file not found"):
         load_config(tmp_path / "nope.toml")
@@ -87,7 +97,7 @@ def test_every_key_is_documented_in_configs_readme():
 
 
 def test_config_from_dict_without_file():
-    cfg = config_from_dict({"catalogue": {"path": "/a/c.csv"}, "map": {"path": "/a/m.fits"}})
+    cfg = config_from_dict({"catalogue": {"path": "/a/c.csv"}, "map": {"path": "/a/m.fits"}, "theory": {"bias": 1.0}})
     assert cfg.source is None and math.isinf(cfg.catalogue.z_max)
 
 
@@ -137,7 +147,7 @@ def test_empty_rotation_list_means_no_rotated_null(tmp_path):
 
 def test_infinite_where_the_key_allows_it(tmp_path):
     cfg = load_config(write(tmp_path, MINIMAL.replace("[catalogue]\n", "[catalogue]\nz_max = inf\nproxy_min = -inf\n")
-                            + "[theory]\nfit_r_max_mpc = inf\n"))
+                            .replace("[theory]\n", "[theory]\nfit_r_max_mpc = inf\n")))
     assert math.isinf(cfg.catalogue.z_max) and math.isinf(cfg.theory.fit_r_max_mpc)
 
 

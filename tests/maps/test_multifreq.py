@@ -182,7 +182,7 @@ def test_ring_nested_partial_and_masks():
 
 # ---------------------------------------------------------------------- config
 def _cfg(tmp_path, **mf):
-    data = {"catalogue": {"path": "cat.csv"}, "map": {"coordsys": "C"}, "multifrequency": mf}
+    data = {"catalogue": {"path": "cat.csv"}, "map": {"coordsys": "C"}, "multifrequency": mf, "theory": {"bias": 1.0}}
     if "map_paths" not in mf:
         data["map"]["path"] = "map.fits"
     return config_from_dict(data, source=tmp_path / "run.toml")
@@ -211,7 +211,7 @@ def test_config_errors(tmp_path, mf, match):
 
 def test_config_both_paths_and_missing_map(tmp_path):
     with pytest.raises(ConfigError, match="'map.path' and multifrequency.map_paths are both set"):
-        config_from_dict({"catalogue": {"path": "c.csv"}, "map": {"path": "m.fits"},
+        config_from_dict({"catalogue": {"path": "c.csv"}, "map": {"path": "m.fits"}, "theory": {"bias": 1.0},
                           "multifrequency": {"map_paths": ["a.fits", "b.fits"], "frequencies_ghz": [90, 150]}})
     with pytest.raises(ConfigError, match="'map.path' is required"):
         config_from_dict({"catalogue": {"path": "c.csv"}})

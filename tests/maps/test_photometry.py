@@ -257,3 +257,34 @@ def test_drop_reasons_tell_pixelisation_footprint_and_mask_apart(weighting):
         tiny = measure_apertures(m, ra, dec, [90.0, 5.0], max_masked_fraction=0.1, pixel_weighting=weighting)
     empty = (tiny.n_pixels_disc[1] == 0) & ~tiny.usable  # with "fraction", edge pixels can still fill a disc
     assert set(tiny.drop_reason[empty]) == {"too few pixels in the aperture"} and (empty.sum() >= 4 or weighting != "centre")
+
+
+@pytest.mark.parametrize("theta, fwhm", [(2.1, 1.4), (3.0, 3.0), (12.0, 15.0), (1.0, 6.0)])
+def test_point_source_fraction_against_numerical_integration(theta, fwhm):
+    """f of point_source_fraction against the disc and annulus integrals of the beam Gaussian done
+    numerically with scipy over x, y (a general-purpose library; no use of the radial formula)."""
+    from scipy import integrate
+
+    from pairvel.maps.photometry import point_source_fraction
+
+    s = fwhm / np.sqrt(8 * np.log(2))
+
+    def inside(radius):  # integral of the unit-integral Gaussian over |x| < radius, in Cartesian x, y
+        gauss = lambda y, x: np.exp(-(x * x + y * y) / (2 * s * s)) / (2 * np.pi * s * s)  # noqa: E731
+        half = lambda x: np.sqrt(max(radius * radius - x * x, 0.0))  # noqa: E731
+        return integrate.dblquad(gauss, -radius, radius, lambda x: -half(x), half, epsabs=1e-13, epsrel=1e-11)[0]
+
+    disc, outer = inside(theta), inside(np.sqrt(2) * theta)
+    area = np.pi * theta**2  # disc and annulus have the same area
+    numerical = (disc / area - (outer - disc) / area) * area  # T_AP times pi theta^2 for a unit integral
+    assert point_source_fraction(theta, fwhm) == pytest.approx(numerical, rel=1e-7)
+
+
+def test_point_source_fraction_limits_and_errors():
+    from pairvel.maps.photometry import point_source_fraction
+
+    assert point_source_fraction(2.0, 0.0) == 1.0  # analytic: a point inside the disc
+    assert point_source_fraction(2.1, 1.4) == pytest.approx(0.99610, abs=1e-5)  # analytic (1 - e^-6.24)^2
+    assert point_source_fraction(1.0, 60.0) < 1e-4  # a beam far wider than the aperture: almost nothing left
+    with pytest.raises(InputError, match="beam FWHM >= 0"):
+        point_source_fraction(2.0, -1.0)

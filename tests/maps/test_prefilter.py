@@ -147,7 +147,7 @@ def test_partial_map_keeps_its_pixels_and_mask():
 
 
 def test_bad_settings_are_refused(tmp_path):
-    base = {"catalogue": {"path": "c.fits"}, "map": {"path": "m.fits"}}
+    base = {"catalogue": {"path": "c.fits"}, "map": {"path": "m.fits"}, "theory": {"bias": 1.0}}
     with pytest.raises(ConfigError, match="prefilter.kind"):
         config_from_dict({**base, "prefilter": {"kind": "gaussian"}})
     with pytest.raises(ConfigError, match="prefilter.noise_uk_arcmin"):

@@ -153,3 +153,13 @@ def test_exponential_form_uses_the_pair_error():
         return np.sqrt(np.mean(((a - conv) / undamped) ** 2))
 
     assert rms(pair) < 0.5 * rms(single), (rms(pair), rms(single))  # measured 0.055 and 0.184
+
+
+def test_template_for_run_refuses_a_config_without_bias():
+    """A TheoryConfig built in code without the bias (load_config already refuses such a file)."""
+    from pairvel.input.config import TheoryConfig
+
+    edges = np.array([0.0, 20.0, 40.0])
+    with pytest.raises(TheoryError, match=r"theory\.bias is required: tau_mean scales as 1/b"):
+        tp.template_for_run(TheoryConfig(), DEFAULT_COSMOLOGY, edges, pair_counts=np.ones(2),
+                            z_tracers=np.array([0.2, 0.3]), z_eff=0.25)

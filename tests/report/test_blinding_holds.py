@@ -54,6 +54,7 @@ width_mpc = 30.0
 n_regions = 12
 
 [theory]
+bias = 1.0
 likelihood = "sellentin-heavens"
 proxy_bin_edges = [14.0, 14.5, 15.0]
 fit_velocity_scale = true
@@ -325,7 +326,7 @@ def test_an_undeclared_field_and_true_text_stop_blinding():
     fit = wider(**dataclasses.asdict(result.fit), bias_corrected_amplitude=1.0)
     with pytest.raises(UndeclaredQuantityError, match=r"WiderFit fields \['bias_corrected_amplitude'\]"):
         apply_factor(dataclasses.replace(result, fit=fit), FACTOR, blinding={"blinded": True})
-    for key in ("report_sections", "demo_check", "plot_curves"):   # text or comparisons made from true numbers
+    for key in ("report_sections", "truth_check", "plot_curves"):   # text or comparisons made from true numbers
         with pytest.raises(UndeclaredQuantityError, match=f"extra\\['{key}'\\] is made from the true amplitude"):
             apply_factor(_small_result(**{key: {}}), FACTOR, blinding={"blinded": True})
 

@@ -227,7 +227,7 @@ def test_run_name_must_be_a_plain_folder_name(tiny_survey, capsys, monkeypatch, 
 
 
 def test_run_name_check_in_the_config():
-    base = {"catalogue": {"path": "c.csv"}, "map": {"path": "m.fits"}}
+    base = {"catalogue": {"path": "c.csv"}, "map": {"path": "m.fits"}, "theory": {"bias": 1.0}}
     with pytest.raises(ConfigError, match="'run.name' must be a plain folder name") as exc:
         config_from_dict({**base, "run": {"name": ".."}})
     assert exc.value.key == "run.name"

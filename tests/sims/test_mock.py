@@ -284,3 +284,66 @@ def test_fields_at_grid_nodes_equal_the_grid_fields():
     np.testing.assert_allclose(delta, d_grid.reshape(-1), atol=1e-5 * float(np.std(d_grid)))
     for i in range(3):
         np.testing.assert_allclose(u[:, i], u_grid[i].reshape(-1), atol=1e-5 * float(np.std(u_grid[i])))
+
+
+# --- the ready-to-run config written beside the survey (run.toml)
+
+def test_run_config_states_the_mock_assumptions(small_mock):
+    from pairvel.input.config import load_config
+
+    out, truth = small_mock
+    text = (out / "run.toml").read_text()
+    assert text.startswith("# Ready-to-run config written by pairvel") and "(`pairvel mock`)" in text
+    cfg = load_config(out / "run.toml")
+    assert cfg.catalogue.path == out / CATALOGUE_FILE and cfg.map.path == out / MAP_FILE  # relative to run.toml
+    assert cfg.run.truth_path == out / "truth.json" and cfg.run.name == "survey-run"
+    assert cfg.theory.bias == truth.bias == 0.4 and cfg.cosmology == DEFAULT_COSMOLOGY
+    assert cfg.aperture.radius_arcmin == SMALL["aperture_radius_arcmin"]
+    assert cfg.aperture.beam_fwhm_arcmin == SMALL["beam_fwhm_arcmin"]
+    assert (cfg.catalogue.z_min, cfg.catalogue.z_max) == (SMALL["z_min"], SMALL["z_max"])
+    assert cfg.catalogue.proxy_column == "log_mass" and cfg.trend.enabled and cfg.trend.sigma_z == 0.01
+    np.testing.assert_array_equal(cfg.bins.edges(), truth.edges_mpc)  # the bins of the realised velocity
+    assert "[multifrequency]" not in text  # one map only
+
+
+def test_run_config_of_a_mock_runs_and_checks_its_truth(small_mock, tmp_path, capsys):
+    import re
+
+    from pairvel.cli import main
+
+    out, truth = small_mock
+    # the generated config with absolute paths and fewer regions and null sets, to keep the test short
+    text = re.sub(r'^(\w*path) = "', rf'\1 = "{out}/', (out / "run.toml").read_text(), flags=re.M)
+    fast = tmp_path / "fast.toml"
+    fast.write_text(text + "\n[covariance]\nn_regions = 30\n\n[nulls]\nn_random = 2\nn_shuffle = 2\n"
+                           "n_shuffle_z = 2\nrotation_deg = []\n")
+    assert main(["run", str(fast), "--out", str(tmp_path / "r"), "--quiet"]) == 0
+    printed = capsys.readouterr().out
+    check = json.loads((tmp_path / "r" / "summary.json").read_text())["truth_check"]
+    assert check["tau_mean_injected"] == truth.tau_mean and check["verdict"] in printed
+    # the truth's bins are the run's, so the fit against the mock's realised velocity is made too
+    assert np.isfinite(check["tau_mean_vs_realised_velocity"])
+    assert "against this mock's own realised pairwise velocity" in (tmp_path / "r" / "report.md").read_text()
+
+
+def test_mock_command_says_how_to_run_it(tmp_path, capsys, monkeypatch):
+    import pairvel.sims.mock as mock
+    from pairvel.cli import main
+    from pairvel.input.config import load_config
+
+    made = mock.make_mock_survey
+    monkeypatch.setattr(mock, "make_mock_survey", lambda out, **kw: made(out, **{**kw, **TINY}))
+    assert main(["mock", str(tmp_path / "m"), "--seed", "4", "--extra-frequency", "90", "--quiet"]) == 0
+    printed = capsys.readouterr().out
+    assert f"  run it with: pairvel run {tmp_path / 'm' / 'run.toml'}\n" in printed
+    text = (tmp_path / "m" / "run.toml").read_text()
+    cfg = load_config(tmp_path / "m" / "run.toml")
+    assert cfg.map.path == tmp_path / "m" / MAP_FILE and cfg.run.seed == 4
+    # the commented [multifrequency] block is a valid config once uncommented (and [map] path removed)
+    block = text[text.index("# [multifrequency]"):].replace("# ", "")
+    combined = tmp_path / "m" / "combined.toml"
+    combined.write_text(text.replace(f'path = "{MAP_FILE}"\n', "", 1) + "\n" + block)
+    mf = load_config(combined).multifrequency
+    assert mf.map_paths == (tmp_path / "m" / MAP_FILE, tmp_path / "m" / "skerry_90ghz_partial.fits")
+    assert mf.frequencies_ghz == (150.0, 90.0) and mf.beam_fwhm_arcmin == (TINY["beam_fwhm_arcmin"],) * 2
+    assert all(path.is_file() for path in mf.map_paths)

@@ -11,7 +11,14 @@ from astropy.table import Table
 from pairvel.cli import main
 from pairvel.core.errors import InputError, OutputError
 from pairvel.report.outputs import OUTPUT_MARKER, write_folder_atomically
-from pairvel.sims.validate import ValidationOptions, _calibration, _draw_catalogue, run_validation
+from pairvel.sims.validate import (
+    MIN_MOCKS_FOR_VERDICTS,
+    ValidationOptions,
+    _calibration,
+    _draw_catalogue,
+    few_mocks_note,
+    run_validation,
+)
 from pairvel.stats.fit import ONE_SIGMA
 
 # --- the harness itself: it must pass calibrated fits and catch miscalibrated ones ------------------
@@ -117,18 +124,31 @@ def test_validate_command_writes_table_summary_and_figure(tmp_path, capsys):
     argv = ["validate", str(out), "--n-mocks", "3", "--n-tracers", "400", "--n-regions", "8", "--r-max", "120",
             "--bin-width", "30", "--box-padding", "1.2", "--quiet"]  # a small box keeps the 30-degree patch fast
     assert main(argv) == 0
-    printed = capsys.readouterr().out
+    captured = capsys.readouterr()
+    printed = captured.out
     assert "68% coverage" in printed and "jackknife error / scatter" in printed
+    # 3 mocks: a warning on stderr and in run.log, a note in the printed summary and in summary.json
+    few = "only 3 mocks: the verdicts on coverage, error ratio and bias mean little with fewer than 20"
+    assert f"pairvel: warning: {few}" in captured.err
+    assert f"NOTE: {few}" in printed and few in (out / "run.log").read_text()
     table = Table.read(out / "mocks.ecsv")
     assert len(table) == 3 and {"tau_hat", "tau_err", "lower_68", "upper_68", "signal_tau_hat"} <= set(table.colnames)
     summary = json.loads((out / "summary.json").read_text())
     assert summary["provenance"]["seed"] == 20261203
     assert summary["summary"]["measured"]["n_mocks"] == 3
+    assert summary["summary"]["few_mocks"].startswith(few)
     assert summary["provenance"]["options"]["box_padding"] == 1.2
     assert (out / "calibration.png").stat().st_size > 1000 and (out / OUTPUT_MARKER).is_file()
     assert main(argv) == 2  # refuses to overwrite without --force
     assert "exists already" in capsys.readouterr().err
     assert main(argv + ["--force"]) == 0
+
+
+def test_few_mocks_note_from_the_coverage_sampling_error():
+    assert few_mocks_note(MIN_MOCKS_FOR_VERDICTS) is None and few_mocks_note(500) is None
+    # analytic: binomial standard error of a 68.27% fraction over 19 mocks, sqrt(0.6827 * 0.3173 / 19) = 0.107
+    assert "only 19 mocks" in few_mocks_note(19) and "sampling error of 0.11 " in few_mocks_note(19)
+    assert "sampling error of 0.21 " in few_mocks_note(5)  # sqrt(0.6827 * 0.3173 / 5) = 0.208
 
 
 def test_validate_command_rejects_bad_option(tmp_path, capsys):

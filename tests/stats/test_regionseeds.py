@@ -25,7 +25,7 @@ def test_summary_is_the_sample_spread_against_the_quoted_error():
 
 
 def test_healpix_regions_and_zero_seeds_give_no_spread():
-    base = {"catalogue": {"path": "/a/c.csv"}, "map": {"path": "/a/m.fits"}}
+    base = {"catalogue": {"path": "/a/c.csv"}, "map": {"path": "/a/m.fits"}, "theory": {"bias": 1.0}}
     for cov in ({"regions": "healpix", "extra_region_seeds": 3}, {"extra_region_seeds": 0}):
         cfg = config_from_dict(dict(base, covariance=cov))
         assert region_seed_spread(cfg, None, None, None, None, None, None, 1.0) is None

@@ -1,0 +1,1 @@
+"""Package data, not code: the shipped configs, installed as ``pairvel.configs`` (see pyproject.toml)."""
