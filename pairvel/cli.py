@@ -146,7 +146,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log) -> int:
         _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
         progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
         result = run_pipeline(cfg, progress=progress)
-        if cfg.blinding.enabled:
+        if cfg.blinding.enabled and not result.extra.get("blinding", {}).get("blinded"):  # not blinded by its input
             from .report.blinding import blind_result
 
             if not key_path.exists():

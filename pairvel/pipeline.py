@@ -29,10 +29,10 @@ from .core.progress import Progress
 from .core.provenance import __version__, file_sha256, git_commit, package_versions
 from .core.rng import as_generator, derived_generators
 from .core.warnlog import collect_warnings
-from .input.catalogue import Catalogue, load_catalogue
+from .input.catalogue import DUPLICATE, OUTSIDE_PROXY, OUTSIDE_Z, Catalogue, RemovedRows, load_catalogue
 from .input.config import Config
 from .maps.multifreq import map_provenance, read_input_map
-from .maps.photometry import measure_apertures, measure_random_apertures
+from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_apertures
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
@@ -43,6 +43,7 @@ from .pairs.distributed import pairwise_momentum_units
 from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
+from .report.tracers import StoredTracers, radius_suffix, read_tracer_table, tracer_table
 from .sims.truth import attach_truth_check, read_truth
 from .stats.covariance import (
     bootstrap_covariance,
@@ -94,19 +95,14 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
 
-    with progress.stage("catalogue"):
-        cat = read_catalogue(cfg, progress)
-    with progress.stage("sky map"):
-        sky = prepare_map(cfg, progress)
-    with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress)
+    cat, sky, aps, stored = measured_tracers(cfg, progress)
     with progress.stage("redshift-trend correction"):
         temps = correct_trend(cfg, aps.temperatures, cat.z)
     with progress.stage("geometry and jackknife regions"):
         positions, regions = geometry_and_regions(cfg, cat, rng, progress)
         retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg)
     with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
-        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, rng, progress)
+        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress)
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
         rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
     null_sets = {"random_positions": random_sets, **shuffled_null_sets(cfg, temps[0], cat.z, rng),
@@ -131,11 +127,16 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+    if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
+        extra["blinding"] = {**stored.blinding, "from_table": stored.path}
+    prov = provenance(cfg, cat, sky, started, stored)
+    tracers = tracer_table(cat, regions=regions, temps_raw=aps.temperatures, temps=temps,
+                           radii_arcmin=aperture_radii(cfg.aperture), meta=tracer_table_cards(cfg, prov, stored))
     return RunResult(
         config=cfg, edges=edges, p=cov.p, covariance=cov.matrix, p_jk=cov.p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=model.z_eff, v12_template=model.v12, in_fit=model.in_fit, fit=fit,
         nulls=tuple(nulls), n_tracers=len(cat), selection=selection_counts(cfg, cat, aps, sky),
-        provenance=provenance(cfg, cat, sky, started), extra=extra,
+        provenance=prov, extra=extra, tracers=tracers,
     )
 
 
@@ -156,7 +157,26 @@ class Apertures:
 
     temperatures: np.ndarray  # (n_radii, N) uK, primary radius first
     scale: np.ndarray | None  # per-tracer radius factor of a physical radius, else None
-    n_dropped: int            # tracers whose aperture was too masked or off the map
+    n_dropped: int            # tracers whose aperture was unusable (maps.photometry.DROP_REASONS)
+
+
+def measured_tracers(cfg: Config, progress: Progress):
+    """The used tracers, the map and their raw aperture temperatures: from catalogue + map, or from the
+    tracer table of an earlier run (``restart.table_path``, then the map is None).
+
+    Returns (cat, sky, aps, stored); ``stored`` is the table read, else None.
+    """
+    if cfg.restart.table_path is not None:
+        with progress.stage(f"tracer table {cfg.restart.table_path}"):
+            stored, cat, aps = restart_inputs(cfg, progress)
+        return cat, SkyInputs(None, None, None, None), aps, stored
+    with progress.stage("catalogue"):
+        cat = read_catalogue(cfg, progress)
+    with progress.stage("sky map"):
+        sky = prepare_map(cfg, progress)
+    with progress.stage(f"aperture photometry at {len(cat)} tracers"):
+        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress)
+    return cat, sky, aps, None
 
 
 def read_catalogue(cfg: Config, progress: Progress) -> Catalogue:
@@ -189,19 +209,126 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> 
                             method=ap.method, radius_scale=scale)
     usable = res.usable
     n_dropped = int((~usable).sum())
+    why = ", ".join(f"{n} {reason}" for reason, n in _counts(res.drop_reason[~usable], DROP_REASONS).items() if n)
     if n_dropped:
-        warnings.warn(f"{n_dropped} of {len(cat)} tracers dropped: aperture more than "
-                      f"{cfg.map.max_masked_fraction:.0%} masked or outside the map", PairvelWarning, stacklevel=2)
+        warnings.warn(f"{n_dropped} of {len(cat)} tracers dropped by the photometry ({why}; masked: more than "
+                      f"{cfg.map.max_masked_fraction:.0%} of the disc or annulus)", PairvelWarning, stacklevel=2)
     if usable.sum() < 2:
         raise InputError(f"map {skymap.path}: fewer than 2 tracers have usable apertures "
-                         f"({n_dropped} of {len(cat)} masked or outside the map)", path=skymap.path)
-    return cat.subset(usable), Apertures(res.temperatures[:, usable], None if scale is None else scale[usable],
-                                         n_dropped)
+                         f"({n_dropped} of {len(cat)} dropped: {why})", path=skymap.path)
+    return (cat.subset(usable, reason=res.drop_reason),
+            Apertures(res.temperatures[:, usable], None if scale is None else scale[usable], n_dropped))
+
+
+def _counts(reasons, names) -> dict:
+    """How many of ``reasons`` are each of ``names`` (every name listed, in order)."""
+    reasons = np.asarray(reasons, dtype=str)
+    return {name: int(np.sum(reasons == name)) for name in names}
+
+
+def restart_inputs(cfg: Config, progress: Progress) -> tuple[StoredTracers, Catalogue, Apertures]:
+    """The used tracers of ``restart.table_path`` and their raw aperture temperatures at the configured
+    radii, with the config's redshift and proxy cuts applied again to every row that reached the photometry."""
+    stored = read_tracer_table(cfg.restart.table_path)
+    t, radii = stored.table, aperture_radii(cfg.aperture)
+    check_table_apertures(cfg, stored, radii)
+    col = {name: np.asarray(t[name], dtype=np.float64) for name in ("ra_deg", "dec_deg", "z")}
+    proxy = _table_column(cfg, stored, "proxy", cfg.catalogue.proxy_column)
+    weight = _table_column(cfg, stored, "weight", cfg.catalogue.weight_column)
+    used, reason = np.asarray(t["used"], dtype=bool).copy(), np.asarray(t["drop_reason"], dtype=str).astype(object)
+    cc = cfg.catalogue
+    in_z = (col["z"] >= cc.z_min) & (col["z"] < cc.z_max)
+    in_proxy = np.ones(len(t), dtype=bool) if proxy is None else (proxy >= cc.proxy_min) & (proxy < cc.proxy_max)
+    measured = used | np.isin(reason, DROP_REASONS)
+    reason[measured & ~in_z], reason[measured & in_z & ~in_proxy] = OUTSIDE_Z, OUTSIDE_PROXY
+    used &= in_z & in_proxy
+    back = np.isin(reason, (OUTSIDE_Z, OUTSIDE_PROXY)) & ~measured & in_z & in_proxy
+    if back.any():
+        warnings.warn(f"{cfg.restart.table_path}: {int(back.sum())} rows pass this run's catalogue cuts but were cut "
+                      f"before the photometry of the table's run; they have no temperatures and stay out",
+                      PairvelWarning, stacklevel=2)
+    if used.sum() < 2:
+        raise InputError(f"tracer table {stored.path}: {int(used.sum())} rows are used after this run's cuts; "
+                         f"need at least 2", path=stored.path, key="restart.table_path")
+    row, gone, reason = np.asarray(t["row"], dtype=np.int64), ~used, reason.astype(str)
+
+    def pick(values, which):
+        return None if values is None else values[which]
+
+    removed = RemovedRows(row[gone], col["ra_deg"][gone], col["dec_deg"][gone], col["z"][gone], pick(proxy, gone),
+                          pick(weight, gone), reason[gone])
+    cat = Catalogue(col["ra_deg"][used], col["dec_deg"][used], col["z"][used], pick(proxy, used), row[used],
+                    str(stored.meta("CATFILE")), str(stored.meta("CATSHA")), table_selection(reason),
+                    pick(weight, used), removed)
+    temps_raw = np.array([np.asarray(t["t_raw_uK" + ("" if k == 0 else radius_suffix(r))], dtype=np.float64)[used]
+                          for k, r in enumerate(radii)])
+    progress.say(f"      {len(cat)} tracers used of {len(t)} rows (blinded temperatures: "
+                 f"{'yes' if stored.blinding['blinded'] else 'no'}); the map is not read")
+    return stored, cat, Apertures(temps_raw, radius_scale(cfg.aperture, cat.z, cfg.cosmology),
+                                  int(np.isin(reason, DROP_REASONS).sum()))
+
+
+def _table_column(cfg: Config, stored: StoredTracers, name: str, configured):
+    """The table's proxy or weight column when the config names one (as the catalogue run would read it)."""
+    if configured is None:
+        return None
+    if name not in stored.table.colnames:
+        raise InputError(f"tracer table {stored.path}: has no '{name}' column, but catalogue.{name}_column is set "
+                         f"(the table's run read none); remove catalogue.{name}_column", path=stored.path,
+                         key=f"catalogue.{name}_column")
+    return np.asarray(stored.table[name], dtype=np.float64)
+
+
+def check_table_apertures(cfg: Config, stored: StoredTracers, radii) -> None:
+    """The configured apertures must be ones the table holds, measured the same way."""
+    ap, where = cfg.aperture, f"tracer table {stored.path}"
+    held = ", ".join(f"{r:g}" for r in stored.radii_arcmin)
+    if radii[0] != stored.radii_arcmin[0]:
+        raise InputError(f"aperture.radius_arcmin = {radii[0]:g} but {where} holds the primary radius "
+                         f"{stored.radii_arcmin[0]:g} arcmin; set aperture.radius_arcmin = {stored.radii_arcmin[0]:g}",
+                         path=stored.path, key="aperture.radius_arcmin")
+    for r in radii[1:]:
+        if f"t_raw_uK{radius_suffix(r)}" not in stored.table.colnames:
+            raise InputError(f"aperture.radii_arcmin: {r:g} arcmin is not in {where} (it holds {held} arcmin)",
+                             path=stored.path, key="aperture.radii_arcmin")
+    for key, card in (("radius_kpc", "RADKPC"), ("radius_kpc_kind", "RADKIND"), ("pixel_weighting", "PIXWT")):
+        stored_value = stored.meta(card)
+        if getattr(ap, key) != stored_value:
+            raise InputError(f"aperture.{key} = {getattr(ap, key)!r} but {where} was measured with {stored_value!r}; "
+                             f"set it to that", path=stored.path, key=f"aperture.{key}")
+
+
+def table_selection(reason) -> dict:
+    """The catalogue's selection counts as the loader gives them, from the reasons of a tracer table."""
+    counts = _counts(reason, (OUTSIDE_Z, OUTSIDE_PROXY, DUPLICATE))
+    invalid = int(np.sum(np.char.startswith(np.asarray(reason, dtype=str), "invalid ")))
+    selection = {"rows_read": int(np.size(reason)), "invalid_dropped": invalid, "outside_z_range": counts[OUTSIDE_Z],
+                 "outside_proxy_range": counts[OUTSIDE_PROXY], "duplicates_dropped": counts[DUPLICATE]}
+    return {**selection, "kept": selection["rows_read"] - sum(v for k, v in selection.items() if k != "rows_read")}
+
+
+def tracer_table_cards(cfg: Config, prov: dict, stored: StoredTracers | None) -> dict:
+    """Header cards of tracers.fits: how and where the apertures were measured, how the trend was removed."""
+    if stored is None:
+        ap = cfg.aperture
+        measured = {"MAPFILE": prov["map"]["path"], "MAPSHA": prov["map"]["sha256"], "CATFILE": prov["catalogue"]["path"],
+                    "CATSHA": prov["catalogue"]["sha256"], "PIXWT": ap.pixel_weighting, "MAXMASK": cfg.map.max_masked_fraction,
+                    "RADKPC": ap.radius_kpc, "RADKIND": ap.radius_kpc_kind}
+        if cfg.map.mask_path is not None:
+            measured.update(MASKFILE=prov["mask"]["path"], MASKSHA=prov["mask"]["sha256"])
+    else:
+        measured = {card: stored.meta(card) for card in ("MAPFILE", "MAPSHA", "CATFILE", "CATSHA", "PIXWT", "MAXMASK",
+                                                         "RADKPC", "RADKIND", "MASKFILE", "MASKSHA")
+                    if card in stored.table.meta}
+        measured["FROMTAB"] = stored.path
+    return {**measured, "TRENDON": cfg.trend.enabled, "SIGMAZ": cfg.trend.sigma_z}
 
 
 def selection_counts(cfg: Config, cat: Catalogue, aps: Apertures, sky: SkyInputs) -> dict:
     """The catalogue's selection counts with what the map stages dropped or changed."""
-    selection = dict(cat.selection, aperture_masked_dropped=aps.n_dropped, used=len(cat))
+    dropped = _counts([] if cat.removed is None else cat.removed.reason, DROP_REASONS)
+    selection = dict(cat.selection, aperture_masked_dropped=aps.n_dropped, aperture_dropped_by_reason=dropped,
+                     used=len(cat))
     if sky.dipole_fit is not None:
         selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in sky.dipole_fit]
     if aps.scale is not None:
@@ -260,9 +387,18 @@ def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
 
 
 # ------------------------------------------------------------------ null and simulated sets
-def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, rng, progress: Progress) -> np.ndarray:
-    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data."""
+def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress) -> np.ndarray:
+    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data.
+
+    The positions are drawn from their own generator (derived from ``run.seed``), not the run's: the
+    number of draws depends on the map, and a run from a tracer table, which has no map and skips
+    this null, must leave every other random step (shuffles, trend-loss draws, bootstrap) as it was.
+    """
     n_null = cfg.nulls.n_random
+    if skymap is None:
+        _skipped_without_map("nulls.n_random", n_null)
+        return np.zeros((0, len(cat)))
+    rng = derived_generators(cfg.run.seed, "random-position null", 1)[0]
     sets = []
     for k in range(n_null):
         _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
@@ -277,10 +413,19 @@ def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, rng, progre
 def rotated_map_sets(cfg: Config, skymap, cat: Catalogue) -> tuple[np.ndarray, list]:
     """(n_kept, N) apertures on the map rotated in longitude, trend-corrected, and the rotations kept."""
     nc = cfg.nulls
+    if skymap is None:
+        _skipped_without_map("nulls.rotation_deg", len(nc.rotation_deg))
+        return np.zeros((0, len(cat))), []
     rot, kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
                              max_masked_fraction=cfg.map.max_masked_fraction,
                              min_usable_fraction=nc.rotation_min_usable)
     return correct_trend(cfg, rot, cat.z), kept
+
+
+def _skipped_without_map(key: str, n: int) -> None:
+    if n:
+        warnings.warn(f"{key}: this null test needs the sky map, which a run from restart.table_path does not read; "
+                      f"skipped", PairvelWarning, stacklevel=3)
 
 
 def shuffled_null_sets(cfg: Config, temps: np.ndarray, z: np.ndarray, rng) -> dict:
@@ -570,9 +715,16 @@ def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, 
     return out
 
 
-def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str) -> dict:
-    """Inputs with their checksums, versions, seed and start time: what a rerun needs."""
-    return {
+def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str, stored: StoredTracers | None) -> dict:
+    """Inputs with their checksums, versions, seed and start time: what a rerun needs.
+
+    A run from a tracer table names the table, and the catalogue, map and mask its temperatures came from.
+    """
+    def stored_file(card):
+        return {"path": stored.meta(f"{card}FILE"), "sha256": stored.meta(f"{card}SHA")}
+
+    mask = None if cfg.map.mask_path is None else {"path": str(cfg.map.mask_path), "sha256": file_sha256(cfg.map.mask_path)}
+    out = {
         "pairvel_version": __version__,
         "started_utc": started,
         "config_file": None if cfg.source is None else str(cfg.source),
@@ -580,11 +732,13 @@ def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str) -> dic
         "config_text": None if cfg.source is None else cfg.source.read_text(encoding="utf-8", errors="replace"),
         "config_git_commit": None if cfg.source is None else git_commit(cfg.source.resolve().parent),
         "catalogue": {"path": cat.path, "sha256": cat.sha256},
-        "map": map_provenance(cfg),
+        "map": map_provenance(cfg) if stored is None else stored_file("MAP"),
         "multifrequency": sky.combination,
-        "mask": None if cfg.map.mask_path is None else {"path": str(cfg.map.mask_path),
-                                                         "sha256": file_sha256(cfg.map.mask_path)},
+        "mask": mask if stored is None or stored.meta("MASKFILE") is None else stored_file("MASK"),
         "seed": cfg.run.seed,
         "versions": package_versions(),
         "platform": platform.platform(),
     }
+    if stored is not None:
+        out["tracer_table"] = {"path": stored.path, "sha256": file_sha256(stored.path)}
+    return out

@@ -35,6 +35,11 @@ bias = 1.0
 n_random = 2
 """
 
+#: A config that starts from the tracer table of an earlier run of TINY_CONFIG (``{table}``) with the
+#: same settings; catalogue and map are not read.
+RESTART_CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "again"').replace('path = "cat.csv"\n', "")
+                  .replace('[map]\npath = "map.fits"', '[restart]\ntable_path = "{table}"'))
+
 
 def write_healpix(path, values, *, nside, pixels=None, unit="uK_CMB", ordering="RING"):
     cols = []

@@ -46,7 +46,7 @@ import pandas as pd
 import pytest
 from astropy.io import fits
 from astropy.table import Table
-from conftest import make_tiny_survey, write_healpix
+from conftest import RESTART_CONFIG, make_tiny_survey, write_healpix
 
 from pairvel.cli import main
 
@@ -568,13 +568,15 @@ MAP_CASES = [
     Case("truncated-in-data", "map", truncate("map.fits", 2 * 2880 + 1000),
          r"map\.fits cannot be read as a HEALPix map \(buffer is too small"),
     Case("no-overlap-with-tracers", "map", rewrite_map(pixels=lambda p, v: far_pixels(p.size)),
-         r"map \S*map\.fits: fewer than 2 tracers have usable apertures \(600 of 600 masked or outside the map\)"),
+         r"map \S*map\.fits: fewer than 2 tracers have usable apertures \(600 of 600 dropped: 53 too few pixels in the "
+         r"aperture, 547 outside the map\)"),
     Case("mask-other-nside", "map", with_mask(full_sky_mask(128, 1.0)),
          r"mask \S*mask\.fits has nside 128 but the map has nside 256"),
     Case("mask-value-out-of-range", "map", with_mask(full_sky_mask(256, 2.0)),
          r"mask \S*mask\.fits must hold values in \[0, 1\]; 786432 pixels do not \(first: pixel 0, value 2\)"),
     Case("mask-everything", "map", with_mask(full_sky_mask(256, 0.0)),
-         r"map \S*map\.fits: fewer than 2 tracers have usable apertures \(600 of 600 masked"),
+         r"map \S*map\.fits: fewer than 2 tracers have usable apertures \(600 of 600 dropped: 53 too few pixels in the "
+         r"aperture, 547 masked\)"),
     Case("mask-not-fits", "map", with_mask(lambda p: p.write_text("1 1 1 0 0\n")),
          r"mask \S*mask\.fits cannot be read as FITS"),
     Case("nside-zero", "map", rewrite_map(header={"NSIDE": 0}), r"map\.fits: NSIDE must be a power of 2 .*; got 0"),
@@ -736,6 +738,59 @@ OUTPUT_CASES = [
 ]
 
 
+# ---------------------------------------------------------------------- runs from a tracer table
+AGAIN_ARGV = ("run", "{dir}/run.toml", "--out", "{dir}/again")
+
+
+def restart_config(table: str = "out/tracers.fits", **settings: str) -> Callable[[Path], None]:
+    """Replace the config by one that starts from ``table``, with ``section="lines"`` added."""
+
+    def prepare(folder: Path) -> None:
+        write_config(RESTART_CONFIG.format(table=table))(folder)
+        for section, lines in settings.items():
+            set_in_config(section, lines)(folder)
+
+    return prepare
+
+
+def nan_temperature(out: Path) -> None:
+    with fits.open(out / "tracers.fits", mode="update") as hdul:
+        data = hdul["TRACERS"].data
+        data["t_raw_uK"][np.flatnonzero(data["used"])[0]] = np.nan
+
+
+RESTART_CASES = [
+    Case("restart-with-catalogue-path", "config", set_in_config("restart", 'table_path = "out/tracers.fits"'),
+         r"run\.toml: 'catalogue\.path' is not used when restart\.table_path is set"),
+    Case("restart-with-prefilter", "config", restart_config(prefilter='kind = "highpass"'),
+         r"'prefilter\.kind' is not used when restart\.table_path is set"),
+    Case("restart-simulations", "config", restart_config(covariance='estimator = "simulations"'),
+         r"'covariance\.estimator' = 'simulations' needs the sky map"),
+    Case("restart-table-missing", "catalogue", restart_config(), r"tracer table \S*out/tracers\.fits: file not found",
+         argv=AGAIN_ARGV),
+    Case("restart-not-a-table", "catalogue", restart_config("map.fits"),
+         r"tracer table \S*map\.fits: not a pairvel tracer table", argv=AGAIN_ARGV),
+    Case("restart-not-fits", "catalogue", restart_config("cat.csv"),
+         r"tracer table \S*cat\.csv: cannot be read as a pairvel tracer table", argv=AGAIN_ARGV),
+    Case("restart-other-radius", "catalogue",
+         both(earlier_output(), restart_config(), replace_in_config("radius_arcmin = 12.0", "radius_arcmin = 8.0")),
+         r"aperture\.radius_arcmin = 8 but tracer table \S*tracers\.fits holds the primary radius 12 arcmin; set "
+         r"aperture\.radius_arcmin = 12", argv=AGAIN_ARGV),
+    Case("restart-radius-not-held", "catalogue", both(earlier_output(), restart_config(aperture="radii_arcmin = [8.0]")),
+         r"aperture\.radii_arcmin: 8 arcmin is not in tracer table \S*tracers\.fits \(it holds 12 arcmin\)",
+         argv=AGAIN_ARGV),
+    Case("restart-other-pixel-weighting", "catalogue",
+         both(earlier_output(), restart_config(aperture='pixel_weighting = "fraction"')),
+         r"aperture\.pixel_weighting = 'fraction' but tracer table \S+ was measured with 'centre'", argv=AGAIN_ARGV),
+    Case("restart-no-weight-column", "catalogue",
+         both(earlier_output(), restart_config(catalogue='weight_column = "w"')),
+         r"tracer table \S+: has no 'weight' column, but catalogue\.weight_column is set", argv=AGAIN_ARGV),
+    Case("restart-nan-temperature", "catalogue", both(earlier_output(nan_temperature), restart_config()),
+         r"tracers\.fits: column 't_raw_uK' must be finite where used is true; 1 rows are not \(first: table row \d+, "
+         r"catalogue row \d+\)", argv=AGAIN_ARGV),
+]
+
+
 # ---------------------------------------------------------------------- signals and concurrency
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -844,8 +899,8 @@ def _param(case: Case):
     return pytest.param(case, id=case.id)
 
 
-ALL_CASES = [_param(c) for c in CONFIG_CASES + CATALOGUE_CASES + MAP_CASES + OUTPUT_CASES + SIGNAL_CASES
-             + CONCURRENCY_CASES] + KNOWN_FAULTS
+ALL_CASES = [_param(c) for c in CONFIG_CASES + CATALOGUE_CASES + MAP_CASES + OUTPUT_CASES + RESTART_CASES
+             + SIGNAL_CASES + CONCURRENCY_CASES] + KNOWN_FAULTS
 
 
 def test_case_ids_are_unique():

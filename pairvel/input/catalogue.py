@@ -15,6 +15,11 @@ the same numbers bit for bit.  Sorting once here, rather than making each random
 order-free, keeps that guarantee for steps added later.  ``Catalogue.row`` keeps each tracer's
 row in the file for anything reported per tracer.
 
+Removed rows.  Rows read but not kept (invalid values dropped, outside the redshift or proxy range,
+repeats dropped) travel with the catalogue as :class:`RemovedRows`, with their values as read
+and a short reason each; later stages that drop tracers add theirs through
+:meth:`Catalogue.subset`.  The per-tracer table of a run (``tracers.fits``) is made from both.
+
 Duplicates.  Two kept rows (after the validity checks and cuts) are duplicates when their ra
 (wrapped to [0, 360)), dec and z are equal as read, to the last bit; ``duplicate_rows`` chooses
 between stopping, warning and dropping the repeats.
@@ -22,7 +27,7 @@ between stopping, warning and dropping the repeats.
 
 from __future__ import annotations
 
-__all__ = ["Catalogue", "load_catalogue", "read_table_columns"]
+__all__ = ["Catalogue", "RemovedRows", "load_catalogue", "read_table_columns", "canonical_order"]
 
 import warnings
 from dataclasses import dataclass, field
@@ -37,6 +42,53 @@ _SUFFIX_FORMATS = {
     ".fits": "fits", ".fit": "fits", ".fits.gz": "fits", ".fz": "fits",
     ".ecsv": "ecsv", ".csv": "csv", ".csv.gz": "csv", ".parquet": "parquet", ".pq": "parquet",
 }
+
+
+#: Reasons the loader gives for a row it does not keep (``invalid <column>`` for a bad value).
+OUTSIDE_Z, OUTSIDE_PROXY, DUPLICATE = "outside z range", "outside proxy range", "duplicate"
+
+
+@dataclass(frozen=True)
+class RemovedRows:
+    """Rows read from the file but not (or no longer) among the tracers, each with why.
+
+    Attributes
+    ----------
+    row : ndarray of shape (m,), int
+        Row in the input file (0-based).
+    ra, dec : ndarray of shape (m,), degrees
+        As read (ra wrapped to [0, 360) where valid); NaN where the file had none.
+    z : ndarray of shape (m,)
+    proxy, weight : ndarray of shape (m,) or None
+        As in :class:`Catalogue`.
+    reason : ndarray of shape (m,), str
+        E.g. "outside z range", "invalid z", "duplicate", "masked".
+    """
+
+    row: np.ndarray
+    ra: np.ndarray
+    dec: np.ndarray
+    z: np.ndarray
+    proxy: np.ndarray | None
+    weight: np.ndarray | None
+    reason: np.ndarray
+
+    @classmethod
+    def empty(cls, *, proxy: bool, weight: bool) -> "RemovedRows":
+        nothing = np.zeros(0)
+        return cls(np.zeros(0, np.int64), nothing, nothing, nothing, nothing if proxy else None,
+                   nothing if weight else None, np.zeros(0, dtype=str))
+
+    def __len__(self) -> int:
+        return self.row.size
+
+    def plus(self, other: "RemovedRows") -> "RemovedRows":
+        """These rows followed by ``other``'s."""
+        def join(a, b):
+            return None if a is None or b is None else np.concatenate([a, b])
+        return RemovedRows(np.concatenate([self.row, other.row]), join(self.ra, other.ra), join(self.dec, other.dec),
+                           join(self.z, other.z), join(self.proxy, other.proxy), join(self.weight, other.weight),
+                           np.concatenate([self.reason, other.reason]))
 
 
 @dataclass(frozen=True)
@@ -60,6 +112,8 @@ class Catalogue:
     selection : dict
         Counts at each step: rows read, invalid rows dropped, cut by z, cut by proxy, duplicates
         dropped, kept.
+    removed : RemovedRows or None
+        The rows read but not among these tracers, with their reasons (None when not recorded).
 
     The tracers are in the canonical order of the module docstring, not in file order.
     """
@@ -73,16 +127,27 @@ class Catalogue:
     sha256: str
     selection: dict = field(default_factory=dict)
     weight: np.ndarray | None = None
+    removed: RemovedRows | None = None
 
     def __len__(self) -> int:
         return self.ra.size
 
-    def subset(self, keep: np.ndarray) -> "Catalogue":
-        """The tracers where boolean ``keep`` is true (same provenance)."""
-        return Catalogue(self.ra[keep], self.dec[keep], self.z[keep],
-                         None if self.proxy is None else self.proxy[keep], self.row[keep],
-                         self.path, self.sha256, dict(self.selection),
-                         None if self.weight is None else self.weight[keep])
+    def subset(self, keep: np.ndarray, *, reason="dropped") -> "Catalogue":
+        """The tracers where boolean ``keep`` is true (same provenance); the others join ``removed``
+        with ``reason`` (one string, or an array with one per tracer)."""
+        keep = np.asarray(keep, dtype=bool)
+        removed = self.removed
+        if removed is not None and not keep.all():
+            gone = ~keep
+            why = np.broadcast_to(np.asarray(reason, dtype=str), keep.shape)[gone]
+            removed = removed.plus(RemovedRows(self.row[gone], self.ra[gone], self.dec[gone], self.z[gone],
+                                               _take(self.proxy, gone), _take(self.weight, gone), why))
+        return Catalogue(self.ra[keep], self.dec[keep], self.z[keep], _take(self.proxy, keep), self.row[keep],
+                         self.path, self.sha256, dict(self.selection), _take(self.weight, keep), removed)
+
+
+def _take(values, which):
+    return None if values is None else values[which]
 
 
 def _format_of(path: Path, fmt: str) -> str:
@@ -193,7 +258,9 @@ def load_catalogue(cfg) -> Catalogue:
     if weight is not None:
         checks.append((cfg.weight_column, weight, np.isfinite(weight) & (weight >= 0), "finite and >= 0"))
     valid = np.ones(n_read, dtype=bool)
+    reason = np.full(n_read, "", dtype=object)
     for name, values, ok, rule in checks:
+        reason[valid & ~ok] = f"invalid {name}"
         if not ok.all():
             message = f"catalogue {path}: column '{name}' must be {rule}; {_describe_invalid(name, values, ok)}"
             if not cfg.drop_invalid_rows:
@@ -201,7 +268,8 @@ def load_catalogue(cfg) -> Catalogue:
                                      path=path, key=name, row=int(np.flatnonzero(~ok)[0]))
             warnings.warn(message + "; dropped", PairvelWarning, stacklevel=2)
             valid &= ok
-    ra = np.mod(ra, 360.0)
+    with np.errstate(invalid="ignore"):
+        ra = np.where(valid, np.mod(ra, 360.0), ra)  # an invalid row keeps the value read, for the tracer table
 
     in_z = (z >= cfg.z_min) & (z < cfg.z_max)
     in_proxy = np.ones(n_read, dtype=bool) if proxy is None else (proxy >= cfg.proxy_min) & (proxy < cfg.proxy_max)
@@ -212,6 +280,14 @@ def load_catalogue(cfg) -> Catalogue:
         _report_duplicates(path, cfg.duplicate_rows, order, repeat)
         if cfg.duplicate_rows == "drop":
             order = order[~repeat]
+    reason[valid & ~in_z] = OUTSIDE_Z
+    reason[valid & in_z & ~in_proxy] = OUTSIDE_PROXY
+    kept = np.zeros(n_read, dtype=bool)
+    kept[order] = True
+    reason[keep & ~kept] = DUPLICATE
+    gone = np.flatnonzero(~kept)
+    removed = RemovedRows(gone, ra[gone], dec[gone], z[gone], _take(proxy, gone), _take(weight, gone),
+                          reason[gone].astype(str))
     selection = {
         "rows_read": int(n_read),
         "invalid_dropped": int((~valid).sum()),
@@ -226,7 +302,7 @@ def load_catalogue(cfg) -> Catalogue:
     return Catalogue(
         ra=ra[order], dec=dec[order], z=z[order], proxy=None if proxy is None else proxy[order],
         row=order, path=str(path), sha256=file_sha256(path), selection=selection,
-        weight=None if weight is None else weight[order],
+        weight=None if weight is None else weight[order], removed=removed,
     )
 
 

@@ -26,6 +26,7 @@ __all__ = [
     "iter_config_keys",
     "MultifrequencyConfig",
     "PrefilterConfig",
+    "RestartConfig",
     "is_folder_name",
 ]
 
@@ -314,6 +315,20 @@ class PrefilterConfig:
 
 
 @dataclass(frozen=True)
+class RestartConfig:
+    table_path: Path | None = _key(None, "start from the tracers.fits of an earlier run instead of catalogue + map: its "
+                                         "used rows and aperture temperatures (the trend removal is redone); "
+                                         "[catalogue] then takes only cuts, proxy_column and weight_column, [map], "
+                                         "[multifrequency] and [prefilter] stay unset, simulated skies are refused "
+                                         "and the random-position and rotated-map nulls skipped")
+
+
+#: Catalogue keys a run started from a tracer table still uses (cuts on the table's rows, and which
+#: of its proxy and weight columns to use); the other catalogue keys describe a file it does not read.
+RESTART_CATALOGUE_KEYS = ("proxy_column", "weight_column", "z_min", "z_max", "proxy_min", "proxy_max")
+
+
+@dataclass(frozen=True)
 class Config:
     """A whole run configuration; ``source`` is the file it came from (None when built in code)."""
 
@@ -331,6 +346,7 @@ class Config:
     blinding: BlindingConfig = field(default_factory=BlindingConfig)
     multifrequency: MultifrequencyConfig = field(default_factory=MultifrequencyConfig)
     prefilter: PrefilterConfig = field(default_factory=PrefilterConfig)
+    restart: RestartConfig = field(default_factory=RestartConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:
@@ -536,12 +552,14 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
     if not is_folder_name(cfg.run.name):
         bad("run.name", f"must be a plain folder name (not empty, '.' or '..'; no '/', '\\' or NUL character); "
                         f"got {cfg.run.name!r}")
-    if cfg.catalogue.path is None:
-        bad("catalogue.path", "is required")
     if cfg.run.truth_path is not None and cfg.blinding.enabled:
         bad("run.truth_path", "cannot be used with blinding.enabled: comparing with a known truth reveals the "
                               "amplitude; remove one of them")
-    if cfg.map.path is None and not cfg.multifrequency.map_paths:
+    if cfg.restart.table_path is not None:
+        _check_restart(cfg, bad)
+    elif cfg.catalogue.path is None:
+        bad("catalogue.path", "is required (or restart.table_path)")
+    elif cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
     if cfg.theory.bias is None:
         bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
@@ -598,6 +616,22 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
         bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
+
+
+def _check_restart(cfg, bad) -> None:
+    """A run started from a tracer table reads no catalogue file and no map: keys that only describe
+    those must stay unset, and simulated skies cannot be made."""
+    for sec_name in ("catalogue", "map", "multifrequency", "prefilter"):
+        section = getattr(cfg, sec_name)
+        for f in dataclasses.fields(section):
+            if sec_name == "catalogue" and f.name in RESTART_CATALOGUE_KEYS:
+                continue
+            if getattr(section, f.name) != f.default:
+                bad(f"{sec_name}.{f.name}", "is not used when restart.table_path is set (the tracers and their "
+                                            "aperture temperatures come from the table); remove it")
+    if cfg.covariance.estimator == "simulations":
+        bad("covariance.estimator", "= 'simulations' needs the sky map, which a run from restart.table_path does not "
+                                    "read; use jackknife or bootstrap")
 
 
 def load_config(path) -> Config:

@@ -18,9 +18,10 @@ HEALPix a compiled walk over the pixel rings or one disc query per position.
 
 from __future__ import annotations
 
-__all__ = ["ApertureResult", "measure_apertures", "random_positions_in_footprint", "measure_random_apertures",
-           "point_source_fraction"]
+__all__ = ["ApertureResult", "DROP_REASONS", "measure_apertures", "random_positions_in_footprint",
+           "measure_random_apertures", "point_source_fraction"]
 
+import dataclasses
 import math
 import warnings
 from dataclasses import dataclass
@@ -34,6 +35,13 @@ from ..core.sphere import unit_vectors
 from .skymap import SkyMap
 
 _MAX_RADIUS_ARCMIN = 600.0  # 10 degrees: beyond this a "compensated aperture" is not what anyone wants
+
+#: Why a position's aperture is unusable, in the order they are tested: the disc or annulus holds no
+#: pixel centre at some radius (pixelisation); pixels the map does not hold or holds without data
+#: (NaN, UNSEEN) alone exceed the masked fraction (outside the map's footprint); otherwise pixels
+#: the mask (or a weight of 0) takes out.
+TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED = "too few pixels in the aperture", "outside the map", "masked"
+DROP_REASONS = (TOO_FEW_PIXELS, OUTSIDE_MAP, MASKED)
 
 
 def point_source_fraction(radius_arcmin: float, beam_fwhm_arcmin: float) -> float:
@@ -94,6 +102,8 @@ class ApertureResult:
         Finite temperature and both masked fractions <= ``max_masked_fraction`` at every radius.
     max_masked_fraction : float
         The threshold ``usable`` was computed with.
+    drop_reason : ndarray of shape (N,), str, or None
+        "" where usable, else one of :data:`DROP_REASONS` (set by :func:`measure_apertures`).
     """
 
     radius_arcmin: np.ndarray
@@ -104,6 +114,7 @@ class ApertureResult:
     n_pixels_annulus: np.ndarray
     usable: np.ndarray
     max_masked_fraction: float
+    drop_reason: np.ndarray | None = None
 
     @property
     def n_usable(self) -> int:
@@ -257,8 +268,27 @@ def measure_apertures(skymap: SkyMap, ra_deg, dec_deg, radius_arcmin, *, max_mas
                       f"{skymap.grid_label} (pixel size {skymap.pixel_size_arcmin:.2f} arcmin); the aperture "
                       f"temperature is dominated by pixelisation", PairvelWarning, stacklevel=2)
     ra, dec = skymap.from_equatorial(ra, dec)
-    return _measure(skymap, ra, dec, radii, fmax, progress, weighting=pixel_weighting, method=method,
-                    level=int(subsample_level), scale=scale)
+    options = {"weighting": pixel_weighting, "method": method, "level": int(subsample_level)}
+    res = _measure(skymap, ra, dec, radii, fmax, progress, **options, scale=scale)
+    return dataclasses.replace(res, drop_reason=_drop_reasons(skymap, ra, dec, radii, res, options, scale))
+
+
+def _drop_reasons(skymap: SkyMap, ra, dec, radii, res: ApertureResult, options: dict, scale) -> np.ndarray:
+    """One of :data:`DROP_REASONS` for each unusable position of ``res`` ("" for the usable ones).
+
+    The footprint test measures the unusable positions again with every held pixel that has a value
+    at weight 1 (no mask): an aperture still too empty lies (partly) outside the map, where it has
+    no pixels or only pixels without data (NaN, UNSEEN).
+    """
+    reason = np.full(ra.size, "", dtype=object)
+    bad = np.flatnonzero(~res.usable)
+    if bad.size:
+        few = np.any((res.n_pixels_disc[:, bad] < 1) | (res.n_pixels_annulus[:, bad] < 1), axis=0)
+        held = skymap.with_values(skymap.values, weight=np.ones(skymap.weight.shape, np.float32))  # bad values: 0
+        footprint = _measure(held, ra[bad], dec[bad], radii, res.max_masked_fraction, None, **options,
+                             scale=None if scale is None else scale[bad])
+        reason[bad] = np.where(few, TOO_FEW_PIXELS, np.where(footprint.usable, MASKED, OUTSIDE_MAP))
+    return reason.astype(str)
 
 
 def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto", scale=None):

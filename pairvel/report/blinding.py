@@ -145,6 +145,14 @@ def _joint_fit(fit, s_fid, n_samples, prior, grid_size):
                                   n_s=grid_size[1])
 
 
+def _tracer_temperatures(table, scale, fit):
+    """Per-tracer aperture temperatures carry the signal: every temperature column (``t_*uK*``,
+    ``noise_uK``) by the factor, positions, redshifts, regions and flags unchanged."""
+    from .tracers import scale_temperatures
+
+    return scale_temperatures(table, lambda values: scale.number(values, 1))
+
+
 #: AmplitudeFit: the amplitude, its error and interval scale; goodness of fit does not.
 FIT_RULES = {"amplitude": 1, "error": 1, "lower_68": 1, "upper_68": 1, "snr": 0, "snr_delta_chi2": 0,
              "chi2_min": 0, "chi2_null": 0, "dof": 0, "pte_min": 0, "pte_null": 0, "n_bins": 0,
@@ -158,6 +166,7 @@ RESULT_RULES = {
               "mean_error": 1},
     "extra": None,
     "warnings": 0,  # texts about the inputs and the method; none quotes an amplitude (test_blinding_holds reads them)
+    "tracers": _tracer_temperatures,
 }
 
 #: Every key the pipeline (or the output reader) may put into ``RunResult.extra``.
@@ -271,13 +280,14 @@ class _StoredConfig(types.SimpleNamespace):
 
 def load_result(folder):
     """Rebuild a RunResult from a pairvel output folder (summary.json, pairwise.ecsv,
-    covariance.fits, null_<kind>.ecsv), enough to write every output again."""
+    covariance.fits, null_<kind>.ecsv, and tracers.fits when present), enough to write every output again."""
     from astropy.io import fits
     from astropy.table import Table
 
     from ..core.warnlog import RunWarning
     from ..stats.nulltests import NullTestResult
     from .result import RunResult
+    from .tracers import TRACER_TABLE, read_tracer_table
 
     folder = Path(folder)
     try:
@@ -299,6 +309,7 @@ def load_result(folder):
                                         mean_error=np.array(nt["p_mean_err_uK"], dtype=float)))
         fit = _stored_fit(summary["fit"])
         extra = _stored_extra(summary, fit)
+        tracers = read_tracer_table(folder / TRACER_TABLE).table if (folder / TRACER_TABLE).exists() else None
     except (OSError, KeyError, ValueError, TypeError) as err:
         raise InputError(f"output folder {folder}: cannot be read back as a pairvel output ({err})", path=folder) from None
     cfg = _StoredConfig(**{k: _namespace(v) for k, v in summary["config"].items()})
@@ -308,7 +319,8 @@ def load_result(folder):
                      z_eff=summary["z_eff"], v12_template=np.array(table["v12_lin_km_s"], dtype=float),
                      in_fit=np.array(table["in_fit"], dtype=bool), fit=fit, nulls=tuple(nulls),
                      n_tracers=summary["n_tracers"], selection=summary["selection"], provenance=summary["provenance"],
-                     extra=extra, warnings=tuple(RunWarning(**w) for w in summary.get("run_warnings", [])))
+                     extra=extra, warnings=tuple(RunWarning(**w) for w in summary.get("run_warnings", [])),
+                     tracers=tracers)
 
 
 def _stored_fit(d: dict):

@@ -386,10 +386,14 @@ def _report(result, summary: dict, figures=()) -> str:
               f"{prov.get('config_git_commit') or 'none'})",
               f"- catalogue: {prov['catalogue']['path']} (sha256 {prov['catalogue']['sha256']})",
               f"- map: {prov['map']['path']} (sha256 {prov['map']['sha256']})",
+              *([f"- tracer table: {prov['tracer_table']['path']} (sha256 {prov['tracer_table']['sha256']}); "
+                 "catalogue and map above are the table's"] if "tracer_table" in prov else []),
               f"- seed: {prov['seed']}; started {prov['started_utc']}",
               "- versions: " + ", ".join(f"{k} {v}" for k, v in prov["versions"].items()),
               "", "Data files: pairwise.ecsv, covariance.fits, null_<kind>.ecsv, summary.json; every figure as PDF "
-                  "and PNG; this report also as report.html (self-contained).", ""]
+                  "and PNG; this report also as report.html (self-contained)"
+              + ("; tracers.fits (one row per catalogue row: used or why not, region, aperture temperatures)."
+                 if result.tracers is not None else "."), ""]
     return "\n".join(lines)
 
 
@@ -435,6 +439,10 @@ def write_outputs(result, out_dir, *, force: bool = False, run_log=None, claim=N
         _write_tables(result, tmp)
         _write_theory_outputs(result, tmp)
         figures = write_figures(result, tmp)
+        if result.tracers is not None:
+            from .tracers import TRACER_TABLE, write_tracer_table
+
+            write_tracer_table(result.tracers, tmp / TRACER_TABLE, blinding=_blinding(result))
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
         (tmp / "report.md").write_text(_report(result, summary, figures))
         (tmp / "report.html").write_text(render_html(result, summary, figures, tmp), encoding="utf-8")

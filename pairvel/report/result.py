@@ -34,6 +34,7 @@ class RunResult:
     provenance: dict
     extra: dict = field(default_factory=dict)
     warnings: tuple = ()  # RunWarning of every warning the run raised or logged (pairvel.core.warnlog)
+    tracers: object = None  # astropy Table, one row per catalogue row read (pairvel.report.tracers); None if unknown
 
     @property
     def r_mid(self) -> np.ndarray:

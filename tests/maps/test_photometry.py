@@ -240,6 +240,25 @@ def test_bad_positions_radii_and_small_aperture_warning():
         measure_apertures(HealpixMap.from_array(m), [0.0], [0.0], 10.0)
 
 
+@pytest.mark.parametrize("weighting", ["centre", "fraction"])
+def test_drop_reasons_tell_pixelisation_footprint_and_mask_apart(weighting):
+    """Analytic cases on a partial nside-64 map (pixels ~55 arcmin) with one masked pixel block."""
+    m = patch_map(64, 40.0, 0.0, 12.0, lambda v: np.zeros(len(v)))
+    lon, lat = hp.pix2ang(64, m.pixels, lonlat=True)
+    weight = np.where(np.hypot(lon - 35.0, lat) < 3.0, 0.0, 1.0).astype(np.float32)  # a 3-degree hole
+    m = m.with_values(m.values, weight=weight)
+    ra = np.array([44.0, 35.0, 70.0, 40.5, 40.0])
+    dec = np.array([0.0, 0.0, 0.0, 11.5, 0.0])
+    res = measure_apertures(m, ra, dec, [90.0], max_masked_fraction=0.1, pixel_weighting=weighting)
+    # inside and clear; in the hole; 30 degrees away from a 12-degree patch; astride the patch edge
+    assert list(res.drop_reason[:4]) == ["", "masked", "outside the map", "outside the map"]
+    assert np.array_equal(res.usable, res.drop_reason == "")
+    with pytest.warns(PairvelWarning, match="pixelisation"):  # 5 arcmin on 55 arcmin pixels: discs are empty
+        tiny = measure_apertures(m, ra, dec, [90.0, 5.0], max_masked_fraction=0.1, pixel_weighting=weighting)
+    empty = (tiny.n_pixels_disc[1] == 0) & ~tiny.usable  # with "fraction", edge pixels can still fill a disc
+    assert set(tiny.drop_reason[empty]) == {"too few pixels in the aperture"} and (empty.sum() >= 4 or weighting != "centre")
+
+
 @pytest.mark.parametrize("theta, fwhm", [(2.1, 1.4), (3.0, 3.0), (12.0, 15.0), (1.0, 6.0)])
 def test_point_source_fraction_against_numerical_integration(theta, fwhm):
     """f of point_source_fraction against the disc and annulus integrals of the beam Gaussian done

@@ -122,6 +122,9 @@ def _fits_numbers(path):
             if data is not None:
                 arrays = [data[name] for name in data.names] if hasattr(data, "names") and data.names else [data]
                 for arr in arrays:
+                    if np.asarray(arr).dtype.kind in "SU":  # a text column (drop reasons): the numbers in its text
+                        yield from _text_numbers(" ".join(str(v) for v in np.ravel(arr)))
+                        continue
                     flat = np.asarray(arr, dtype=float).ravel()
                     digits = 7 if np.asarray(arr).dtype.itemsize <= 4 else 17
                     yield from ((float(v), digits) for v in flat if v != 0 and np.isfinite(v))

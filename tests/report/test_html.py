@@ -53,8 +53,8 @@ def test_html_report_is_self_contained(tiny_run):
     assert {p.stem for p in tiny_run.glob("*.pdf")} == {p.stem for p in tiny_run.glob("*.png")}
     text = " ".join(page.text)
     assert "pairvel report: tiny" in text and format_tau(summary["tau_mean"], summary["tau_mean_error"]) in text
-    # the stated assumptions (summary["assumptions"]) head the page, each label with its value
-    for label, value in summary["assumptions"].items():
+    # the stated assumptions (summary["assumptions"]) head the page, every label of them
+    for label in summary["assumptions"]:
         assert label in text, label
     assert "bias b" in text and "Omega_m" in text
     # provenance: the config text as read, its checksum, the (absent) git commit
