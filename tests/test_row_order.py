@@ -13,7 +13,8 @@ from astropy.table import Table
 from pairvel.cli import main
 
 # keys whose values name the input files or the time of the run, not results
-NOT_RESULTS = {"started_utc", "path", "sha256", "config_file", "config_sha256", "platform", "versions"}
+NOT_RESULTS = {"started_utc", "path", "sha256", "config_file", "config_sha256", "config_text", "config_git_commit",
+               "platform", "versions"}
 
 
 def write_catalogue(frame: pd.DataFrame, path):
