@@ -1,5 +1,7 @@
 """Shared fixtures: a tiny noise-only survey written to a temporary folder (invented data)."""
 
+import math
+
 import healpy as hp
 import numpy as np
 import pandas as pd
@@ -39,6 +41,25 @@ n_random = 2
 #: same settings; catalogue and map are not read.
 RESTART_CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "again"').replace('path = "cat.csv"\n', "")
                   .replace('[map]\npath = "map.fits"', '[restart]\ntable_path = "{table}"'))
+
+
+def assert_json_close(a, b, *, rtol: float, skip=frozenset(), where: str = "") -> None:
+    """Two JSON values equal recursively: floats to ``rtol`` relative (or exactly equal, NaN
+    included), everything else exactly; dict keys in ``skip`` are not compared."""
+    if isinstance(a, dict):
+        assert a.keys() == b.keys(), where
+        for key in a:
+            if key not in skip:
+                assert_json_close(a[key], b[key], rtol=rtol, skip=skip, where=f"{where}.{key}")
+    elif isinstance(a, list):
+        assert len(a) == len(b), where
+        for k, (x, y) in enumerate(zip(a, b)):
+            assert_json_close(x, y, rtol=rtol, skip=skip, where=f"{where}[{k}]")
+    elif isinstance(a, float) and isinstance(b, float):
+        assert math.isclose(a, b, rel_tol=rtol, abs_tol=0.0) or a == b or (math.isnan(a) and math.isnan(b)), \
+            (where, a, b)
+    else:
+        assert a == b, (where, a, b)
 
 
 def write_healpix(path, values, *, nside, pixels=None, unit="uK_CMB", ordering="RING"):

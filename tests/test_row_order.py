@@ -2,13 +2,13 @@
 in summary.json and in every output table for permuted CSV, FITS and Parquet files."""
 
 import json
-import math
 
 import numpy as np
 import pandas as pd
 import pytest
 from astropy.io import fits
 from astropy.table import Table
+from conftest import assert_json_close
 
 from pairvel.cli import main
 
@@ -35,20 +35,8 @@ def run_with(folder, catalogue, settings: str, out: str):
 
 
 def assert_same_numbers(a, b, where="summary"):
-    """Every number equal to 1e-12 relative, every string equal, recursively."""
-    if isinstance(a, dict):
-        assert a.keys() == b.keys(), where
-        for key in a:
-            if key not in NOT_RESULTS:
-                assert_same_numbers(a[key], b[key], f"{where}.{key}")
-    elif isinstance(a, list):
-        assert len(a) == len(b), where
-        for k, (x, y) in enumerate(zip(a, b)):
-            assert_same_numbers(x, y, f"{where}[{k}]")
-    elif isinstance(a, float) and isinstance(b, float):
-        assert math.isclose(a, b, rel_tol=1e-12, abs_tol=0.0) or a == b, (where, a, b)
-    else:
-        assert a == b, (where, a, b)
+    """Every number equal to 1e-12 relative, every string equal, recursively (run-specific keys skipped)."""
+    assert_json_close(a, b, rtol=1e-12, skip=NOT_RESULTS, where=where)
 
 
 def assert_same_outputs(first, other):

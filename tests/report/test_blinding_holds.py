@@ -19,7 +19,7 @@ import pandas as pd
 import pytest
 from astropy.io import fits
 from astropy.table import Table
-from conftest import write_healpix
+from conftest import assert_json_close, write_healpix
 from PIL import Image
 
 from pairvel.cli import main
@@ -217,18 +217,7 @@ def _run(folder, config, out):
 
 def _close(a, b, path=""):
     """Recursive comparison of two JSON values: numbers to 1e-10 relative, everything else equal."""
-    if isinstance(a, dict):
-        assert a.keys() == b.keys(), path
-        for k in a:
-            _close(a[k], b[k], f"{path}.{k}")
-    elif isinstance(a, list):
-        assert len(a) == len(b), path
-        for k, (x, y) in enumerate(zip(a, b)):
-            _close(x, y, f"{path}[{k}]")
-    elif isinstance(a, float) and isinstance(b, float):
-        np.testing.assert_allclose(b, a, rtol=1e-10, atol=0, err_msg=path)
-    else:
-        assert a == b, path
+    assert_json_close(a, b, rtol=1e-10, where=path)
 
 
 def _same_table(path_a, path_b):
