@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["tsz_spectrum"]
+__all__ = ["tsz_spectrum", "optical_depth_from_y", "ELECTRON_REST_ENERGY_KEV"]
 
 import numpy as np
 
@@ -11,6 +11,8 @@ from ..core.constants import T_CMB_K
 # h and k_B, exact in the 2019 SI.
 _H_J_S = 6.62607015e-34
 _K_J_K = 1.380649e-23
+#: Electron rest energy m_e c^2 in keV (CODATA 2018: 0.51099895000 MeV).
+ELECTRON_REST_ENERGY_KEV = 510.99895
 
 
 def tsz_spectrum(freq_ghz, *, t_cmb_k: float = T_CMB_K) -> np.ndarray:
@@ -38,3 +40,30 @@ def tsz_spectrum(freq_ghz, *, t_cmb_k: float = T_CMB_K) -> np.ndarray:
         raise ValueError(f"frequencies must be finite and > 0 GHz; got {nu.tolist()}")
     x = _H_J_S * nu * 1e9 / (_K_J_K * t_cmb_k)
     return x / np.tanh(0.5 * x) - 4.0
+
+
+def optical_depth_from_y(y, te_kev) -> np.ndarray:
+    """Optical depth of a cluster from its Compton y in the non-relativistic limit, tau = y m_e c^2 / (k_B T_e).
+
+    Parameters
+    ----------
+    y : float or array_like
+        Compton y (in the same aperture as the wanted tau).
+    te_kev : float or array_like, keV
+        Electron temperature k_B T_e, > 0; broadcast against ``y``.
+
+    Returns
+    -------
+    ndarray
+        tau, of the broadcast shape.
+
+    Notes
+    -----
+    y = (k_B T_e / m_e c^2) tau for an isothermal electron gas (Carlstrom, Holder & Reese 2002,
+    ARA&A 40, 643, eq. 1 with a constant temperature).  Relativistic corrections to the tSZ spectrum,
+    percent-level at several keV, are not applied.
+    """
+    te = np.asarray(te_kev, dtype=float)
+    if np.any(~np.isfinite(te) | (te <= 0)):
+        raise ValueError(f"electron temperatures must be finite and > 0 keV; got {te.ravel()[:5].tolist()}")
+    return np.asarray(y, dtype=float) * ELECTRON_REST_ENERGY_KEV / te
