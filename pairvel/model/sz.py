@@ -11,8 +11,8 @@ from ..core.constants import T_CMB_K
 # h and k_B, exact in the 2019 SI.
 _H_J_S = 6.62607015e-34
 _K_J_K = 1.380649e-23
-#: Electron rest energy m_e c^2 in keV (CODATA 2018: 0.51099895000 MeV).
-ELECTRON_REST_ENERGY_KEV = 510.99895
+#: Electron rest energy m_e c^2 in keV (CODATA 2022: 0.51099895069 MeV).
+ELECTRON_REST_ENERGY_KEV = 510.99895069
 
 
 def tsz_spectrum(freq_ghz, *, t_cmb_k: float = T_CMB_K) -> np.ndarray:
