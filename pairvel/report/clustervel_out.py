@@ -32,6 +32,8 @@ ASSUMPTIONS = (
     "the tSZ and the kSZ fill the aperture alike (same profile) and every map has the same beam",
     "channel covariance from compensated apertures at random positions: each map's noise plus the primary CMB, "
     "which is the same in every map and so a noise term of dT_kSZ only",
+    "tau_err holds the noise of y only: the fraction of a cluster's signal the aperture keeps (profile, beam, "
+    "pixels) scales tau and is not in tau_err; it cancels in v_los when tSZ and kSZ fill the aperture alike",
 )
 
 
@@ -116,8 +118,8 @@ def terminal_lines(run, *, max_rows: int = 12) -> list[str]:
     """The table's first rows (best tau S/N first) and the cautions, for the terminal."""
     vel = run.velocities
     clean = run.flags == 0
-    lines = [f"pairvel velocities: {run.flags.size} clusters, {int(clean.sum())} without caution flags "
-             f"(tau S/N >= {run.config.single_cluster.min_tau_snr:g}); maps {', '.join(f'{nu:g}' for nu in run.frequencies_ghz)} GHz",
+    maps = ", ".join(f"{nu:g}" for nu in run.frequencies_ghz)
+    lines = [f"pairvel velocities: {run.flags.size} clusters, {int(clean.sum())} without caution flags; maps {maps} GHz",
              f"  {'row':>7} {'z':>6} {'tau':>9} {'tau S/N':>7} {'v_los [km/s]':>18}  cautions"]
     snr = np.nan_to_num(vel.tau_snr, nan=-np.inf)
     for i in np.argsort(-snr, kind="stable")[:max_rows]:
@@ -144,7 +146,7 @@ def velocity_markdown(run) -> str:
         "Not blinded (single clusters, not the pairwise amplitude).", "",
         "## Assumptions", "", *[f"- {a}" for a in ASSUMPTIONS], f"- electron temperature: {run.te_source}", "",
         "## Cautions", "", *[f"- {c.removeprefix('caution: ')}" for c in caution_lines(run)], "",
-        "## Channels", "", "| map | nu [GHz] | f_tSZ | aperture noise [uK] |", "|---|---:|---:|---:|",
+        "## Channels", "", "| map | nu [GHz] | f_tSZ | aperture rms, noise + CMB [uK] |", "|---|---:|---:|---:|",
     ]
     for path, nu, fi, var in zip(run.map_paths, run.frequencies_ghz, run.f_tsz, np.diag(run.channel_cov)):
         lines.append(f"| {path} | {nu:g} | {fi:+.5f} | {math.sqrt(var):.3g} |")
@@ -189,24 +191,26 @@ def velocity_figure(run, folder) -> list[str]:
     vel = run.velocities
     clean = (run.flags == 0) & np.isfinite(vel.v_km_s)
     other = (run.flags != 0) & np.isfinite(vel.v_km_s)
+    many = clean.sum() + other.sum() > 200  # thinner marks for a crowded plot
+    size, line, cap = (1.5, 0.3, 0.0) if many else (3.5, 0.7, 2.0)
     with plot_style():
-        fig = new_figure(width="column", height_in=2.8)
+        fig = new_figure(width="column", height_in=3.0)
         ax = fig.add_subplot()
         if other.any():
-            ax.errorbar(run.z[other], vel.v_km_s[other], yerr=vel.v_err_km_s[other], fmt=".", color="0.75",
-                        elinewidth=0.5, label=f"flagged ({int(other.sum())})", zorder=1)
+            ax.errorbar(run.z[other], vel.v_km_s[other], yerr=vel.v_err_km_s[other], fmt=".", color="0.7",
+                        ms=size, elinewidth=line, capsize=cap, label=f"flagged ({int(other.sum())})", zorder=1)
         if clean.any():
             ax.errorbar(run.z[clean], vel.v_km_s[clean], yerr=vel.v_err_km_s[clean], fmt="o", color="C0",
-                        elinewidth=0.7, label=f"tau S/N >= {run.config.single_cluster.min_tau_snr:g} "
-                                              f"({int(clean.sum())})", zorder=2)
+                        ms=size, elinewidth=line, capsize=cap, alpha=0.8, label=f"no caution flag ({int(clean.sum())})", zorder=2)
             if run.truth is not None:
-                ax.plot(run.z[clean], run.truth["v_true_km_s"][clean], "x", color="C3", label="injected", zorder=3)
+                ax.plot(run.z[clean], run.truth["v_true_km_s"][clean], "x", color="C3", ms=size + 1,
+                        label="injected", zorder=3)
             lim = np.nanpercentile(np.abs(vel.v_km_s[clean]) + vel.v_err_km_s[clean], 98) * 1.1
             ax.set_ylim(-lim, lim)
         ax.axhline(0.0, color="0.4", lw=0.6)
         ax.set_xlabel("redshift z")
         ax.set_ylabel("line-of-sight velocity [km/s]")
-        ax.legend(loc="upper right")
+        ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=3, fontsize=6, frameon=False)
         return save_figure(fig, folder, FIGURE_STEM)
 
 
