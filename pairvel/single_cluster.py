@@ -25,7 +25,7 @@ from .input.catalogue import load_catalogue, read_table_columns
 from .input.config import Config
 from .maps.channels import channel_apertures, has_neighbour, overlap_distance_arcmin, read_channel_maps
 from .maps.radii import radius_scale
-from .model.sz import tsz_spectrum
+from .model.sz import tsz_relativistic_first_order, tsz_spectrum
 from .stats.clustervel import (
     caution_flags,
     channel_covariance,
@@ -51,6 +51,8 @@ class ClusterVelocityRun:
         :class:`~pairvel.stats.clustervel.ClusterVelocities`)
     flags : ndarray of shape (n,), int
     frequencies_ghz, f_tsz : ndarray of shape (k,)
+        Frequencies and non-relativistic tSZ factors (with ``single_cluster.relativistic`` the fit used
+        each cluster's first-order corrected factors).
     channel_cov : ndarray of shape (k, k), uK^2
     n_random : int
         Random positions usable in every map that went into ``channel_cov``.
@@ -112,9 +114,10 @@ def measure_cluster_velocities(cfg: Config, *, progress: Progress | None = None)
     with progress.stage("tSZ/kSZ split, optical depths and velocities"):
         freqs = np.asarray(mf.frequencies_ghz, dtype=float)
         f = tsz_spectrum(freqs, t_cmb_k=cfg.cosmology.t_cmb_k)
+        f_fit = tsz_relativistic_first_order(freqs, te[keep], t_cmb_k=cfg.cosmology.t_cmb_k) if sc.relativistic else f
         cov = channel_covariance(ch.random_temperatures)
         t_cmb_uk = cfg.cosmology.t_cmb_k * 1e6
-        dec = decompose_channels(ch.temperatures[keep], f, cov, t_cmb_uk=t_cmb_uk)
+        dec = decompose_channels(ch.temperatures[keep], f_fit, cov, t_cmb_uk=t_cmb_uk)
         vel = line_of_sight_velocities(dec, te[keep], t_cmb_uk=t_cmb_uk)
         proxy = None if cat.proxy is None else cat.proxy[keep]
         crowded = has_neighbour(cat.ra, cat.dec, overlap_distance_arcmin(ap.radius_arcmin, scale))[keep]

@@ -104,7 +104,7 @@ def test_velocities_recover_injected_velocities(measured):
     assert list(table["row"]) == sorted(table["row"])
     assert (out / "velocity_vs_redshift.png").is_file() and (out / "velocity_vs_redshift.pdf").is_file()
     report = (out / "velocities.md").read_text()
-    assert "Single-cluster velocities:" in report and "relativistic corrections are not applied" in report
+    assert "Single-cluster velocities:" in report and "non-relativistic: relativistic corrections are off" in report
 
     clean = table[table["flags"] == 0]
     pulls = (clean["v_los_km_s"] - clean["v_true_km_s"]) / clean["v_los_err_km_s"]

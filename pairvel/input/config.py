@@ -328,7 +328,7 @@ class RestartConfig:
 class SingleClusterConfig:
     electron_temperature_kev: float = _key(5.0, "`pairvel velocities`: electron temperature k_B T_e (keV) that turns "
                                                 "each cluster's Compton y into its optical depth, tau = y m_e c^2 / "
-                                                "(k_B T_e), non-relativistic (no relativistic tSZ corrections)",
+                                                "(k_B T_e); relativistic tSZ corrections only with relativistic = true",
                                            bounds=(0.01, 100.0))
     temperature_column: str | None = _key(None, "`pairvel velocities`: catalogue column of each cluster's k_B T_e in "
                                                 "keV, used instead of electron_temperature_kev")
@@ -340,6 +340,9 @@ class SingleClusterConfig:
                                          "(catalogue.proxy_column) is below this (low mass)")
     n_random: int = _key(3000, "`pairvel velocities`: random apertures per map for the channel covariance (noise "
                                "and primary CMB)", bounds=(100, 10_000_000))
+    relativistic: bool = _key(False, "`pairvel velocities`: fit the tSZ with its first-order relativistic correction "
+                                     "at each cluster's T_e (Challinor & Lasenby 1998); false: the non-relativistic "
+                                     "spectrum")
 
 
 #: Catalogue keys a run started from a tracer table still uses (cuts on the table's rows, and which

@@ -8,7 +8,7 @@ amplitude that the blinding of ``pairvel run`` hides, and the report says so.
 
 from __future__ import annotations
 
-__all__ = ["velocity_table", "caution_lines", "terminal_lines", "velocity_markdown", "write_velocity_outputs",
+__all__ = ["velocity_table", "assumptions", "caution_lines", "terminal_lines", "velocity_markdown", "write_velocity_outputs",
            "TABLE_STEM", "FIGURE_STEM"]
 
 import json
@@ -23,9 +23,16 @@ from ..stats.clustervel import FLAG_NAMES, flag_text
 TABLE_STEM = "cluster_velocities"
 FIGURE_STEM = "velocity_vs_redshift"
 
+#: The tSZ spectrum the fit used, by single_cluster.relativistic.
+SPECTRUM = {
+    False: "tSZ spectrum f(x) = x coth(x/2) - 4, non-relativistic: relativistic corrections are off "
+           "(single_cluster.relativistic = false); at several keV they lower |f| by a few percent, and tau with it",
+    True: "tSZ spectrum with its first-order relativistic correction at each cluster's T_e, f + theta_e Y_1 "
+          "(Challinor & Lasenby 1998; single_cluster.relativistic = true); higher orders and the kSZ's "
+          "relativistic corrections are not applied",
+}
+
 ASSUMPTIONS = (
-    "tSZ spectrum f(x) = x coth(x/2) - 4 (non-relativistic; relativistic corrections are not applied, they lower "
-    "|f| by a few percent at several keV)",
     "tau = y m_e c^2 / (k_B T_e) with the stated electron temperature, taken as exact (its error is not in v_err)",
     "v_los = -c dT_kSZ / (T_CMB tau), positive receding; v_err to first order in the errors of y and dT_kSZ and "
     "their correlation",
@@ -35,6 +42,11 @@ ASSUMPTIONS = (
     "tau_err holds the noise of y only: the fraction of a cluster's signal the aperture keeps (profile, beam, "
     "pixels) scales tau and is not in tau_err; it cancels in v_los when tSZ and kSZ fill the aperture alike",
 )
+
+
+def assumptions(run) -> list[str]:
+    """What the velocities assume, one sentence each, the spectrum first."""
+    return [SPECTRUM[bool(run.config.single_cluster.relativistic)], *ASSUMPTIONS]
 
 
 def _common_rms(cov) -> float:
@@ -79,7 +91,7 @@ def velocity_table(run):
         "FTSZ": ", ".join(f"{fi:+.5f}" for fi in run.f_tsz),
         "TCMB_K": run.config.cosmology.t_cmb_k,
         "FLAGBITS": "; ".join(f"{1 << i} {name}" for i, name in enumerate(FLAG_NAMES)),
-        "comments": list(ASSUMPTIONS),
+        "comments": assumptions(run),
     })
     return table
 
@@ -144,7 +156,7 @@ def velocity_markdown(run) -> str:
         f"{len(run.frequencies_ghz)} maps ({', '.join(f'{nu:g}' for nu in run.frequencies_ghz)} GHz); "
         f"{int(clean.sum())} without caution flags; table `{TABLE_STEM}.ecsv` / `.fits`, figure `{FIGURE_STEM}.png`. "
         "Not blinded (single clusters, not the pairwise amplitude).", "",
-        "## Assumptions", "", *[f"- {a}" for a in ASSUMPTIONS], f"- electron temperature: {run.te_source}", "",
+        "## Assumptions", "", *[f"- {a}" for a in assumptions(run)], f"- electron temperature: {run.te_source}", "",
         "## Cautions", "", *[f"- {c.removeprefix('caution: ')}" for c in caution_lines(run)], "",
         "## Channels", "", "| map | nu [GHz] | f_tSZ | aperture rms, noise + CMB [uK] |", "|---|---:|---:|---:|",
     ]
@@ -167,7 +179,7 @@ def _summary(run) -> dict:
            "channel_covariance_uk2": run.channel_cov.tolist(), "n_random": run.n_random,
            "common_rms_uk": _common_rms(run.channel_cov), "electron_temperature": run.te_source,
            "median_v_err_unflagged_km_s": float(np.median(vel.v_err_km_s[clean])) if clean.any() else None,
-           "assumptions": list(ASSUMPTIONS), "cautions": caution_lines(run), "config": run.config.as_dict(),
+           "assumptions": assumptions(run), "cautions": caution_lines(run), "config": run.config.as_dict(),
            "seed": run.config.run.seed}
     if run.truth is not None:
         out["truth_check"] = {"path": run.truth["path"], "pulls_unflagged": run.truth["pulls_unflagged"],
@@ -220,7 +232,7 @@ def write_velocity_outputs(run, folder) -> list[str]:
     table.write(folder / f"{TABLE_STEM}.ecsv", format="ascii.ecsv")
     fits_table = table.copy(copy_data=True)
     fits_table.meta.pop("comments", None)
-    fits_table.meta["COMMENT"] = list(ASSUMPTIONS)
+    fits_table.meta["COMMENT"] = assumptions(run)
     fits_table.write(folder / f"{TABLE_STEM}.fits", format="fits")
     files = [f"{TABLE_STEM}.ecsv", f"{TABLE_STEM}.fits", *velocity_figure(run, folder)]
     (folder / "velocities.md").write_text(velocity_markdown(run))

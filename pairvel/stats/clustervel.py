@@ -127,8 +127,9 @@ def decompose_channels(t_uk, f_tsz, channel_cov, *, t_cmb_uk: float = T_CMB_UK) 
     ----------
     t_uk : array_like of shape (n, k), uK
         Aperture temperature of each cluster in each channel.
-    f_tsz : array_like of shape (k,)
-        tSZ spectral factor of each channel (:func:`pairvel.model.sz.tsz_spectrum`).
+    f_tsz : array_like of shape (k,) or (n, k)
+        tSZ spectral factor of each channel (:func:`pairvel.model.sz.tsz_spectrum`), or of each cluster
+        and channel (relativistic corrections at each cluster's T_e).
     channel_cov : array_like of shape (k, k) or (n, k, k), uK^2
         Covariance of the channels' aperture noise (the primary CMB included), shared or per cluster.
     t_cmb_uk : float, uK, default :data:`pairvel.core.constants.T_CMB_UK`
@@ -146,28 +147,31 @@ def decompose_channels(t_uk, f_tsz, channel_cov, *, t_cmb_uk: float = T_CMB_UK) 
     """
     t = np.asarray(t_uk, dtype=float)
     f = np.asarray(f_tsz, dtype=float)
-    if t.ndim != 2 or t.shape[1] != f.size or f.size < 2:
-        raise InputError(f"channel temperatures must be (n, k) with k = {f.size} >= 2 channels; got shape {t.shape}")
-    if np.ptp(f) <= 1e-9 * max(1.0, float(np.abs(f).max())):
+    k = f.shape[-1]
+    if t.ndim != 2 or t.shape[1] != k or k < 2 or f.shape not in ((k,), t.shape):
+        raise InputError(f"channel temperatures must be (n, k) with k = {k} >= 2 channels (and f of shape (k,) or "
+                         f"(n, k)); got shapes {t.shape} and {f.shape}")
+    f = np.broadcast_to(f, t.shape)
+    if np.any(np.ptp(f, axis=1) <= 1e-9 * np.maximum(1.0, np.abs(f).max(axis=1))):
         raise InputError(f"the channels must have different tSZ factors to separate tSZ from kSZ; all have "
-                         f"f = {f[0]:.6g}")
+                         f"f = {f[0, 0]:.6g}")
     cov = np.asarray(channel_cov, dtype=float)
-    cov = np.broadcast_to(cov, (t.shape[0], f.size, f.size))
-    a = np.column_stack([t_cmb_uk * f, np.ones(f.size)])
+    cov = np.broadcast_to(cov, (t.shape[0], k, k))
+    a = np.stack([t_cmb_uk * f, np.ones(t.shape)], axis=-1)  # (n, k, 2)
     try:
-        ninv_a = np.linalg.solve(cov, np.broadcast_to(a, cov.shape[:1] + a.shape))
-        fisher = np.einsum("ki,nkj->nij", a, ninv_a)
+        ninv_a = np.linalg.solve(cov, a)
+        fisher = np.einsum("nki,nkj->nij", a, ninv_a)
         par_cov = np.linalg.inv(fisher)
     except np.linalg.LinAlgError:
         raise InputError("the channel covariance is singular; the tSZ/kSZ split has no unique solution (are two "
                          "channels identical or noiseless?)") from None
     rhs = np.einsum("nki,nk->ni", ninv_a, t)
     par = np.einsum("nij,nj->ni", par_cov, rhs)
-    resid = t - par @ a.T
+    resid = t - np.einsum("nkj,nj->nk", a, par)
     chi2 = np.einsum("nk,nk->n", resid, np.linalg.solve(cov, resid[..., None])[..., 0])
-    if f.size == 2:
+    if k == 2:
         chi2 = np.full(t.shape[0], np.nan)
-    return Decomposition(y=par[:, 0], dt_ksz_uk=par[:, 1], cov=par_cov, chi2=chi2, n_channels=int(f.size))
+    return Decomposition(y=par[:, 0], dt_ksz_uk=par[:, 1], cov=par_cov, chi2=chi2, n_channels=int(k))
 
 
 def line_of_sight_velocities(dec: Decomposition, te_kev, *, t_cmb_uk: float = T_CMB_UK) -> ClusterVelocities:
