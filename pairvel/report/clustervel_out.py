@@ -38,7 +38,8 @@ ASSUMPTIONS = (
     "their correlation",
     "the tSZ and the kSZ fill the aperture alike (same profile) and every map has the same beam",
     "channel covariance from compensated apertures at random positions: each map's noise plus the primary CMB, "
-    "which is the same in every map and so a noise term of dT_kSZ only",
+    "which is the same in every map and so a noise term of dT_kSZ only; one covariance for every cluster, so "
+    "where the noise varies over the footprint the errors are its average",
     "tau_err holds the noise of y only: the fraction of a cluster's signal the aperture keeps (profile, beam, "
     "pixels) scales tau and is not in tau_err; it cancels in v_los when tSZ and kSZ fill the aperture alike",
 )
