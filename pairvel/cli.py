@@ -250,10 +250,13 @@ def _cmd_mock(args) -> int:
     truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
-    if args.extra_frequency:
+    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
+    if args.extra_frequency and "tracer_truth" in truth.files:  # run.toml holds [multifrequency] already
+        print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
+              f" (in run.toml's [multifrequency]); single-cluster velocities: pairvel velocities {config}")
+    elif args.extra_frequency:
         print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
               " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
-    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
     print(f"  run it with: pairvel run {config}\n"
           f"    (the mock's bias, cosmology and aperture; the run compares tau_mean with truth.json)")
     return EXIT_OK
