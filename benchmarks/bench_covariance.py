@@ -90,7 +90,7 @@ def main(argv=None):
         npix = grid.aperture_support(ra, dec, np.sqrt(2.0) * a.radius_arcmin).values.size
         t_pix = time.perf_counter() - t0
         t0 = time.perf_counter()
-        sims = simulate_aperture_temperatures(grid, ra, dec, a.radius_arcmin, a.sims, seed=3, cmb_cl=cl,
+        sims = simulate_aperture_temperatures(a.nside, ra, dec, a.radius_arcmin, a.sims, seed=3, cmb_cl=cl,
                                               beam_fwhm_arcmin=1.4, white_noise_uk_arcmin=15.0, n_threads=a.threads)
         t_sim = time.perf_counter() - t0
         sims = np.where(np.isfinite(sims), sims, 0.0)

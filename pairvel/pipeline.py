@@ -123,7 +123,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         nulls = evaluate_nulls(cfg, pr, stack, cov)
         radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
-                                likelihood=cfg.theory.likelihood)
+                                likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
@@ -202,11 +202,10 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
 
 def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> tuple[Catalogue, Apertures]:
     """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted."""
-    ap = cfg.aperture
-    scale = radius_scale(ap, cat.z, cfg.cosmology)  # None for fixed angular radii
-    res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(ap), max_masked_fraction=cfg.map.max_masked_fraction,
-                            progress=progress.counter("apertures"), pixel_weighting=ap.pixel_weighting,
-                            method=ap.method, radius_scale=scale)
+    options = photometry_options(cfg, cat.z)
+    scale = options["radius_scale"]  # None for fixed angular radii
+    res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
+                            progress=progress.counter("apertures"))
     usable = res.usable
     n_dropped = int((~usable).sum())
     why = ", ".join(f"{n} {reason}" for reason, n in _counts(res.drop_reason[~usable], DROP_REASONS).items() if n)
@@ -218,6 +217,14 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> 
                          f"({n_dropped} of {len(cat)} dropped: {why})", path=skymap.path)
     return (cat.subset(usable, reason=res.drop_reason),
             Apertures(res.temperatures[:, usable], None if scale is None else scale[usable], n_dropped))
+
+
+def photometry_options(cfg: Config, z) -> dict:
+    """How the run measures an aperture (besides the radii): the keyword options of ``measure_apertures``
+    that the data and the simulated skies share."""
+    ap = cfg.aperture
+    return {"max_masked_fraction": cfg.map.max_masked_fraction, "pixel_weighting": ap.pixel_weighting,
+            "method": ap.method, "radius_scale": radius_scale(ap, z, cfg.cosmology)}
 
 
 def _counts(reasons, names) -> dict:
@@ -456,7 +463,9 @@ def _noise_cl(path) -> np.ndarray | None:
 
 
 def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: Progress) -> np.ndarray:
-    """Aperture temperatures of the configured Gaussian sky simulations, trend-corrected like the data."""
+    """(n_radii, n_sim, N): the aperture temperatures of the configured Gaussian sky simulations at every
+    radius, measured as the data (mask, physical radius, pixel weighting, pre-filter), trend-corrected like
+    them; with ``covariance.sim_signal_tau`` or ``sim_signal_tsz_uk`` each sky carries a tracer signal."""
     cc = cfg.covariance
     cmb_cl = None
     if cc.sim_cmb:
@@ -464,19 +473,33 @@ def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: P
 
         cmb_cl = load_cmb_cl()[1]
     pf = sky.prefilter
-    sims = simulate_aperture_temperatures(sky.skymap, cat.ra, cat.dec, cfg.aperture.radius_arcmin, cc.n_sim,
+    sims = simulate_aperture_temperatures(sky.skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), cc.n_sim,
                                           seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
                                           white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin,
-                                          noise_cl=_noise_cl(cc.sim_noise_cl_path),
-                                          max_masked_fraction=cfg.map.max_masked_fraction,
+                                          noise_cl=_noise_cl(cc.sim_noise_cl_path), **photometry_options(cfg, cat.z),
                                           n_threads=cfg.compute.n_threads,
                                           progress=progress.counter("simulated maps"),
-                                          transfer=None if pf is None else pf.transfer / pf.response)
-    out = np.empty_like(sims)
-    for k, t in enumerate(sims):
-        ok = np.isfinite(t)
-        out[k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
+                                          transfer=None if pf is None else pf.transfer / pf.response,
+                                          signal=simulated_signal(cfg, cat))
+    out = np.empty(sims.shape).transpose(1, 0, 2)
+    for k, per_radius in enumerate(sims):
+        for r, t in enumerate(per_radius):
+            ok = np.isfinite(t)
+            out[r, k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
     return out
+
+
+def simulated_signal(cfg: Config, cat: Catalogue):
+    """The callback adding a kSZ and thermal-SZ tracer signal to each simulated sky, or None when off."""
+    cc = cfg.covariance
+    if cc.sim_signal_tau == 0 and cc.sim_signal_tsz_uk == 0:
+        return None
+    from .sims.skysignal import tracer_signal
+
+    return tracer_signal(cat.ra, cat.dec, cat.z, aperture_radii(cfg.aperture), tau=cc.sim_signal_tau,
+                         tsz_uk=cc.sim_signal_tsz_uk, tsz_scatter_dex=cc.sim_signal_tsz_scatter_dex,
+                         beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin, cell_mpc=cc.sim_signal_cell_mpc,
+                         radius_scale=photometry_options(cfg, cat.z)["radius_scale"], cosmo=cfg.cosmology)
 
 
 # ------------------------------------------------------------------------------ the pair pass
@@ -484,26 +507,35 @@ def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: P
 class TemperatureStack:
     """Every temperature set of a run as rows of one (n_sets, N) array, in this order: the data
     (primary radius), the null realisations of each kind, the extra aperture radii, the jackknife
-    sets re-trended without each region (radius by radius), the simulated skies."""
+    sets re-trended without each region (radius by radius), the simulated skies (radius by radius)."""
 
     values: np.ndarray
     null_rows: dict     # kind -> slice of rows
     radius_rows: list   # the primary radius (row 0), then each extra radius
     retrend_start: int  # first re-trended jackknife row
     n_retrend: int
-    sim_rows: slice
+    sim_radius_rows: list  # the simulated skies' rows at each radius, primary first (empty slices without)
 
     @classmethod
     def build(cls, temps, null_sets: dict, retrended, sims) -> "TemperatureStack":
+        """``sims`` of shape (n_radii, n_sim, N), or (0, N) without simulated skies."""
         rows, null_rows = 1, {}
         for kind, sets in null_sets.items():
             null_rows[kind] = slice(rows, rows + sets.shape[0])
             rows += sets.shape[0]
         radius_rows = [0] + list(range(rows, rows + temps.shape[0] - 1))
         rows += temps.shape[0] - 1
+        sims = np.asarray(sims).reshape(-1, temps.shape[1])
+        n_sim = sims.shape[0] // temps.shape[0]
         values = np.vstack([temps[:1]] + list(null_sets.values()) + [temps[1:], retrended, sims])
-        return cls(values, null_rows, radius_rows, rows, retrended.shape[0],
-                   slice(values.shape[0] - sims.shape[0], values.shape[0]))
+        first = values.shape[0] - sims.shape[0]
+        sim_radius_rows = [slice(first + r * n_sim, first + (r + 1) * n_sim) for r in range(temps.shape[0])]
+        return cls(values, null_rows, radius_rows, rows, retrended.shape[0], sim_radius_rows)
+
+    @property
+    def sim_rows(self) -> slice:
+        """The simulated skies' rows at the primary radius."""
+        return self.sim_radius_rows[0]
 
     @property
     def n_sets(self) -> int:
@@ -575,6 +607,11 @@ def covariance(cfg: Config, pr, stack: TemperatureStack, positions, temps, edges
     diag = covariance_diagnostics(covs, {name: (n_cov if name == "simulations" else n_jk) for name in covs},
                                   used=cc.estimator, n_fit_bins=int(fit_bins(cfg, edges).sum()))
     return CovarianceResult(p, p_jk, jk_rows, cov_jk, cov, n_cov, n_jk, diag, bool(n_sims))
+
+
+def sim_radius_curves(pr, stack: TemperatureStack, cov: CovarianceResult):
+    """(n_radii, n_sim, n_bins) curves of the simulated skies at each radius when they give the covariance."""
+    return np.array([pr.p[rows] for rows in stack.sim_radius_rows]) if cov.from_simulations else None
 
 
 @dataclass(frozen=True)

@@ -193,6 +193,15 @@ class CovarianceConfig:
     sim_white_noise_uk_arcmin: float = _key(0.0, "white noise of the simulated maps, uK arcmin", bounds=(0.0, 1e6))
     sim_noise_cl_path: Path | None = _key(None, "optional text table (ell, N_ell in uK^2) of map noise for the "
                                                 "simulations, added after the beam")
+    sim_signal_tau: float = _key(0.0, "optical depth of a kSZ signal carried by every simulated map: the tracers' "
+                                      "radial velocities drawn afresh per map from a Gaussian linear velocity "
+                                      "field (0: no kSZ)", bounds=(0.0, 1.0))
+    sim_signal_tsz_uk: float = _key(0.0, "mean thermal-SZ aperture decrement of every tracer in the simulated "
+                                         "maps, uK (0: none)", bounds=(0.0, 1e4))
+    sim_signal_tsz_scatter_dex: float = _key(0.2, "log-normal scatter of the simulated thermal SZ from tracer to "
+                                                  "tracer and map to map, dex", bounds=(0.0, 2.0))
+    sim_signal_cell_mpc: float = _key(10.0, "cell of the velocity field of the simulated kSZ signal, comoving Mpc",
+                                      bounds=(1.0, 200.0))
 
 
 @dataclass(frozen=True)

@@ -388,8 +388,9 @@ class HealpixMap(SkyMap):
     def aperture_support(self, lon_deg, lat_deg, radius_arcmin) -> "HealpixMap":
         """Partial RING map of the pixels one ``healpy.query_disc`` per position finds."""
         vec = hp.ang2vec(np.asarray(lon_deg, float), np.asarray(lat_deg, float), lonlat=True)
-        r = float(radius_arcmin) * ARCMIN_RAD
-        chunks = [np.unique(np.concatenate([hp.query_disc(self.nside, v, r) for v in vec[a:a + _CHUNK]]))
+        r = np.broadcast_to(np.asarray(radius_arcmin, dtype=float) * ARCMIN_RAD, (len(vec),))
+        chunks = [np.unique(np.concatenate([hp.query_disc(self.nside, v, float(r[i]))
+                                            for i, v in enumerate(vec[a:a + _CHUNK], start=a)]))
                   for a in range(0, len(vec), _CHUNK)]
         pix = np.unique(np.concatenate(chunks)) if chunks else np.zeros(0, np.int64)
         return HealpixMap(self.nside, False, pix, np.zeros(pix.size), coordsys=self.coordsys)

@@ -257,9 +257,10 @@ class SkyMap(ABC):
         """
 
     @abstractmethod
-    def aperture_support(self, lon_deg, lat_deg, radius_arcmin: float) -> "SkyMap":
+    def aperture_support(self, lon_deg, lat_deg, radius_arcmin) -> "SkyMap":
         """Zeros (weight 1) on every pixel of this grid whose centre lies within ``radius_arcmin``
-        of one of the positions (degrees, this map's frame), held by this map or not."""
+        (one value, or one per position) of one of the positions (degrees, this map's frame), held
+        by this map or not."""
 
     @abstractmethod
     def synthesise(self, alm, *, lmax: int, n_threads=None) -> np.ndarray:

@@ -56,7 +56,8 @@ def _blind_tag(result) -> str:
 
 def _covariance_method(cc) -> str:
     if cc.estimator == "simulations":
-        return f"{cc.n_sim} simulated Gaussian sky maps through the same photometry and pair pass"
+        signal = " with a kSZ and thermal-SZ tracer signal" if cc.sim_signal_tau or cc.sim_signal_tsz_uk else ""
+        return f"{cc.n_sim} simulated Gaussian sky maps{signal} through the same photometry and pair pass"
     if cc.estimator == "bootstrap":
         return f"bootstrap ({cc.n_bootstrap} replicates) over {cc.regions} sky regions, half-pair shares"
     return f"delete-one jackknife over {cc.regions} sky regions"

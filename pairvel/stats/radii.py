@@ -19,6 +19,7 @@ import numpy as np
 from ..core.plotstyle import new_figure, plot_style, save_figure
 from .covariance import jackknife_covariance
 from .fit import AmplitudeFit, fit_amplitude
+from .simcov import simulation_covariance
 
 
 @dataclass(frozen=True)
@@ -41,7 +42,7 @@ class RadiusFit:
         return out
 
 
-def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood) -> list:
+def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood, sim_rows=None) -> list:
     """One :class:`RadiusFit` per radius.
 
     Parameters
@@ -57,6 +58,9 @@ def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood
     in_fit : ndarray of shape (nbins,), bool
     likelihood : str
         As ``theory.likelihood``.
+    sim_rows : ndarray of shape (n_radii, n_sim, nbins), uK, optional
+        Curves of simulated skies measured at each radius (``covariance.estimator = "simulations"``);
+        when given, each radius's covariance is theirs instead of the jackknife's.
     """
     out = []
     for k, r in enumerate(np.asarray(radii, dtype=float)):
@@ -65,8 +69,10 @@ def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood
             out.append(RadiusFit(float(r), k == 0, None, p, np.full(p.shape, np.nan),
                                  problem="a separation bin has no pairs in some jackknife sample"))
             continue
-        cov = jackknife_covariance(p_jk)
-        fit = fit_amplitude(p, template_uk, cov, n_samples=n_jk, use=in_fit, likelihood=likelihood)
+        cov, n_samples = jackknife_covariance(p_jk), n_jk
+        if sim_rows is not None:
+            cov, n_samples = simulation_covariance(sim_rows[k]), len(sim_rows[k])
+        fit = fit_amplitude(p, template_uk, cov, n_samples=n_samples, use=in_fit, likelihood=likelihood)
         out.append(RadiusFit(float(r), k == 0, fit, p, np.sqrt(np.diag(cov))))
     return out
 

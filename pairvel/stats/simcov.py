@@ -5,8 +5,10 @@ apertures read only the pixels within sqrt(2) theta of a tracer, so each realisa
 beam-smoothed harmonic field at exactly those pixel centres of the data map's grid (point values: no
 pixel window; :meth:`~pairvel.maps.skymap.SkyMap.aperture_support` and
 :meth:`~pairvel.maps.skymap.SkyMap.synthesise`, for HEALPix ``ducc0``'s synthesis on the rings holding
-them), adds white pixel noise, and hands that partial map to the same aperture photometry, trend
-removal and many-set pair pass as the data.
+them), adds white pixel noise, gives it the data map's usable weights (mask and holes) and hands
+that partial map to the same aperture photometry (radii, per-tracer physical radius, pixel
+weighting), trend removal and many-set pair pass as the data.  A tracer signal (kSZ, thermal SZ)
+can be added to each realisation by a callback, which the synthetic-sky code provides.
 """
 
 from __future__ import annotations
@@ -59,20 +61,30 @@ def _grid_of(sky) -> SkyMap:
     return HealpixMap(int(sky), False, np.zeros(0, np.int64), np.zeros(0))
 
 
-def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin: float, n_sim: int, *, seed=None,
+def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: int, *, seed=None,
                                    cmb_cl=None, beam_fwhm_arcmin: float = 0.0, white_noise_uk_arcmin: float = 0.0,
                                    noise_cl=None, lmax: int | None = None, max_masked_fraction: float = 0.1,
-                                   n_threads: int | None = None, progress=None, transfer=None) -> np.ndarray:
+                                   n_threads: int | None = None, progress=None, transfer=None,
+                                   pixel_weighting: str = "centre", method: str = "auto", radius_scale=None,
+                                   signal=None) -> np.ndarray:
     """Aperture temperatures of ``n_sim`` Gaussian sky realisations at the tracers.
+
+    Each realisation is a partial map on the data map's grid holding the pixels the apertures read,
+    with the data map's usable weights there (its mask and holes; 0 where the data map holds no
+    pixel), measured by :func:`~pairvel.maps.photometry.measure_apertures` with the same radii,
+    per-tracer radius scale, pixel weighting and method as the data.  On a map whose values were
+    the simulated ones, the data's photometry would return the same temperatures.
 
     Parameters
     ----------
     sky : SkyMap or int
         The data map: the simulated skies are evaluated at the centres of its grid's pixels (held
-        or not), in its frame.  An int is taken as a HEALPix nside (RING grid, equatorial frame).
+        or not), in its frame, and carry its weights.  An int is taken as a HEALPix nside (RING
+        grid, equatorial frame, no mask).
     ra_deg, dec_deg : ndarray of shape (N,), degrees
         Equatorial positions of the tracers.
-    radius_arcmin : float, arcmin
+    radius_arcmin : float or sequence of float, arcmin
+        Disc radius (radii) at radius scale 1, as for ``measure_apertures``.
     n_sim : int
     seed : None, int or numpy Generator
     cmb_cl : ndarray of shape (lmax_cl + 1,), uK^2, optional
@@ -86,16 +98,21 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin: float, n
     lmax : int, optional
         Default the grid's band limit, 3 nside - 1 for HEALPix (the length of ``transfer`` minus
         one when that is given).
+    max_masked_fraction, pixel_weighting, method, radius_scale
+        As for :func:`~pairvel.maps.photometry.measure_apertures` (the data's photometry options).
     transfer : ndarray of shape (lmax + 1,), optional
         Harmonic filter applied to the whole simulated sky, as the data map's pre-filter
         (:mod:`pairvel.maps.prefilter`, including its response division); the white noise is then
         synthesised in harmonic space, N_l = (level in uK rad)^2, so that it is filtered too.
+    signal : callable(rng) -> ndarray of shape (n_radii, N), uK, optional
+        Aperture temperatures of a tracer signal added to each realisation, drawn from the same
+        generator after its sky (e.g. :func:`pairvel.sims.skysignal.tracer_signal`).
 
     Returns
     -------
-    ndarray of shape (n_sim, N), uK
-        NaN for tracers whose aperture is not usable (the data's own cut is applied beforehand by
-        the caller; here all pixels are present, so this happens only at map edges).
+    ndarray of shape (n_sim, N) for one radius, (n_sim, n_radii, N) for a sequence, uK
+        NaN for tracers whose aperture is not usable (with the data's weights, those the data's
+        photometry drops too).
     """
     if int(n_sim) < 1:
         raise InputError(f"number of simulated maps must be >= 1; got {n_sim}")
@@ -105,8 +122,8 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin: float, n
         transfer = np.asarray(transfer, dtype=float)
         lmax = transfer.size - 1
     lmax = grid.band_limit if lmax is None else int(lmax)
-    lon, lat = grid.from_equatorial(np.asarray(ra_deg, float), np.asarray(dec_deg, float))
-    support = grid.aperture_support(lon, lat, math.sqrt(2.0) * float(radius_arcmin))
+    radii = np.atleast_1d(np.asarray(radius_arcmin, dtype=float))
+    support = _support(grid, sky, ra_deg, dec_deg, radii, radius_scale, pixel_weighting)
     spec = _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl)
     pixel_noise = white_noise_uk_arcmin > 0 and transfer is None
     if transfer is not None:
@@ -115,19 +132,38 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin: float, n
     ell, m = alm_ell_m(lmax)
     amp = np.sqrt(spec[ell])
     m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries
-    out = np.empty((int(n_sim), len(ra_deg)))
+    out = np.empty((int(n_sim), radii.size, len(ra_deg)))
     for k in range(int(n_sim)):
         values = np.zeros(support.values.size)
         if harmonic:
             values += support.synthesise(_draw_alm(amp, m0, rng), lmax=lmax, n_threads=n_threads)
         if pixel_noise:
             values += support.white_noise(white_noise_uk_arcmin, rng)
-        res = measure_apertures(support.with_values(values), ra_deg, dec_deg, radius_arcmin,
-                                max_masked_fraction=max_masked_fraction)
-        out[k] = np.where(res.usable, res.temperatures[0], np.nan)
+        res = measure_apertures(support.with_values(values), ra_deg, dec_deg, radii,
+                                max_masked_fraction=max_masked_fraction, pixel_weighting=pixel_weighting,
+                                method=method, radius_scale=radius_scale)
+        out[k] = np.where(res.usable, res.temperatures, np.nan)
+        if signal is not None:
+            out[k] += signal(rng)
         if progress is not None:
             progress(k + 1, int(n_sim))
-    return out
+    return out[:, 0] if np.ndim(radius_arcmin) == 0 else out
+
+
+def _support(grid: SkyMap, sky, ra_deg, dec_deg, radii, radius_scale, pixel_weighting) -> SkyMap:
+    """The pixels of ``grid`` that the apertures read, with the data map's usable weights (1 for an nside).
+
+    An aperture reads the pixels whose centres lie within sqrt(2) theta of its tracer ("centre"
+    weighting), and a little beyond for the weightings that count pixels across the outer edge
+    ("fraction": half a pixel; "subsample": pixels within about two pixel radii of the edge).
+    """
+    lon, lat = grid.from_equatorial(np.asarray(ra_deg, float), np.asarray(dec_deg, float))
+    scale = 1.0 if radius_scale is None else np.asarray(radius_scale, dtype=float)
+    pad = 0.0 if pixel_weighting == "centre" else 3.0 * grid.pixel_size_arcmin
+    support = grid.aperture_support(lon, lat, math.sqrt(2.0) * float(radii.max()) * scale + pad)
+    if not isinstance(sky, SkyMap):
+        return support
+    return support.with_values(support.values, weight=sky.values_on(support)[1])
 
 
 def simulation_covariance(samples) -> np.ndarray:

@@ -176,7 +176,7 @@ def _stage_outputs(wrap, make_map, beam_table) -> dict:
     for name, pc in (("wiener", PrefilterConfig(kind="wiener", beam_fwhm_arcmin=80.0, noise_uk_arcmin=300.0, lmax=120)),
                      ("matched", PrefilterConfig(kind="matched", beam_path=beam_table, noise_uk_arcmin=300.0, lmax=120))):
         out[name] = apply_prefilter(part, pc, radius_arcmin=70.0, seed=4)[0].values
-    out["sims"] = simulate_aperture_temperatures(wrap(make_map(32, False, np.zeros(0, np.int64), np.zeros(0))), ra, dec,
+    out["sims"] = simulate_aperture_temperatures(wrap(make_map(32, False, None, np.zeros(12 * 32**2))), ra, dec,
                                                  120.0, 2, seed=5, cmb_cl=np.full(96, 1e-3), white_noise_uk_arcmin=50.0)
     maps = [full, wrap(_full(make_map, nside=32, seed=4)), wrap(_full(make_map, nest=True, nside=32, seed=5))]
     out["combined"] = combine_maps(maps, [0.2, 0.3, 0.5]).values
@@ -237,18 +237,19 @@ def test_reading_picks_the_pixelisation_from_the_file(tmp_path):
 
 
 def test_simulated_skies_follow_the_grid_and_frame_of_the_map():
-    """An nside and an empty RING map in the equatorial frame are the same grid (identical skies); on a
-    Galactic map the skies are evaluated where the rotated apertures fall, so every aperture is usable."""
+    """An nside and an unmasked full-sky RING map in the equatorial frame are the same grid (identical
+    skies); on a Galactic map the skies are evaluated where the rotated apertures fall, so every
+    aperture is usable."""
     from pairvel.maps.healpix import HealpixMap
 
     rng = np.random.default_rng(1)
     ra, dec = rng.uniform(0, 360, 50), rng.uniform(-60, 60, 50)
     kw = dict(seed=4, cmb_cl=np.full(96, 1e-3), white_noise_uk_arcmin=40.0)
     by_nside = simulate_aperture_temperatures(32, ra, dec, 150.0, 2, **kw)
-    empty = np.zeros(0, np.int64), np.zeros(0)
-    np.testing.assert_array_equal(simulate_aperture_temperatures(HealpixMap(32, False, *empty), ra, dec, 150.0, 2, **kw),
+    full = None, np.zeros(12 * 32**2)
+    np.testing.assert_array_equal(simulate_aperture_temperatures(HealpixMap(32, False, *full), ra, dec, 150.0, 2, **kw),
                                   by_nside)
-    galactic = simulate_aperture_temperatures(HealpixMap(32, True, *empty, coordsys="G"), ra, dec, 150.0, 2, **kw)
+    galactic = simulate_aperture_temperatures(HealpixMap(32, True, *full, coordsys="G"), ra, dec, 150.0, 2, **kw)
     assert np.all(np.isfinite(galactic)) and not np.allclose(galactic, by_nside)
 
 
