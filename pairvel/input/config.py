@@ -180,10 +180,16 @@ class CovarianceConfig:
     jackknife_retrend: bool = _key(True, "re-estimate the redshift trend without region k for jackknife sample k "
                                          "(the whole chain deleted-one; false: trend from all tracers, which "
                                          "inflates large-separation errors)")
+    jackknife_deletes: str = _key("tracers", "what jackknife sample k leaves out: tracers (region k's tracers; "
+                                             "their partners elsewhere keep their terms) or pairs (every pair "
+                                             "touching region k, which overestimates large-separation errors)",
+                                  choices=("tracers", "pairs"))
     extra_region_seeds: int = _key(0, "with k-means regions: assign the regions again with this many other seeds "
                                       "(derived from run.seed), refit tau_mean with each one's jackknife covariance "
                                       "and report the spread of tau_mean against its quoted error (0: off)",
                                    bounds=(0, 1000))
+    calibration_dir: Path | None = _key(None, "optional folder written by `pairvel validate`: the report shows its "
+                                              "per-bin jackknife error over the scatter of p(r) across its mocks")
     n_bootstrap: int = _key(1000, "bootstrap replicates when estimator = bootstrap", bounds=(2, 10**7))
     n_sim: int = _key(100, "simulated maps when estimator = simulations", bounds=(2, 10**6))
     sim_cmb: bool = _key(True, "simulated maps include the CMB from the shipped lensed TT C_l table")

@@ -207,7 +207,7 @@ def test_retrended_and_object_split_samples_match_direct_computations():
     sets = rng.normal(size=(2, n))
     retrended = rng.normal(size=(n_jk, n))
     edges = np.array([0.0, 30.0, 60.0, 90.0])
-    pr, p_obj, p_re = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended)
+    pr, p_obj, p_re, p_split = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended)
     for k in range(n_jk):
         out = regions != k
         # re-trended sample k: the estimator on the tracers outside region k alone (internal consistency)
