@@ -27,6 +27,9 @@ from pairvel.sims.validate import ValidationOptions, ValidationResult, format_su
 def combine(folders) -> ValidationResult:
     rows, options, seeds = {}, None, []
     for folder in folders:
+        if not (Path(folder) / "summary.json").exists():  # a chunk still running (its folder is claimed)
+            print(f"combine_validation: skipping {folder}: no summary.json", file=sys.stderr)
+            continue
         record = json.loads((Path(folder) / "summary.json").read_text())
         opts = dict(record["provenance"]["options"])
         seeds.append(opts.pop("seed"))

@@ -209,6 +209,9 @@ def _theory_report(result, figures=()) -> list:
     if f.likelihood == "sellentin-heavens":
         lines.append(f"- likelihood: Sellentin & Heavens (2016), {result.n_jk} jackknife regions; 68% interval of "
                      f"tau_mean [{f.lower_68:.4e}, {f.upper_68:.4e}]")
+    elif f.likelihood == "hartlap-percival":
+        lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} and the error widened "
+                     f"by sqrt(m1) for the covariance's own noise (Percival et al. 2014; {result.n_jk} jackknife regions)")
     else:
         lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} "
                      f"({result.n_jk} jackknife regions)")

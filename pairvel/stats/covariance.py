@@ -117,7 +117,8 @@ def tracer_split_samples(numerators, denominator, den_jk) -> np.ndarray:
     Deleting every pair touching region k instead also takes the partner's term T_j c_ij of each
     pair joining k to another region, so the two ends of a cross pair leave together from two
     samples; the delete-one variance then grows with the fraction of cross pairs, that is with
-    separation (on mocks 1.1-1.4 times the scatter of p(r) beyond 40 Mpc with 50 regions).
+    separation (on mocks 1.0-1.7 times the scatter of p(r) with 50 regions, where the tracer split
+    gives 0.8-1.2; see the README's "Calibration on mocks" for what each does to tau_mean).
 
     Parameters
     ----------
