@@ -316,7 +316,7 @@ def _add_validate_parser(sub, common) -> None:
     val.add_argument("--no-trend", action="store_true", help="skip the redshift-trend removal")
     val.add_argument("--fit-r-min", type=float, default=d.fit_r_min_mpc, help="fit bins with centre >= this, Mpc")
     val.add_argument("--fit-r-max", type=float, default=d.fit_r_max_mpc, help="fit bins with centre < this, Mpc")
-    val.add_argument("--likelihood", choices=("hartlap", "sellentin-heavens"), default=d.likelihood,
+    val.add_argument("--likelihood", choices=("hartlap", "sellentin-heavens", "hartlap-percival"), default=d.likelihood,
                      help=f"likelihood of the amplitude fit (default {d.likelihood})")
     val.add_argument("--cell-mpc", type=float, default=d.cell_mpc,
                      help=f"cell of the mocks' Gaussian field, Mpc (default {d.cell_mpc:g})")
@@ -327,6 +327,9 @@ def _add_validate_parser(sub, common) -> None:
                      help=f"periodic field box over the cone's bounding box, per side (default {d.box_padding:g})")
     val.add_argument("--no-trend-model", action="store_true",
                      help="fit the plain template, without the predicted signal loss of the trend removal")
+    val.add_argument("--jackknife-deletes", choices=("tracers", "pairs"), default=d.jackknife_deletes,
+                     help=f"jackknife sample k drops region k's tracers or every pair touching it, as "
+                          f"covariance.jackknife_deletes (default {d.jackknife_deletes}; both are summarised)")
     val.add_argument("--no-diagnostics", action="store_true",
                      help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
     val.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
@@ -344,7 +347,8 @@ def _cmd_validate(args, run_log) -> int:
                             bin_width_mpc=args.bin_width, fit_r_min_mpc=args.fit_r_min,
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
                             exact_fields=not args.grid_fields, box_padding=args.box_padding,
-                            trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics)
+                            trend_model=not args.no_trend_model, jackknife_deletes=args.jackknife_deletes,
+                            diagnostics=not args.no_diagnostics)
     with claim_output_dir(args.out, force=args.force) as claim:  # fail before the mocks, not after
         _log.debug("output folder %s", claim.path)
         result = run_validation(opt, progress=_log.info)

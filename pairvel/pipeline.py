@@ -52,7 +52,9 @@ from .stats.covariance import (
     jackknife_covariance,
     kmeans_regions,
     region_half_sums,
+    tracer_split_samples,
 )
+from .stats.mockcalib import read_mock_calibration
 from .stats.covdiag import covariance_diagnostics
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
@@ -82,10 +84,13 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     """
     progress = progress or Progress(10, quiet=True)
     truth = read_truth(cfg.run.truth_path) if cfg.run.truth_path else None  # a bad truth file fails before the work
+    calib = read_mock_calibration(cfg.covariance.calibration_dir) if cfg.covariance.calibration_dir else None
     with collect_warnings(lambda: progress.current) as kept:
         result = run_stages(cfg, progress)
         if truth is not None:
             result = attach_truth_check(result, truth, path=cfg.run.truth_path)
+    if calib is not None:  # per-bin errors against a validation run's mock scatter
+        result = dataclasses.replace(result, extra=result.extra | {"mock_calibration": calib})
     return dataclasses.replace(result, warnings=tuple(kept))
 
 
@@ -379,17 +384,22 @@ def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
 
     A trend estimated once from all tracers is not deleted with region k, so each delete-one sample
     would keep temperatures whose trend no longer vanishes; on mocks that inflated the jackknife
-    errors of p(r) by up to ~2.8x at 300 Mpc.  Empty (0, N) when the trend correction or this
-    option is off.
+    errors of p(r) by up to ~2.8x at 300 Mpc.  Without the re-estimate (trend correction or
+    ``jackknife_retrend`` off) the tracer-split jackknife (``jackknife_deletes = "tracers"``) still
+    needs set k, the corrected temperatures zeroed in region k; the pair-deleting one then needs
+    none: empty (0, N).
     """
     n, n_jk = z.size, int(regions.max()) + 1
-    if not (cfg.trend.enabled and cfg.covariance.jackknife_retrend):
+    retrend = cfg.trend.enabled and cfg.covariance.jackknife_retrend
+    if not (retrend or cfg.covariance.jackknife_deletes == "tracers"):
         return np.zeros((0, n))
+    once = None if retrend else correct_trend(cfg, temps_raw, z)  # the tracer split alone: zero region k
     out = np.zeros((temps_raw.shape[0], n_jk, n))
     for k in range(n_jk):
         keep = regions != k
         if keep.sum() >= 1:
-            out[:, k, keep] = remove_redshift_trend(temps_raw[:, keep], z[keep], sigma_z=cfg.trend.sigma_z)
+            out[:, k, keep] = (remove_redshift_trend(temps_raw[:, keep], z[keep], sigma_z=cfg.trend.sigma_z)
+                               if retrend else once[:, keep])
     return out.reshape(-1, n)
 
 
@@ -571,15 +581,21 @@ class CovarianceResult:
     from_simulations: bool
 
 
-def _jackknife_rows(pr, stack: TemperatureStack, n_jk: int) -> np.ndarray:
-    """Each set's jackknife samples; where re-trended sets were run, sample k of radius r is the set
-    re-trended without region k, minus the pairs touching k."""
+def _jackknife_rows(cfg: Config, pr, stack: TemperatureStack, n_jk: int) -> np.ndarray:
+    """Each set's jackknife samples; where re-trended sets were run, sample k of radius r comes from
+    the set re-trended without region k (and zero in it): its whole numerator over the denominator
+    less region k's share (``jackknife_deletes = "tracers"``, :func:`tracer_split_samples`), or the
+    estimator without the pairs touching k ("pairs")."""
     if not stack.n_retrend:
         return pr.p_jk
     rows = pr.p_jk.copy()
     k = np.arange(n_jk)
     for r, row_r in enumerate(stack.radius_rows):
-        rows[row_r] = pr.p_jk[stack.retrend_start + r * n_jk + k, k]
+        sets = stack.retrend_start + r * n_jk + k
+        if cfg.covariance.jackknife_deletes == "tracers":
+            rows[row_r] = tracer_split_samples(pr.numerator[sets], pr.denominator, pr.den_jk)
+        else:
+            rows[row_r] = pr.p_jk[sets, k]
     return rows
 
 
@@ -588,7 +604,7 @@ def covariance(cfg: Config, pr, stack: TemperatureStack, positions, temps, edges
     """Jackknife covariance, or the simulated-sky or region-bootstrap one when configured."""
     cc = cfg.covariance
     n_jk = int(regions.max()) + 1
-    jk_rows = _jackknife_rows(pr, stack, n_jk)
+    jk_rows = _jackknife_rows(cfg, pr, stack, n_jk)
     p, p_jk = pr.p[0], jk_rows[0]
     valid = np.all(np.isfinite(p_jk), axis=0) & np.isfinite(p)
     if not valid.all():
@@ -698,7 +714,7 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
         stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg),
                                        np.zeros((0, len(cat))))
         pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet)
-        p_jk = _jackknife_rows(pr, stack, cc.n_regions)[0]
+        p_jk = _jackknife_rows(cfg, pr, stack, cc.n_regions)[0]
         if not np.all(np.isfinite(p_jk)):
             skipped += 1
             continue

@@ -142,3 +142,38 @@ def test_jackknife_sample_is_the_whole_chain_without_the_region():
         keep = regions != k
         direct = pairwise_momentum(pos[keep], remove_redshift_trend(raw[keep], z[keep], sigma_z=0.01), edges)
         np.testing.assert_allclose(res.p_jk[k, k], direct.p, rtol=1e-9)
+
+
+def test_tracer_split_jackknife_rows_of_the_pipeline():
+    """jackknife_deletes = "tracers": sample k of the data is minus the whole numerator of the set re-trended
+    without region k (zero in it) over the denominator less region k's share of the pairs touching it; with
+    the trend off the set is the data zeroed in region k (the definition in stats.covariance)."""
+    from types import SimpleNamespace
+
+    from pairvel.maps.trend import remove_redshift_trend
+    from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.pairs.geometry import comoving_positions
+    from pairvel.pipeline import TemperatureStack, _jackknife_rows, retrended_sets
+
+    rng = np.random.default_rng(13)
+    n, n_jk = 800, 4
+    ra, dec, z = rng.uniform(0, 20, n), rng.uniform(-5, 5, n), rng.uniform(0.1, 0.3, n)
+    pos = comoving_positions(ra, dec, z)
+    raw = rng.normal(0, 10, n) + 40 * z
+    regions = (ra // 5).astype(int)
+    edges = np.linspace(0, 80, 5)
+    for trend in (True, False):
+        cfg = SimpleNamespace(trend=SimpleNamespace(enabled=trend, sigma_z=0.01),
+                              covariance=SimpleNamespace(jackknife_retrend=True, jackknife_deletes="tracers"))
+        data = remove_redshift_trend(raw, z, sigma_z=0.01) if trend else raw
+        stack = TemperatureStack.build(data[None, :], {}, retrended_sets(raw[None, :], z, regions, cfg),
+                                       np.zeros((0, n)))
+        pr = pairwise_momentum(pos, stack.values, edges, regions=regions)
+        rows = _jackknife_rows(cfg, pr, stack, n_jk)[0]
+        share = pr.den_jk * pr.denominator / pr.den_jk.sum(axis=0)
+        for k in range(n_jk):
+            keep = regions != k
+            t = np.zeros(n)
+            t[keep] = remove_redshift_trend(raw[keep], z[keep], sigma_z=0.01) if trend else raw[keep]
+            num = pairwise_momentum(pos, t, edges).numerator
+            np.testing.assert_allclose(rows[k], -num / (pr.denominator - share[k]), rtol=1e-9)

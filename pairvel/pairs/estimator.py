@@ -45,6 +45,8 @@ class PairwiseResult:
     p_jk : ndarray of shape (n_jk, nbins) or (M, n_jk, nbins), or None
         Delete-one jackknife samples: the estimator without the pairs touching region k.
     n_jk : int
+    den_jk : ndarray of shape (n_jk, nbins) or None
+        sum c_ij^2 over the pairs touching region k (for jackknives that split pairs otherwise).
     """
 
     edges: np.ndarray
@@ -55,6 +57,7 @@ class PairwiseResult:
     z_eff: np.ndarray | None = None
     p_jk: np.ndarray | None = None
     n_jk: int = 0
+    den_jk: np.ndarray | None = None
 
     @property
     def r_mid(self) -> np.ndarray:
@@ -306,7 +309,8 @@ def finalise(sums, edges, *, single: bool, n_jk: int, want_z: bool) -> PairwiseR
         if single:
             p_jk = p_jk[0]
     return PairwiseResult(edges=edges, p=p[0] if single else p, numerator=num[0] if single else num,
-                          denominator=den, pair_counts=cnt, z_eff=z_eff, p_jk=p_jk, n_jk=n_jk)
+                          denominator=den, pair_counts=cnt, z_eff=z_eff, p_jk=p_jk, n_jk=n_jk,
+                          den_jk=jk_den[:n_jk] if n_jk else None)
 
 
 def pairwise_momentum_cross(positions_a, temperatures_a, positions_b, temperatures_b, edges, *, regions_a=None,

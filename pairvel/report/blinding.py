@@ -185,6 +185,7 @@ EXTRA_RULES = {
                            "skipped": 0},
     # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
     # when the config is read), and free report text: true by construction
+    "mock_calibration": 0,             # error / scatter of mocks (covariance.calibration_dir), no data in it
     "truth_check": _refuse("truth_check"), "plot_curves": _refuse("plot_curves"),
     "report_sections": _refuse("report_sections"),
 }
@@ -353,6 +354,8 @@ def _stored_extra(summary: dict, fit) -> dict:
         extra["covariance_diagnostics"] = summary["covariance"]["diagnostics"]
     if "region_seed_spread" in summary.get("covariance", {}):
         extra["region_seed_spread"] = summary["covariance"]["region_seed_spread"]
+    if "mock_calibration" in summary.get("covariance", {}):
+        extra["mock_calibration"] = summary["covariance"]["mock_calibration"]
     if _whole_fits(summary.get("aperture_radii")):
         extra["radius_fits"] = [RadiusFit(d["radius_arcmin"], d["primary"], _stored_fit(d["fit"]) if "fit" in d else None,
                                           np.array(d["p_uk"], dtype=float), np.array(d["p_err_uk"], dtype=float),

@@ -36,7 +36,7 @@ class FigureFile:
     """One figure written as ``<stem>.pdf`` and ``<stem>.png``."""
 
     stem: str
-    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter"
+    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter", "calibration"
     caption: str
 
     @property
@@ -325,6 +325,7 @@ def write_figures(result, folder) -> list[FigureFile]:
     """Draw every figure ``result`` has data for into ``folder``; return them in reading order."""
     from ..maps.prefilter import plot_transfer
     from ..stats.joint import plot_velocity_scale
+    from ..stats.mockcalib import plot_mock_calibration
     from ..stats.radii import plot_radii
     from ..stats.subsamples import plot_proxy_bins
 
@@ -350,6 +351,10 @@ def write_figures(result, folder) -> list[FigureFile]:
         if "velocity_scale_fit" in extra:
             plot_velocity_scale(extra["velocity_scale_fit"], folder, "velocity_scale")
             out.append(FigureFile("velocity_scale", "joint", "Joint fit of tau_mean and f sigma_8: 68% and 95% regions."))
+        if "mock_calibration" in extra:
+            plot_mock_calibration(extra["mock_calibration"], folder, "mock_calibration")
+            out.append(FigureFile("mock_calibration", "calibration", "Jackknife error over the scatter of p(r) "
+                                                                     "across validation mocks, per bin."))
         if "prefilter_transfer" in extra:
             plot_transfer(extra["prefilter_transfer"], extra["prefilter"], folder, "prefilter")
             out.append(FigureFile("prefilter", "prefilter", "Transfer function of the map pre-filter."))

@@ -115,6 +115,8 @@ def summary_dict(result) -> dict:
         out["covariance"]["diagnostics"] = result.extra["covariance_diagnostics"]
     if "region_seed_spread" in result.extra:  # tau_mean refitted with the regions of other seeds
         out["covariance"]["region_seed_spread"] = result.extra["region_seed_spread"]
+    if "mock_calibration" in result.extra:  # per-bin errors against a validation run's mock scatter
+        out["covariance"]["mock_calibration"] = result.extra["mock_calibration"]
     if "multifrequency" in result.extra:  # several frequency maps: weights, f_tSZ, noise cost
         out["multifrequency"] = result.extra["multifrequency"]
     if "prefilter" in result.extra:  # harmonic-space filter of the map
@@ -208,6 +210,9 @@ def _theory_report(result, figures=()) -> list:
     if f.likelihood == "sellentin-heavens":
         lines.append(f"- likelihood: Sellentin & Heavens (2016), {result.n_jk} jackknife regions; 68% interval of "
                      f"tau_mean [{f.lower_68:.4e}, {f.upper_68:.4e}]")
+    elif f.likelihood == "hartlap-percival":
+        lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} and the error widened "
+                     f"by sqrt(m1) for the covariance's own noise (Percival et al. 2014; {result.n_jk} jackknife regions)")
     else:
         lines.append(f"- likelihood: Gaussian with the Hartlap factor {f.precision_factor:.4f} "
                      f"({result.n_jk} jackknife regions)")
@@ -306,6 +311,8 @@ def report_sections(result) -> dict:
     from ..maps.multifreq import combination_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown
+    from ..stats.mockcalib import SECTION_TITLE as CALIBRATION_TITLE
+    from ..stats.mockcalib import calibration_markdown
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
@@ -313,13 +320,15 @@ def report_sections(result) -> dict:
                 ("region_seed_spread", SECTION_TITLE, spread_markdown),
                 ("prefilter", "Map pre-filter", prefilter_markdown),
                 ("multifrequency", "Several frequency maps", combination_markdown),
-                ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)))
+                ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
+                ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 
 
 #: Report sections (titles of :func:`report_sections`) followed by the figures of a figure section.
-_SECTION_FIGURES = {"Signal against aperture radius": "radii", "Map pre-filter": "prefilter"}
+_SECTION_FIGURES = {"Signal against aperture radius": "radii", "Map pre-filter": "prefilter",
+                    "Per-bin errors against mock scatter": "calibration"}
 
 
 def _images(figures, section: str) -> list:

@@ -207,7 +207,7 @@ def test_retrended_and_object_split_samples_match_direct_computations():
     sets = rng.normal(size=(2, n))
     retrended = rng.normal(size=(n_jk, n))
     edges = np.array([0.0, 30.0, 60.0, 90.0])
-    pr, p_obj, p_re = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended)
+    pr, p_obj, p_re, p_split = _pairs_and_object_split(pos, sets, edges, regions, z, n_jk, retrended)
     for k in range(n_jk):
         out = regions != k
         # re-trended sample k: the estimator on the tracers outside region k alone (internal consistency)
@@ -233,6 +233,8 @@ def test_retrended_and_object_split_samples_match_direct_computations():
         for k in range(n_jk):
             own = sets[:, regions == k] @ w[regions == k]
             np.testing.assert_allclose(p_obj[:, k, bin_], -(num - own) / (den - share[k]), rtol=1e-9)
+            # tracer split, re-trended: set k's whole numerator (every pair), the same denominator share
+            np.testing.assert_allclose(p_split[k, bin_], -(retrended[k] @ w) / (den - share[k]), rtol=1e-9)
 
 
 def test_map_pixels_too_coarse_for_the_aperture_fail_before_the_mocks():

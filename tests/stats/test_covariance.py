@@ -148,3 +148,63 @@ def test_region_bootstrap_variance_on_white_noise_matches_the_scatter():
                     for m in range(30)], axis=0)
     ratio = boot / true_var
     assert np.all((ratio > 0.7) & (ratio < 1.3)), ratio
+
+
+def _white_noise_jackknives(n_sets, seed):
+    """Tracer-split and pair-deleting jackknife variances of p per bin, averaged over ``n_sets`` white-noise
+    sets on one geometry (400 tracers in a 200 Mpc box cut into 16 column regions), and the scatter of p."""
+    from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.stats.covariance import tracer_split_samples
+
+    rng = np.random.default_rng(seed)
+    n = 400
+    pos = rng.uniform(0, 200, size=(n, 3)) + [0, 0, 800]
+    reg = (pos[:, 0] // 50).astype(np.int64) * 4 + (pos[:, 1] // 50).astype(np.int64)
+    n_jk = 16
+    edges = np.array([0.0, 20.0, 60.0, 100.0])
+    temps = rng.normal(size=(n_sets, n))
+    zeroed = (temps[:, None, :] * (reg[None, None, :] != np.arange(n_jk)[None, :, None])).reshape(-1, n)
+    pr = pairwise_momentum(pos, np.vstack([temps, zeroed]), edges, regions=reg)
+    split = np.array([tracer_split_samples(pr.numerator[n_sets + m * n_jk:n_sets + (m + 1) * n_jk],
+                                           pr.denominator, pr.den_jk) for m in range(n_sets)])
+    var_split = np.mean([np.diag(jackknife_covariance(s)) for s in split], axis=0)
+    var_pairs = np.mean([np.diag(jackknife_covariance(s)) for s in pr.p_jk[:n_sets]], axis=0)
+    return pos, reg, temps, pr, var_split, var_pairs, pr.p[:n_sets].var(axis=0, ddof=1)
+
+
+def test_tracer_split_samples_match_a_pair_list():
+    """Sample k = -(numerator of T zeroed in region k, over all pairs) / (D - D_touch_k D / sum_l D_touch_l),
+    checked against a numpy pair-list sum (reference: the estimator's definition, SCIENCE.md)."""
+    from pairvel.pairs.estimator import pairwise_momentum
+    from pairvel.stats.covariance import tracer_split_samples
+
+    pos, reg, temps, pr, *_ = _white_noise_jackknives(2, 5)
+    edges = pr.edges
+    i, j = np.triu_indices(pos.shape[0], 1)
+    d = pos[i] - pos[j]
+    r = np.linalg.norm(d, axis=1)
+    u = pos / np.linalg.norm(pos, axis=1)[:, None]
+    c = np.einsum("ij,ij->i", d / r[:, None], 0.5 * (u[i] + u[j]))
+    inbin = (r >= edges[1]) & (r < edges[2])
+    touch = np.array([np.sum((c**2)[inbin & ((reg[i] == k) | (reg[j] == k))]) for k in range(16)])
+    den = np.sum((c**2)[inbin])
+    t = temps[1]
+    for k in (0, 7):
+        t0 = np.where(reg == k, 0.0, t)
+        num = np.sum(((t0[i] - t0[j]) * c)[inbin])
+        zeroed = np.where(reg[None, :] == np.arange(16)[:, None], 0.0, t[None, :])
+        got = tracer_split_samples(pairwise_momentum(pos, zeroed, edges).numerator, pr.denominator, pr.den_jk)
+        np.testing.assert_allclose(got[k, 1], -num / (den - touch[k] * den / touch.sum()), rtol=1e-10)
+    with pytest.raises(InputError, match="tracer-split jackknife needs"):
+        tracer_split_samples(np.zeros((16, 3)), np.ones(3), np.ones((15, 3)))
+
+
+def test_tracer_split_jackknife_matches_white_noise_scatter_where_pair_deleting_does_not():
+    """60 white-noise sets: the tracer-split jackknife variance of p is 0.75-1.3 of the scatter across sets
+    in every bin (truth: the scatter itself; tolerance ~3x the sampling error of 60 variances), while the
+    pair-deleting one, which also drops each cross pair's partner term, is larger in every bin (measured
+    1.11-1.28 times here; with 200 sets and two seeds 1.09-1.27)."""
+    *_, var_split, var_pairs, scatter = _white_noise_jackknives(60, 8)
+    ratio = var_split / scatter
+    assert np.all((ratio > 0.75) & (ratio < 1.3)), ratio
+    assert np.all(var_pairs > 1.05 * var_split), var_pairs / var_split

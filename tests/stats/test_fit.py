@@ -126,3 +126,26 @@ def test_likelihood_choice_errors():
         fit_amplitude(np.ones(3), np.ones(3), np.eye(3), likelihood="student")
     with pytest.raises(InputError, match="needs n_samples"):
         fit_amplitude(np.ones(3), np.ones(3), np.eye(3), likelihood="sellentin-heavens")
+
+
+def test_hartlap_percival_widens_the_error_by_sqrt_m1():
+    """m1 (Percival et al. 2014, MNRAS 439, 2531, eq. 18) for 50 samples, 15 bins, one parameter:
+    A = 2/(34*31), B = 33/(34*31), m1 = (1 + 14 B)/(1 + A + 2 B) = 1.35116 (analytic); it tends to 1
+    for many samples.  The amplitude and the chi2 values are those of the Hartlap fit."""
+    from pairvel.stats.fit import fit_amplitude, percival_m1
+
+    a, b = 2 / (34 * 31), 33 / (34 * 31)
+    assert percival_m1(50, 15) == pytest.approx((1 + 14 * b) / (1 + a + 2 * b), rel=1e-12)
+    assert percival_m1(50, 15) == pytest.approx(1.35116, abs=1e-5)
+    assert percival_m1(10**6, 15) == pytest.approx(1.0, abs=1e-4)
+    rng = np.random.default_rng(2)
+    t = np.linspace(1.0, 0.2, 15)
+    cov = np.diag(np.full(15, 0.04)) + 0.005
+    d = 1.3 * t + rng.multivariate_normal(np.zeros(15), cov)
+    h = fit_amplitude(d, t, cov, n_samples=50)
+    p = fit_amplitude(d, t, cov, n_samples=50, likelihood="hartlap-percival")
+    assert p.amplitude == h.amplitude and p.chi2_min == h.chi2_min and p.pte_null == h.pte_null
+    assert p.error == pytest.approx(h.error * np.sqrt(percival_m1(50, 15)), rel=1e-12)
+    assert p.upper_68 - p.lower_68 == pytest.approx(2 * p.error, rel=1e-12)
+    with pytest.raises(InputError, match="hartlap-percival likelihood needs n_samples"):
+        fit_amplitude(d, t, cov, likelihood="hartlap-percival")
