@@ -166,7 +166,7 @@ def test_restart_gives_the_numbers_of_the_full_run(survey):
     folder, _, first = survey
     again, _ = run(folder, "again", RESTART.format(table=first / "tracers.fits"))
     skipped = [w["text"] for w in summary(again)["run_warnings"] if "needs the sky map" in w["text"]]
-    assert [text.split(":")[0] for text in skipped] == ["nulls.n_random", "nulls.rotation_deg"]
+    assert [text.split(":")[0] for text in skipped] == ["nulls.n_random"]  # rotation is opt-in (off by default)
     assert_same_results(first, again)
     assert summary(again)["provenance"]["tracer_table"]["path"] == str(first / "tracers.fits")
     t0, t1 = tracers(first), tracers(again)
