@@ -119,6 +119,8 @@ def _parser() -> argparse.ArgumentParser:
 
 def _closing_summary(result, out: Path) -> str:
     from .report.assumptions import closing_lines
+    from .report.figures import pte_flag
+    from .stats.significance import summary_lines
 
     f = result.fit
     lines = [
@@ -134,8 +136,10 @@ def _closing_summary(result, out: Path) -> str:
         lines.append(f"  tau_mean over {spread['n_seeds']} region seeds: std {spread['std_over_error']:.2f} of its error "
                      f"(range {min(spread['tau_mean']):.3e} to {max(spread['tau_mean']):.3e})")
     for n in result.nulls:
+        flag = {"low": ": LOW, below 0.01", "high": ": HIGH, above 0.99"}.get(pte_flag(n.pte_mean), "")
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
-                     f"(PTE {n.pte_mean:.2g}): {'pass' if n.passed else 'FAIL'}")
+                     f"(PTE {n.pte_mean:.2g}{flag}): {n.verdict}")
+    lines += summary_lines(result.extra.get("empirical_significance"), f.snr)
     if result.extra.get("blinding", {}).get("blinded"):
         lines.append("  BLINDED: curve, errors and tau_mean are scaled by a hidden factor (pairvel unblind)")
     lines.append(f"  outputs: {out}")

@@ -58,9 +58,10 @@ from .stats.mockcalib import read_mock_calibration
 from .stats.covdiag import covariance_diagnostics
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
-from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
+from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null, rotated_sets, shuffled_sets, slice_means
 from .stats.radii import fit_radii
 from .stats.regionseeds import summarise_spread
+from .stats.significance import empirical_significance, fitted_amplitudes
 from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
 from .stats.subsamples import fit_proxy_bins
 
@@ -132,6 +133,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+    extra["empirical_significance"] = significance(fit, model, cov, pr, stack)
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
     prov = provenance(cfg, cat, sky, started, stored)
@@ -446,16 +448,20 @@ def _skipped_without_map(key: str, n: int) -> None:
 
 
 def shuffled_null_sets(cfg: Config, temps: np.ndarray, z: np.ndarray, rng) -> dict:
-    """Shuffled temperatures, over all tracers and within redshift slices.
+    """Shuffled temperatures, over all tracers and within redshift slices, and the slice means of the
+    all-tracer shuffles (the reference of the within-slice null, see ``stats.nulltests.evaluate_null``).
 
     The redshift-trend correction is applied again to each shuffled set, as it was to the data: a
     shuffle mixes tracers of different redshifts, so without it a shuffled set keeps a residual
     trend the data do not have, and its curve scatters more at large separations.
     """
     nc = cfg.nulls
-    shuffled = shuffled_sets(temps, z, nc.n_shuffle, rng=rng)
+    shuffled = correct_trend(cfg, shuffled_sets(temps, z, nc.n_shuffle, rng=rng), z)
     in_z = shuffled_sets(temps, z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)
-    return {"shuffled": correct_trend(cfg, shuffled, z), "shuffled_in_z": correct_trend(cfg, in_z, z)}
+    sets = {"shuffled": shuffled, "shuffled_in_z": correct_trend(cfg, in_z, z)}
+    if nc.n_shuffle_z:  # what in-slice shuffles of skies without signal average to: the reference of shuffled_in_z
+        sets[SLICE_MEANS] = correct_trend(cfg, slice_means(shuffled, z, nc.z_slice_width), z)
+    return sets
 
 
 def _noise_cl(path) -> np.ndarray | None:
@@ -684,11 +690,23 @@ def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict
 
 
 def evaluate_nulls(cfg: Config, pr, stack: TemperatureStack, cov: CovarianceResult) -> list:
-    """chi2 and PTE of each kind of null test that has realisations."""
-    nc = cfg.nulls
-    against = {"covariance": cov.matrix, "n_samples": cov.n_samples} if cov.from_simulations else {}
-    return [evaluate_null(kind, pr.p[rows], pr.p_jk[rows], cov.n_jk, threshold=nc.pte_threshold, **against)
-            for kind, rows in stack.null_rows.items() if rows.stop > rows.start]
+    """chi2 and PTE of each kind of null test that has realisations: against the scatter of its own
+    realisations, or the fit's covariance when it has too few (see :func:`pairvel.stats.nulltests.evaluate_null`)."""
+    means = pr.p[stack.null_rows[SLICE_MEANS]] if SLICE_MEANS in stack.null_rows else None
+    return [evaluate_null(kind, pr.p[rows], threshold=cfg.nulls.pte_threshold, covariance=cov.matrix,
+                          n_samples=cov.n_samples, reference=means if kind == "shuffled_in_z" else None)
+            for kind, rows in stack.null_rows.items() if rows.stop > rows.start and kind in NULL_KINDS]
+
+
+def significance(fit, model: TemplateResult, cov: CovarianceResult, pr, stack: TemperatureStack) -> list[dict]:
+    """The fitted amplitude among those fitted (same template, covariance and fit range) to each kind
+    of null realisation and to the simulated skies (:mod:`pairvel.stats.significance`)."""
+    rows = {kind: r for kind, r in stack.null_rows.items() if kind in NULL_KINDS}
+    if stack.sim_rows.stop > stack.sim_rows.start:
+        rows["simulated skies"] = stack.sim_rows
+    amps = {name: fitted_amplitudes(pr.p[r], model.template_uk, cov.matrix, use=model.in_fit)
+            for name, r in rows.items() if r.stop > r.start}
+    return empirical_significance(fit.amplitude, amps)
 
 
 def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps, cov: CovarianceResult,

@@ -218,9 +218,16 @@ def pairvel_logger_state():
     return list(logger.handlers), logger.level
 
 
+def with_rotations(folder):
+    """Turn on the opt-in rotated-map null, whose rotations leave the tiny partial map (a stage warning)."""
+    toml = folder / "run.toml"
+    toml.write_text(toml.read_text().replace("[nulls]\n", "[nulls]\nrotation_deg = [90.0, 180.0, 270.0]\n"))
+
+
 def test_stderr_levels_run_log_and_warnings(tiny_survey, capsys):
     """Default: progress and warnings on stderr; --quiet: warnings only; --verbose: debug records too.
     run.log (INFO and above, timestamped) is the same whatever the flags; the summary stays on stdout."""
+    with_rotations(tiny_survey)
     state = pairvel_logger_state()
     out = tiny_survey / "out"
     argv = ["run", str(tiny_survey / "run.toml"), "--out", str(out)]
@@ -423,6 +430,7 @@ def test_empty_rotation_list_runs_without_that_null(tiny_survey):
 
 # --- every warning of a run is kept in summary.json and report.md
 def test_every_warning_reaches_summary_and_report(tiny_survey, capsys):
+    with_rotations(tiny_survey)
     assert main(["run", str(tiny_survey / "run.toml"), "--out", str(tiny_survey / "out")]) == 0
     err = capsys.readouterr().err.splitlines()
     shown = [line.removeprefix("pairvel: warning: ") for line in err if line.startswith("pairvel: warning: ")]

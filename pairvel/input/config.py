@@ -252,16 +252,17 @@ class TheoryConfig:
 
 @dataclass(frozen=True)
 class NullConfig:
-    n_random: int = _key(10, "realisations of the null test with apertures at random unmasked sky positions",
+    n_random: int = _key(100, "realisations of the null test with apertures at random unmasked sky positions",
                          bounds=(0, 10000))
-    n_shuffle: int = _key(10, "realisations of the null test with temperatures shuffled among tracers",
+    n_shuffle: int = _key(100, "realisations of the null test with temperatures shuffled among tracers",
                           bounds=(0, 10000))
-    n_shuffle_z: int = _key(10, "realisations with temperatures shuffled within redshift slices", bounds=(0, 10000))
+    n_shuffle_z: int = _key(100, "realisations with temperatures shuffled within redshift slices", bounds=(0, 10000))
     z_slice_width: float = _key(0.02, "width of the redshift slices for the within-slice shuffle", bounds=(1e-4, 1.0))
-    pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve exceeds this",
-                                bounds=(0.0, 0.5))
-    rotation_deg: tuple[float, ...] = _key((90.0, 180.0, 270.0), "longitude rotations of the map (degrees) for the "
-                                           "rotated-map null; empty list: no such null",
+    pte_threshold: float = _key(0.01, "a null test passes when the PTE of its mean curve lies between this and 1 "
+                                      "minus this", bounds=(0.0, 0.5))
+    rotation_deg: tuple[float, ...] = _key((), "longitude rotations of the map (degrees) for the rotated-map null "
+                                               "(opt-in: empty, the default, runs none; a partial map turned off its "
+                                               "footprint cannot run it)",
                                            bounds=(-360.0, 360.0), may_be_empty=True)
     rotation_min_usable: float = _key(0.5, "skip a rotation when fewer tracers than this fraction land on usable sky",
                                       bounds=(0.0, 1.0))

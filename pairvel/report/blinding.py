@@ -163,7 +163,7 @@ RESULT_RULES = {
     "config": 0, "edges": 0, "p": 1, "covariance": 2, "p_jk": 1, "pair_counts": 0, "z_eff_bins": 0, "z_eff": 0,
     "v12_template": 0, "in_fit": 0, "fit": FIT_RULES, "n_tracers": 0, "selection": 0, "provenance": 0,
     "nulls": {"kind": 0, "p": 1, "chi2": 0, "pte": 0, "chi2_mean": 0, "pte_mean": 0, "dof": 0, "threshold": 0,
-              "mean_error": 1},
+              "mean_error": 1, "covariance_from": 0},
     "extra": None,
     "warnings": 0,  # texts about the inputs and the method; none quotes an amplitude (test_blinding_holds reads them)
     "tracers": _tracer_temperatures,
@@ -183,6 +183,10 @@ EXTRA_RULES = {
     "region_seed_spread": {"tau_mean": 1, "tau_error": 1, "tau_mean_std": 1, "quoted_error": 1,
                            "std_over_error": 0, "error_std_over_error": 0, "n_regions": 0, "n_seeds": 0,
                            "skipped": 0},
+    # amplitudes fitted to null realisations and simulated skies scale like the curves they come from;
+    # the counts, p-values and S/N compare them with tau_mean, which scales alike
+    "empirical_significance": {"source": 0, "n": 0, "exceeded_by": 0, "p_value": 0, "p_is_bound": 0,
+                               "amplitude_mean": 1, "amplitude_std": 1, "snr": 0, "amplitudes": 1},
     # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
     # when the config is read), and free report text: true by construction
     "mock_calibration": 0,             # error / scatter of mocks (covariance.calibration_dir), no data in it
@@ -307,7 +311,8 @@ def load_result(folder):
                                         pte=np.array(entry["pte_each"], dtype=float),
                                         chi2_mean=entry["chi2_mean_curve"], pte_mean=entry["pte_mean_curve"],
                                         dof=entry["dof"], threshold=entry["pte_threshold"],
-                                        mean_error=np.array(nt["p_mean_err_uK"], dtype=float)))
+                                        mean_error=np.array(nt["p_mean_err_uK"], dtype=float),
+                                        covariance_from=entry.get("covariance_from", "own jackknife")))
         fit = _stored_fit(summary["fit"])
         extra = _stored_extra(summary, fit)
         tracers = read_tracer_table(folder / TRACER_TABLE).table if (folder / TRACER_TABLE).exists() else None
@@ -352,6 +357,8 @@ def _stored_extra(summary: dict, fit) -> dict:
         extra["rotations_used"] = summary["null_rotations_used"]
     if "diagnostics" in summary.get("covariance", {}):
         extra["covariance_diagnostics"] = summary["covariance"]["diagnostics"]
+    if "empirical_significance" in summary:
+        extra["empirical_significance"] = summary["empirical_significance"]
     if "region_seed_spread" in summary.get("covariance", {}):
         extra["region_seed_spread"] = summary["covariance"]["region_seed_spread"]
     if "mock_calibration" in summary.get("covariance", {}):

@@ -15,6 +15,7 @@ import json
 import math
 from pathlib import Path
 
+from ..stats.significance import summary_lines
 from .figures import format_tau, pte_flag, template_label
 
 _TEMPLATE = "report.html.j2"
@@ -81,6 +82,8 @@ def _headline(result, summary: dict) -> list[tuple[str, str]]:
     f = result.fit
     return [("mean optical depth", format_tau(f.amplitude, f.error)),
             ("signal-to-noise", f"{f.snr:.2f}"),
+            *(("empirical significance", line.strip().removeprefix("empirical: "))
+              for line in summary_lines(result.extra.get("empirical_significance"), f.snr)),
             ("chi2 against zero", f"{f.chi2_null:.3g} for {f.n_bins} bins (PTE {f.pte_null:.3g})"),
             ("chi2 of the best fit", f"{f.chi2_min:.3g} for {f.dof} dof (PTE {f.pte_min:.3g})"),
             ("model", template_label(result)),
@@ -101,11 +104,20 @@ def _null_table(result) -> dict:
     rows, flags = [], []
     for n in result.nulls:
         flag = pte_flag(n.pte_mean)
-        rows.append([n.kind, n.description, n.n_real, n.chi2_mean, n.dof, n.pte_mean,
-                     {"low": "LOW", "high": "HIGH", "": ""}[flag], "pass" if n.passed else "FAIL"])
+        rows.append([n.kind, n.description, n.n_real, n.covariance_from, n.chi2_mean, n.dof, n.pte_mean,
+                     {"low": "LOW", "high": "HIGH", "": ""}[flag], n.verdict])
         flags.append(flag)
-    return _table(["kind", "what", "realisations", "chi2 (mean curve)", "dof", "PTE", "PTE flag", "result"], rows,
-                  flags=flags)
+    return _table(["kind", "what", "realisations", "covariance", "chi2 (mean curve)", "dof", "PTE", "PTE flag",
+                   "result"], rows, flags=flags)
+
+
+def _significance_table(result) -> dict | None:
+    entries = result.extra.get("empirical_significance")
+    if not entries:
+        return None
+    rows = [[e["source"], e["n"], e["exceeded_by"], ("<= " if e["p_is_bound"] else "") + fmt(e["p_value"]),
+             e["amplitude_mean"], e["amplitude_std"], e["snr"]] for e in entries]
+    return _table(["curves", "n", "exceeded by", "p", "mean amplitude", "std of amplitudes", "empirical S/N"], rows)
 
 
 def _covariance_table(result) -> dict | None:
@@ -185,6 +197,8 @@ def html_context(result, summary: dict, figures, folder) -> dict:
         "covariance_table": _covariance_table(result),
         "nulls": _null_table(result),
         "pte_threshold": fmt(result.config.nulls.pte_threshold),
+        "pte_upper": fmt(1.0 - result.config.nulls.pte_threshold),
+        "significance": _significance_table(result),
         "selection": [(str(k), fmt(v)) for k, v in result.selection.items()],
         "sub_fits": _sub_fits(result),
         "records": _records(summary),

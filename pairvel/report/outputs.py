@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..stats.significance import significance_markdown, summary_lines
 from .assumptions import assumptions, assumptions_markdown, closing_lines, tau_mean_meaning
 from .blinding import check_declared
 from .figures import PTE_HIGH, PTE_LOW, format_tau, pte_flag, template_label, write_figures
@@ -109,6 +110,8 @@ def summary_dict(result) -> dict:
     if result.fit.likelihood == "sellentin-heavens":
         out["covariance"]["precision_correction"] = ("none: Sellentin & Heavens 2016 likelihood (the Hartlap factor "
                                                      "enters only the reported chi2 values)")
+    if "empirical_significance" in result.extra:  # tau_mean among amplitudes fitted to signal-free curves
+        out["empirical_significance"] = result.extra["empirical_significance"]
     if "rotations_used" in result.extra:
         out["null_rotations_used"] = result.extra["rotations_used"]
     if "covariance_diagnostics" in result.extra:
@@ -354,6 +357,7 @@ def _report(result, summary: dict, figures=()) -> str:
         f"- {result.n_tracers:,} tracers, {int(result.pair_counts.sum()):,} pairs, effective redshift {result.z_eff:.3f}",
         f"- model: {template_label(result)}",
         *(f"- {line.strip()}" for line in closing_lines(result)),
+        *(f"- {line.strip()}" for line in summary_lines(result.extra.get("empirical_significance"), f.snr)),
         "",
         "## What tau_mean assumes",
         "",
@@ -369,16 +373,23 @@ def _report(result, summary: dict, figures=()) -> str:
     lines += _images(figures, "curve")
     lines += ["", "## Null tests", ""]
     if result.nulls:
-        lines += [f"Mean curve of each kind against zero; a kind passes when its PTE exceeds "
-                  f"{result.config.nulls.pte_threshold:g}. A PTE below {PTE_LOW:g} or above {PTE_HIGH:g} is flagged.",
+        t = result.config.nulls.pte_threshold
+        lines += [f"Mean curve of each kind against zero; a kind passes when its PTE lies between {t:g} and "
+                  f"{1 - t:g}. A PTE below {PTE_LOW:g} or above {PTE_HIGH:g} is flagged alike. Covariance: the "
+                  f"scatter of the kind's own realisations (Hotelling's T^2; chi2 is the chi2 of equal PTE), or the "
+                  f"fit's when there are too few.",
                   "",
-                  "| null test | realisations | chi2 (mean curve) | dof | PTE | PTE flag | result | realisations with PTE < 0.05 |",
-                  "|---|---:|---:|---:|---:|:---:|:---:|---:|"]
+                  "| null test | realisations | covariance | chi2 (mean curve) | dof | PTE | PTE flag | result | "
+                  "realisations with PTE < 0.05 | with PTE > 0.95 |",
+                  "|---|---:|---|---:|---:|---:|:---:|:---:|---:|---:|"]
         for n in result.nulls:
-            lines.append(f"| {n.description} | {n.n_real} | {n.chi2_mean:.3g} | {n.dof} | {n.pte_mean:.3g} | "
-                         f"{pte_flag(n.pte_mean).upper() or '-'} | {'pass' if n.passed else 'FAIL'} | "
-                         f"{int(np.sum(n.pte < 0.05))} |")
+            lines.append(f"| {n.description} | {n.n_real} | {n.covariance_from} | {n.chi2_mean:.3g} | {n.dof} | "
+                         f"{n.pte_mean:.3g} | {pte_flag(n.pte_mean).upper() or '-'} | {n.verdict} | "
+                         f"{int(np.sum(n.pte < 0.05))} | {int(np.sum(n.pte > 0.95))} |")
         lines += _images(figures, "nulls")
+    if result.extra.get("empirical_significance"):
+        lines += ["", "## Empirical significance", "",
+                  significance_markdown(result.extra["empirical_significance"], f.amplitude, f.snr)]
     else:
         lines.append("No null test was configured.")
     lines += ["", "## Covariance", "", f"{_covariance_method(result.config.covariance)}."]

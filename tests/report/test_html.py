@@ -90,7 +90,27 @@ def test_a_null_pte_too_high_is_flagged_in_both_reports(tiny_run, tmp_path):
     rows = re.findall(r'<tr class="flag-(\w+)">(.*?)</tr>', (out / "report.html").read_text(), flags=re.S)
     assert [flag for flag, _ in rows] == ["high"] and high.kind in rows[0][1] and "HIGH" in rows[0][1]
     md = [line for line in (out / "report.md").read_text().splitlines() if line.startswith(f"| {high.description}")]
-    assert md and "| HIGH | pass |" in md[0]
+    assert md and "| HIGH | FAIL (PTE high) |" in md[0]  # a PTE above 0.99 fails like one below 0.01
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["null_tests"][0]["verdict"] == "FAIL (PTE high)" and summary["null_tests_passed"] is False
+    from pairvel.cli import _closing_summary
+
+    closing = _closing_summary(dataclasses.replace(result, nulls=(high, *result.nulls[1:])), out)
+    assert f"null {high.kind}" in closing and "(PTE 1: HIGH, above 0.99): FAIL (PTE high)" in closing
+
+
+def test_empirical_significance_reaches_every_report(tiny_run, tmp_path):
+    """The amplitudes fitted to the null realisations: summary.json, report.md, report.html and the closing line."""
+    from pairvel.cli import _closing_summary
+
+    result = load_result(tiny_run)
+    entries = result.extra["empirical_significance"]
+    assert entries and all(e["n"] == len(e["amplitudes"]) for e in entries)
+    out = write_outputs(result, tmp_path / "out")
+    assert json.loads((out / "summary.json").read_text())["empirical_significance"] == entries
+    assert "## Empirical significance" in (out / "report.md").read_text()
+    assert "Empirical significance" in (out / "report.html").read_text()
+    assert "  empirical: tau_mean exceeded by" in _closing_summary(result, out)
 
 
 def test_tracer_diagnostics_reach_both_reports(tiny_run, tmp_path):
