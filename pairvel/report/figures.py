@@ -36,7 +36,7 @@ class FigureFile:
     """One figure written as ``<stem>.pdf`` and ``<stem>.png``."""
 
     stem: str
-    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter"
+    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter", "templates"
     caption: str
 
     @property
@@ -88,8 +88,10 @@ def robust_outliers(values, *, n_sigma: float = OUTLIER_SIGMA) -> tuple[np.ndarr
 
 def template_label(result) -> str:
     """What the fitted model curve is: the linear-theory template, times the trend-loss factor when modelled."""
-    loss = result.extra.get("template", {}).get("trend_loss_model")
-    return "linear-theory template x trend-loss factor" if loss else "linear-theory template"
+    info = result.extra.get("template", {})
+    name = {"jsd99": "JSD99 template", "table": "v12-table template"}.get(info.get("velocity_model"),
+                                                                           "linear-theory template")
+    return f"{name} x trend-loss factor" if info.get("trend_loss_model") else name
 
 
 def _blinded(result) -> bool:
@@ -350,6 +352,12 @@ def write_figures(result, folder) -> list[FigureFile]:
         if "velocity_scale_fit" in extra:
             plot_velocity_scale(extra["velocity_scale_fit"], folder, "velocity_scale")
             out.append(FigureFile("velocity_scale", "joint", "Joint fit of tau_mean and f sigma_8: 68% and 95% regions."))
+        if "compared" in extra.get("template", {}):
+            from .templatemodels import SECTION, plot_templates
+
+            plot_templates(extra["template"], folder, "templates")
+            out.append(FigureFile("templates", SECTION, "Pairwise-velocity templates side by side and their ratio "
+                                                        "to linear theory (crosses: bins left out of the fit)."))
         if "prefilter_transfer" in extra:
             plot_transfer(extra["prefilter_transfer"], extra["prefilter"], folder, "prefilter")
             out.append(FigureFile("prefilter", "prefilter", "Transfer function of the map pre-filter."))
