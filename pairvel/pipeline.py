@@ -43,6 +43,7 @@ from .pairs.distributed import pairwise_momentum_units
 from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
+from .report.templatemodels import template_progress_lines
 from .report.tracers import StoredTracers, radius_suffix, read_tracer_table, tracer_table
 from .sims.truth import attach_truth_check, read_truth
 from .stats.covariance import (
@@ -614,22 +615,11 @@ def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, prog
     if not in_fit.any():
         raise TheoryError(f"theory.fit_template_tolerance = {cfg.theory.fit_template_tolerance:g}: no bin in the fit "
                           f"range has templates that agree this well; raise it or widen the fit range")
-    _say_bias_and_model(info, progress)
+    for line in template_progress_lines(info):
+        progress.say(line)
     factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress)
     v12 = v12 * factor
     return TemplateResult(v12, T_CMB_UK * v12 / C_KM_S, in_fit, z_eff, factor, info)
-
-
-def _say_bias_and_model(info: dict, progress: Progress) -> None:
-    """Progress lines for a derived bias and a template beyond linear theory (no amplitude in them)."""
-    if "bias_from_proxy" in info:
-        b = info["bias_from_proxy"]
-        progress.say(f"      bias from {b['proxy']}: Tinker et al. 2010, pair-weighted b_eff = {b['b_eff']:.3f} "
-                     f"(tracers {b['tracer_bias_min_median_max'][0]:.2f}-{b['tracer_bias_min_median_max'][2]:.2f})")
-    if "compared" in info:
-        c = info["compared"]
-        kept = "" if c["tolerance"] is None else f"; {sum(c['within_tolerance'])} bins within {c['tolerance']:g}"
-        progress.say(f"      template: {info['kind']}; compared with {', '.join(c['v12_km_s'])}{kept}")
 
 
 def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:

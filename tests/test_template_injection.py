@@ -1,7 +1,8 @@
 """Injection and recovery with the templates beyond linear theory, on `pairvel mock` surveys (validation run).
 
-Each mock (invented survey, known tau_mean) is measured twice with the pipeline:
+Each mock (invented survey, known tau_mean) is measured three times with the pipeline:
 
+- the linear template (the mock's own config), for reference;
 - ``velocity_model = "table"`` with a v12 table holding the mock's own realised line-of-sight pairwise
   velocity per bin (truth.json ``v12_los_realised_km_s``, which already includes the redshift-trend
   removal, hence ``model_trend_loss = false``): the template is then the signal the mock carries, so
@@ -28,7 +29,8 @@ SURVEY = dict(n_tracers=4000, nside=256, ra_min=-10, ra_max=10, dec_min=-6, dec_
               cell_mpc=8.0, beam_fwhm_arcmin=10.0, aperture_radius_arcmin=15.0, include_cmb=False, tau_mean=0.02)
 FAST = "\n[covariance]\nn_regions = 30\n\n[nulls]\nn_random = 2\nn_shuffle = 2\nn_shuffle_z = 2\nrotation_deg = []\n"
 SEEDS = (11, 12, 13, 14, 15, 16)
-THEORY = {"table": 'velocity_model = "table"\nv12_table_path = "v12_realised.ecsv"\nmodel_trend_loss = false\n',
+THEORY = {"linear": "",
+          "table": 'velocity_model = "table"\nv12_table_path = "v12_realised.ecsv"\nmodel_trend_loss = false\n',
           "jsd99": 'velocity_model = "jsd99"\nfit_template_tolerance = 0.05\n'}
 
 

@@ -7,7 +7,8 @@ blinding rule 0: shapes and velocities, no amplitude): report lines, the side-by
 
 from __future__ import annotations
 
-__all__ = ["SECTION", "comparison_lines", "plot_templates", "template_model_lines", "write_template_table"]
+__all__ = ["SECTION", "comparison_lines", "plot_templates", "template_model_lines", "template_progress_lines",
+           "write_template_table"]
 
 from pathlib import Path
 
@@ -18,6 +19,21 @@ from ..core.plotstyle import new_figure, save_figure
 #: Figure section of the template comparison (see pairvel.report.figures.FigureFile).
 SECTION = "templates"
 _LABELS = {"linear": "linear theory", "jsd99": "JSD99 closed form", "table": "v12 table"}
+
+
+def template_progress_lines(info: dict) -> list:
+    """Progress lines for a derived bias and a template beyond linear theory (no amplitude in them)."""
+    lines = []
+    if "bias_from_proxy" in info:
+        b = info["bias_from_proxy"]
+        lo, _, hi = b["tracer_bias_min_median_max"]
+        lines.append(f"      bias from {b['proxy']}: Tinker et al. 2010, pair-weighted b_eff = {b['b_eff']:.3f} "
+                     f"(tracers {lo:.2f}-{hi:.2f})")
+    if "compared" in info:
+        c = info["compared"]
+        kept = "" if c["tolerance"] is None else f"; {sum(c['within_tolerance'])} bins within {c['tolerance']:g}"
+        lines.append(f"      template: {info['kind']}; compared with {', '.join(c['v12_km_s'])}{kept}")
+    return lines
 
 
 def template_model_lines(info: dict) -> list:
