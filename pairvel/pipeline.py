@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .core.constants import C_KM_S, T_CMB_UK
-from .core.errors import InputError, PairvelWarning
+from .core.errors import InputError, PairvelWarning, TheoryError
 from .core.progress import Progress
 from .core.provenance import __version__, file_sha256, git_commit, package_versions
 from .core.rng import as_generator, derived_generators
@@ -37,12 +37,13 @@ from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
 from .maps.trend import remove_redshift_trend
-from .model.template import load_power, template_for_run
+from .model.template import load_power, load_v12_table, template_for_run
 from .model.trendmodel import trend_transfer
 from .pairs.distributed import pairwise_momentum_units
 from .pairs.estimator import pairwise_momentum
 from .pairs.geometry import comoving_positions
 from .report.result import RunResult
+from .report.templatemodels import template_progress_lines
 from .report.tracers import StoredTracers, radius_suffix, read_tracer_table, tracer_table
 from .sims.truth import attach_truth_check, read_truth
 from .stats.covariance import (
@@ -100,6 +101,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
+    v12_table = load_v12_table(cfg.theory)  # so is a v12 table
 
     cat, sky, aps, stored = measured_tracers(cfg, progress)
     with progress.stage("redshift-trend correction"):
@@ -123,7 +125,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress)
     with progress.stage("covariance, template and fit"):
         cov = covariance(cfg, pr, stack, positions, temps[0], edges, regions, cat, rng)
-        model = template(cfg, pr, edges, cat, positions, power, rng, progress)
+        model = template(cfg, pr, edges, cat, positions, power, rng, progress, v12_table=v12_table)
         fit = fit_amplitude(cov.p, model.template_uk, cov.matrix, n_samples=cov.n_samples, use=model.in_fit,
                             likelihood=cfg.theory.likelihood)
         nulls = evaluate_nulls(cfg, pr, stack, cov)
@@ -132,7 +134,8 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
-                          temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+                          temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
+                          v12_table=v12_table)
     extra["empirical_significance"] = significance(fit, model, cov, pr, stack)
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
@@ -654,13 +657,25 @@ def fit_bins(cfg: Config, edges) -> np.ndarray:
     return (r_mid >= cfg.theory.fit_r_min_mpc) & (r_mid < cfg.theory.fit_r_max_mpc)
 
 
-def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, progress: Progress) -> TemplateResult:
-    """The linear template averaged like the estimator, times the predicted trend-removal loss."""
+def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, progress: Progress, *,
+             v12_table=None) -> TemplateResult:
+    """The template averaged like the estimator, times the predicted trend-removal loss.
+
+    With theory.fit_template_tolerance the fit range also drops the bins where the templates differ by
+    more than that fraction (z_eff is taken over the configured range, before that cut).
+    """
     in_fit = fit_bins(cfg, edges)
     weight = pr.denominator * in_fit
     z_eff = float(np.sum(weight * pr.z_eff) / np.sum(weight))
     v12, info = template_for_run(cfg.theory, cfg.cosmology, edges, pair_counts=pr.pair_counts,
-                                 z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power)
+                                 z_tracers=cat.z, z_eff=z_eff, z_eff_bins=pr.z_eff, power=power,
+                                 proxy=cat.proxy, weights=cat.weight, v12_table=v12_table)
+    in_fit = in_fit & np.asarray(info.get("compared", {}).get("within_tolerance", True))
+    if not in_fit.any():
+        raise TheoryError(f"theory.fit_template_tolerance = {cfg.theory.fit_template_tolerance:g}: no bin in the fit "
+                          f"range has templates that agree this well; raise it or widen the fit range")
+    for line in template_progress_lines(info):
+        progress.say(line)
     factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress)
     v12 = v12 * factor
     return TemplateResult(v12, T_CMB_UK * v12 / C_KM_S, in_fit, z_eff, factor, info)
@@ -769,7 +784,7 @@ def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult
 
 
 def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, positions, temps, regions, edges,
-               power, progress) -> dict:
+               power, progress, v12_table=None) -> dict:
     """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
     out = {}
     th = cfg.theory
@@ -778,7 +793,8 @@ def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, 
         out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
                                            temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
                                            in_fit=model.in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
-                                           n_threads=cfg.compute.n_threads, template_factor=model.trend_factor)
+                                           n_threads=cfg.compute.n_threads, template_factor=model.trend_factor,
+                                           v12_table=v12_table)
     if th.fit_velocity_scale:
         prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
         out["velocity_scale_fit"] = fit_velocity_scale(fit, model.info["f_sigma8_template"], n_samples=n_samples,

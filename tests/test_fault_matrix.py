@@ -423,6 +423,14 @@ CONFIG_CASES = [
          r"'theory\.fit_r_max_mpc' must exceed theory\.fit_r_min_mpc"),
     Case("prior-half-set", "config", set_in_config("theory", "fit_velocity_scale = true\ntau_prior_mean = 1e-4"),
          r"'theory\.tau_prior_sigma' and theory\.tau_prior_mean must be set together"),
+    Case("bias-and-bias-from-proxy", "config", set_in_config("theory", 'bias_from_proxy = "mass"'),
+         r"'theory\.bias' and theory\.bias_from_proxy are both set; keep one"),
+    Case("v12-table-without-unit", "config",
+         both(set_in_config("theory", 'velocity_model = "table"\nv12_table_path = "v12.ecsv"'),
+              write_file("v12.ecsv", b"# %ECSV 1.0\n# ---\n# datatype:\n# - {name: r, datatype: float64}\n"
+                                     b"# - {name: v12, unit: km / s, datatype: float64}\n# schema: astropy-2.0\n"
+                                     b"r v12\n1.0 -100.0\n2.0 -90.0\n")),
+         r"v12 table \S*v12\.ecsv: column 'r' must carry a unit \(a comoving separation"),
     Case("repeated-radius", "config", set_in_config("aperture", "radii_arcmin = [8.0, 8.0]"),
          r"'aperture\.radii_arcmin' must not repeat a radius"),
     Case("kernel-with-subsample", "config",

@@ -248,6 +248,26 @@ class TheoryConfig:
                                            "(degenerate; see tau_prior_mean)")
     tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
     tau_prior_sigma: float | None = _key(None, "width of that prior (set both or neither)", bounds=(1e-12, math.inf))
+    # bias from a mass proxy (model/halobias.py) and templates beyond linear theory (model/nonlinear.py)
+    bias_from_proxy: str | None = _key(None, "derive the bias from catalogue.proxy_column instead of theory.bias: "
+                                             "mass (halo mass M_Delta in Msun) or luminosity (mass from the power law "
+                                             "below), through the Tinker et al. 2010 bias averaged as pairs weight it",
+                                       choices=(None, "mass", "luminosity"))
+    proxy_is_log10: bool = _key(False, "the proxy column holds log10 of the mass or luminosity")
+    halo_overdensity: float = _key(200.0, "Delta of the proxy's mass definition, relative to the mean matter "
+                                          "density (200: M200m)", bounds=(200.0, 3200.0))
+    luminosity_pivot: float | None = _key(None, "pivot L_p of M = M_p (L / L_p)^slope, in the proxy's units",
+                                          bounds=(1e-300, math.inf))
+    mass_at_luminosity_pivot_msun: float | None = _key(None, "M_p of that power law, Msun", bounds=(1e9, 1e17))
+    mass_luminosity_slope: float | None = _key(None, "slope of that power law", bounds=(-10.0, 10.0))
+    velocity_model: str = _key("linear", "v12 model of the template: linear, jsd99 (Juszkiewicz, Springel & Durrer "
+                                         "1999 closed form) or table (theory.v12_table_path)",
+                               choices=("linear", "jsd99", "table"))
+    v12_table_path: Path | None = _key(None, "v12(r[, z]) table for velocity_model = table: ECSV or FITS, columns r "
+                                             "(length unit), v12 (velocity unit), optional z")
+    fit_template_tolerance: float | None = _key(None, "fit only bins where the linear, jsd99 (and table) templates "
+                                                      "agree within this fraction of the linear one, on top of "
+                                                      "fit_r_min_mpc / fit_r_max_mpc", bounds=(1e-4, 10.0))
 
 
 @dataclass(frozen=True)
@@ -586,6 +606,28 @@ def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
     return cfg
 
 
+def _check_bias_and_velocity_model(cfg: Config, bad) -> None:
+    th = cfg.theory
+    if th.bias_from_proxy is None and th.bias is None:
+        bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
+                           "tracers under [theory], or derive it from masses with theory.bias_from_proxy")
+    if th.bias_from_proxy is not None and th.bias is not None:
+        bad("theory.bias", "and theory.bias_from_proxy are both set; keep one")
+    if th.bias_from_proxy is not None and cfg.catalogue.proxy_column is None:
+        bad("catalogue.proxy_column", "is required when theory.bias_from_proxy is set")
+    power_law = (th.luminosity_pivot, th.mass_at_luminosity_pivot_msun, th.mass_luminosity_slope)
+    if th.bias_from_proxy == "luminosity" and None in power_law:
+        bad("theory.mass_luminosity_slope", "luminosity_pivot and mass_at_luminosity_pivot_msun are all required "
+                                            "with theory.bias_from_proxy = 'luminosity'")
+    if th.bias_from_proxy != "luminosity" and any(v is not None for v in power_law):
+        bad("theory.luminosity_pivot", "and the mass-luminosity keys are used only with "
+                                       "theory.bias_from_proxy = 'luminosity'")
+    if (th.velocity_model == "table") != (th.v12_table_path is not None):
+        bad("theory.v12_table_path", "is required with theory.velocity_model = 'table', and used only with it")
+    if th.velocity_model == "table" and th.photoz_sigma > 0:
+        bad("theory.photoz_sigma", "cannot damp a v12 table (its own r range); put the damping into the table")
+
+
 def _check_consistency(cfg: Config, where_file: str) -> None:
     def bad(key, msg):
         raise ConfigError(f"config {where_file}: '{key}' {msg}", path=where_file, key=key)
@@ -602,9 +644,7 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("catalogue.path", "is required (or restart.table_path)")
     elif cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
-    if cfg.theory.bias is None:
-        bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
-                           "tracers under [theory] (pairvel does not derive it from masses)")
+    _check_bias_and_velocity_model(cfg, bad)
     if not cfg.catalogue.z_min < cfg.catalogue.z_max:
         bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
     if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:

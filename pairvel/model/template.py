@@ -35,8 +35,8 @@ Both return v12 unchanged as sigma_z -> 0 (tests/model/test_template.py).
 
 from __future__ import annotations
 
-__all__ = ["PHOTOZ_MODELS", "bin_averaged_velocity", "load_power", "los_error_mpc", "pair_redshift_distribution",
-           "photoz_damped_velocity", "template_for_run"]
+__all__ = ["PHOTOZ_MODELS", "VELOCITY_MODEL_NAMES", "bin_averaged_velocity", "load_power", "load_v12_table",
+           "los_error_mpc", "pair_redshift_distribution", "photoz_damped_velocity", "template_for_run", "velocity_model"]
 
 import numpy as np
 
@@ -102,7 +102,7 @@ def _damp_convolution(r, v_grid, sigma_p):
 
 
 def photoz_damped_velocity(r_mpc, z, sigma_z0: float, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY,
-                           model: str = "convolution", **template_kw):
+                           model: str = "convolution", velocity=pairwise_velocity, **template_kw):
     """v12(r, z) as the estimator sees it when redshifts carry errors sigma_z0 (1 + z), km/s.
 
     Parameters
@@ -113,8 +113,10 @@ def photoz_damped_velocity(r_mpc, z, sigma_z0: float, bias=1.0, *, cosmo: Cosmol
         Photometric-redshift error at z = 0 (the error is sigma_z0 (1 + z)); 0 gives v12 itself.
     model : {"convolution", "exponential"}
         See the module notes.
+    velocity : callable, default :func:`pairvel.model.theory.pairwise_velocity`
+        The undamped v12(r, z, bias, cosmo=..., **template_kw) (see :func:`velocity_model`).
     **template_kw
-        Passed to :func:`pairvel.model.theory.pairwise_velocity` (wiggles, power, growth).
+        Passed to ``velocity`` (wiggles, power, growth).
     """
     if model not in PHOTOZ_MODELS:
         raise TheoryError(f"photo-z damping model must be one of {PHOTOZ_MODELS}; got {model!r}")
@@ -122,12 +124,12 @@ def photoz_damped_velocity(r_mpc, z, sigma_z0: float, bias=1.0, *, cosmo: Cosmol
         raise TheoryError(f"photo-z error sigma_z0 must be finite and >= 0; got {sigma_z0!r}")
     r = np.asarray(r_mpc, dtype=float)
     if sigma_z0 == 0:
-        return pairwise_velocity(r, z, bias, cosmo=cosmo, **template_kw)
+        return velocity(r, z, bias, cosmo=cosmo, **template_kw)
     sigma_p = np.sqrt(2.0) * float(los_error_mpc(z, sigma_z0, cosmo=cosmo))
     if model == "exponential":
-        v = pairwise_velocity(r, z, bias, cosmo=cosmo, **template_kw)
+        v = velocity(r, z, bias, cosmo=cosmo, **template_kw)
         return v * -np.expm1(-(r**2) / (2 * sigma_p**2))
-    v_grid = pairwise_velocity(_R_GRID, z, bias, cosmo=cosmo, **template_kw)
+    v_grid = velocity(_R_GRID, z, bias, cosmo=cosmo, **template_kw)
     return _damp_convolution(np.atleast_1d(r), v_grid, sigma_p).reshape(r.shape)
 
 
@@ -148,7 +150,7 @@ def _separation_weights(edges, pair_counts):
 
 def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY,
                           pair_counts=None, sigma_z0: float = 0.0, photoz_model: str = "convolution",
-                          n_sub: int = 16, **template_kw):
+                          n_sub: int = 16, velocity=pairwise_velocity, **template_kw):
     """Template v12 per separation bin, averaged over r within each bin and over the pair redshifts, km/s.
 
     Parameters
@@ -157,6 +159,9 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     z_nodes, z_weights : ndarray of shape (m,)
         Redshifts of the pairs and their weights (e.g. from :func:`pair_redshift_distribution`, or a
         single effective redshift with weight 1).
+    bias : float or ndarray of shape (m,)
+        Linear bias, one value or one per redshift node (e.g. from
+        :func:`pairvel.model.halobias.pair_weighted_bias`).
     pair_counts : ndarray of shape (nbins,), optional
         Measured pairs per bin; sets the weighting inside each bin (see the module notes).  None falls
         back to volume (r^2) weighting; a bin without pairs takes g(r) from its neighbours.
@@ -165,8 +170,10 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     photoz_model : {"convolution", "exponential"}
     n_sub : int, default 16
         Gauss-Legendre nodes per bin.
+    velocity : callable, default :func:`pairvel.model.theory.pairwise_velocity`
+        The v12 model (see :func:`velocity_model`).
     **template_kw
-        wiggles, power, growth for :func:`pairvel.model.theory.pairwise_velocity`.
+        wiggles, power, growth for ``velocity``.
     """
     edges = np.asarray(edges_mpc, dtype=float)
     zn = np.atleast_1d(np.asarray(z_nodes, dtype=float))
@@ -174,6 +181,7 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     if zn.shape != zw.shape or zn.size == 0 or np.any(zw < 0) or not zw.sum() > 0:
         raise TheoryError(f"redshift nodes and weights must be equal-length, weights >= 0 with a positive sum; "
                           f"got {zn.shape} and {zw.shape}")
+    b_nodes = np.broadcast_to(np.asarray(bias, dtype=float), zn.shape)
     g = _separation_weights(edges, pair_counts)
     x, w = np.polynomial.legendre.leggauss(n_sub)
     lo = np.maximum(edges[:-1], 0.5)
@@ -182,8 +190,9 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     wr = w[None, :] * r * r * (1.0 if g is None else g(r))
     wr = wr / wr.sum(axis=1, keepdims=True)
     out = np.zeros(edges.size - 1)
-    for zi, wi in zip(zn, zw / zw.sum()):
-        v = photoz_damped_velocity(r.ravel(), zi, sigma_z0, bias, cosmo=cosmo, model=photoz_model, **template_kw)
+    for zi, wi, bi in zip(zn, zw / zw.sum(), b_nodes):
+        v = photoz_damped_velocity(r.ravel(), zi, sigma_z0, bi, cosmo=cosmo, model=photoz_model, velocity=velocity,
+                                   **template_kw)
         out += wi * np.sum(wr * v.reshape(r.shape), axis=1)
     return out
 
@@ -198,8 +207,40 @@ def load_power(theory_cfg, cosmo: Cosmology):
                             renormalise=theory_cfg.power_table_renormalise, n_s=cosmo.n_s, h=cosmo.h)
 
 
+def load_v12_table(theory_cfg):
+    """The v12(r, z) table a config names (``theory.v12_table_path``), or None."""
+    if theory_cfg.v12_table_path is None:
+        return None
+    from .nonlinear import read_v12_table
+
+    return read_v12_table(theory_cfg.v12_table_path)
+
+
+def velocity_model(kind: str, table=None):
+    """The v12(r, z, bias, cosmo=..., **template_kw) function of ``theory.velocity_model``.
+
+    "linear": :func:`pairvel.model.theory.pairwise_velocity`; "jsd99":
+    :func:`pairvel.model.nonlinear.jsd99_velocity`; "table": the :class:`~pairvel.model.nonlinear.V12Table`
+    ``table`` (bias and the P(k) settings do not enter it).
+    """
+    from .nonlinear import jsd99_velocity
+
+    if kind == "linear":
+        return pairwise_velocity
+    if kind == "jsd99":
+        return jsd99_velocity
+    if kind == "table" and table is not None:
+        return lambda r, z, bias, cosmo=None, **_: table(r, z)
+    raise TheoryError(f"velocity model must be linear, jsd99 or table (with a table); got {kind!r}")
+
+
+VELOCITY_MODEL_NAMES = {"linear": "linear theory",
+                        "jsd99": "Juszkiewicz, Springel & Durrer 1999 closed form",
+                        "table": "user v12(r, z) table"}
+
+
 def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_tracers, z_eff: float,
-                     z_eff_bins=None, power=None):
+                     z_eff_bins=None, power=None, proxy=None, weights=None, v12_table=None):
     """v12 per bin for a run's [theory] settings, and a dict describing how it was built.
 
     Parameters
@@ -215,20 +256,32 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         Measured pair-weighted mean redshift per bin (reported beside the model's).
     power : TabulatedPower, optional
         From :func:`load_power`.
+    proxy, weights : ndarray of shape (n,), optional
+        The tracers' proxy column and pair weights, for ``theory.bias_from_proxy``.
+    v12_table : V12Table, optional
+        From :func:`load_v12_table`, for ``theory.velocity_model = "table"`` (and the comparison).
     """
     tc = theory_cfg
-    if tc.bias is None:  # load_config refuses such a config; this catches one built in code
+    if tc.bias is None and tc.bias_from_proxy is None:  # load_config refuses such a config; this catches one in code
         raise TheoryError("theory.bias is required: tau_mean scales as 1/b, so no value is assumed")
     if tc.redshift_weighting == "pair_distribution":
         z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo)
     else:
         z_nodes, z_w = np.array([z_eff]), np.array([1.0])
+    bias, bias_info = _run_bias(tc, cosmo, z_tracers, z_w, proxy=proxy, weights=weights, power=power)
     counts = pair_counts if tc.separation_weighting == "pair_counts" else None
     kw = {"wiggles": tc.wiggles, "power": power, "growth": tc.growth_rate}
-    v12 = bin_averaged_velocity(edges, z_nodes, z_w, tc.bias, cosmo=cosmo, pair_counts=counts,
-                                sigma_z0=tc.photoz_sigma, photoz_model=tc.photoz_model, **kw)
+
+    def average(kind):
+        return bin_averaged_velocity(edges, z_nodes, z_w, bias, cosmo=cosmo, pair_counts=counts,
+                                     sigma_z0=tc.photoz_sigma, photoz_model=tc.photoz_model,
+                                     velocity=velocity_model(kind, v12_table), **kw)
+
+    v12 = average(tc.velocity_model)
     z_mean = float(np.sum(z_nodes * z_w))
     info = {
+        "kind": f"{VELOCITY_MODEL_NAMES[tc.velocity_model]} mean pairwise velocity",
+        "velocity_model": tc.velocity_model,
         "power_spectrum": ("Eisenstein & Hu 1998 " + ("with" if tc.wiggles else "without") + " baryon wiggles"
                            if power is None else f"table {power.source} (sha256 {power.sha256}) at z = {power.z:g}"
                            + (", renormalised to sigma_8" if power.renormalise else ", own amplitude")),
@@ -239,6 +292,12 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         "photoz_sigma_z0": tc.photoz_sigma,
         "photoz_model": tc.photoz_model if tc.photoz_sigma > 0 else None,
     }
+    if v12_table is not None:
+        info["v12_table"] = {"path": v12_table.source, "sha256": v12_table.sha256}
+    if bias_info is not None:
+        info["bias_from_proxy"] = bias_info
+    if tc.velocity_model != "linear" or tc.fit_template_tolerance is not None:
+        info["compared"] = _compare_models(average, v12, edges, tc, v12_table)
     if tc.photoz_sigma > 0:
         info["photoz_los_error_mpc_at_z_mean"] = float(np.sqrt(2.0) * los_error_mpc(z_mean, tc.photoz_sigma,
                                                                                       cosmo=cosmo))
@@ -249,6 +308,61 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
     info["f_sigma8_template"] = _f_sigma8(z_mean, tc, cosmo, power)
     info["f_sigma8_at_z_eff"] = _f_sigma8(z_eff, tc, cosmo, power)
     return v12, info
+
+
+def _run_bias(tc, cosmo: Cosmology, z_tracers, z_w, *, proxy, weights, power):
+    """theory.bias, or the pair-weighted Tinker et al. 2010 bias per redshift node (or one b_eff for the
+    effective-redshift weighting) with a dict describing it; see :mod:`pairvel.model.halobias`."""
+    if tc.bias_from_proxy is None:
+        return tc.bias, None
+    from .halobias import masses_from_proxy, pair_weighted_bias, tracer_bias
+
+    if proxy is None:
+        raise TheoryError("theory.bias_from_proxy needs the tracers' proxy column (catalogue.proxy_column)")
+    mass = masses_from_proxy(proxy, kind=tc.bias_from_proxy, log10=tc.proxy_is_log10, pivot=tc.luminosity_pivot,
+                             mass_at_pivot=tc.mass_at_luminosity_pivot_msun, slope=tc.mass_luminosity_slope)
+    z = np.asarray(z_tracers, dtype=float)
+    b_i = tracer_bias(mass, z, delta=tc.halo_overdensity, cosmo=cosmo, wiggles=tc.wiggles, power=power)
+    b_shell = pair_weighted_bias(b_i, z, weights=weights)  # the shells of pair_redshift_distribution
+    by_shell = tc.redshift_weighting == "pair_distribution"
+    share = z_w if by_shell else pair_redshift_distribution(z, cosmo=cosmo)[1]
+    b_eff = float(np.sum(share * b_shell))
+    bias = b_shell if by_shell else b_eff
+    info = {"b_eff": b_eff, "b_per_redshift_node": np.atleast_1d(bias).tolist(),
+            "tracer_bias_min_median_max": [float(np.min(b_i)), float(np.median(b_i)), float(np.max(b_i))],
+            "mass_msun_min_median_max": [float(np.min(mass)), float(np.median(mass)), float(np.max(mass))],
+            "bias_function": "Tinker et al. 2010 (ApJ 724, 878), nu = 1.686 / sigma(M, z) from the run's linear P(k)",
+            "mass_definition": f"M{tc.halo_overdensity:g}m in Msun (mass within {tc.halo_overdensity:g} x the mean "
+                               f"matter density)",
+            "proxy": (("log10 " if tc.proxy_is_log10 else "") + tc.bias_from_proxy
+                      + ("" if tc.bias_from_proxy == "mass" else
+                         f"; M = {tc.mass_at_luminosity_pivot_msun:g} Msun (L / {tc.luminosity_pivot:g})^"
+                         f"{tc.mass_luminosity_slope:g}")),
+            "weighting": "per redshift shell, the pair-weighted (w_i w_j) mean of b_i: (b_i + b_j)/2 in the "
+                         "numerator and b_i b_j in the denominator of v12 both give it; b_eff = shells weighted "
+                         "by their share of pairs"}
+    return bias, info
+
+
+def _compare_models(average, v12, edges, tc, v12_table) -> dict:
+    """The binned templates side by side (before any trend-loss factor), their largest relative
+    spread per bin, (max - min) / |linear|, and the bins within theory.fit_template_tolerance."""
+    curves = {"linear": average("linear") if tc.velocity_model != "linear" else v12}
+    for kind in ("jsd99", "table"):
+        if kind == tc.velocity_model:
+            curves[kind] = v12
+        elif kind == "jsd99" or v12_table is not None:
+            curves[kind] = average(kind)
+    stack = np.array(list(curves.values()))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = (stack.max(axis=0) - stack.min(axis=0)) / np.abs(curves["linear"])
+    out = {"r_mid": (0.5 * (edges[1:] + edges[:-1])).tolist(),
+           "v12_km_s": {k: np.asarray(v).tolist() for k, v in curves.items()},
+           "relative_spread": [float(x) if np.isfinite(x) else None for x in spread],
+           "tolerance": tc.fit_template_tolerance}
+    if tc.fit_template_tolerance is not None:
+        out["within_tolerance"] = [bool(x <= tc.fit_template_tolerance) for x in spread]
+    return out
 
 
 def _f_sigma8(z: float, theory_cfg, cosmo: Cosmology, power) -> float:

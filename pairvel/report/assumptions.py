@@ -85,11 +85,17 @@ def _trend_loss(result) -> str | None:
     return None
 
 
+def _bias(cfg, info: dict):
+    """theory.bias, or the pair-weighted b_eff derived from the proxy (theory.bias_from_proxy)."""
+    derived = info.get("bias_from_proxy")
+    return cfg.theory.bias if derived is None else derived["b_eff"]
+
+
 def assumptions(result) -> dict:
     """summary.json's ``assumptions``: short label -> number or short text (see the module notes)."""
     cfg, info = result.config, result.extra.get("template", {})
     cosmo = cfg.cosmology
-    out = {"bias b": cfg.theory.bias,
+    out = {"bias b": _bias(cfg, info),
            "z_eff (measured pairs in the fit range)": float(result.z_eff)}
     if "z_mean_model" in info:
         out["z_template (mean over the template's pair redshifts)"] = float(info["z_mean_model"])
@@ -132,7 +138,7 @@ def closing_lines(result) -> list:
     cfg, info = result.config, result.extra.get("template", {})
     c = cfg.cosmology
     fs8 = info.get("f_sigma8_at_z_eff")
-    first = (f"  assumes b = {cfg.theory.bias:g}" + (f", f sigma_8(z_eff) = {fs8:.3f}" if fs8 is not None else "")
+    first = (f"  assumes b = {_bias(cfg, info):.4g}" + (f", f sigma_8(z_eff) = {fs8:.3f}" if fs8 is not None else "")
              + f"; h = {c.h:g}, Omega_m = {c.omega_m:g}, sigma_8 = {c.sigma_8:g}; fit {_fit_range(result)}")
     meaning = tau_mean_meaning(cfg)
     theta = cfg.aperture.radius_arcmin

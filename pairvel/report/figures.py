@@ -36,7 +36,7 @@ class FigureFile:
     """One figure written as ``<stem>.pdf`` and ``<stem>.png``."""
 
     stem: str
-    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter", "calibration"
+    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter", "calibration", "templates"
     caption: str
 
     @property
@@ -88,8 +88,10 @@ def robust_outliers(values, *, n_sigma: float = OUTLIER_SIGMA) -> tuple[np.ndarr
 
 def template_label(result) -> str:
     """What the fitted model curve is: the linear-theory template, times the trend-loss factor when modelled."""
-    loss = result.extra.get("template", {}).get("trend_loss_model")
-    return "linear-theory template x trend-loss factor" if loss else "linear-theory template"
+    info = result.extra.get("template", {})
+    name = {"jsd99": "JSD99 template", "table": "v12-table template"}.get(info.get("velocity_model"),
+                                                                           "linear-theory template")
+    return f"{name} x trend-loss factor" if info.get("trend_loss_model") else name
 
 
 def _blinded(result) -> bool:
@@ -355,6 +357,12 @@ def write_figures(result, folder) -> list[FigureFile]:
             plot_mock_calibration(extra["mock_calibration"], folder, "mock_calibration")
             out.append(FigureFile("mock_calibration", "calibration", "Jackknife error over the scatter of p(r) "
                                                                      "across validation mocks, per bin."))
+        if "compared" in extra.get("template", {}):
+            from .templatemodels import SECTION, plot_templates
+
+            plot_templates(extra["template"], folder, "templates")
+            out.append(FigureFile("templates", SECTION, "Pairwise-velocity templates side by side and their ratio "
+                                                        "to linear theory (crosses: bins left out of the fit)."))
         if "prefilter_transfer" in extra:
             plot_transfer(extra["prefilter_transfer"], extra["prefilter"], folder, "prefilter")
             out.append(FigureFile("prefilter", "prefilter", "Transfer function of the map pre-filter."))

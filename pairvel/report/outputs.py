@@ -22,6 +22,8 @@ from .blinding import check_declared
 from .figures import PTE_HIGH, PTE_LOW, format_tau, pte_flag, template_label, write_figures
 from .folders import OUTPUT_MARKER, RUN_LOG, prepare_output_dir, write_folder_atomically
 from .html import render_html
+from .templatemodels import SECTION as TEMPLATES_SECTION
+from .templatemodels import comparison_lines, template_model_lines, write_template_table
 
 
 def _json_default(obj):
@@ -184,7 +186,7 @@ def _write_theory_outputs(result, folder: Path) -> list:
         from ..stats.radii import write_radius_outputs
 
         written += write_radius_outputs(result.extra["radius_fits"], folder)
-    return written
+    return written + write_template_table(result.extra.get("template", {}), folder)
 
 
 def _theory_report(result, figures=()) -> list:
@@ -200,6 +202,7 @@ def _theory_report(result, figures=()) -> list:
                    f"{info.get('separation_weighting')}"),
                   "- photo-z damping: " + ("none (spectroscopic redshifts)" if not info.get("photoz_model") else
                                             f"{info['photoz_model']}, sigma_z = {info['photoz_sigma_z0']:g} (1 + z)")]
+        lines += template_model_lines(info)
         loss = info.get("trend_loss_model")
         if loss:
             kept = loss["kept_fraction"]
@@ -223,6 +226,7 @@ def _theory_report(result, figures=()) -> list:
               f"- 1 km/s of v12 gives {conv['uK_per_km_s_per_unit_tau']:.4f} uK per unit optical depth, i.e. "
               f"{conv['uK_per_km_s_at_fitted_tau']:.3e} uK at the fitted tau_mean"
               + (f"; the template's f sigma_8 is {conv['f_sigma8_template']:.4f}" if conv["f_sigma8_template"] else "")]
+    lines += comparison_lines(info) + _images(figures, TEMPLATES_SECTION)
     if "proxy_bins" in result.extra:
         lines += ["", f"## Fits per bin of {result.config.catalogue.proxy_column}", "",
                   "| proxy range | median | tracers | pairs | regions | tau_mean | error | S/N | note |",

@@ -52,7 +52,7 @@ class ProxyBinFit:
 
 
 def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, regions, edges, in_fit,
-                   theory_cfg, cosmo, power=None, n_threads=None, template_factor=None) -> tuple:
+                   theory_cfg, cosmo, power=None, n_threads=None, template_factor=None, v12_table=None) -> tuple:
     """Fit tau_mean separately in each bin [lo, hi) of the proxy.
 
     Parameters
@@ -72,6 +72,9 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
         Per-bin factor on every bin's template: the whole run's signal fraction kept by the
         redshift-trend removal (the trend is removed once from the whole sample, so its shells are
         the same for every proxy bin).
+    v12_table : V12Table, optional
+        For ``theory_cfg.velocity_model = "table"``.  With ``theory_cfg.bias_from_proxy`` each bin's
+        bias comes from its own proxy values (equal tracer weights).
 
     Returns
     -------
@@ -105,7 +108,7 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
         weight = pr.denominator * in_fit
         z_eff = float(np.sum(weight * np.nan_to_num(pr.z_eff)) / np.sum(weight))
         v12, _ = template_for_run(theory_cfg, cosmo, edges, pair_counts=pr.pair_counts, z_tracers=redshifts[sel],
-                                  z_eff=z_eff, power=power)
+                                  z_eff=z_eff, power=power, proxy=proxy[sel], v12_table=v12_table)
         if template_factor is not None:
             v12 = v12 * template_factor
         cov = jackknife_covariance(np.where(np.isfinite(pr.p_jk), pr.p_jk, 0.0))
