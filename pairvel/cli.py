@@ -88,6 +88,12 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
                       help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
                            "noise); repeat for several")
+    mock.add_argument("--partner-tracers", type=int, default=0, metavar="N",
+                      help="also write a galaxy-like second catalogue of about N tracers with kSZ of its own, for the "
+                           "cross curve (README 'Clusters against galaxies'; default 0: none)")
+    mock.add_argument("--partner-bias", type=float, default=0.8, help="linear bias of that catalogue (default 0.8)")
+    mock.add_argument("--partner-tau-mean", type=float, default=5e-4,
+                      help="optical depth of each of its tracers (default 5e-4)")
     common(mock)
 
     unblind = sub.add_parser("unblind", help="apply a blinding key to a blinded output folder, writing a new folder",
@@ -233,6 +239,9 @@ def _cmd_mock(args) -> int:
         options["tau_mean"] = args.tau_mean
     if args.extra_frequency:
         options["extra_frequencies_ghz"] = args.extra_frequency
+    if args.partner_tracers:
+        options.update(partner_n_tracers=args.partner_tracers, partner_bias=args.partner_bias,
+                       partner_tau_mean=args.partner_tau_mean)
     truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")

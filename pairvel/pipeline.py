@@ -54,6 +54,7 @@ from .stats.covariance import (
     region_half_sums,
 )
 from .stats.covdiag import covariance_diagnostics
+from .stats.cross import cross_pairs
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
@@ -125,8 +126,11 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
+        cross = cross_curve(cfg, sky, cat, positions, aps.temperatures[0], regions, edges, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+    if cross is not None:
+        extra["cross"] = cross
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
     prov = provenance(cfg, cat, sky, started, stored)
@@ -671,6 +675,16 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
                       f"a jackknife sample had a bin without pairs", PairvelWarning, stacklevel=2)
     return summarise_spread([f.amplitude for f in fits], [f.error for f in fits], quoted_error=quoted_error,
                             n_regions=cc.n_regions, skipped=skipped)
+
+
+def cross_curve(cfg: Config, sky: SkyInputs, cat: Catalogue, positions, temps_raw, regions, edges,
+                model: TemplateResult, power, progress: Progress) -> dict | None:
+    """The cross pairs of [catalogue] and [partner] (:mod:`pairvel.stats.cross`); None without a partner."""
+    if cfg.partner.path is None:
+        return None
+    return cross_pairs(cfg, sky.skymap, positions=positions, temps_raw=temps_raw, z=cat.z, weights=cat.weight,
+                       ra=cat.ra, dec=cat.dec, regions=regions, edges=edges, in_fit=model.in_fit,
+                       trend_factor=model.trend_factor, power=power, progress=progress.say)
 
 
 # ---------------------------------------------------------------------------- what else is kept

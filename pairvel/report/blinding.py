@@ -183,6 +183,12 @@ EXTRA_RULES = {
     "region_seed_spread": {"tau_mean": 1, "tau_error": 1, "tau_mean_std": 1, "quoted_error": 1,
                            "std_over_error": 0, "error_std_over_error": 0, "n_regions": 0, "n_seeds": 0,
                            "skipped": 0},
+    # cross pairs with a second catalogue ([partner]): same map, so the same factor
+    "cross": {"partner": 0, "bias_1": 0, "bias_2": 0, "amplitude_meaning": 0, "edges_mpc": 0, "p": 1, "p_err": 1,
+              "covariance": 2, "pair_counts": 0, "z_eff_bins": 0, "z_eff": 0, "v12_template": 0, "in_fit": 0,
+              "n_jk": 0, "covariance_kind": 0, "template_z_mean": 0, "fit": FIT_RULES,
+              "nulls": {"kind": 0, "description": 0, "n_realisations": 0, "dof": 0, "chi2_mean_curve": 0,
+                        "pte_mean_curve": 0, "pte_threshold": 0, "passed": 0, "mean_p": 1, "mean_error": 1}},
     # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
     # when the config is read), and free report text: true by construction
     "truth_check": _refuse("truth_check"), "plot_curves": _refuse("plot_curves"),
@@ -344,7 +350,7 @@ def _stored_extra(summary: dict, fit) -> dict:
     from ..stats.radii import RadiusFit
     from ..stats.subsamples import ProxyBinFit
 
-    extra = {k: summary[k] for k in ("truth_check", "template", "prefilter", "multifrequency") if k in summary}
+    extra = {k: summary[k] for k in ("truth_check", "template", "prefilter", "multifrequency", "cross") if k in summary}
     if "demo_check" in summary:  # folders written before any run could name a truth file
         extra["truth_check"] = summary["demo_check"]
     if "null_rotations_used" in summary:

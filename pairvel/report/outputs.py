@@ -118,6 +118,8 @@ def summary_dict(result) -> dict:
         out["multifrequency"] = result.extra["multifrequency"]
     if "prefilter" in result.extra:  # harmonic-space filter of the map
         out["prefilter"] = result.extra["prefilter"]
+    if "cross" in result.extra:  # cross pairs with the [partner] catalogue
+        out["cross"] = result.extra["cross"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -305,6 +307,7 @@ def report_sections(result) -> dict:
     from ..maps.multifreq import combination_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown
+    from ..stats.cross import cross_markdown
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
@@ -312,7 +315,8 @@ def report_sections(result) -> dict:
                 ("region_seed_spread", SECTION_TITLE, spread_markdown),
                 ("prefilter", "Map pre-filter", prefilter_markdown),
                 ("multifrequency", "Several frequency maps", combination_markdown),
-                ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)))
+                ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
+                ("cross", "Cross pairs with a second catalogue", cross_markdown))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 

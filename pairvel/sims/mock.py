@@ -28,6 +28,7 @@ from __future__ import annotations
 
 __all__ = ["MockTruth", "make_mock_survey", "SURVEY_NAME", "TELESCOPE_NAME", "extra_map_file"]
 
+import dataclasses
 import json
 import math
 import time
@@ -46,6 +47,7 @@ from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 from .mockconfig import RUN_CONFIG_FILE, mock_run_config
+from .partner import PartnerSpec, partner_ksz, partner_record, partner_spec, write_partner
 
 SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"
@@ -235,7 +237,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      dec_max=10.0, z_min=0.15, z_max=0.55, tau_mean=2.0e-3, bias=0.4, cell_mpc=6.0,
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
-                     progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None) -> MockTruth:
+                     progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None, partner_n_tracers=0,
+                     partner_bias=0.8, partner_tau_mean=5.0e-4) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -283,6 +286,12 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         and independent white noise.  Drawn after everything else, so the 150 GHz map does not change.
     extra_noise_uk_arcmin : sequence of float, uK-arcmin, optional
         White noise of each extra map (default: ``noise_uk_arcmin`` for all).
+    partner_n_tracers : int, default 0
+        Also write a second, galaxy-like catalogue (``partner_galaxies.fits``) of about this many
+        tracers, Poisson-sampled from the same density and velocity fields with ``partner_bias``,
+        each with optical depth ``partner_tau_mean`` (no tSZ); its kSZ is painted into the same
+        maps and run.toml gets a ``[partner]`` section (:mod:`pairvel.sims.partner`).  0: none (and
+        nothing else changes).
 
     Returns
     -------
@@ -319,7 +328,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                    tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo)
     _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
-    spec = _MockSpec(**options, extra_noise=extra_noise)
+    spec = _MockSpec(**options, extra_noise=extra_noise,
+                     partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean))
     with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
         if seed is None:
             seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
@@ -333,8 +343,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         _lap(timings, "fields", t0)
         cells, clipped_fraction = _poisson_cells(cone, delta0, spec, rng)
         tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
-        del delta0, u0
         amplitudes = _sz_amplitudes(tracers, spec, rng)
+        partner = _partner_tracers(cone, delta0, u0, spec, rng)
+        del delta0, u0
         _lap(timings, "tracers", t0)
         say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
 
@@ -342,7 +353,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         cmb = _cmb_on_footprint(spec, foot, rng, say)
         _lap(timings, "cmb", t0)
         ksz, tsz = _painted_sources(spec, tracers, amplitudes)
-        maps = _sky_maps(spec, foot, cmb, ksz, tsz, rng)
+        both = ksz if partner is None else tuple(map(np.concatenate, zip(ksz, partner_ksz(spec, partner[0]))))
+        maps = _sky_maps(spec, foot, cmb, both, tsz, rng)
         _lap(timings, "map", t0)
 
         curves = _pairwise_truth(tracers, spec)
@@ -358,15 +370,30 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
             z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
             timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
         record = _truth_record(truth, spec, curves)
+        if partner is not None:
+            record["partner"] = partner_record(spec, tracers_mean_tau=spec.tau_mean, n_written=partner[0].z.size,
+                                               clipped_fraction=partner[1])
 
         def fill(folder: Path) -> None:
             _write_survey(folder, spec, tracers, amplitudes.log_mass, foot, maps)
+            if partner is not None:
+                write_partner(folder, partner[0])
             (folder / "truth.json").write_text(json.dumps(record, indent=2, allow_nan=False) + "\n")
             (folder / RUN_CONFIG_FILE).write_text(mock_run_config(record, folder_name=claim.path.name,
                                                                   trend_sigma_z=_TREND_SIGMA_Z))
 
         claim.write(fill)
     return truth
+
+
+def _partner_tracers(cone, delta0, u0, spec, rng):
+    """(tracers, clipped cell fraction) of the second catalogue, drawn from the same fields with its own
+    bias and number; None when the mock has none (nothing is drawn)."""
+    if spec.partner is None:
+        return None
+    sub = dataclasses.replace(spec, n_tracers=spec.partner.n_tracers, bias=spec.partner.bias)
+    cells, clipped = _poisson_cells(cone, delta0, sub, rng)
+    return _tracers_in_cone(cone, cells, u0, sub, rng), clipped
 
 
 def _lap(timings: dict, name: str, t0: float) -> None:
@@ -400,6 +427,7 @@ class _MockSpec:
     tsz_amplitude_uk: float
     cosmo: Cosmology
     extra_noise: dict
+    partner: PartnerSpec | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -676,6 +704,8 @@ def _options_record(spec: _MockSpec) -> dict:
     options = asdict(spec)
     extra_noise = options.pop("extra_noise")
     options["cosmology"] = options.pop("cosmo")
+    if options.get("partner") is None:
+        options.pop("partner")
     if extra_noise:
         options["extra_frequencies_ghz"] = {f"{nu:g}": noise_nu for nu, noise_nu in extra_noise.items()}
     return _plain(options)

@@ -65,6 +65,9 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
         "theory": {"bias": float(record["bias"])},
         "cosmology": dict(o["cosmology"]),  # every parameter as the mock recorded it (numbers and switches)
     }
+    if "partner" in record:  # a second, galaxy-like catalogue: the cross curve (README 'Clusters against galaxies')
+        sections["partner"] = {"path": record["partner"]["file"], "z_min": float(o["z_min"]),
+                               "z_max": float(o["z_max"]), "bias": float(record["partner"]["bias"])}
     lines = [
         f"# Ready-to-run config written by pairvel {__version__} (`pairvel mock`) beside the synthetic survey it",
         f"# made: {record['n_tracers']} tracers, nside {o['nside']}, injected tau_mean = {record['tau_mean']:g}, "
