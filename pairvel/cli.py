@@ -91,7 +91,7 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--partner-tracers", type=int, default=0, metavar="N",
                       help="also write a galaxy-like second catalogue of about N tracers with kSZ of its own, for the "
                            "cross curve (README 'Clusters against galaxies'; default 0: none)")
-    mock.add_argument("--partner-bias", type=float, default=0.8, help="linear bias of that catalogue (default 0.8)")
+    mock.add_argument("--partner-bias", type=float, default=0.3, help="linear bias of that catalogue (default 0.3)")
     mock.add_argument("--partner-tau-mean", type=float, default=5e-4,
                       help="optical depth of each of its tracers (default 5e-4)")
     common(mock)
@@ -192,7 +192,7 @@ def _cmd_keys(args) -> int:
     from .input.config import iter_config_keys
 
     def shown(key, default, doc):
-        return "(required)" if default is None and (key.endswith(".path") or "(required:" in doc) else repr(default)
+        return "(required)" if default is None and ("(required)" in doc or "(required:" in doc) else repr(default)
 
     rows = [(key, typ, shown(key, default, doc), doc) for key, typ, default, doc in iter_config_keys()]
     if args.markdown:

@@ -54,7 +54,7 @@ from .stats.covariance import (
     region_half_sums,
 )
 from .stats.covdiag import covariance_diagnostics
-from .stats.cross import cross_pairs
+from .stats.cross import cross_pairs, load_partner
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
@@ -95,6 +95,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
+    partner = load_partner(cfg)  # the second catalogue of the cross curve, likewise (None without [partner])
 
     cat, sky, aps, stored = measured_tracers(cfg, progress)
     with progress.stage("redshift-trend correction"):
@@ -126,7 +127,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
-        cross = cross_curve(cfg, sky, cat, positions, aps.temperatures[0], regions, edges, model, power, progress)
+        cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
     if cross is not None:
@@ -677,13 +678,14 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
                             n_regions=cc.n_regions, skipped=skipped)
 
 
-def cross_curve(cfg: Config, sky: SkyInputs, cat: Catalogue, positions, temps_raw, regions, edges,
+def cross_curve(cfg: Config, sky: SkyInputs, partner, cat: Catalogue, positions, temps_raw, regions,
                 model: TemplateResult, power, progress: Progress) -> dict | None:
     """The cross pairs of [catalogue] and [partner] (:mod:`pairvel.stats.cross`); None without a partner."""
-    if cfg.partner.path is None:
+    if partner is None:
         return None
-    return cross_pairs(cfg, sky.skymap, positions=positions, temps_raw=temps_raw, z=cat.z, weights=cat.weight,
-                       ra=cat.ra, dec=cat.dec, regions=regions, edges=edges, in_fit=model.in_fit,
+    return cross_pairs(cfg, sky.skymap, partner, positions=positions, temps_raw=temps_raw, z=cat.z,
+                       weights=cat.weight, ra=cat.ra, dec=cat.dec, regions=regions, edges=cfg.bins.edges(),
+                       in_fit=model.in_fit,
                        trend_factor=model.trend_factor, power=power, progress=progress.say)
 
 

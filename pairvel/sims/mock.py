@@ -238,7 +238,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None, partner_n_tracers=0,
-                     partner_bias=0.8, partner_tau_mean=5.0e-4) -> MockTruth:
+                     partner_bias=0.3, partner_tau_mean=5.0e-4) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters

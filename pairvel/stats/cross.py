@@ -30,7 +30,7 @@ each catalogue's optical depth weighted by the *other* catalogue's bias; equal b
 
 from __future__ import annotations
 
-__all__ = ["cross_pairs", "cross_markdown", "partner_regions", "amplitude_meaning"]
+__all__ = ["cross_pairs", "cross_markdown", "load_partner", "partner_regions", "amplitude_meaning"]
 
 import warnings
 
@@ -112,10 +112,14 @@ def _side_sets(cfg, temps_raw, z, regions, n_jk: int, rng) -> tuple[np.ndarray, 
     return np.vstack(sets), null_rows, retrend_start
 
 
-def partner_tracers(cfg, skymap, progress=None):
-    """The second catalogue, cut and measured: (catalogue, raw aperture temperatures (N,), selection dict)."""
+def load_partner(cfg):
+    """The ``[partner]`` catalogue read and cut (a bad file stops the run before any pair work), or None."""
+    return None if cfg.partner.path is None else load_catalogue(cfg.partner, section="partner")
+
+
+def partner_tracers(cfg, cat, skymap, progress=None):
+    """The second catalogue measured: (used tracers, raw aperture temperatures (N,), selection dict, radius)."""
     pc = cfg.partner
-    cat = load_catalogue(pc, section="partner")
     radius = cfg.aperture.radius_arcmin if pc.radius_arcmin is None else pc.radius_arcmin
     scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # a physical radius shrinks with z here too
     res = measure_apertures(skymap, cat.ra, cat.dec, radius, max_masked_fraction=cfg.map.max_masked_fraction,
@@ -135,7 +139,7 @@ def partner_tracers(cfg, skymap, progress=None):
     return cat.subset(usable, reason=res.drop_reason), res.temperatures[0, usable], selection, radius
 
 
-def cross_pairs(cfg, skymap, *, positions, temps_raw, z, weights, ra, dec, regions, edges, in_fit, trend_factor,
+def cross_pairs(cfg, skymap, partner, *, positions, temps_raw, z, weights, ra, dec, regions, edges, in_fit, trend_factor,
                 power, progress=None) -> dict:
     """The cross curve of the run's catalogue (1) against ``[partner]`` (2), its covariance, fit and nulls.
 
@@ -144,6 +148,8 @@ def cross_pairs(cfg, skymap, *, positions, temps_raw, z, weights, ra, dec, regio
     cfg : Config
     skymap : SkyMap
         The map the run measured (after mask, dipole removal and pre-filter).
+    partner : Catalogue
+        The second catalogue from :func:`load_partner`.
     positions : ndarray of shape (N, 3), Mpc
     temps_raw : ndarray of shape (N,), uK
         Catalogue 1's primary-radius aperture temperatures before the trend removal.
@@ -162,7 +168,7 @@ def cross_pairs(cfg, skymap, *, positions, temps_raw, z, weights, ra, dec, regio
         JSON-ready; every key has a blinding rule in ``pairvel.report.blinding.EXTRA_RULES["cross"]``.
     """
     pc = cfg.partner
-    cat2, temps2_raw, selection, radius = partner_tracers(cfg, skymap, progress)
+    cat2, temps2_raw, selection, radius = partner_tracers(cfg, partner, skymap, progress)
     pos2 = comoving_positions(cat2.ra, cat2.dec, cat2.z, cosmo=cfg.cosmology)
     regions2 = partner_regions(cat2.ra, cat2.dec, ra, dec, regions)
     n_jk = int(regions.max()) + 1
