@@ -30,7 +30,7 @@ each catalogue's optical depth weighted by the *other* catalogue's bias; equal b
 
 from __future__ import annotations
 
-__all__ = ["cross_pairs", "cross_markdown", "load_partner", "partner_regions", "amplitude_meaning"]
+__all__ = ["cross_pairs", "cross_markdown", "cross_summary_line", "load_partner", "partner_regions", "amplitude_meaning"]
 
 import warnings
 
@@ -222,6 +222,14 @@ def _null_dict(null) -> dict:
             "n_realisations": int(null.n_real), "dof": int(null.dof), "chi2_mean_curve": float(null.chi2_mean),
             "pte_mean_curve": float(null.pte_mean), "pte_threshold": float(null.threshold), "passed": null.passed,
             "mean_p": null.p.mean(axis=0).tolist(), "mean_error": null.mean_error.tolist()}
+
+
+def cross_summary_line(cross: dict) -> str:
+    """The terminal line of the cross fit, with its nulls."""
+    f = cross["fit"]
+    nulls = ", ".join(f"{n['kind']} {'pass' if n['passed'] else 'FAIL'}" for n in cross["nulls"]) or "none"
+    return (f"  cross pairs with {cross['partner']['path'].rsplit('/', 1)[-1]}: tau_cross = {f['amplitude']:.3e} ± "
+            f"{f['error']:.3e}   S/N = {f['snr']:.2f}; (tau_1 b_2 + tau_2 b_1) / (b_1 + b_2); nulls: {nulls}")
 
 
 def cross_markdown(cross: dict) -> str:
