@@ -332,7 +332,8 @@ class PartnerConfig(CatalogueConfig):
     path: Path | None = _key(None, "second tracer catalogue (FITS, ECSV, CSV or Parquet) paired against [catalogue]: "
                                    "the cross curve uses only pairs with one member in each (unset: no cross curve)")
     radius_arcmin: float | None = _key(None, "compensated-aperture disc radius for these tracers, arcmin (unset: "
-                                             "aperture.radius_arcmin)", bounds=(0.05, 60.0))
+                                             "aperture.radius_arcmin); with aperture.radius_kpc, its ratio to "
+                                             "aperture.radius_arcmin scales the physical radius", bounds=(0.05, 60.0))
     bias: float | None = _key(None, "linear bias of these tracers, needed with partner.path: the cross template uses "
                                     "(b_1 + b_2) / 2 and b_1 b_2 (README, 'Clusters against galaxies')",
                               bounds=(0.01, 20.0))
