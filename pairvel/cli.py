@@ -1,4 +1,4 @@
-"""Command line: ``pairvel run | demo | mock | validate | keys``.
+"""Command line: ``pairvel run | demo | mock | validate | velocities | keys``.
 
 A thin layer over the library.  Every :class:`~pairvel.core.errors.PairvelError` becomes one line on
 stderr and exit code 2 (``--debug`` shows the traceback); nothing is left half-written.  Commands
@@ -94,7 +94,19 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--partner-bias", type=float, default=0.3, help="linear bias of that catalogue (default 0.3)")
     mock.add_argument("--partner-tau-mean", type=float, default=5e-4,
                       help="optical depth of each of its tracers (default 5e-4)")
+    mock.add_argument("--electron-temperature", type=float, default=None, metavar="KEV",
+                      help="give every tracer the tSZ of gas at this temperature (y = tau kT_e / m_e c^2) and write "
+                           "per-tracer truth, for `pairvel velocities`")
     common(mock)
+
+    vel = sub.add_parser("velocities", help="line-of-sight velocities of single clusters from several frequency maps",
+                         description="Split each cluster's aperture temperatures in the maps of [multifrequency] into "
+                                     "tSZ and kSZ, turn y into tau under [single_cluster]'s electron temperature and "
+                                     "write the velocities, their errors and cautions (no pair pass).")
+    vel.add_argument("config", help="TOML config with [catalogue], [multifrequency] and optionally [single_cluster]")
+    vel.add_argument("--out", help="new output folder (default: ./<run.name>-velocities)")
+    vel.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
+    common(vel)
 
     unblind = sub.add_parser("unblind", help="apply a blinding key to a blinded output folder, writing a new folder",
                              description="Read a blinded pairvel output folder and its key file and write the "
@@ -246,15 +258,40 @@ def _cmd_mock(args) -> int:
     if args.partner_tracers:
         options.update(partner_n_tracers=args.partner_tracers, partner_bias=args.partner_bias,
                        partner_tau_mean=args.partner_tau_mean)
+    if args.electron_temperature is not None:
+        options["electron_temperature_kev"] = args.electron_temperature
     truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")
-    if args.extra_frequency:
+    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
+    if args.extra_frequency and "tracer_truth" in truth.files:  # run.toml holds [multifrequency] already
+        print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
+              f" (in run.toml's [multifrequency]); single-cluster velocities: pairvel velocities {config}")
+    elif args.extra_frequency:
         print("  maps: " + ", ".join(v for k, v in truth.files.items() if k.startswith("map")) +
               " (combine them with a [multifrequency] section; see README 'Several frequency maps')")
-    config = shlex.quote(str(Path(args.out) / RUN_CONFIG_FILE))
     print(f"  run it with: pairvel run {config}\n"
           f"    (the mock's bias, cosmology and aperture; the run compares tau_mean with truth.json)")
+    return EXIT_OK
+
+
+def _cmd_velocities(args, run_log) -> int:
+    from .core.progress import Progress
+    from .input.config import load_config
+    from .report.clustervel_out import terminal_lines, write_velocity_outputs
+    from .report.folders import claim_output_dir
+    from .single_cluster import measure_cluster_velocities
+
+    cfg = load_config(args.config)
+    default_out = Path.cwd() / f"{cfg.run.name}-velocities"
+    with claim_output_dir(args.out if args.out else default_out, force=args.force,
+                          protect=cfg.named_paths()) as claim:  # before the work; released if it fails
+        progress = Progress(5)
+        run = measure_cluster_velocities(cfg, progress=progress)
+        with progress.stage("writing outputs"):
+            claim.write(lambda folder: write_velocity_outputs(run, folder), run_log=run_log)
+    print("\n".join(terminal_lines(run)))
+    print(f"  outputs in {claim.path}")
     return EXIT_OK
 
 
@@ -417,6 +454,8 @@ def _dispatch(args, run_log) -> int:
         return _cmd_unblind(args, run_log)
     if args.command == "validate":
         return _cmd_validate(args, run_log)
+    if args.command == "velocities":
+        return _cmd_velocities(args, run_log)
     return _cmd_keys(args)
 
 

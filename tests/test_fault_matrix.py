@@ -54,6 +54,8 @@ CATEGORIES = ("config", "catalogue", "map", "output", "signals", "concurrency")
 
 #: The default command: run the case folder's config into a new folder ``out`` beside it.
 RUN_ARGV = ("run", "{dir}/run.toml", "--out", "{dir}/out")
+#: `pairvel velocities` on the case folder's config.
+VELOCITIES_ARGV = ("velocities", "{dir}/run.toml", "--out", "{dir}/out")
 
 
 @dataclass(frozen=True)
@@ -451,6 +453,10 @@ CONFIG_CASES = [
          r"'partner\.z_max' must exceed partner\.z_min"),
     Case("truth-with-blinding", "config", both(with_truth(b'{"tau_mean": 2e-3}'), set_in_config("blinding", "enabled = true")),
          r"'run\.truth_path' cannot be used with blinding\.enabled"),
+    Case("velocities-without-maps", "config", lambda folder: None,
+         r"multifrequency\.map_paths must list the frequency maps", argv=VELOCITIES_ARGV),
+    Case("velocities-temperature-zero", "config", set_in_config("single_cluster", "electron_temperature_kev = 0.0"),
+         r"run\.toml: 'single_cluster\.electron_temperature_kev'", argv=VELOCITIES_ARGV),
 ]
 
 # ---------------------------------------------------------------------- catalogue cases

@@ -28,6 +28,7 @@ __all__ = [
     "PrefilterConfig",
     "RestartConfig",
     "PartnerConfig",
+    "SingleClusterConfig",
     "is_folder_name",
 ]
 
@@ -339,6 +340,27 @@ class PartnerConfig(CatalogueConfig):
                               bounds=(0.01, 20.0))
 
 
+@dataclass(frozen=True)
+class SingleClusterConfig:
+    electron_temperature_kev: float = _key(5.0, "`pairvel velocities`: electron temperature k_B T_e (keV) that turns "
+                                                "each cluster's Compton y into its optical depth, tau = y m_e c^2 / "
+                                                "(k_B T_e); relativistic tSZ corrections only with relativistic = true",
+                                           bounds=(0.01, 100.0))
+    temperature_column: str | None = _key(None, "`pairvel velocities`: catalogue column of each cluster's k_B T_e in "
+                                                "keV, used instead of electron_temperature_kev")
+    min_tau_snr: float = _key(3.0, "`pairvel velocities`: flag clusters whose tau S/N is below this (their velocity "
+                                   "error is first-order only and the velocity biased)", bounds=(0.0, 1e4))
+    min_fit_pte: float = _key(0.01, "`pairvel velocities`: flag clusters whose channel residuals have a chi2 PTE "
+                                    "below this (three maps or more; contamination likely)", bounds=(0.0, 1.0))
+    min_proxy: float | None = _key(None, "`pairvel velocities`: flag clusters whose mass proxy "
+                                         "(catalogue.proxy_column) is below this (low mass)")
+    n_random: int = _key(3000, "`pairvel velocities`: random apertures per map for the channel covariance (noise "
+                               "and primary CMB)", bounds=(100, 10_000_000))
+    relativistic: bool = _key(False, "`pairvel velocities`: fit the tSZ with its first-order relativistic correction "
+                                     "at each cluster's T_e (Challinor & Lasenby 1998); false: the non-relativistic "
+                                     "spectrum")
+
+
 #: Catalogue keys a run started from a tracer table still uses (cuts on the table's rows, and which
 #: of its proxy and weight columns to use); the other catalogue keys describe a file it does not read.
 RESTART_CATALOGUE_KEYS = ("proxy_column", "weight_column", "z_min", "z_max", "proxy_min", "proxy_max")
@@ -364,6 +386,7 @@ class Config:
     prefilter: PrefilterConfig = field(default_factory=PrefilterConfig)
     restart: RestartConfig = field(default_factory=RestartConfig)
     partner: PartnerConfig = field(default_factory=PartnerConfig)
+    single_cluster: SingleClusterConfig = field(default_factory=SingleClusterConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:

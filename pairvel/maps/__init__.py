@@ -11,5 +11,5 @@ Depends on :mod:`pairvel.core` and :mod:`pairvel.model`.
 files and the private ``_aperture_kernels``) is its HEALPix implementation.
 """
 
-__all__ = ["harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
+__all__ = ["channels", "harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
            "trend"]

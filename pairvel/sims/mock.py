@@ -44,6 +44,7 @@ from ..core.rng import as_generator
 from ..maps.sources import paint_beam_sources
 from ..model.cmb import load_cmb_cl
 from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
+from ..model.sz import ELECTRON_REST_ENERGY_KEV
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 from .mockconfig import RUN_CONFIG_FILE, mock_run_config
@@ -53,6 +54,7 @@ SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"
 CATALOGUE_FILE = "larkspur_clusters.fits"
 MAP_FILE = "skerry_150ghz_partial.fits"
+TRACER_TRUTH_FILE = "tracer_truth.fits"  # only with electron_temperature_kev
 _DEFAULT_EDGES = np.arange(0.0, 301.0, 20.0)
 _TREND_SIGMA_Z = 0.01  # the pipeline's default trend.sigma_z
 _TSZ_F150 = -0.95333  # x coth(x/2) - 4 at 150 GHz, T_CMB = 2.72548 K (Carlstrom et al. 2002)
@@ -237,8 +239,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      dec_max=10.0, z_min=0.15, z_max=0.55, tau_mean=2.0e-3, bias=0.4, cell_mpc=6.0,
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
-                     progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None, partner_n_tracers=0,
-                     partner_bias=0.3, partner_tau_mean=5.0e-4) -> MockTruth:
+                     progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None,
+                     electron_temperature_kev=None, partner_n_tracers=0, partner_bias=0.3,
+                     partner_tau_mean=5.0e-4) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -286,6 +289,11 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         and independent white noise.  Drawn after everything else, so the 150 GHz map does not change.
     extra_noise_uk_arcmin : sequence of float, uK-arcmin, optional
         White noise of each extra map (default: ``noise_uk_arcmin`` for all).
+    electron_temperature_kev : float, keV, optional
+        Give every tracer the Compton y of an isothermal gas at this temperature, y = tau k_B T_e /
+        (m_e c^2) (non-relativistic), instead of the mass scaling of ``tsz_amplitude_uk`` (then unused),
+        and write the per-tracer truth ``tracer_truth.fits`` (catalogue rows in order: tau, y, v_r_km_s,
+        dt_ksz_uk), for the single-cluster velocities (`pairvel velocities`).
     partner_n_tracers : int, default 0
         Also write a second, galaxy-like catalogue (``partner_galaxies.fits``) of about this many
         tracers, Poisson-sampled from the same density and velocity fields with ``partner_bias``,
@@ -328,7 +336,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                    tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo)
     _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
-    spec = _MockSpec(**options, extra_noise=extra_noise,
+    _check_electron_temperature(electron_temperature_kev)
+    spec = _MockSpec(**options, extra_noise=extra_noise, electron_temperature_kev=electron_temperature_kev,
                      partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean))
     with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
         if seed is None:
@@ -362,6 +371,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         _lap(timings, "truth", t0)
 
         files = _survey_files(maps)
+        if electron_temperature_kev is not None:
+            files["tracer_truth"] = TRACER_TRUTH_FILE
         truth = MockTruth(
             n_tracers=int(tracers.z.size), tau_mean=float(tau_mean), bias=float(bias),
             seed=int(seed) if isinstance(seed, (int, np.integer)) else None, options=_options_record(spec),
@@ -378,6 +389,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
             _write_survey(folder, spec, tracers, amplitudes.log_mass, foot, maps)
             if partner is not None:
                 write_partner(folder, partner[0])
+            if electron_temperature_kev is not None:
+                _write_tracer_truth(folder, tracers, amplitudes)
             (folder / "truth.json").write_text(json.dumps(record, indent=2, allow_nan=False) + "\n")
             (folder / RUN_CONFIG_FILE).write_text(mock_run_config(record, folder_name=claim.path.name,
                                                                   trend_sigma_z=_TREND_SIGMA_Z))
@@ -427,6 +440,7 @@ class _MockSpec:
     tsz_amplitude_uk: float
     cosmo: Cosmology
     extra_noise: dict
+    electron_temperature_kev: float | None = None
     partner: PartnerSpec | None = None
 
 
@@ -561,11 +575,13 @@ class _Amplitudes:
     log_mass: np.ndarray
     dt_ksz_uk: np.ndarray
     tsz_uk: np.ndarray
+    tau: np.ndarray
 
 
 def _sz_amplitudes(tracers: _Tracers, spec: _MockSpec, rng) -> _Amplitudes:
     """A mass proxy with dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^(2/3) with mean
-    ``tau_mean``, dT_kSZ = -tau T_CMB v_r / c; the tSZ f(150 GHz) A (M / 10^14.5)^(5/3) ((1 + z) / 1.35)^2."""
+    ``tau_mean``, dT_kSZ = -tau T_CMB v_r / c; the tSZ f(150 GHz) A (M / 10^14.5)^(5/3) ((1 + z) / 1.35)^2, or
+    f(150 GHz) T_CMB y with y = tau k_B T_e / (m_e c^2) when ``spec.electron_temperature_kev`` is set."""
     uu = rng.uniform(size=tracers.z.size)
     lo_m, hi_m = 10.0 ** (-1.5 * 14.0), 10.0 ** (-1.5 * 15.0)
     log_mass = np.log10(lo_m + uu * (hi_m - lo_m)) / -1.5
@@ -574,7 +590,9 @@ def _sz_amplitudes(tracers: _Tracers, spec: _MockSpec, rng) -> _Amplitudes:
     dt_ksz = -tau * T_CMB_UK * tracers.v_r / C_KM_S
     tsz = (_TSZ_F150 * spec.tsz_amplitude_uk * 10.0 ** (5.0 / 3.0 * (log_mass - 14.5))
            * ((1 + tracers.z) / 1.35) ** 2)
-    return _Amplitudes(log_mass, dt_ksz, tsz)
+    if spec.electron_temperature_kev is not None:
+        tsz = _TSZ_F150 * T_CMB_UK * tau * spec.electron_temperature_kev / ELECTRON_REST_ENERGY_KEV
+    return _Amplitudes(log_mass, dt_ksz, tsz, tau)
 
 
 def _cmb_on_footprint(spec: _MockSpec, foot, rng, say) -> np.ndarray:
@@ -699,10 +717,32 @@ def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, fo
                                                        "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
 
 
+def _check_electron_temperature(te_kev) -> None:
+    if te_kev is not None and not (isinstance(te_kev, (int, float)) and not isinstance(te_kev, bool)
+                                   and math.isfinite(te_kev) and 0 < te_kev <= 100):
+        raise InputError(f"mock option 'electron_temperature_kev' must be a number in (0, 100] keV; got {te_kev!r}",
+                         key="electron_temperature_kev")
+
+
+def _write_tracer_truth(folder: Path, tracers: _Tracers, amplitudes: _Amplitudes) -> None:
+    """Per-tracer truth in catalogue row order: optical depth, Compton y, velocity, kSZ temperature."""
+    from astropy.table import Table
+
+    table = Table({"tau": amplitudes.tau, "y": amplitudes.tsz_uk / (_TSZ_F150 * T_CMB_UK),
+                   "v_r_km_s": tracers.v_r, "dt_ksz_uk": amplitudes.dt_ksz_uk})
+    table["v_r_km_s"].unit = "km/s"
+    table["dt_ksz_uk"].unit = "uK"
+    table.meta["COMMENT"] = ["synthetic per-tracer truth made by pairvel mock; rows as in the catalogue",
+                             "tau and y are aperture values (before the beam's spill beyond the disc)"]
+    table.write(folder / TRACER_TRUTH_FILE)
+
+
 def _options_record(spec: _MockSpec) -> dict:
     """Every option of the call, JSON-ready: the cosmology as a dict, the extra maps by frequency."""
     options = asdict(spec)
     extra_noise = options.pop("extra_noise")
+    if options["electron_temperature_kev"] is None:  # the record of a mock without it stays as it was
+        options.pop("electron_temperature_kev")
     options["cosmology"] = options.pop("cosmo")
     if options.get("partner") is None:
         options.pop("partner")

@@ -68,6 +68,11 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
     if "partner" in record:  # a second, galaxy-like catalogue: the cross curve (README 'Clusters against galaxies')
         sections["partner"] = {"path": record["partner"]["file"], "z_min": float(o["z_min"]),
                                "z_max": float(o["z_max"]), "bias": float(record["partner"]["bias"])}
+    single_cluster = bool(extra) and o.get("electron_temperature_kev") is not None
+    if single_cluster:  # every map: combined without tSZ by `pairvel run`, split per cluster by `pairvel velocities`
+        del sections["map"]
+        sections["multifrequency"] = _multifrequency_keys(record, extra)
+        sections["single_cluster"] = {"electron_temperature_kev": float(o["electron_temperature_kev"])}
     lines = [
         f"# Ready-to-run config written by pairvel {__version__} (`pairvel mock`) beside the synthetic survey it",
         f"# made: {record['n_tracers']} tracers, nside {o['nside']}, injected tau_mean = {record['tau_mean']:g}, "
@@ -79,13 +84,23 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
     ]
     for section, keys in sections.items():
         lines += ["", f"[{section}]"] + [f"{key} = {_toml(value)}" for key, value in keys.items()]
-    if extra:
-        maps = [files["map"], *(name for _, name in extra)]
-        freqs = [150.0, *(nu for nu, _ in extra)]
-        noise = [float(o["noise_uk_arcmin"]), *(float(o["extra_frequencies_ghz"][f"{nu:g}"]) for nu, _ in extra)]
+    if single_cluster:
+        lines += ["", "# [multifrequency]: the tSZ-free combination of every map for `pairvel run`; the same maps",
+                  "# give `pairvel velocities` its channels (README, 'Single-cluster velocities')."]
+    elif extra:
+        mf = _multifrequency_keys(record, extra)
         lines += ["", "# The other maps of this survey (same CMB and kSZ, tSZ scaled, own noise). To combine them,",
                   "# delete [map] path above and uncomment (README, 'Several frequency maps'):",
-                  "# [multifrequency]", f"# map_paths = {_toml(maps)}", f"# frequencies_ghz = {_toml(freqs)}",
-                  f"# noise_uk_arcmin = {_toml(noise)}",
-                  f"# beam_fwhm_arcmin = {_toml([float(o['beam_fwhm_arcmin'])] * len(maps))}"]
+                  "# [multifrequency]", *(f"# {key} = {_toml(value)}" for key, value in mf.items())]
     return "\n".join(lines) + "\n"
+
+
+def _multifrequency_keys(record: dict, extra: list) -> dict:
+    """[multifrequency] keys of every map of the survey (150 GHz first, then ``extra``: (GHz, file))."""
+    o = record["options"]
+    maps = [record["files"]["map"], *(name for _, name in extra)]
+    return {"map_paths": maps, "frequencies_ghz": [150.0, *(nu for nu, _ in extra)],
+            "noise_uk_arcmin": [float(o["noise_uk_arcmin"]), *(float(o["extra_frequencies_ghz"][f"{nu:g}"])
+                                                               for nu, _ in extra)],
+            "beam_fwhm_arcmin": [float(o["beam_fwhm_arcmin"])] * len(maps)}
+

@@ -8,4 +8,4 @@ Depends on :mod:`pairvel.core`, :mod:`pairvel.model`, :mod:`pairvel.maps` (photo
 simulated and null skies) and :mod:`pairvel.pairs`.
 """
 
-__all__ = ["covariance", "covdiag", "fit", "joint", "nulltests", "radii", "regionseeds", "simcov", "subsamples"]
+__all__ = ["clustervel", "covariance", "covdiag", "fit", "joint", "nulltests", "radii", "regionseeds", "simcov", "subsamples"]
