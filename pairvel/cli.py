@@ -88,6 +88,12 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
                       help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
                            "noise); repeat for several")
+    mock.add_argument("--partner-tracers", type=int, default=0, metavar="N",
+                      help="also write a galaxy-like second catalogue of about N tracers with kSZ of its own, for the "
+                           "cross curve (README 'Clusters against galaxies'; default 0: none)")
+    mock.add_argument("--partner-bias", type=float, default=0.3, help="linear bias of that catalogue (default 0.3)")
+    mock.add_argument("--partner-tau-mean", type=float, default=5e-4,
+                      help="optical depth of each of its tracers (default 5e-4)")
     mock.add_argument("--electron-temperature", type=float, default=None, metavar="KEV",
                       help="give every tracer the tSZ of gas at this temperature (y = tau kT_e / m_e c^2) and write "
                            "per-tracer truth, for `pairvel velocities`")
@@ -135,6 +141,10 @@ def _closing_summary(result, out: Path) -> str:
     if spread is not None:
         lines.append(f"  tau_mean over {spread['n_seeds']} region seeds: std {spread['std_over_error']:.2f} of its error "
                      f"(range {min(spread['tau_mean']):.3e} to {max(spread['tau_mean']):.3e})")
+    if "cross" in result.extra:  # pairs with a second catalogue ([partner])
+        from .stats.cross import cross_summary_line
+
+        lines.append(cross_summary_line(result.extra["cross"]))
     for n in result.nulls:
         flag = {"low": ": LOW, below 0.01", "high": ": HIGH, above 0.99"}.get(pte_flag(n.pte_mean), "")
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
@@ -202,7 +212,7 @@ def _cmd_keys(args) -> int:
     from .input.config import iter_config_keys
 
     def shown(key, default, doc):
-        return "(required)" if default is None and (key.endswith(".path") or "(required:" in doc) else repr(default)
+        return "(required)" if default is None and ("(required)" in doc or "(required:" in doc) else repr(default)
 
     rows = [(key, typ, shown(key, default, doc), doc) for key, typ, default, doc in iter_config_keys()]
     if args.markdown:
@@ -249,6 +259,9 @@ def _cmd_mock(args) -> int:
         options["tau_mean"] = args.tau_mean
     if args.extra_frequency:
         options["extra_frequencies_ghz"] = args.extra_frequency
+    if args.partner_tracers:
+        options.update(partner_n_tracers=args.partner_tracers, partner_bias=args.partner_bias,
+                       partner_tau_mean=args.partner_tau_mean)
     if args.electron_temperature is not None:
         options["electron_temperature_kev"] = args.electron_temperature
     truth = make_mock_survey(args.out, **options, progress=_log.info)

@@ -57,6 +57,7 @@ from .stats.covariance import (
 )
 from .stats.mockcalib import read_mock_calibration
 from .stats.covdiag import covariance_diagnostics
+from .stats.cross import cross_pairs, load_partner
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null, rotated_sets, shuffled_sets, slice_means
@@ -102,6 +103,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
     v12_table = load_v12_table(cfg.theory)  # so is a v12 table
+    partner = load_partner(cfg)  # the second catalogue of the cross curve, likewise (None without [partner])
 
     cat, sky, aps, stored = measured_tracers(cfg, progress)
     with progress.stage("redshift-trend correction"):
@@ -133,10 +135,13 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
+        cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
                           v12_table=v12_table)
     extra["empirical_significance"] = significance(fit, model, cov, pr, stack)
+    if cross is not None:
+        extra["cross"] = cross
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
     prov = provenance(cfg, cat, sky, started, stored)
@@ -757,6 +762,17 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
                       f"a jackknife sample had a bin without pairs", PairvelWarning, stacklevel=2)
     return summarise_spread([f.amplitude for f in fits], [f.error for f in fits], quoted_error=quoted_error,
                             n_regions=cc.n_regions, skipped=skipped)
+
+
+def cross_curve(cfg: Config, sky: SkyInputs, partner, cat: Catalogue, positions, temps_raw, regions,
+                model: TemplateResult, power, progress: Progress) -> dict | None:
+    """The cross pairs of [catalogue] and [partner] (:mod:`pairvel.stats.cross`); None without a partner."""
+    if partner is None:
+        return None
+    return cross_pairs(cfg, sky.skymap, partner, positions=positions, temps_raw=temps_raw, z=cat.z,
+                       weights=cat.weight, ra=cat.ra, dec=cat.dec, regions=regions, edges=cfg.bins.edges(),
+                       in_fit=model.in_fit,
+                       trend_factor=model.trend_factor, power=power, progress=progress.say)
 
 
 # ---------------------------------------------------------------------------- what else is kept

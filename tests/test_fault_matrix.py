@@ -453,6 +453,12 @@ CONFIG_CASES = [
          r"run\.truth_path \S*truth\.json: 'tau_mean' must be a finite number .*; got nan"),
     Case("truth-permission-denied", "config", with_truth(b'{"tau_mean": 2e-3}'),
          r"run\.truth_path \S*truth\.json: cannot be read \(Permission denied\)", run=denied("io.open", "truth.json")),
+    Case("partner-key-without-path", "config", set_in_config("partner", "bias = 1.2"),
+         r"'partner\.bias' is set but partner\.path is not"),
+    Case("partner-without-bias", "config", set_in_config("partner", 'path = "cat.csv"'),
+         r"'partner\.bias' is required with partner\.path"),
+    Case("partner-z-range-empty", "config", set_in_config("partner", 'path = "cat.csv"\nbias = 1.2\nz_min = 0.3\nz_max = 0.2'),
+         r"'partner\.z_max' must exceed partner\.z_min"),
     Case("truth-with-blinding", "config", both(with_truth(b'{"tau_mean": 2e-3}'), set_in_config("blinding", "enabled = true")),
          r"'run\.truth_path' cannot be used with blinding\.enabled"),
     Case("velocities-without-maps", "config", lambda folder: None,
@@ -463,6 +469,15 @@ CONFIG_CASES = [
 
 # ---------------------------------------------------------------------- catalogue cases
 CATALOGUE_CASES = [
+    Case("partner-file-missing", "catalogue", set_in_config("partner", 'path = "galaxies.csv"\nbias = 1.2'),
+         r"catalogue \S*galaxies\.csv: file not found"),
+    Case("partner-column-missing", "catalogue",
+         set_in_config("partner", 'path = "cat.csv"\nbias = 1.2\nz_column = "zspec"'),
+         r"cat\.csv: column 'zspec' \(partner\.z_column\) not found"),
+    Case("partner-off-the-map", "catalogue",
+         both(set_in_config("partner", 'path = "far.csv"\nbias = 1.2'),
+              write_file("far.csv", b"ra,dec,z\n200.0,-60.0,0.15\n201.0,-61.0,0.16\n202.0,-62.0,0.17\n")),
+         r"partner catalogue \S*far\.csv: fewer than 2 tracers have usable apertures \(3 of 3 dropped\)"),
     Case("missing-ra", "catalogue", edit_catalogue(lambda f: f.drop(columns="ra")),
          r"cat\.csv: column 'ra' \(catalogue\.ra_column\) not found; columns are: dec, z, log_mass"),
     Case("missing-z", "catalogue", edit_catalogue(lambda f: f.drop(columns="z")),

@@ -150,7 +150,7 @@ def _take(values, which):
     return None if values is None else values[which]
 
 
-def _format_of(path: Path, fmt: str) -> str:
+def _format_of(path: Path, fmt: str, section: str = "catalogue") -> str:
     if fmt != "auto":
         return fmt
     name = path.name.lower()
@@ -158,11 +158,11 @@ def _format_of(path: Path, fmt: str) -> str:
         if name.endswith(suffix):
             return kind
     raise CatalogueError(
-        f"catalogue {path}: cannot tell the format from the suffix; set catalogue.format to fits, ecsv, csv or parquet",
-        path=path, key="catalogue.format")
+        f"catalogue {path}: cannot tell the format from the suffix; set {section}.format to fits, ecsv, csv or parquet",
+        path=path, key=f"{section}.format")
 
 
-def read_table_columns(path, columns, *, fmt="auto") -> dict:
+def read_table_columns(path, columns, *, fmt="auto", section="catalogue") -> dict:
     """Read the named columns of a table file as float64 arrays.
 
     Parameters
@@ -179,7 +179,7 @@ def read_table_columns(path, columns, *, fmt="auto") -> dict:
     dict of column name -> ndarray of float64
     """
     path = Path(path)
-    kind = _format_of(path, fmt)
+    kind = _format_of(path, fmt, section)
     if not path.is_file():
         raise CatalogueError(f"catalogue {path}: file not found", path=path)
     try:
@@ -224,8 +224,11 @@ def _describe_invalid(name, values, ok) -> str:
     return f"{bad.size} rows are not (first: row {bad[0]}, {name}={values[bad[0]]:.6g})"
 
 
-def load_catalogue(cfg) -> Catalogue:
+def load_catalogue(cfg, *, section: str = "catalogue") -> Catalogue:
     """Read, validate and cut the catalogue described by a :class:`~pairvel.input.config.CatalogueConfig`.
+
+    ``section`` is the config table the settings came from ("catalogue", or "partner" for the second
+    catalogue of a cross curve); messages name its keys.
 
     Raises
     ------
@@ -234,13 +237,13 @@ def load_catalogue(cfg) -> Catalogue:
         ``drop_invalid_rows`` is false.  The message names the file, the column and the first row.
     """
     path = Path(cfg.path)
-    columns = {"catalogue.ra_column": cfg.ra_column, "catalogue.dec_column": cfg.dec_column,
-               "catalogue.z_column": cfg.z_column}
+    columns = {f"{section}.ra_column": cfg.ra_column, f"{section}.dec_column": cfg.dec_column,
+               f"{section}.z_column": cfg.z_column}
     if cfg.proxy_column is not None:
-        columns["catalogue.proxy_column"] = cfg.proxy_column
+        columns[f"{section}.proxy_column"] = cfg.proxy_column
     if cfg.weight_column is not None:
-        columns["catalogue.weight_column"] = cfg.weight_column
-    data = read_table_columns(path, columns, fmt=cfg.format)
+        columns[f"{section}.weight_column"] = cfg.weight_column
+    data = read_table_columns(path, columns, fmt=cfg.format, section=section)
     ra, dec, z = data[cfg.ra_column], data[cfg.dec_column], data[cfg.z_column]
     proxy = data[cfg.proxy_column] if cfg.proxy_column is not None else None
     weight = data[cfg.weight_column] if cfg.weight_column is not None else None
@@ -264,7 +267,7 @@ def load_catalogue(cfg) -> Catalogue:
         if not ok.all():
             message = f"catalogue {path}: column '{name}' must be {rule}; {_describe_invalid(name, values, ok)}"
             if not cfg.drop_invalid_rows:
-                raise CatalogueError(message + " (set catalogue.drop_invalid_rows = true to drop them)",
+                raise CatalogueError(message + f" (set {section}.drop_invalid_rows = true to drop them)",
                                      path=path, key=name, row=int(np.flatnonzero(~ok)[0]))
             warnings.warn(message + "; dropped", PairvelWarning, stacklevel=2)
             valid &= ok
@@ -277,7 +280,7 @@ def load_catalogue(cfg) -> Catalogue:
     order = canonical_order([ra, dec, z, proxy, weight], np.flatnonzero(keep))
     repeat = _repeats(ra[order], dec[order], z[order])
     if repeat.any():
-        _report_duplicates(path, cfg.duplicate_rows, order, repeat)
+        _report_duplicates(path, cfg.duplicate_rows, order, repeat, section)
         if cfg.duplicate_rows == "drop":
             order = order[~repeat]
     reason[valid & ~in_z] = OUTSIDE_Z
@@ -333,7 +336,7 @@ def _repeats(ra, dec, z) -> np.ndarray:
     return same
 
 
-def _report_duplicates(path, action, order, repeat) -> None:
+def _report_duplicates(path, action, order, repeat, section="catalogue") -> None:
     """Stop or warn about repeated (ra, dec, z): the count, and the first repeats in file order,
     each named with the lowest row of its group."""
     group = np.cumsum(~repeat) - 1
@@ -343,7 +346,7 @@ def _report_duplicates(path, action, order, repeat) -> None:
     shown = ", ".join(f"row {r} repeats row {o}" for r, o in pairs[:3]) + (", ..." if len(pairs) > 3 else "")
     message = (f"catalogue {path}: {len(pairs)} rows repeat the ra, dec and z of another kept row ({shown})")
     if action == "error":
-        raise CatalogueError(message + '; set catalogue.duplicate_rows = "warn" to keep them or "drop" to drop '
-                             "the repeats", path=path, key="catalogue.duplicate_rows", row=pairs[0][0])
+        raise CatalogueError(message + f'; set {section}.duplicate_rows = "warn" to keep them or "drop" to drop '
+                             "the repeats", path=path, key=f"{section}.duplicate_rows", row=pairs[0][0])
     warnings.warn(message + ("; dropped the repeats" if action == "drop" else "; kept"), PairvelWarning,
                   stacklevel=3)

@@ -27,6 +27,7 @@ __all__ = [
     "MultifrequencyConfig",
     "PrefilterConfig",
     "RestartConfig",
+    "PartnerConfig",
     "SingleClusterConfig",
     "is_folder_name",
 ]
@@ -363,6 +364,21 @@ class RestartConfig:
 
 
 @dataclass(frozen=True)
+class PartnerConfig(CatalogueConfig):
+    """A second catalogue paired against the first (only pairs with one member in each); the
+    catalogue keys mean what they mean under [catalogue], for this file."""
+
+    path: Path | None = _key(None, "second tracer catalogue (FITS, ECSV, CSV or Parquet) paired against [catalogue]: "
+                                   "the cross curve uses only pairs with one member in each (unset: no cross curve)")
+    radius_arcmin: float | None = _key(None, "compensated-aperture disc radius for these tracers, arcmin (unset: "
+                                             "aperture.radius_arcmin); with aperture.radius_kpc, its ratio to "
+                                             "aperture.radius_arcmin scales the physical radius", bounds=(0.05, 60.0))
+    bias: float | None = _key(None, "linear bias of these tracers, needed with partner.path: the cross template uses "
+                                    "(b_1 + b_2) / 2 and b_1 b_2 (README, 'Clusters against galaxies')",
+                              bounds=(0.01, 20.0))
+
+
+@dataclass(frozen=True)
 class SingleClusterConfig:
     electron_temperature_kev: float = _key(5.0, "`pairvel velocities`: electron temperature k_B T_e (keV) that turns "
                                                 "each cluster's Compton y into its optical depth, tau = y m_e c^2 / "
@@ -407,6 +423,7 @@ class Config:
     multifrequency: MultifrequencyConfig = field(default_factory=MultifrequencyConfig)
     prefilter: PrefilterConfig = field(default_factory=PrefilterConfig)
     restart: RestartConfig = field(default_factory=RestartConfig)
+    partner: PartnerConfig = field(default_factory=PartnerConfig)
     single_cluster: SingleClusterConfig = field(default_factory=SingleClusterConfig)
     source: Path | None = None
 
@@ -684,6 +701,7 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
 
     _check_multifrequency(cfg, bad)
+    _check_partner(cfg, bad)
     pf = cfg.prefilter
     if pf.kind in ("matched", "wiener"):
         if pf.noise_uk_arcmin is None:
@@ -713,6 +731,28 @@ def _check_restart(cfg, bad) -> None:
     if cfg.covariance.estimator == "simulations":
         bad("covariance.estimator", "= 'simulations' needs the sky map, which a run from restart.table_path does not "
                                     "read; use jackknife or bootstrap")
+
+
+def _check_partner(cfg, bad) -> None:
+    """Cross-key checks of ``[partner]``, the second catalogue of the cross curve."""
+    pc = cfg.partner
+    if pc.path is None:
+        for f in dataclasses.fields(pc):
+            if getattr(pc, f.name) != f.default:
+                bad(f"partner.{f.name}", "is set but partner.path is not (the second catalogue of the cross curve)")
+        return
+    if pc.bias is None:
+        bad("partner.bias", "is required with partner.path: the cross template needs the linear bias of both "
+                            "catalogues, so no value is assumed")
+    if cfg.restart.table_path is not None:
+        bad("partner.path", "needs the sky map for the second catalogue's photometry, which a run from "
+                            "restart.table_path does not read; remove one of them")
+    if not pc.z_min < pc.z_max:
+        bad("partner.z_max", f"must exceed partner.z_min; got {pc.z_min} and {pc.z_max}")
+    if not pc.proxy_min < pc.proxy_max:
+        bad("partner.proxy_max", "must exceed partner.proxy_min")
+    if (math.isfinite(pc.proxy_min) or math.isfinite(pc.proxy_max)) and pc.proxy_column is None:
+        bad("partner.proxy_column", "is required when partner.proxy_min or partner.proxy_max is set")
 
 
 def load_config(path) -> Config:

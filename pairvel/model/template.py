@@ -55,7 +55,7 @@ def los_error_mpc(z, sigma_z0: float, *, cosmo: Cosmology = DEFAULT_COSMOLOGY):
     return C_KM_S * sigma_z0 * (1 + z) / cosmo.hubble_km_s_mpc(z)
 
 
-def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nodes: int = 16):
+def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nodes: int = 16, z_partner=None):
     """Redshift distribution of the pairs of a catalogue, (dN/dz)^2 / (dV/dz), on ``n_nodes`` nodes.
 
     Parameters
@@ -64,6 +64,9 @@ def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nod
         Tracer redshifts.
     n_nodes : int, default 16
         Histogram bins between the lowest and highest redshift.
+    z_partner : ndarray of shape (m,), optional
+        Redshifts of a second catalogue: the distribution of the cross pairs, (dN_1/dz)(dN_2/dz) / (dV/dz),
+        on bins spanning both.
 
     Returns
     -------
@@ -71,17 +74,20 @@ def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nod
         Bin centres with non-zero weight and weights summing to 1.
     """
     z = np.asarray(z, dtype=float)
-    if z.size < 2 or not np.all(np.isfinite(z)):
+    z2 = z if z_partner is None else np.asarray(z_partner, dtype=float)
+    both = np.concatenate([z, z2])
+    if z.size < 2 or not np.all(np.isfinite(both)):
         raise TheoryError(f"the pair redshift distribution needs >= 2 finite redshifts; got {z.size}")
-    lo, hi = float(z.min()), float(z.max())
+    lo, hi = float(both.min()), float(both.max())
     if hi - lo < 1e-6:
         return np.array([lo]), np.array([1.0])
     counts, e = np.histogram(z, bins=n_nodes, range=(lo, hi))
+    counts2 = counts if z_partner is None else np.histogram(z2, bins=n_nodes, range=(lo, hi))[0]
     zc = 0.5 * (e[1:] + e[:-1])
     chi = cosmo.comoving_distance_mpc(zc)
     dvdz = chi**2 / cosmo.hubble_km_s_mpc(zc)  # up to constants that cancel
     dndz = counts / np.diff(e)
-    w = dndz**2 / dvdz
+    w = dndz * (dndz if z_partner is None else counts2 / np.diff(e)) / dvdz
     keep = w > 0
     return zc[keep], w[keep] / w[keep].sum()
 
@@ -240,7 +246,8 @@ VELOCITY_MODEL_NAMES = {"linear": "linear theory",
 
 
 def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_tracers, z_eff: float,
-                     z_eff_bins=None, power=None, proxy=None, weights=None, v12_table=None):
+                     z_eff_bins=None, power=None, proxy=None, weights=None, v12_table=None, bias=None,
+                     z_partner=None):
     """v12 per bin for a run's [theory] settings, and a dict describing how it was built.
 
     Parameters
@@ -260,15 +267,23 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
         The tracers' proxy column and pair weights, for ``theory.bias_from_proxy``.
     v12_table : V12Table, optional
         From :func:`load_v12_table`, for ``theory.velocity_model = "table"`` (and the comparison).
+    bias : (float, float), optional
+        The biases (b_1, b_2) of two catalogues, for the template of their cross pairs (default:
+        ``theory_cfg.bias`` for the pairs of one catalogue).
+    z_partner : ndarray of shape (m,), optional
+        Redshifts of the second catalogue, for the cross pairs' redshift distribution.
     """
     tc = theory_cfg
     if tc.bias is None and tc.bias_from_proxy is None:  # load_config refuses such a config; this catches one in code
         raise TheoryError("theory.bias is required: tau_mean scales as 1/b, so no value is assumed")
     if tc.redshift_weighting == "pair_distribution":
-        z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo)
+        z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo, z_partner=z_partner)
     else:
         z_nodes, z_w = np.array([z_eff]), np.array([1.0])
-    bias, bias_info = _run_bias(tc, cosmo, z_tracers, z_w, proxy=proxy, weights=weights, power=power)
+    if bias is None:
+        bias, bias_info = _run_bias(tc, cosmo, z_tracers, z_w, proxy=proxy, weights=weights, power=power)
+    else:  # the two given biases of a cross curve
+        bias_info = None
     counts = pair_counts if tc.separation_weighting == "pair_counts" else None
     kw = {"wiggles": tc.wiggles, "power": power, "growth": tc.growth_rate}
 

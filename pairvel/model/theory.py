@@ -2,6 +2,10 @@
 
 v12(r, z) = -(2/3) H(z) a f(z) r b xibar(r, z) / (1 + b^2 xi(r, z))      [comoving r, km/s]
 
+and for the cross pairs of two samples with biases b_1, b_2 (one member in each)
+
+v12(r, z) = -(2/3) H(z) a f(z) r [(b_1 + b_2) / 2] xibar(r, z) / (1 + b_1 b_2 xi(r, z)).
+
 (Juszkiewicz et al. 1999, ApJ 518, L25; Sheth et al. 2001, MNRAS 326, 463; bias placement as in
 Bhattacharya & Kosowsky 2008).  P(k) is the Eisenstein & Hu (1998, ApJ 496, 605) fit normalised to
 sigma_8; xi and xibar come from FFTLog (Hamilton 2000, MNRAS 312, 257) as scipy.fft.fht with a
@@ -12,7 +16,7 @@ from __future__ import annotations
 
 __all__ = ["transfer_eh98", "growth_factor", "growth_rate", "linear_power", "sigma_radius",
            "correlation_function", "mean_correlation", "pairwise_velocity", "binned_pairwise_velocity",
-           "eh98_scales"]
+           "eh98_scales", "bias_factors"]
 
 from functools import lru_cache
 
@@ -278,8 +282,8 @@ def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOG
     ----------
     r_mpc : array-like, comoving Mpc
     z : float
-    bias : float, default 1.0
-        Linear bias b of the tracers.
+    bias : float or (float, float), default 1.0
+        Linear bias b of the tracers, or the biases (b_1, b_2) of two samples for their cross pairs.
     power : pairvel.model.power.TabulatedPower, optional
         Tabulated linear P(k) instead of EH98.
     growth : {"exact", "linder"}, default "exact"
@@ -288,6 +292,12 @@ def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOG
     Notes
     -----
     v12 = -(2/3) H(z) a f(z) r b xibar / (1 + b^2 xi), with xi and xibar of the matter at z.
+
+    Cross pairs (member 1 from a sample of bias b_1, member 2 of b_2): the mean velocity of member 1
+    towards member 2 is set by the density of sample 2 around it, so it carries b_2, and the other
+    way round; the pair-weighted relative velocity, to the order of the auto formula, is
+    v12 = -(2/3) H a f r [(b_1 + b_2) / 2] xibar / (1 + b_1 b_2 xi) [calc: the auto derivation
+    (Sheth et al. 2001) with delta_1 = b_1 delta, delta_2 = b_2 delta].  b_1 = b_2 gives the auto form.
     """
     r = np.asarray(r_mpc, dtype=float)
     if not np.isfinite(z) or z < 0:
@@ -296,7 +306,18 @@ def pairwise_velocity(r_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOG
     xi, xibar = _correlations(r, cosmo, wiggles, power)
     hz = cosmo.hubble_km_s_mpc(z)
     f = growth_rate(z, cosmo=cosmo, method=growth)
-    return -(2.0 / 3.0) * hz / (1 + z) * f * r * bias * g2 * xibar / (1 + bias**2 * g2 * xi)
+    b_lin, b_sq = bias_factors(bias)
+    return -(2.0 / 3.0) * hz / (1 + z) * f * r * b_lin * g2 * xibar / (1 + b_sq * g2 * xi)
+
+
+def bias_factors(bias) -> tuple[float, float]:
+    """The bias in v12 and in its pair-count denominator: (b, b^2) for one sample, ((b_1 + b_2) / 2,
+    b_1 b_2) for the cross pairs of two samples given as a pair (b_1, b_2)."""
+    if np.ndim(bias) == 0:
+        b = float(bias)
+        return b, b * b
+    b1, b2 = (float(x) for x in np.asarray(bias, dtype=float).reshape(2))
+    return 0.5 * (b1 + b2), b1 * b2
 
 
 def binned_pairwise_velocity(edges_mpc, z, bias=1.0, *, cosmo: Cosmology = DEFAULT_COSMOLOGY,

@@ -187,6 +187,12 @@ EXTRA_RULES = {
     # the counts, p-values and S/N compare them with tau_mean, which scales alike
     "empirical_significance": {"source": 0, "n": 0, "exceeded_by": 0, "p_value": 0, "p_is_bound": 0,
                                "amplitude_mean": 1, "amplitude_std": 1, "snr": 0, "amplitudes": 1},
+    # cross pairs with a second catalogue ([partner]): same map, so the same factor
+    "cross": {"partner": 0, "bias_1": 0, "bias_2": 0, "amplitude_meaning": 0, "edges_mpc": 0, "p": 1, "p_err": 1,
+              "covariance": 2, "pair_counts": 0, "z_eff_bins": 0, "z_eff": 0, "v12_template": 0, "in_fit": 0,
+              "n_jk": 0, "covariance_kind": 0, "template_z_mean": 0, "fit": FIT_RULES,
+              "nulls": {"kind": 0, "description": 0, "n_realisations": 0, "dof": 0, "chi2_mean_curve": 0,
+                        "pte_mean_curve": 0, "pte_threshold": 0, "passed": 0, "mean_p": 1, "mean_error": 1}},
     # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
     # when the config is read), and free report text: true by construction
     "mock_calibration": 0,             # error / scatter of mocks (covariance.calibration_dir), no data in it
@@ -350,7 +356,7 @@ def _stored_extra(summary: dict, fit) -> dict:
     from ..stats.radii import RadiusFit
     from ..stats.subsamples import ProxyBinFit
 
-    extra = {k: summary[k] for k in ("truth_check", "template", "prefilter", "multifrequency") if k in summary}
+    extra = {k: summary[k] for k in ("truth_check", "template", "prefilter", "multifrequency", "cross") if k in summary}
     if "demo_check" in summary:  # folders written before any run could name a truth file
         extra["truth_check"] = summary["demo_check"]
     if "null_rotations_used" in summary:

@@ -126,6 +126,8 @@ def summary_dict(result) -> dict:
         out["multifrequency"] = result.extra["multifrequency"]
     if "prefilter" in result.extra:  # harmonic-space filter of the map
         out["prefilter"] = result.extra["prefilter"]
+    if "cross" in result.extra:  # cross pairs with the [partner] catalogue
+        out["cross"] = result.extra["cross"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -320,6 +322,7 @@ def report_sections(result) -> dict:
     from ..stats.covdiag import diagnostics_markdown
     from ..stats.mockcalib import SECTION_TITLE as CALIBRATION_TITLE
     from ..stats.mockcalib import calibration_markdown
+    from ..stats.cross import cross_markdown
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
@@ -328,7 +331,8 @@ def report_sections(result) -> dict:
                 ("prefilter", "Map pre-filter", prefilter_markdown),
                 ("multifrequency", "Several frequency maps", combination_markdown),
                 ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
-                ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)))
+                ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)),
+                ("cross", "Cross pairs with a second catalogue", cross_markdown))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 __all__ = ["MockTruth", "make_mock_survey", "SURVEY_NAME", "TELESCOPE_NAME", "extra_map_file"]
 
+import dataclasses
 import json
 import math
 import time
@@ -47,6 +48,7 @@ from ..model.sz import ELECTRON_REST_ENERGY_KEV
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 from .mockconfig import RUN_CONFIG_FILE, mock_run_config
+from .partner import PartnerSpec, partner_ksz, partner_record, partner_spec, write_partner
 
 SURVEY_NAME = "Larkspur Cluster Survey"
 TELESCOPE_NAME = "Skerry Millimetre Telescope"
@@ -238,7 +240,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      beam_fwhm_arcmin=1.4, noise_uk_arcmin=15.0, aperture_radius_arcmin=2.1, include_cmb=True,
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None,
-                     electron_temperature_kev=None) -> MockTruth:
+                     electron_temperature_kev=None, partner_n_tracers=0, partner_bias=0.3,
+                     partner_tau_mean=5.0e-4) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -291,6 +294,12 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         (m_e c^2) (non-relativistic), instead of the mass scaling of ``tsz_amplitude_uk`` (then unused),
         and write the per-tracer truth ``tracer_truth.fits`` (catalogue rows in order: tau, y, v_r_km_s,
         dt_ksz_uk), for the single-cluster velocities (`pairvel velocities`).
+    partner_n_tracers : int, default 0
+        Also write a second, galaxy-like catalogue (``partner_galaxies.fits``) of about this many
+        tracers, Poisson-sampled from the same density and velocity fields with ``partner_bias``,
+        each with optical depth ``partner_tau_mean`` (no tSZ); its kSZ is painted into the same
+        maps and run.toml gets a ``[partner]`` section (:mod:`pairvel.sims.partner`).  0: none (and
+        nothing else changes).
 
     Returns
     -------
@@ -328,7 +337,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     _check_electron_temperature(electron_temperature_kev)
-    spec = _MockSpec(**options, extra_noise=extra_noise, electron_temperature_kev=electron_temperature_kev)
+    spec = _MockSpec(**options, extra_noise=extra_noise, electron_temperature_kev=electron_temperature_kev,
+                     partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean))
     with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
         if seed is None:
             seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
@@ -342,8 +352,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         _lap(timings, "fields", t0)
         cells, clipped_fraction = _poisson_cells(cone, delta0, spec, rng)
         tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
-        del delta0, u0
         amplitudes = _sz_amplitudes(tracers, spec, rng)
+        partner = _partner_tracers(cone, delta0, u0, spec, rng)
+        del delta0, u0
         _lap(timings, "tracers", t0)
         say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
 
@@ -351,7 +362,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         cmb = _cmb_on_footprint(spec, foot, rng, say)
         _lap(timings, "cmb", t0)
         ksz, tsz = _painted_sources(spec, tracers, amplitudes)
-        maps = _sky_maps(spec, foot, cmb, ksz, tsz, rng)
+        both = ksz if partner is None else tuple(map(np.concatenate, zip(ksz, partner_ksz(spec, partner[0]))))
+        maps = _sky_maps(spec, foot, cmb, both, tsz, rng)
         _lap(timings, "map", t0)
 
         curves = _pairwise_truth(tracers, spec)
@@ -369,9 +381,14 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
             z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
             timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
         record = _truth_record(truth, spec, curves)
+        if partner is not None:
+            record["partner"] = partner_record(spec, tracers_mean_tau=spec.tau_mean, n_written=partner[0].z.size,
+                                               clipped_fraction=partner[1])
 
         def fill(folder: Path) -> None:
             _write_survey(folder, spec, tracers, amplitudes.log_mass, foot, maps)
+            if partner is not None:
+                write_partner(folder, partner[0])
             if electron_temperature_kev is not None:
                 _write_tracer_truth(folder, tracers, amplitudes)
             (folder / "truth.json").write_text(json.dumps(record, indent=2, allow_nan=False) + "\n")
@@ -380,6 +397,16 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
 
         claim.write(fill)
     return truth
+
+
+def _partner_tracers(cone, delta0, u0, spec, rng):
+    """(tracers, clipped cell fraction) of the second catalogue, drawn from the same fields with its own
+    bias and number; None when the mock has none (nothing is drawn)."""
+    if spec.partner is None:
+        return None
+    sub = dataclasses.replace(spec, n_tracers=spec.partner.n_tracers, bias=spec.partner.bias)
+    cells, clipped = _poisson_cells(cone, delta0, sub, rng)
+    return _tracers_in_cone(cone, cells, u0, sub, rng), clipped
 
 
 def _lap(timings: dict, name: str, t0: float) -> None:
@@ -414,6 +441,7 @@ class _MockSpec:
     cosmo: Cosmology
     extra_noise: dict
     electron_temperature_kev: float | None = None
+    partner: PartnerSpec | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -716,6 +744,8 @@ def _options_record(spec: _MockSpec) -> dict:
     if options["electron_temperature_kev"] is None:  # the record of a mock without it stays as it was
         options.pop("electron_temperature_kev")
     options["cosmology"] = options.pop("cosmo")
+    if options.get("partner") is None:
+        options.pop("partner")
     if extra_noise:
         options["extra_frequencies_ghz"] = {f"{nu:g}": noise_nu for nu, noise_nu in extra_noise.items()}
     return _plain(options)

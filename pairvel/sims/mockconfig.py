@@ -65,6 +65,9 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
         "theory": {"bias": float(record["bias"])},
         "cosmology": dict(o["cosmology"]),  # every parameter as the mock recorded it (numbers and switches)
     }
+    if "partner" in record:  # a second, galaxy-like catalogue: the cross curve (README 'Clusters against galaxies')
+        sections["partner"] = {"path": record["partner"]["file"], "z_min": float(o["z_min"]),
+                               "z_max": float(o["z_max"]), "bias": float(record["partner"]["bias"])}
     single_cluster = bool(extra) and o.get("electron_temperature_kev") is not None
     if single_cluster:  # every map: combined without tSZ by `pairvel run`, split per cluster by `pairvel velocities`
         del sections["map"]
