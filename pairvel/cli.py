@@ -290,6 +290,9 @@ def _add_validate_parser(sub, common) -> None:
                      help=f"periodic field box over the cone's bounding box, per side (default {d.box_padding:g})")
     val.add_argument("--no-trend-model", action="store_true",
                      help="fit the plain template, without the predicted signal loss of the trend removal")
+    val.add_argument("--family", choices=("points", "cells"), default=d.family,
+                     help="mock construction: fields summed at each tracer (points, default) or tracers placed in "
+                          "grid cells with their cell's velocity, fitted with the grid's predicted window (cells)")
     val.add_argument("--no-diagnostics", action="store_true",
                      help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
     val.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
@@ -307,7 +310,8 @@ def _cmd_validate(args, run_log) -> int:
                             bin_width_mpc=args.bin_width, fit_r_min_mpc=args.fit_r_min,
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
                             exact_fields=not args.grid_fields, box_padding=args.box_padding,
-                            trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics)
+                            trend_model=not args.no_trend_model, diagnostics=not args.no_diagnostics,
+                            family=args.family)
     with claim_output_dir(args.out, force=args.force) as claim:  # fail before the mocks, not after
         _log.debug("output folder %s", claim.path)
         result = run_validation(opt, progress=_log.info)
