@@ -39,7 +39,7 @@ f(x) = max(1 + x, 0), no upper cap; :func:`pairvel.sims.validate._clipped_densit
 
 from __future__ import annotations
 
-__all__ = ["cell_window", "draw_cell_catalogue", "points_window"]
+__all__ = ["cell_window", "draw_cell_catalogue", "draw_cell_pair", "paired_window", "points_window"]
 
 import functools
 import math
@@ -98,7 +98,19 @@ def draw_cell_catalogue(opt, rng: np.random.Generator):
     velocity (module docstring); ``bias_eff`` is ``opt.bias`` times the mean over the tracers of
     E[f'] / E[f] for f(x) = max(1 + x, 0), x = b D(z) delta_0 (Stein's lemma, as the first family).
     """
-    from ..model.theory import growth_factor
+    return _draw(opt, rng, paired=False)[:5]
+
+
+def draw_cell_pair(opt, rng: np.random.Generator):
+    """As :func:`draw_cell_catalogue`, plus each tracer's line-of-sight velocity from the same Fourier modes
+    summed exactly at its position (km/s): the same tracers and field with only the velocity read differently,
+    so the two noiseless curves differ by far less than either scatters (``paired_exact``)."""
+    return _draw(opt, rng, paired=True)
+
+
+def _draw(opt, rng, *, paired: bool):
+    from ..model.theory import growth_factor, growth_rate
+    from ._fields import _gaussian_fields_at
     from .mock import _Cone, _poisson_cells, _tracers_in_cone
     from .validate import _clipped_density_moments
 
@@ -107,6 +119,8 @@ def draw_cell_catalogue(opt, rng: np.random.Generator):
     z_grid = np.linspace(opt.z_min, opt.z_max, 256)
     cone = _Cone(frame, lo, shape, opt.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=cosmo))
     spec = _CellSpec(opt)
+    twin = np.random.Generator(type(rng.bit_generator)())  # the same white noise for the exact sum
+    twin.bit_generator.state = rng.bit_generator.state
     delta0, u0 = node_fields(shape, opt.cell_mpc, rng)
     cells, _ = _poisson_cells(cone, delta0, spec, rng)
     tracers = _tracers_in_cone(cone, cells, u0, spec, rng)
@@ -115,7 +129,12 @@ def draw_cell_catalogue(opt, rng: np.random.Generator):
     growth = np.interp(tracers.z, z_grid, cone.growth)
     mean_f, slope_f = _clipped_density_moments(opt.bias * growth * sigma0, _NO_CAP)
     bias_eff = opt.bias * float(np.mean(slope_f / mean_f))
-    return tracers.ra, tracers.dec, tracers.z, tracers.v_r, bias_eff
+    v_exact = None
+    if paired:  # mock.py puts node i at the centre of cell i, lo + (i + 1/2) cell: shift the series' origin to match
+        _, u = _gaussian_fields_at(tracers.pos @ frame.T, lo + 0.5 * opt.cell_mpc, shape, opt.cell_mpc, cosmo, twin)
+        scale = cosmo.hubble_km_s_mpc(tracers.z) * growth_rate(tracers.z, cosmo=cosmo) * growth / (1.0 + tracers.z)
+        v_exact = np.einsum("ij,ij->i", (u @ frame) * scale[:, None], tracers.pos) / np.linalg.norm(tracers.pos, axis=1)
+    return tracers.ra, tracers.dec, tracers.z, tracers.v_r, bias_eff, v_exact
 
 
 @functools.lru_cache(maxsize=4)
@@ -206,6 +225,9 @@ def _window_cached(opt, edges: tuple, n_draw: int, seed: int, family: str) -> np
     mu = np.einsum("nd,nd->n", rhat, los)
     if family == "cells":
         corr = trilinear(node_cross_correlation(shape, opt.cell_mpc), shape, rhat * (r / opt.cell_mpc)[:, None])
+    elif family == "paired":  # density at one tracer's node, velocity exact at the other: one uniform offset
+        offset = rng.uniform(-0.5 * opt.cell_mpc, 0.5 * opt.cell_mpc, rhat.shape)
+        corr = _points_correlation(shape, opt.cell_mpc, rhat * r[:, None] + offset)
     else:
         corr = _points_correlation(shape, opt.cell_mpc, rhat * r[:, None])
     num = (mu * np.einsum("dn,nd->n", corr, los)).reshape(nb, n_draw).sum(axis=1)
@@ -233,6 +255,12 @@ def points_window(opt, edges, *, n_draw: int = 20000, seed: int = 1) -> np.ndarr
     amplitude it predicts.
     """
     return _window_cached(opt, tuple(float(e) for e in edges), int(n_draw), int(seed), "points").copy()
+
+
+def paired_window(opt, edges, *, n_draw: int = 20000, seed: int = 1) -> np.ndarray:
+    """The ratio for the paired curve of :func:`draw_cell_pair`: density read at a tracer's cell node, velocity
+    summed exactly at its partner, so the lag is the separation plus one uniform offset within a cell."""
+    return _window_cached(opt, tuple(float(e) for e in edges), int(n_draw), int(seed), "paired").copy()
 
 
 def trend_kept_summary(rows: dict, truth: float) -> dict:

@@ -133,6 +133,9 @@ class ValidationOptions:
         How the mocks are built: "points" sums the fields at each tracer (above); "cells" places
         tracers in the cells of a density grid with their cell's velocity, and multiplies the template
         by that construction's predicted window (:mod:`pairvel.sims.cellmock`).
+    paired_exact : bool, default False
+        With "cells", also sum the same Fourier modes exactly at each tracer and fit that noiseless
+        curve ("exact_signal_" columns): the same tracers and field, only the velocity read differently.
     """
 
     n_mocks: int = 100
@@ -165,6 +168,7 @@ class ValidationOptions:
     trend_model: bool = True
     diagnostics: bool = True
     family: str = "points"
+    paired_exact: bool = False
 
     def __post_init__(self):
         def need(ok, name, must):
@@ -191,6 +195,7 @@ class ValidationOptions:
         need(math.isfinite(self.box_padding) and 1.0 <= self.box_padding <= 4.0, "box_padding", "between 1 and 4")
         need(isinstance(self.exact_fields, bool), "exact_fields", "true or false")
         need(isinstance(self.trend_model, bool), "trend_model", "true or false")
+        need(isinstance(self.paired_exact, bool), "paired_exact", "true or false")
         need(self.ra_half_deg <= 60 and self.dec_half_deg <= 60, "dec_half_deg", "at most 60 (and ra_half_deg too)")
         need(0 < self.z_min < self.z_max <= 2, "z_max", f"in (z_min = {self.z_min}, 2] with z_min > 0")
         need(self.regions in ("kmeans", "healpix"), "regions", "'kmeans' or 'healpix'")
@@ -412,10 +417,14 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     from ..model.trendmodel import trend_transfer
     from ..pairs.geometry import comoving_positions
 
-    from .cellmock import cell_window, draw_cell_catalogue
+    from .cellmock import cell_window, draw_cell_catalogue, draw_cell_pair, paired_window
 
     rng = np.random.default_rng(seed_seq)
-    ra, dec, z, v_r, bias_eff = (draw_cell_catalogue if opt.family == "cells" else _draw_catalogue)(opt, rng)
+    v_exact = None
+    if opt.family == "cells" and opt.paired_exact:
+        ra, dec, z, v_r, bias_eff, v_exact = draw_cell_pair(opt, rng)
+    else:
+        ra, dec, z, v_r, bias_eff = (draw_cell_catalogue if opt.family == "cells" else _draw_catalogue)(opt, rng)
     dt = -opt.tau_mean * T_CMB_UK * v_r / C_KM_S
     if opt.with_map:
         temps, usable = _map_temperatures(opt, ra, dec, dt, rng)
@@ -427,6 +436,9 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     sets = remove_redshift_trend(raw, z, sigma_z=trend_cfg.sigma_z) if opt.trend else raw
     if opt.trend:  # the noiseless kSZ without the trend removal too: the fraction of the signal it keeps
         sets = np.vstack([sets, dt])
+    if v_exact is not None:  # last row: the paired noiseless kSZ of the exactly summed velocities
+        dt_exact = -opt.tau_mean * T_CMB_UK * v_exact / C_KM_S
+        sets = np.vstack([sets, remove_redshift_trend(dt_exact, z, sigma_z=trend_cfg.sigma_z) if opt.trend else dt_exact])
 
     pos = comoving_positions(ra, dec, z, cosmo=DEFAULT_COSMOLOGY)
     regions = _jackknife_regions(opt, ra, dec, rng)
@@ -465,6 +477,10 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     if opt.trend and opt.tau_mean > 0:  # "notrend_signal_": the noiseless kSZ without trend removal, against the template without the loss
         row.update(_fit_cases(opt, [("notrend_signal_", pr.p[2], pr.p_jk[2])], untrended_template, in_fit, n_jk))
         row["notrend_signal_p_uk"] = pr.p[2]
+    if v_exact is not None:
+        exact_template = template / row_window * paired_window(opt, edges)
+        row.update(_fit_cases(opt, [("exact_signal_", pr.p[-1], pr.p_jk[-1])], exact_template, in_fit, n_jk))
+        row["exact_signal_p_uk"] = pr.p[-1]
     row["dof"] = int(in_fit.sum()) - 1
     row["template_uk"] = template
     row["in_fit"] = in_fit
