@@ -29,7 +29,7 @@ def _load(folders):
         record = json.loads((folder / "summary.json").read_text())
         opt = record["provenance"]["options"]
         table = Table.read(folder / "mocks.ecsv")
-        key = (opt["family"], opt["box_padding"])
+        key = (opt["family"], opt["box_padding"], bool(opt.get("paired_exact", False)))
         entry = by_family.setdefault(key, {"tables": [], "seeds": [], "tau": opt["tau_mean"],
                                            "edges": np.array(record["edges_mpc"])})
         entry["tables"].append(table)
@@ -46,10 +46,11 @@ def _fmt(values, digits=3):
 
 
 def main(argv) -> int:
-    for (family, padding), entry in sorted(_load(argv).items()):
+    for (family, padding, paired), entry in sorted(_load(argv).items()):
         t = vstack(entry["tables"], metadata_conflicts="silent")
         tau, n = entry["tau"], len(t)
-        print(f"family {family}, box padding {padding}: {n} mocks; seeds (mocks) {', '.join(entry['seeds'])}")
+        print(f"family {family}{' (paired)' if paired else ''}, box padding {padding}: {n} mocks; "
+              f"seeds (mocks) {', '.join(entry['seeds'])}")
         for label, col in (("trend removed, template x predicted loss", "signal_tau_hat"),
                            ("no trend removal, plain template", "notrend_signal_tau_hat")):
             m, se = _mean_se(np.asarray(t[col]) / tau)
@@ -70,6 +71,11 @@ def main(argv) -> int:
         print(f"  signal kept by the trend removal, measured:  {_fmt(r)}")
         print(f"    standard errors:                          {_fmt(se)}")
         print(f"  signal kept by the trend removal, predicted: {_fmt(transfer.mean(axis=0))}")
+        if paired:
+            m, se = _mean_se(np.asarray(t["exact_signal_tau_hat"]) / tau)
+            print(f"  paired exact velocities, noiseless amplitude / truth: {m:.4f} +- {se:.4f}")
+            d, dse = _mean_se((np.asarray(t["signal_tau_hat"]) - np.asarray(t["exact_signal_tau_hat"])) / tau)
+            print(f"  cell velocities minus paired exact ones (each against its own window): {d:+.4f} +- {dse:.4f}")
         if "cell_window" in t.colnames:
             print(f"  cell window applied to the template: {_fmt(np.asarray(t['cell_window'])[0], 4)}")
     return 0
