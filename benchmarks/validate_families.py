@@ -45,8 +45,18 @@ def _fmt(values, digits=3):
     return ", ".join(f"{v:.{digits}f}" for v in values)
 
 
+def _kept(kept, plain):
+    """Mean noiseless curve with the trend removal over the one without, per bin, and its delta-method error."""
+    n = kept.shape[0]
+    r = kept.mean(axis=0) / plain.mean(axis=0)
+    cov = np.sum((kept - kept.mean(axis=0)) * (plain - plain.mean(axis=0)), axis=0) / (n - 1)
+    var = kept.var(axis=0, ddof=1) - 2 * r * cov + r**2 * plain.var(axis=0, ddof=1)
+    return r, np.sqrt(np.maximum(var, 0) / n) / np.abs(plain.mean(axis=0))
+
+
 def main(argv) -> int:
-    for (family, padding, paired), entry in sorted(_load(argv).items()):
+    groups = _load(argv)
+    for (family, padding, paired), entry in sorted(groups.items()):
         t = vstack(entry["tables"], metadata_conflicts="silent")
         tau, n = entry["tau"], len(t)
         print(f"family {family}{' (paired)' if paired else ''}, box padding {padding}: {n} mocks; "
@@ -63,11 +73,7 @@ def main(argv) -> int:
             mean, se = ratio.mean(axis=0), ratio.std(axis=0, ddof=1) / math.sqrt(n)
             print(f"  per bin, mean curve / (tau x template), {label}: {_fmt(mean)}")
             print(f"    standard errors: {_fmt(se)}")
-        kept, plain = np.asarray(t["signal_p_uk"]), np.asarray(t["notrend_signal_p_uk"])
-        r = kept.mean(axis=0) / plain.mean(axis=0)
-        cov = np.sum((kept - kept.mean(axis=0)) * (plain - plain.mean(axis=0)), axis=0) / (n - 1)
-        var = kept.var(axis=0, ddof=1) - 2 * r * cov + r**2 * plain.var(axis=0, ddof=1)
-        se = np.sqrt(np.maximum(var, 0) / n) / np.abs(plain.mean(axis=0))
+        r, se = _kept(np.asarray(t["signal_p_uk"]), np.asarray(t["notrend_signal_p_uk"]))
         print(f"  signal kept by the trend removal, measured:  {_fmt(r)}")
         print(f"    standard errors:                          {_fmt(se)}")
         print(f"  signal kept by the trend removal, predicted: {_fmt(transfer.mean(axis=0))}")
@@ -78,6 +84,17 @@ def main(argv) -> int:
             print(f"  cell velocities minus paired exact ones (each against its own window): {d:+.4f} +- {dse:.4f}")
         if "cell_window" in t.colnames:
             print(f"  cell window applied to the template: {_fmt(np.asarray(t['cell_window'])[0], 4)}")
+    for family in sorted({key[0] for key in groups}):
+        tables = [t for key, e in groups.items() if key[0] == family for t in e["tables"]]
+        tau = next(e["tau"] for key, e in groups.items() if key[0] == family)
+        for label, col in (("trend removed", "signal_tau_hat"), ("no trend removal", "notrend_signal_tau_hat")):
+            x = np.concatenate([np.asarray(t[col]) for t in tables]) / tau
+            m, se = _mean_se(x)
+            print(f"family {family}, all {x.size} mocks, {label}: {m:.4f} +- {se:.4f}")
+        r, se = _kept(*(np.concatenate([np.asarray(t[c]) for t in tables]) for c in ("signal_p_uk", "notrend_signal_p_uk")))
+        pred = np.concatenate([np.asarray(t["trend_transfer"]) for t in tables]).mean(axis=0)
+        print(f"family {family}, all mocks, kept measured:  {_fmt(r)}\n    standard errors: {_fmt(se)}\n"
+              f"    predicted: {_fmt(pred)}")
     return 0
 
 
