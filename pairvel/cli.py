@@ -347,6 +347,12 @@ def _add_validate_parser(sub, common) -> None:
     val.add_argument("--jackknife-deletes", choices=("tracers", "pairs"), default=d.jackknife_deletes,
                      help=f"jackknife sample k drops region k's tracers or every pair touching it, as "
                           f"covariance.jackknife_deletes (default {d.jackknife_deletes}; both are summarised)")
+    val.add_argument("--family", choices=("points", "cells"), default=d.family,
+                     help="mock construction: fields summed at each tracer (points, default) or tracers placed in "
+                          "grid cells with their cell's velocity, fitted with the grid's predicted window (cells)")
+    val.add_argument("--paired-exact", action="store_true",
+                     help="with --family cells, also fit the noiseless curve of the same modes summed exactly at "
+                          "each tracer (same tracers and field, only the velocity read differently)")
     val.add_argument("--no-diagnostics", action="store_true",
                      help="skip the object-split and re-trended jackknife diagnostics (2-3 times faster)")
     val.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
@@ -365,7 +371,8 @@ def _cmd_validate(args, run_log) -> int:
                             fit_r_max_mpc=args.fit_r_max, likelihood=args.likelihood, cell_mpc=args.cell_mpc,
                             exact_fields=not args.grid_fields, box_padding=args.box_padding,
                             trend_model=not args.no_trend_model, jackknife_deletes=args.jackknife_deletes,
-                            diagnostics=not args.no_diagnostics)
+                            diagnostics=not args.no_diagnostics,
+                            family=args.family, paired_exact=args.paired_exact)
     with claim_output_dir(args.out, force=args.force) as claim:  # fail before the mocks, not after
         _log.debug("output folder %s", claim.path)
         result = run_validation(opt, progress=_log.info)

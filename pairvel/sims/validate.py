@@ -137,6 +137,13 @@ class ValidationOptions:
         k.  Both are computed (from the same re-trended sets) and summarised either way.
     diagnostics : bool, default True
         Also compute the object-split and re-trended jackknives (2-3 times slower).
+    family : {"points", "cells"}, default "points"
+        How the mocks are built: "points" sums the fields at each tracer (above); "cells" places
+        tracers in the cells of a density grid with their cell's velocity, and multiplies the template
+        by that construction's predicted window (:mod:`pairvel.sims.cellmock`).
+    paired_exact : bool, default False
+        With "cells", also sum the same Fourier modes exactly at each tracer and fit that noiseless
+        curve ("exact_signal_" columns): the same tracers and field, only the velocity read differently.
     """
 
     n_mocks: int = 100
@@ -169,6 +176,8 @@ class ValidationOptions:
     trend_model: bool = True
     jackknife_deletes: str = "pairs"
     diagnostics: bool = True
+    family: str = "points"
+    paired_exact: bool = False
 
     def __post_init__(self):
         def need(ok, name, must):
@@ -195,11 +204,13 @@ class ValidationOptions:
         need(math.isfinite(self.box_padding) and 1.0 <= self.box_padding <= 4.0, "box_padding", "between 1 and 4")
         need(isinstance(self.exact_fields, bool), "exact_fields", "true or false")
         need(isinstance(self.trend_model, bool), "trend_model", "true or false")
+        need(isinstance(self.paired_exact, bool), "paired_exact", "true or false")
         need(self.ra_half_deg <= 60 and self.dec_half_deg <= 60, "dec_half_deg", "at most 60 (and ra_half_deg too)")
         need(0 < self.z_min < self.z_max <= 2, "z_max", f"in (z_min = {self.z_min}, 2] with z_min > 0")
         need(self.regions in ("kmeans", "healpix"), "regions", "'kmeans' or 'healpix'")
         need(self.jackknife_deletes in ("tracers", "pairs"), "jackknife_deletes", "'tracers' or 'pairs'")
         need(self.likelihood in LIKELIHOODS, "likelihood", "one of " + ", ".join(map(repr, LIKELIHOODS)))
+        need(self.family in ("points", "cells"), "family", "'points' or 'cells'")
         need(self.fit_r_max_mpc > self.fit_r_min_mpc, "fit_r_max_mpc", f"> fit_r_min_mpc = {self.fit_r_min_mpc}")
         if self.with_map and _centres_per_disc(self.nside, self.aperture_radius_arcmin) < 1.0:
             fine = [n for n in (2 ** k for k in range(6, 14)) if _centres_per_disc(n, self.aperture_radius_arcmin) >= 1]
@@ -424,8 +435,14 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     from ..model.trendmodel import trend_transfer
     from ..pairs.geometry import comoving_positions
 
+    from .cellmock import cell_window, draw_cell_catalogue, draw_cell_pair, paired_window
+
     rng = np.random.default_rng(seed_seq)
-    ra, dec, z, v_r, bias_eff = _draw_catalogue(opt, rng)
+    v_exact = None
+    if opt.family == "cells" and opt.paired_exact:
+        ra, dec, z, v_r, bias_eff, v_exact = draw_cell_pair(opt, rng)
+    else:
+        ra, dec, z, v_r, bias_eff = (draw_cell_catalogue if opt.family == "cells" else _draw_catalogue)(opt, rng)
     dt = -opt.tau_mean * T_CMB_UK * v_r / C_KM_S
     if opt.with_map:
         temps, usable = _map_temperatures(opt, ra, dec, dt, rng)
@@ -435,6 +452,11 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     raw = np.vstack([temps, dt])  # measured, and the noiseless kSZ (same pairs and regions)
     trend_cfg = TrendConfig()
     sets = remove_redshift_trend(raw, z, sigma_z=trend_cfg.sigma_z) if opt.trend else raw
+    if opt.trend:  # the noiseless kSZ without the trend removal too: the fraction of the signal it keeps
+        sets = np.vstack([sets, dt])
+    if v_exact is not None:  # last row: the paired noiseless kSZ of the exactly summed velocities
+        dt_exact = -opt.tau_mean * T_CMB_UK * v_exact / C_KM_S
+        sets = np.vstack([sets, remove_redshift_trend(dt_exact, z, sigma_z=trend_cfg.sigma_z) if opt.trend else dt_exact])
 
     pos = comoving_positions(ra, dec, z, cosmo=DEFAULT_COSMOLOGY)
     regions = _jackknife_regions(opt, ra, dec, rng)
@@ -455,7 +477,13 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     v12, _ = template_for_run(theory_cfg, DEFAULT_COSMOLOGY, edges, pair_counts=pr.pair_counts, z_tracers=z,
                               z_eff=z_eff, z_eff_bins=pr.z_eff)
     template = T_CMB_UK * v12 / C_KM_S
+    if opt.family == "cells":
+        row_window = cell_window(opt, edges)
+        template = template * row_window
+    untrended_template = template
     row = {"n_tracers": int(ra.size), "n_jk": n_jk, "z_eff": z_eff, "bias_eff": bias_eff}
+    if opt.family == "cells":
+        row["cell_window"] = row_window
     if opt.trend and opt.trend_model:
         transfer = trend_transfer(pos, z, edges, trend_cfg.sigma_z, seed=rng, wiggles=theory_cfg.wiggles)
         template = template * transfer.factor
@@ -470,6 +498,13 @@ def _one_mock(opt: ValidationOptions, seed_seq: np.random.SeedSequence, edges: n
     if opt.diagnostics:
         cases += [("objsplit_", pr.p[0], p_obj_jk[0]), ("plainjk_", pr.p[0], pr.p_jk[0])]
     row.update(_fit_cases(opt, cases, template, in_fit, n_jk))
+    if opt.trend and opt.tau_mean > 0:  # "notrend_signal_": the noiseless kSZ without trend removal, against the template without the loss
+        row.update(_fit_cases(opt, [("notrend_signal_", pr.p[2], pr.p_jk[2])], untrended_template, in_fit, n_jk))
+        row["notrend_signal_p_uk"] = pr.p[2]
+    if v_exact is not None:
+        exact_template = template / row_window * paired_window(opt, edges)
+        row.update(_fit_cases(opt, [("exact_signal_", pr.p[-1], pr.p_jk[-1])], exact_template, in_fit, n_jk))
+        row["exact_signal_p_uk"] = pr.p[-1]
     row["dof"] = int(in_fit.sum()) - 1
     row["template_uk"] = template
     row["in_fit"] = in_fit
@@ -655,6 +690,10 @@ def _tail_summary(out: dict, rows: dict, opt: ValidationOptions) -> dict:
     out["neighbour_bin_correlation_mocks"] = float(np.nanmean(np.diag(corr_mocks, 1)))
     out["n_tracers_mean"] = float(np.mean(rows["n_tracers"]))
     out["n_jk_mean"] = float(np.mean(rows["n_jk"]))
+    if "notrend_signal_tau_hat" in rows:
+        from .cellmock import trend_kept_summary
+
+        out.update(trend_kept_summary(rows, truth))
     return out
 
 
@@ -789,6 +828,10 @@ def format_summary(result: ValidationResult) -> str:
             f"    jackknife error / scatter {c['error_ratio']:.3f} ± {c['error_ratio_se']:.3f} (target 0.85-1.15): "
             f"{mark[ok['error_ratio']]}",
         ]
+    if "noiseless_signal_no_trend" in s:
+        from .cellmock import trend_kept_lines
+
+        lines += trend_kept_lines(s)
     lines.append(f"  mean best-fit chi2 {s['chi2_min_mean']:.2f} ± {s['chi2_min_mean_se']:.2f} for {s['dof']} dof")
     per_bin = ", ".join(f"{v:.2f}±{e:.2f}" for v, e in zip(s["per_bin_jk_error_over_scatter"],
                                                             s["per_bin_jk_error_over_scatter_se"]))
