@@ -121,6 +121,10 @@ def _closing_summary(result, out: Path) -> str:
     if spread is not None:
         lines.append(f"  tau_mean over {spread['n_seeds']} region seeds: std {spread['std_over_error']:.2f} of its error "
                      f"(range {min(spread['tau_mean']):.3e} to {max(spread['tau_mean']):.3e})")
+    if "mass_trend" in result.extra:
+        from .stats.masstrend import mass_trend_line
+
+        lines += [line for line in (mass_trend_line(result.extra["mass_trend"]),) if line]
     for n in result.nulls:
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
                      f"(PTE {n.pte_mean:.2g}): {'pass' if n.passed else 'FAIL'}")

@@ -57,7 +57,8 @@ from .stats.covdiag import covariance_diagnostics
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import evaluate_null, rotated_sets, shuffled_sets
-from .stats.radii import fit_radii
+from .stats.masstrend import fit_mass_trend
+from .stats.radii import fit_radii, radius_joint
 from .stats.regionseeds import summarise_spread
 from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
 from .stats.subsamples import fit_proxy_bins
@@ -124,9 +125,11 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood)
+        radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
-                          temps=temps[0], regions=regions, edges=edges, power=power, progress=progress)
+                          temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
+                          retrended=retrended[:cov.n_jk] if stack.n_retrend else None, radii_joint=radii_joint)
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
     prov = provenance(cfg, cat, sky, started, stored)
@@ -675,7 +678,7 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
 
 # ---------------------------------------------------------------------------- what else is kept
 def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult, radius_fits, sky: SkyInputs,
-                  rotations, spread, **data) -> dict:
+                  rotations, spread, *, radii_joint=None, **data) -> dict:
     """Everything beyond the main curve and fit: optional fits and map-stage records, as data.
 
     Each key needs a blinding rule (``pairvel.report.blinding.EXTRA_RULES``); report sections are
@@ -686,6 +689,8 @@ def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult
         extra["region_seed_spread"] = spread
     if len(radius_fits) > 1:
         extra["radius_fits"] = radius_fits
+    if radii_joint is not None:
+        extra["radius_joint"] = radii_joint
     extra.update(extra_fits(cfg, fit, model, cov.n_samples, **data))
     if sky.prefilter is not None:  # harmonic-space filter of the map
         extra["prefilter"] = sky.prefilter.info()
@@ -698,16 +703,23 @@ def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult
 
 
 def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, positions, temps, regions, edges,
-               power, progress) -> dict:
-    """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
+               power, progress, retrended=None) -> dict:
+    """Optional fits after the main one: per proxy bin (with their joint covariance and tau against
+    mass), and tau_mean jointly with f sigma_8."""
     out = {}
     th = cfg.theory
     if th.proxy_bin_edges is not None:
         progress.say(f"      fits in {len(th.proxy_bin_edges) - 1} bins of {cfg.catalogue.proxy_column}")
-        out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
-                                           temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
-                                           in_fit=model.in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
-                                           n_threads=cfg.compute.n_threads, template_factor=model.trend_factor)
+        bins, joint = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions, temperatures=temps,
+                                     redshifts=cat.z, regions=regions, edges=edges, in_fit=model.in_fit, theory_cfg=th,
+                                     cosmo=cfg.cosmology, power=power, n_threads=cfg.compute.n_threads,
+                                     template_factor=model.trend_factor, retrended=retrended, weights=cat.weight)
+        out["proxy_bins"] = bins
+        if joint is not None:
+            out["proxy_joint"] = joint
+        if th.proxy_power_law is not None:
+            out["mass_trend"] = fit_mass_trend(bins, joint, proxy=cat.proxy, proxy_scale=th.proxy_power_law,
+                                               weights=cat.weight)
     if th.fit_velocity_scale:
         prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
         out["velocity_scale_fit"] = fit_velocity_scale(fit, model.info["f_sigma8_template"], n_samples=n_samples,
