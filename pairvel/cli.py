@@ -85,6 +85,8 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--nside", type=int, default=2048, help="HEALPix nside of the map (default 2048)")
     mock.add_argument("--tau-mean", type=float, default=None, help="injected mean aperture optical depth")
     mock.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    mock.add_argument("--tau-mass-slope", type=float, default=None, metavar="ALPHA",
+                      help="inject tau proportional to M^ALPHA (default 2/3)")
     mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
                       help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
                            "noise); repeat for several")
@@ -235,6 +237,8 @@ def _cmd_mock(args) -> int:
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
         options["tau_mean"] = args.tau_mean
+    if args.tau_mass_slope is not None:
+        options["tau_mass_slope"] = args.tau_mass_slope
     if args.extra_frequency:
         options["extra_frequencies_ghz"] = args.extra_frequency
     truth = make_mock_survey(args.out, **options, progress=_log.info)

@@ -127,8 +127,12 @@ class _PowerLawModel:
         return float(r @ self.psi @ r), float(tau0)
 
     def best_alpha(self, pivot):
-        grid = np.linspace(*_ALPHA_RANGE, 1001)
-        chi2 = np.array([self.profile(a, pivot)[0] for a in grid])
+        grid = np.linspace(*_ALPHA_RANGE, 401)
+        g = np.array([np.exp(np.outer(grid, np.log(m / pivot))) @ w for m, w in zip(self.masses, self.wts)]).T
+        gp = g @ self.psi
+        tau0 = (gp @ self.tau) / np.einsum("ab,ab->a", gp, g)
+        r = self.tau[None, :] - tau0[:, None] * g
+        chi2 = np.einsum("ab,bc,ac->a", r, self.psi, r)
         k = int(np.argmin(chi2))
         if k in (0, grid.size - 1):
             return None
