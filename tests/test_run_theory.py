@@ -80,3 +80,23 @@ def test_empty_proxy_bin_is_reported_not_fatal(tiny_survey):
     bins = json.loads((tiny_survey / "out" / "summary.json").read_text())["proxy_bins"]["bins"]
     assert bins[0]["tau_mean_error"] > 0 and bins[0]["problem"] is None
     assert bins[1]["n_tracers"] == 0 and bins[1]["problem"] == "only 0 tracers" and "tau_mean" not in bins[1]
+
+
+def test_tau_against_mass_on_noise_is_reported_not_fatal(tiny_survey, capsys):
+    """Three proxy bins with theory.proxy_power_law on the noise-only survey: the bins' joint covariance is in
+    summary.json and the report; the power law, which noise cannot constrain (alpha runs to the edge of its
+    range), is reported as not fitted, with no figure and no closing line (the fitted case:
+    tests/report/test_blinding_holds.py)."""
+    assert run(tiny_survey, 'proxy_bin_edges = [14.0, 14.33, 14.67, 15.0]\nproxy_power_law = "log10"\n') == 0
+    out = tiny_survey / "out"
+    s = json.loads((out / "summary.json").read_text())
+    joint = s["joint_covariances"]["proxy_joint"]
+    assert joint["bins"] == [0, 1, 2] and np.array(joint["covariance"]).shape == (12, 12)
+    np.testing.assert_allclose(joint["tau"], [b["tau_mean"] for b in s["proxy_bins"]["bins"]], rtol=1e-10)
+    assert s["tau_against_mass"] == {"problem": "the best alpha lies outside [-5.0, 5.0]", "n_bins_fitted": 3}
+    report = (out / "report.md").read_text()
+    assert "## Optical depth against mass" in report and "No power law fitted: the best alpha lies outside" in report
+    assert "best of 3 bins fitted" in report and "Correlation of tau_mean between bins" in report
+    assert not (out / "tau_vs_mass.png").exists() and "tau(M):" not in capsys.readouterr().out
+    assert run(tiny_survey, 'proxy_bin_edges = [14.0, 15.0]\nproxy_power_law = "log10"\n') == 2
+    assert "theory.proxy_power_law" in error_line(capsys)
