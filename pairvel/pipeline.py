@@ -713,7 +713,8 @@ def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, 
         bins, joint = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions, temperatures=temps,
                                      redshifts=cat.z, regions=regions, edges=edges, in_fit=model.in_fit, theory_cfg=th,
                                      cosmo=cfg.cosmology, power=power, n_threads=cfg.compute.n_threads,
-                                     template_factor=model.trend_factor, retrended=retrended, weights=cat.weight)
+                                     template_factor=model.trend_factor, retrended=retrended, weights=cat.weight,
+                                     tau_all=fit.amplitude)
         out["proxy_bins"] = bins
         if joint is not None:
             out["proxy_joint"] = joint

@@ -58,7 +58,7 @@ class ProxyBinFit:
 
 def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, regions, edges, in_fit,
                    theory_cfg, cosmo, power=None, n_threads=None, template_factor=None, retrended=None,
-                   weights=None) -> tuple:
+                   weights=None, tau_all=None) -> tuple:
     """Fit tau_mean separately in each bin [lo, hi) of the proxy, and the joint covariance of the bins.
 
     Parameters
@@ -76,9 +76,14 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
     cosmo : Cosmology
     power : TabulatedPower, optional
     template_factor : ndarray of shape (nbins,), optional
-        Per-bin factor on every bin's template: the whole run's signal fraction kept by the
-        redshift-trend removal (the trend is removed once from the whole sample, so its shells are
-        the same for every proxy bin).
+        The whole run's signal fraction F(r) kept by the redshift-trend removal.  The trend is
+        removed once from the whole sample, and what it takes from a pair is the shells' mean
+        temperature, whose optical depth is the whole sample's, not the bin's; so a bin's curve is
+        modelled as (tau_b - tau_all (1 - F)) t_b with t_b = T_CMB v12_b / c, and fitted as
+        p_b + tau_all (1 - F) t_b = tau_b t_b.  Without ``tau_all`` it multiplies the template
+        (tau_b F t_b: exact only when every bin has the sample's optical depth).
+    tau_all : float, optional
+        The whole sample's fitted tau_mean (with ``template_factor``).
     retrended : ndarray of shape (n_jk, n), optional
         The primary radius's temperatures with the redshift trend estimated without each region
         (:func:`pairvel.pipeline.retrended_sets`): when given, bin sample k uses set k, as the
@@ -125,9 +130,13 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
         z_eff = float(np.sum(weight * np.nan_to_num(pr.z_eff)) / np.sum(weight))
         v12, _ = template_for_run(theory_cfg, cosmo, edges, pair_counts=pr.pair_counts, z_tracers=redshifts[sel],
                                   z_eff=z_eff, power=power)
-        if template_factor is not None:
-            v12 = v12 * template_factor
-        p, samples, t_uk = np.where(ok, pr.p[0], 0.0), np.where(ok, samples, 0.0), T_CMB_UK * v12 / C_KM_S
+        t_uk = T_CMB_UK * v12 / C_KM_S
+        offset = np.zeros_like(t_uk)
+        if template_factor is not None and tau_all is not None:  # the trend's loss follows the whole sample's tau
+            offset = tau_all * (1.0 - template_factor) * t_uk
+        elif template_factor is not None:
+            t_uk = t_uk * template_factor
+        p, samples = np.where(ok, pr.p[0], 0.0) + offset, np.where(ok, samples, 0.0) + offset
         try:
             fit = fit_amplitude(p, t_uk, jackknife_covariance(samples), n_samples=n_reg, use=in_fit,
                                 likelihood=theory_cfg.likelihood)
