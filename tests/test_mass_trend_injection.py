@@ -3,9 +3,12 @@ fitted across proxy bins with their joint covariance returns alpha and tau_0 wit
 
 The mocks paint each tracer's kSZ with a 2.5' beam and measure 4' apertures, small enough that
 neighbouring tracers rarely fall into each other's apertures (with 8' apertures and a 5' beam on the
-same 6000-tracer patch, six mocks gave a mean tau_0 pull of +1.5 and a mean alpha pull of -0.9
-(measured 2026-12-05): a neighbour's signal in the annulus or disc adds the sample's mean optical depth
-to every bin, which flattens the relation; see README "Optical depth against mass").
+same 6000-tracer patch, seven mocks gave a mean tau_0 pull of +1.4 and a mean alpha pull of -0.9,
+measured 2026-12-05: a neighbour's signal in the disc or annulus adds the sample's mean optical depth
+to every bin, which would flatten the relation).  On nine mocks of this setting (seeds 3-11, measured
+2026-12-05) the pulls scattered by about 2 (alpha) and 1.7 (tau_0), and the whole-sample tau_mean
+pulls by 1.5: the validation test below states the target and fails until that is understood (README
+"Optical depth against mass").
 """
 
 import json
@@ -52,7 +55,7 @@ def pulls(folder, seed):
 @pytest.mark.slow
 def test_power_law_recovered_on_a_few_mocks(tmp_path):
     """Three mocks: each pull within 3.5 and the mean pulls within 3 / sqrt(3) of zero (unit-variance pulls;
-    measured on seeds 3-5 on 2026-12-05: alpha pulls 1.15, -0.39, 2.05, tau_0 pulls 0.14, -0.55, 2.36)."""
+    measured on seeds 3-5 on 2026-12-05: alpha pulls 0.88, -0.49, 2.06, tau_0 pulls -0.13, -0.61, 2.20)."""
     p = np.array([pulls(tmp_path / f"m{seed}", seed) for seed in (3, 4, 5)])
     assert np.all(np.abs(p) < 3.5), p
     assert np.all(np.abs(p.mean(axis=0)) < 3 / np.sqrt(3)), p

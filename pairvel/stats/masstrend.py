@@ -185,7 +185,7 @@ def mass_trend_report(trend: dict, *, proxy_name: str) -> str:
              f"- alpha = {trend['alpha']:.3f} ± {trend['alpha_error']:.3f}; against alpha = 0: Delta chi2 = "
              f"{trend['delta_chi2_alpha0']:.2f} ({trend['alpha_significance']:+.2f} sigma, PTE {trend['pte_alpha0']:.3g})",
              f"- chi2 = {trend['chi2_min']:.2f} for {trend['dof']} dof (PTE {pte})", "",
-             "| bin | geometric-mean M | tau_mean | error | power law |", "|---:|---:|---:|---:|---:|"]
+             "| bin | geometric-mean M | tau_mean | error (joint covariance, before Hartlap) | power law |", "|---:|---:|---:|---:|---:|"]
     for b, m, t, e, mod in zip(trend["bins"], trend["mass_geometric_mean"], trend["tau"], trend["tau_error"],
                                trend["model_tau"]):
         lines.append(f"| {b} | {m:.4g} | {t:.4e} | {e:.4e} | {mod:.4e} |")
