@@ -11,45 +11,33 @@ pulls by 1.5: the validation test below states the target and fails until that i
 "Optical depth against mass").
 """
 
+import importlib.util
 import json
-import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from pairvel.input.config import config_from_dict
-from pairvel.pipeline import run_pipeline
-from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
-
 ALPHA = 1.0
-PROXY_EDGES = [14.0, 14.1, 14.25, 14.45, 15.0]
-MOCK = dict(n_tracers=6000, nside=1024, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
-            tau_mean=1.0e-2, bias=0.4, cell_mpc=8.0, beam_fwhm_arcmin=2.5, noise_uk_arcmin=10.0,
-            aperture_radius_arcmin=4.0, include_cmb=True, tau_mass_slope=ALPHA)
+_BENCH = Path(__file__).resolve().parents[1] / "benchmarks" / "mass_trend_mocks.py"
+
+
+def _bench():
+    """benchmarks/mass_trend_mocks.py, whose mocks and run the README's numbers come from."""
+    spec = importlib.util.spec_from_file_location("mass_trend_mocks", _BENCH)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 def pulls(folder, seed):
-    """(alpha pull, tau_0 pull) of one mock; the true tau_0 is the injected law at the fit's pivot times the
-    mock's measured aperture response."""
-    truth = make_mock_survey(folder, seed=seed, **MOCK)
-    cfg = config_from_dict({
-        "run": {"seed": seed},
-        "catalogue": {"path": str(folder / CATALOGUE_FILE), "proxy_column": "log_mass"},
-        "map": {"path": str(folder / MAP_FILE)},
-        "aperture": {"radius_arcmin": MOCK["aperture_radius_arcmin"]},
-        "bins": {"r_max_mpc": 200.0, "width_mpc": 20.0},
-        "covariance": {"n_regions": 30},
-        "theory": {"bias": 0.4, "proxy_bin_edges": PROXY_EDGES, "proxy_power_law": "log10"},
-        "nulls": {"n_random": 0, "n_shuffle": 0, "n_shuffle_z": 0, "rotation_deg": []},
-    })
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fit = run_pipeline(cfg).extra["mass_trend"]
-    assert fit["problem"] is None, fit
-    rel = truth.tau_mass_relation
-    assert rel["slope"] == ALPHA and json.loads((folder / "truth.json").read_text())["tau_mass_relation"] == rel
-    tau_0 = rel["tau_at_pivot"] * truth.aperture_response * (fit["pivot_mass"] / 10 ** rel["log10_mass_pivot"]) ** ALPHA
-    return (fit["alpha"] - ALPHA) / fit["alpha_error"], (fit["tau_0"] - tau_0) / fit["tau_0_error"]
+    """(alpha pull, tau_0 pull) of one mock of the small-aperture setting; the true tau_0 is the injected law
+    at the fit's pivot times the mock's measured aperture response."""
+    bench = _bench()
+    row = bench.one_mock(folder, seed, bench.SETTINGS["small-aperture"], ALPHA, True)
+    assert "problem" not in row, row
+    assert json.loads((folder / "truth.json").read_text())["tau_mass_relation"]["slope"] == ALPHA
+    return row["pull_alpha"], row["pull_tau0"]
 
 
 @pytest.mark.slow
