@@ -85,6 +85,8 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--nside", type=int, default=2048, help="HEALPix nside of the map (default 2048)")
     mock.add_argument("--tau-mean", type=float, default=None, help="injected mean aperture optical depth")
     mock.add_argument("--seed", type=int, default=20261202, help="random seed (default 20261202)")
+    mock.add_argument("--tau-mass-slope", type=float, default=None, metavar="ALPHA",
+                      help="inject tau proportional to M^ALPHA (default 2/3)")
     mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
                       help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
                            "noise); repeat for several")
@@ -145,6 +147,10 @@ def _closing_summary(result, out: Path) -> str:
         from .stats.cross import cross_summary_line
 
         lines.append(cross_summary_line(result.extra["cross"]))
+    if "mass_trend" in result.extra:
+        from .stats.masstrend import mass_trend_line
+
+        lines += [line for line in (mass_trend_line(result.extra["mass_trend"]),) if line]
     for n in result.nulls:
         flag = {"low": ": LOW, below 0.01", "high": ": HIGH, above 0.99"}.get(pte_flag(n.pte_mean), "")
         lines.append(f"  null {n.kind} ({n.n_real} sets): chi2 of mean curve = {n.chi2_mean:.1f} / {n.dof} "
@@ -257,6 +263,8 @@ def _cmd_mock(args) -> int:
     options = {"n_tracers": args.n_tracers, "nside": args.nside, "seed": args.seed}
     if args.tau_mean is not None:
         options["tau_mean"] = args.tau_mean
+    if args.tau_mass_slope is not None:
+        options["tau_mass_slope"] = args.tau_mass_slope
     if args.extra_frequency:
         options["extra_frequencies_ghz"] = args.extra_frequency
     if args.partner_tracers:

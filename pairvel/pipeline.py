@@ -61,7 +61,8 @@ from .stats.cross import cross_pairs, load_partner
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null, rotated_sets, shuffled_sets, slice_means
-from .stats.radii import fit_radii
+from .stats.masstrend import fit_mass_trend
+from .stats.radii import fit_radii, radius_joint
 from .stats.regionseeds import summarise_spread
 from .stats.significance import empirical_significance, fitted_amplitudes
 from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
@@ -134,11 +135,13 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
+        radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
         cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
-                          v12_table=v12_table)
+                          v12_table=v12_table, retrended=retrended[:cov.n_jk] if stack.n_retrend else None,
+                          radii_joint=radii_joint)
     extra["empirical_significance"] = significance(fit, model, cov, pr, stack)
     if cross is not None:
         extra["cross"] = cross
@@ -777,7 +780,7 @@ def cross_curve(cfg: Config, sky: SkyInputs, partner, cat: Catalogue, positions,
 
 # ---------------------------------------------------------------------------- what else is kept
 def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult, radius_fits, sky: SkyInputs,
-                  rotations, spread, **data) -> dict:
+                  rotations, spread, *, radii_joint=None, **data) -> dict:
     """Everything beyond the main curve and fit: optional fits and map-stage records, as data.
 
     Each key needs a blinding rule (``pairvel.report.blinding.EXTRA_RULES``); report sections are
@@ -788,6 +791,8 @@ def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult
         extra["region_seed_spread"] = spread
     if len(radius_fits) > 1:
         extra["radius_fits"] = radius_fits
+    if radii_joint is not None:
+        extra["radius_joint"] = radii_joint
     extra.update(extra_fits(cfg, fit, model, cov.n_samples, **data))
     if sky.prefilter is not None:  # harmonic-space filter of the map
         extra["prefilter"] = sky.prefilter.info()
@@ -800,17 +805,24 @@ def extra_results(cfg: Config, fit, model: TemplateResult, cov: CovarianceResult
 
 
 def extra_fits(cfg: Config, fit, model: TemplateResult, n_samples: int, *, cat, positions, temps, regions, edges,
-               power, progress, v12_table=None) -> dict:
-    """Optional fits after the main one: per proxy bin, and tau_mean jointly with f sigma_8."""
+               power, progress, v12_table=None, retrended=None) -> dict:
+    """Optional fits after the main one: per proxy bin (with their joint covariance and tau against
+    mass), and tau_mean jointly with f sigma_8."""
     out = {}
     th = cfg.theory
     if th.proxy_bin_edges is not None:
         progress.say(f"      fits in {len(th.proxy_bin_edges) - 1} bins of {cfg.catalogue.proxy_column}")
-        out["proxy_bins"] = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions,
-                                           temperatures=temps, redshifts=cat.z, regions=regions, edges=edges,
-                                           in_fit=model.in_fit, theory_cfg=th, cosmo=cfg.cosmology, power=power,
-                                           n_threads=cfg.compute.n_threads, template_factor=model.trend_factor,
-                                           v12_table=v12_table)
+        bins, joint = fit_proxy_bins(th.proxy_bin_edges, proxy=cat.proxy, positions=positions, temperatures=temps,
+                                     redshifts=cat.z, regions=regions, edges=edges, in_fit=model.in_fit, theory_cfg=th,
+                                     cosmo=cfg.cosmology, power=power, n_threads=cfg.compute.n_threads,
+                                     template_factor=model.trend_factor, retrended=retrended, weights=cat.weight,
+                                     tau_all=fit.amplitude, v12_table=v12_table)
+        out["proxy_bins"] = bins
+        if joint is not None:
+            out["proxy_joint"] = joint
+        if th.proxy_power_law is not None:
+            out["mass_trend"] = fit_mass_trend(bins, joint, proxy=cat.proxy, proxy_scale=th.proxy_power_law,
+                                               weights=cat.weight)
     if th.fit_velocity_scale:
         prior = None if th.tau_prior_mean is None else (th.tau_prior_mean, th.tau_prior_sigma)
         out["velocity_scale_fit"] = fit_velocity_scale(fit, model.info["f_sigma8_template"], n_samples=n_samples,

@@ -431,6 +431,9 @@ CONFIG_CASES = [
                                      b"# - {name: v12, unit: km / s, datatype: float64}\n# schema: astropy-2.0\n"
                                      b"r v12\n1.0 -100.0\n2.0 -90.0\n")),
          r"v12 table \S*v12\.ecsv: column 'r' must carry a unit \(a comoving separation"),
+    Case("power-law-too-few-proxy-bins", "config",
+         set_in_config("theory", 'proxy_bin_edges = [14.0, 14.5, 15.0]\nproxy_power_law = "log10"'),
+         r"'theory\.proxy_power_law' needs theory\.proxy_bin_edges with at least 4 edges \(3 bins\)"),
     Case("repeated-radius", "config", set_in_config("aperture", "radii_arcmin = [8.0, 8.0]"),
          r"'aperture\.radii_arcmin' must not repeat a radius"),
     Case("kernel-with-subsample", "config",

@@ -38,8 +38,8 @@ def test_power_table_and_template_options_reach_the_outputs(tiny_survey):
 
 
 def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
-    toml = ('likelihood = "sellentin-heavens"\nproxy_bin_edges = [14.0, 14.5, 15.0]\nfit_velocity_scale = true\n'
-            'tau_prior_mean = 0.01\ntau_prior_sigma = 0.002\n')
+    toml = ('likelihood = "sellentin-heavens"\nproxy_bin_edges = [14.0, 14.33, 14.67, 15.0]\nfit_velocity_scale = true\n'
+            'tau_prior_mean = 0.01\ntau_prior_sigma = 0.002\nproxy_power_law = "log10"\n')
     assert run(tiny_survey, toml) == 0
     out = tiny_survey / "out"
     for name in ("proxy_bins.ecsv", "tau_vs_proxy.png", "velocity_scale.png"):
@@ -50,7 +50,14 @@ def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
     lo, hi = s["tau_mean_68"]
     assert lo < s["tau_mean"] < hi
     bins = s["proxy_bins"]["bins"]
-    assert len(bins) == 2 and sum(b["n_tracers"] for b in bins) == s["n_tracers"]
+    assert len(bins) == 3 and sum(b["n_tracers"] for b in bins) == s["n_tracers"]
+    # the bins' joint covariance; the power law, which this noise-only survey cannot constrain (alpha runs to
+    # the edge of its range), is reported as not fitted, without figure (the fitted case: test_blinding_holds)
+    joint = s["joint_covariances"]["proxy_joint"]
+    assert joint["bins"] == [0, 1, 2] and np.array(joint["covariance"]).shape == (12, 12)
+    np.testing.assert_allclose(joint["tau"], [b["tau_mean"] for b in bins], rtol=1e-10)
+    assert s["tau_against_mass"] == {"problem": "the best alpha lies outside [-5.0, 5.0]", "n_bins_fitted": 3}
+    assert not (out / "tau_vs_mass.png").exists()
     # conversion: T_CMB / c in uK per km/s (analytic, SCIENCE.md: T_CMB = 2.72548 K)
     conv = s["conversion"]
     np.testing.assert_allclose(conv["uK_per_km_s_per_unit_tau"], 2.72548e6 / 299792.458, rtol=1e-12)
@@ -60,8 +67,10 @@ def test_proxy_bins_joint_fit_and_conversion_in_outputs(tiny_survey):
     assert joint["tau_prior"] == {"mean": 0.01, "sigma": 0.002} and joint["f_sigma8_std"] > 0
     report = (out / "report.md").read_text()
     for heading in ("## Template, likelihood and units", "## Fits per bin of log_mass",
-                    "## Joint fit of tau_mean and f sigma_8"):
+                    "## Joint fit of tau_mean and f sigma_8", "## Optical depth against mass"):
         assert heading in report
+    assert "No power law fitted: the best alpha lies outside" in report
+    assert "best of 3 bins fitted" in report and "Correlation of tau_mean between bins" in report
 
 
 def test_theory_config_consistency(tiny_survey, capsys):
@@ -73,6 +82,8 @@ def test_theory_config_consistency(tiny_survey, capsys):
     assert "power_table_path" in error_line(capsys)
     assert run(tiny_survey, "proxy_bin_edges = [15.0, 14.0]\n") == 2
     assert "proxy_bin_edges" in error_line(capsys)
+    assert run(tiny_survey, 'proxy_bin_edges = [14.0, 15.0]\nproxy_power_law = "log10"\n') == 2
+    assert "theory.proxy_power_law" in error_line(capsys)
 
 
 def test_empty_proxy_bin_is_reported_not_fatal(tiny_survey):

@@ -245,6 +245,9 @@ class TheoryConfig:
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
                                                     "with these edges, at least two, finite and strictly increasing "
                                                     "(needs catalogue.proxy_column)", increasing=True)
+    proxy_power_law: str | None = _key(None, "also fit tau = tau_0 (M/M_0)^alpha across the proxy bins with their joint "
+                                             "covariance: log10 (M = 10^proxy) or linear (M = proxy); needs "
+                                             "proxy_bin_edges with at least 3 bins", choices=(None, "log10", "linear"))
     fit_velocity_scale: bool = _key(False, "also fit tau_mean and the velocity amplitude f sigma_8 jointly "
                                            "(degenerate; see tau_prior_mean)")
     tau_prior_mean: float | None = _key(None, "mean of a Gaussian prior on tau_mean for the joint fit")
@@ -688,6 +691,8 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
             bad("theory.proxy_bin_edges", f"must be at least two finite, increasing values; got {list(pe)}")
         if cfg.catalogue.proxy_column is None:
             bad("catalogue.proxy_column", "is required when theory.proxy_bin_edges is set")
+    if th.proxy_power_law is not None and (th.proxy_bin_edges is None or len(th.proxy_bin_edges) < 4):
+        bad("theory.proxy_power_law", "needs theory.proxy_bin_edges with at least 4 edges (3 bins)")
     if (th.tau_prior_mean is None) != (th.tau_prior_sigma is None):
         bad("theory.tau_prior_sigma", "and theory.tau_prior_mean must be set together")
     if th.power_table_path is None and (th.power_table_renormalise or th.power_table_z != 0):

@@ -119,6 +119,19 @@ class _Each:
         self.rule = rule
 
 
+class _Present:
+    """Rule for a dict whose keys are a subset of ``rules`` (a fit that may hold only ``problem``)."""
+
+    def __init__(self, rules: dict):
+        self.rules = rules
+
+    def __call__(self, value, scale, fit):
+        unknown = sorted(set(value) - self.rules.keys())
+        if unknown:
+            raise UndeclaredQuantityError(f"keys {unknown} have no blinding rule; declare them in pairvel.report.blinding")
+        return scale(value, {k: self.rules[k] for k in value}, fit)
+
+
 def _refuse(name: str):
     def rule(value, scale, fit):
         raise UndeclaredQuantityError(f"result.extra[{name!r}] is made from the true amplitude and cannot be "
@@ -179,6 +192,15 @@ EXTRA_RULES = {
     "radius_fits": {"radius_arcmin": 0, "primary": 0, "fit": FIT_RULES, "p": 1, "p_err": 1, "problem": 0},
     "proxy_bins": {"proxy_min": 0, "proxy_max": 0, "proxy_median": 0, "n_tracers": 0, "n_pairs": 0,
                    "n_regions": 0, "z_mean": 0, "fit": FIT_RULES, "problem": 0},
+    "radius_joint": {"radius_arcmin": 0, "tau": 1, "tau_covariance": 2, "tau_correlation": 0, "n_samples": 0,
+                     "covariance": 2},
+    "proxy_joint": {"bins": 0, "n_samples": 0, "tau": 1, "tau_covariance": 2, "tau_correlation": 0, "covariance": 2},
+    # tau(M) = tau_0 (M/M_0)^alpha: tau_0 and the taus scale, the slope, pivot and chi2 values do not
+    "mass_trend": _Present({"proxy_scale": 0, "bins": 0, "mass_geometric_mean": 0, "tau": 1, "tau_error": 1,
+                            "model_tau": 1, "pivot_mass": 0, "tau_0": 1, "tau_0_error": 1, "alpha": 0,
+                            "alpha_error": 0, "correlation": 0, "chi2_min": 0, "dof": 0, "pte": 0,
+                            "delta_chi2_alpha0": 0, "pte_alpha0": 0, "alpha_significance": 0, "n_samples": 0,
+                            "hartlap_factor": 0, "n_bins_fitted": 0, "problem": 0}),
     "velocity_scale_fit": _velocity_scale_again,
     "region_seed_spread": {"tau_mean": 1, "tau_error": 1, "tau_mean_std": 1, "quoted_error": 1,
                            "std_over_error": 0, "error_std_over_error": 0, "n_regions": 0, "n_seeds": 0,
@@ -378,6 +400,11 @@ def _stored_extra(summary: dict, fit) -> dict:
         extra["proxy_bins"] = tuple(ProxyBinFit(*(float("nan") if d[k] is None else d[k] for k in keys),
                                                 _stored_fit(d["fit"]) if "fit" in d else None, d["problem"])
                                     for d in summary["proxy_bins"]["bins"])
+    for key in ("radius_joint", "proxy_joint"):  # JSON-ready dicts, stored as they are
+        if key in summary.get("joint_covariances", {}):
+            extra[key] = summary["joint_covariances"][key]
+    if "tau_against_mass" in summary:
+        extra["mass_trend"] = summary["tau_against_mass"]
     if "n_samples" in summary.get("velocity_scale_fit", {}):
         v = summary["velocity_scale_fit"]
         prior = None if v["tau_prior"] is None else (v["tau_prior"]["mean"], v["tau_prior"]["sigma"])

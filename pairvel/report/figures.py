@@ -36,7 +36,7 @@ class FigureFile:
     """One figure written as ``<stem>.pdf`` and ``<stem>.png``."""
 
     stem: str
-    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "joint", "prefilter", "calibration", "templates"
+    section: str  # "curve", "covariance", "nulls", "diagnostics", "radii", "proxy", "masstrend", "joint", "prefilter", "calibration", "templates"
     caption: str
 
     @property
@@ -350,6 +350,12 @@ def write_figures(result, folder) -> list[FigureFile]:
             plot_proxy_bins(extra["proxy_bins"], folder, "tau_vs_proxy", proxy_name=proxy,
                             tau_all=result.fit.amplitude, tau_all_error=result.fit.error)
             out.append(FigureFile("tau_vs_proxy", "proxy", f"tau_mean in bins of {proxy} (band: the whole sample)."))
+        if not extra.get("mass_trend", {"problem": "none"}).get("problem"):
+            from ..stats.masstrend import plot_mass_trend
+
+            plot_mass_trend(extra["mass_trend"], folder, "tau_vs_mass", proxy_name=str(result.config.catalogue.proxy_column))
+            out.append(FigureFile("tau_vs_mass", "masstrend", "tau_mean per proxy bin against mass with the fitted "
+                                                              "power law tau_0 (M/M_0)^alpha (joint covariance)."))
         if "velocity_scale_fit" in extra:
             plot_velocity_scale(extra["velocity_scale_fit"], folder, "velocity_scale")
             out.append(FigureFile("velocity_scale", "joint", "Joint fit of tau_mean and f sigma_8: 68% and 95% regions."))

@@ -163,6 +163,11 @@ def theory_summary(result) -> dict:
                              "bins": [b.as_dict() for b in result.extra["proxy_bins"]]}
     if "velocity_scale_fit" in result.extra:
         out["velocity_scale_fit"] = result.extra["velocity_scale_fit"].as_dict()
+    joint = {key: result.extra[key] for key in ("radius_joint", "proxy_joint") if key in result.extra}
+    if joint:
+        out["joint_covariances"] = joint
+    if "mass_trend" in result.extra:
+        out["tau_against_mass"] = result.extra["mass_trend"]
     return out
 
 
@@ -238,6 +243,9 @@ def _theory_report(result, figures=()) -> list:
                        else "- | - | -")
             lines.append(f"| [{b.proxy_min:g}, {b.proxy_max:g}) | {b.proxy_median:.4g} | {b.n_tracers:,} | "
                          f"{b.n_pairs:,} | {b.n_regions} | {fit_txt} | {b.problem or ''} |")
+        from ..stats.subsamples import joint_markdown
+
+        lines += joint_markdown(result.extra["proxy_bins"], result.extra.get("proxy_joint"))
         lines += _images(figures, "proxy")
     if "velocity_scale_fit" in result.extra:
         v = result.extra["velocity_scale_fit"]
@@ -326,7 +334,12 @@ def report_sections(result) -> dict:
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
-    builders = (("radius_fits", "Signal against aperture radius", radius_report),
+    from ..stats.masstrend import mass_trend_report
+
+    proxy = str(result.config.catalogue.proxy_column)
+    builders = (("radius_fits", "Signal against aperture radius",
+                 lambda fits: radius_report(fits, result.extra.get("radius_joint"))),
+                ("mass_trend", "Optical depth against mass", lambda t: mass_trend_report(t, proxy_name=proxy)),
                 ("region_seed_spread", SECTION_TITLE, spread_markdown),
                 ("prefilter", "Map pre-filter", prefilter_markdown),
                 ("multifrequency", "Several frequency maps", combination_markdown),
@@ -339,7 +352,8 @@ def report_sections(result) -> dict:
 
 #: Report sections (titles of :func:`report_sections`) followed by the figures of a figure section.
 _SECTION_FIGURES = {"Signal against aperture radius": "radii", "Map pre-filter": "prefilter",
-                    "Per-bin errors against mock scatter": "calibration"}
+                    "Per-bin errors against mock scatter": "calibration",
+                    "Optical depth against mass": "masstrend"}
 
 
 def _images(figures, section: str) -> list:

@@ -58,6 +58,7 @@ TRACER_TRUTH_FILE = "tracer_truth.fits"  # only with electron_temperature_kev
 _DEFAULT_EDGES = np.arange(0.0, 301.0, 20.0)
 _TREND_SIGMA_Z = 0.01  # the pipeline's default trend.sigma_z
 _TSZ_F150 = -0.95333  # x coth(x/2) - 4 at 150 GHz, T_CMB = 2.72548 K (Carlstrom et al. 2002)
+_LOG_MASS_PIVOT = 14.5  # log10 Msun of the injected tau(M) normalisation
 _MAX_CELLS = 50_000_000  # about 3 GB at the peak of the field synthesis
 
 
@@ -99,6 +100,8 @@ class MockTruth:
     position_roundtrip_mpc : float, Mpc
         Largest distance between a tracer's true position and the one recomputed from its
         catalogue (ra, dec, z) by :func:`pairvel.pairs.geometry.comoving_positions`.
+    tau_mass_relation : dict
+        The injected tau_i = tau_at_pivot (M_i / 10^log10_mass_pivot)^slope.
     """
 
     n_tracers: int
@@ -116,6 +119,7 @@ class MockTruth:
     files: dict = field(default_factory=dict)
     timings_s: dict = field(default_factory=dict)
     position_roundtrip_mpc: float = 0.0
+    tau_mass_relation: dict = field(default_factory=dict)
 
 
 def _check_options(o: dict) -> None:
@@ -129,7 +133,8 @@ def _check_options(o: dict) -> None:
         return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool) and math.isfinite(v)
 
     for name in ("ra_min", "ra_max", "dec_min", "dec_max", "z_min", "z_max", "tau_mean", "bias", "cell_mpc",
-                 "beam_fwhm_arcmin", "noise_uk_arcmin", "aperture_radius_arcmin", "tsz_amplitude_uk"):
+                 "beam_fwhm_arcmin", "noise_uk_arcmin", "aperture_radius_arcmin", "tsz_amplitude_uk",
+                 "tau_mass_slope"):
         need(is_num(name), name, "a finite number")
     n = o["n_tracers"]
     need(isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 2, "n_tracers", "an integer >= 2")
@@ -241,7 +246,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      tsz_amplitude_uk=4.0, cosmo: Cosmology = DEFAULT_COSMOLOGY, seed=20261202,
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None,
                      electron_temperature_kev=None, partner_n_tracers=0, partner_bias=0.3,
-                     partner_tau_mean=5.0e-4) -> MockTruth:
+                     partner_tau_mean=5.0e-4,
+                     tau_mass_slope=2.0 / 3.0) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -300,6 +306,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         each with optical depth ``partner_tau_mean`` (no tSZ); its kSZ is painted into the same
         maps and run.toml gets a ``[partner]`` section (:mod:`pairvel.sims.partner`).  0: none (and
         nothing else changes).
+    tau_mass_slope : float, default 2/3
+        alpha of the injected tau_i proportional to M_i^alpha (truth.json ``tau_mass_relation`` gives
+        the normalisation at M = 10^14.5 Msun).
 
     Returns
     -------
@@ -326,14 +335,14 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     aperture of radius theta_ap on a noiseless map returns (1 - exp(-theta_ap^2 / 2 sigma_b^2))^2
     dT_i, i.e. dT_i up to the beam's spill beyond the disc; ``aperture_response`` reports the
     measured slope of the pixelised aperture.  tau_i is proportional to M_i^(2/3), scaled so that
-    its mean over the written tracers is ``tau_mean``.
+    its mean over the written tracers is ``tau_mean`` (``tau_mass_slope`` sets the power).
     """
     out = Path(out_dir)
     options = dict(n_tracers=n_tracers, nside=nside, ra_min=ra_min, ra_max=ra_max, dec_min=dec_min, dec_max=dec_max,
                    z_min=z_min, z_max=z_max, tau_mean=tau_mean, bias=bias, cell_mpc=cell_mpc,
                    beam_fwhm_arcmin=beam_fwhm_arcmin, noise_uk_arcmin=noise_uk_arcmin,
                    aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
-                   tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo)
+                   tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo, tau_mass_slope=tau_mass_slope)
     _check_options({**options, "progress": progress})
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     _check_electron_temperature(electron_temperature_kev)
@@ -379,7 +388,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
             edges_mpc=curves.edges_mpc.tolist(), v12_3d_realised_km_s=curves.v12_3d.tolist(),
             v12_los_realised_km_s=curves.v12_los.tolist(), v12_linear_km_s=curves.v12_linear.tolist(),
             z_eff=curves.z_eff, aperture_response=response, clipped_cell_fraction=clipped_fraction, files=files,
-            timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc)
+            timings_s={k: round(v, 2) for k, v in timings.items()}, position_roundtrip_mpc=tracers.roundtrip_mpc,
+            tau_mass_relation={"slope": float(tau_mass_slope), "log10_mass_pivot": _LOG_MASS_PIVOT,
+                               "tau_at_pivot": amplitudes.tau_at_pivot})
         record = _truth_record(truth, spec, curves)
         if partner is not None:
             record["partner"] = partner_record(spec, tracers_mean_tau=spec.tau_mean, n_written=partner[0].z.size,
@@ -439,6 +450,7 @@ class _MockSpec:
     include_cmb: bool
     tsz_amplitude_uk: float
     cosmo: Cosmology
+    tau_mass_slope: float
     extra_noise: dict
     electron_temperature_kev: float | None = None
     partner: PartnerSpec | None = None
@@ -570,29 +582,31 @@ def _tracers_in_cone(cone: _Cone, cells, u0, spec: _MockSpec, rng) -> _Tracers:
 @dataclass(frozen=True, eq=False)
 class _Amplitudes:
     """Per tracer: ``log_mass`` (log10 Msun), the kSZ ``dt_ksz_uk`` and the 150 GHz tSZ ``tsz_uk``, both
-    aperture temperatures in uK."""
+    aperture temperatures in uK; ``tau_at_pivot`` is the optical depth of a 10^14.5 Msun tracer."""
 
     log_mass: np.ndarray
     dt_ksz_uk: np.ndarray
     tsz_uk: np.ndarray
     tau: np.ndarray
+    tau_at_pivot: float
 
 
 def _sz_amplitudes(tracers: _Tracers, spec: _MockSpec, rng) -> _Amplitudes:
-    """A mass proxy with dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^(2/3) with mean
-    ``tau_mean``, dT_kSZ = -tau T_CMB v_r / c; the tSZ f(150 GHz) A (M / 10^14.5)^(5/3) ((1 + z) / 1.35)^2, or
+    """A mass proxy with dN/dlog10 M ~ M^-1.5 between 10^14 and 10^15 Msun; tau ~ M^alpha (alpha =
+    ``tau_mass_slope``, default 2/3) with mean ``tau_mean``, dT_kSZ = -tau T_CMB v_r / c; the tSZ f(150 GHz) A (M / 10^14.5)^(5/3) ((1 + z) / 1.35)^2, or
     f(150 GHz) T_CMB y with y = tau k_B T_e / (m_e c^2) when ``spec.electron_temperature_kev`` is set."""
     uu = rng.uniform(size=tracers.z.size)
     lo_m, hi_m = 10.0 ** (-1.5 * 14.0), 10.0 ** (-1.5 * 15.0)
     log_mass = np.log10(lo_m + uu * (hi_m - lo_m)) / -1.5
-    tau = 10.0 ** (2.0 / 3.0 * (log_mass - 14.5))
-    tau *= spec.tau_mean / tau.mean()
+    tau = 10.0 ** (spec.tau_mass_slope * (log_mass - _LOG_MASS_PIVOT))
+    tau_at_pivot = spec.tau_mean / tau.mean()
+    tau *= tau_at_pivot
     dt_ksz = -tau * T_CMB_UK * tracers.v_r / C_KM_S
     tsz = (_TSZ_F150 * spec.tsz_amplitude_uk * 10.0 ** (5.0 / 3.0 * (log_mass - 14.5))
            * ((1 + tracers.z) / 1.35) ** 2)
     if spec.electron_temperature_kev is not None:
         tsz = _TSZ_F150 * T_CMB_UK * tau * spec.electron_temperature_kev / ELECTRON_REST_ENERGY_KEV
-    return _Amplitudes(log_mass, dt_ksz, tsz, tau)
+    return _Amplitudes(log_mass, dt_ksz, tsz, tau, float(tau_at_pivot))
 
 
 def _cmb_on_footprint(spec: _MockSpec, foot, rng, say) -> np.ndarray:

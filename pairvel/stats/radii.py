@@ -9,7 +9,7 @@ result stays the primary radius (``aperture.radius_arcmin``); this module only a
 
 from __future__ import annotations
 
-__all__ = ["RadiusFit", "fit_radii", "plot_radii", "write_radius_outputs", "radius_report"]
+__all__ = ["RadiusFit", "fit_radii", "radius_joint", "plot_radii", "write_radius_outputs", "radius_report"]
 
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,6 +20,7 @@ from ..core.plotstyle import new_figure, plot_style, save_figure
 from .covariance import jackknife_covariance
 from .fit import AmplitudeFit, fit_amplitude
 from .simcov import simulation_covariance
+from .jointcov import amplitude_covariance, amplitude_weights, correlation, joint_jackknife_covariance
 
 
 @dataclass(frozen=True)
@@ -77,6 +78,30 @@ def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood
     return out
 
 
+def radius_joint(fits: list, p_jk_rows, template_uk, *, in_fit) -> dict | None:
+    """The joint jackknife covariance of the radii's curves and the covariance of their tau_mean.
+
+    Every radius's jackknife samples come from the same pair pass and regions (re-trended the same
+    way), so they are aligned and :func:`pairvel.stats.jointcov.joint_jackknife_covariance` applies.
+    Returns None unless at least two radii have a fit; else a dict with ``radius_arcmin``, ``tau``,
+    ``tau_covariance``, ``tau_correlation``, ``n_samples`` and ``covariance`` (the curves' joint
+    covariance, radius-major, in the order of ``radius_arcmin``).
+    """
+    done = [k for k, f in enumerate(fits) if f.fit is not None]
+    if len(done) < 2:
+        return None
+    samples = np.asarray(p_jk_rows)[done]
+    joint = joint_jackknife_covariance(samples)
+    nb = samples.shape[-1]
+    w = np.array([amplitude_weights(template_uk, joint[g * nb:(g + 1) * nb, g * nb:(g + 1) * nb], in_fit)
+                  for g in range(len(done))])
+    tau_cov = amplitude_covariance(w, joint)
+    return {"radius_arcmin": [fits[k].radius_arcmin for k in done], "tau": [float(w[g] @ fits[k].p)
+                                                                         for g, k in enumerate(done)],
+            "tau_covariance": tau_cov.tolist(), "tau_correlation": correlation(tau_cov).tolist(),
+            "n_samples": int(samples.shape[1]), "covariance": joint.tolist()}
+
+
 def write_radius_outputs(fits: list, folder: Path) -> list:
     """aperture_radii.ecsv (the figure: :func:`plot_radii`); returns the file names written."""
     from astropy.table import Table
@@ -131,7 +156,7 @@ def _draw_radii(axes, fits: list) -> None:
     axes[0].legend(loc="best")
 
 
-def radius_report(fits: list) -> str:
+def radius_report(fits: list, joint: dict | None = None) -> str:
     """Markdown body of the report section on the radii."""
     lines = ["Each radius gives its own pairwise curve from the same pair pass; tau_mean is fitted with the "
              "main template and fit range. The main result is the starred radius. Files: aperture_radii.ecsv, "
@@ -144,8 +169,18 @@ def radius_report(fits: list) -> str:
         else:
             lines.append(f"| {f.radius_arcmin:g}{star} | {f.fit.amplitude:.4e} | {f.fit.error:.4e} | {f.fit.snr:+.2f} | "
                          f"{f.fit.chi2_min:.2f} | {f.fit.pte_min:.3g} |")
-    best = max((f for f in fits if f.fit is not None), key=lambda f: f.fit.snr, default=None)
+    tried = [f for f in fits if f.fit is not None]
+    best = max(tried, key=lambda f: f.fit.snr, default=None)
     if best is not None:
-        lines += ["", f"Highest S/N at {best.radius_arcmin:g} arcmin ({best.fit.snr:+.2f}); radii are not independent "
-                      f"(nested apertures on the same tracers), so do not pick the best one after the fact."]
+        lines += ["", f"Highest S/N at {best.radius_arcmin:g} arcmin ({best.fit.snr:+.2f}; best of {len(tried)} radii "
+                      f"fitted); radii are not independent (nested apertures on the same tracers), so do not pick the "
+                      f"best one after the fact."]
+    if joint is not None:
+        corr = np.asarray(joint["tau_correlation"])
+        head = " | ".join(f"{r:g}" for r in joint["radius_arcmin"])
+        lines += ["", f"Correlation of tau_mean between radii (joint jackknife covariance of all radii, "
+                      f"{joint['n_samples']} aligned delete-one samples; use it for any fit across radii):", "",
+                  f"| radius [arcmin] | {head} |", "|---:|" + "---:|" * len(joint["radius_arcmin"])]
+        lines += [f"| {r:g} | " + " | ".join(f"{c:+.2f}" for c in row) + " |"
+                  for r, row in zip(joint["radius_arcmin"], corr)]
     return "\n".join(lines)

@@ -1,16 +1,20 @@
-"""Fits per subsample: bins of the mass/luminosity proxy, each with its own curve, covariance and template.
+"""Fits per subsample: bins of the mass/luminosity proxy, each with its own curve, template and fit, and
+one joint covariance of all the bins.
 
-Each proxy bin keeps its tracers' (trend-corrected) temperatures, positions and jackknife regions;
-regions with no tracer of the bin are dropped and the rest relabelled, so the Hartlap factor or the
-Sellentin-Heavens likelihood uses the number of regions the bin really has.  The template is rebuilt
-for each bin from its own pair counts and redshift distribution (same bias for every bin: the
-template shape barely depends on it at these separations, and the fitted tau_mean absorbs the rest).
-The pair pass runs once per bin on the data temperatures only (no null sets).
+Each proxy bin keeps its tracers' (trend-corrected) temperatures, positions and the whole sample's
+jackknife regions, so that delete-one sample k of every bin removes the same region k and the
+samples are aligned across bins (:mod:`pairvel.stats.jointcov`); a bin without tracers in region k
+deletes no pair in sample k.  Where the data's jackknife re-estimates the redshift trend without
+each region, so do the bins' samples.  The Hartlap factor or the Sellentin-Heavens likelihood of a
+bin's own fit uses the number of regions the bin really occupies.  The template is rebuilt for each
+bin from its own pair counts and redshift distribution (same bias for every bin: the template shape
+barely depends on it at these separations, and the fitted tau_mean absorbs the rest).  The pair pass
+runs once per bin on the data temperatures and the re-trended jackknife sets (no null sets).
 """
 
 from __future__ import annotations
 
-__all__ = ["ProxyBinFit", "fit_proxy_bins", "plot_proxy_bins"]
+__all__ = ["ProxyBinFit", "fit_proxy_bins", "joint_markdown", "joint_summary", "plot_proxy_bins"]
 
 import itertools
 from dataclasses import dataclass
@@ -24,6 +28,7 @@ from ..model.template import template_for_run
 from ..pairs.estimator import pairwise_momentum
 from .covariance import jackknife_covariance
 from .fit import AmplitudeFit, fit_amplitude
+from .jointcov import amplitude_covariance, amplitude_weights, correlation, covariance_block, joint_jackknife_covariance
 
 
 @dataclass(frozen=True)
@@ -52,8 +57,9 @@ class ProxyBinFit:
 
 
 def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, regions, edges, in_fit,
-                   theory_cfg, cosmo, power=None, n_threads=None, template_factor=None, v12_table=None) -> tuple:
-    """Fit tau_mean separately in each bin [lo, hi) of the proxy.
+                   theory_cfg, cosmo, power=None, n_threads=None, template_factor=None, retrended=None,
+                   weights=None, tau_all=None, v12_table=None) -> tuple:
+    """Fit tau_mean separately in each bin [lo, hi) of the proxy, and the joint covariance of the bins.
 
     Parameters
     ----------
@@ -61,7 +67,8 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
     proxy, redshifts, temperatures : ndarray of shape (n,)
     positions : ndarray of shape (n, 3), comoving Mpc
     regions : ndarray of shape (n,), int
-        Jackknife region labels of the whole sample.
+        Jackknife region labels 0..n_jk-1 of the whole sample; every bin keeps them, so that sample
+        k of every bin deletes the same region k.
     edges : ndarray of shape (nbins + 1,), Mpc
     in_fit : ndarray of shape (nbins,), bool
         The fit range.
@@ -69,57 +76,138 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
     cosmo : Cosmology
     power : TabulatedPower, optional
     template_factor : ndarray of shape (nbins,), optional
-        Per-bin factor on every bin's template: the whole run's signal fraction kept by the
-        redshift-trend removal (the trend is removed once from the whole sample, so its shells are
-        the same for every proxy bin).
+        The whole run's signal fraction F(r) kept by the redshift-trend removal.  The trend is
+        removed once from the whole sample, and what it takes from a pair is the shells' mean
+        temperature, whose optical depth is the whole sample's, not the bin's; so a bin's curve is
+        modelled as (tau_b - tau_all (1 - F)) t_b with t_b = T_CMB v12_b / c, and fitted as
+        p_b + tau_all (1 - F) t_b = tau_b t_b.  Without ``tau_all`` it multiplies the template
+        (tau_b F t_b: exact only when every bin has the sample's optical depth).
+    tau_all : float, optional
+        The whole sample's fitted tau_mean (with ``template_factor``).
+    retrended : ndarray of shape (n_jk, n), optional
+        The primary radius's temperatures with the redshift trend estimated without each region
+        (:func:`pairvel.pipeline.retrended_sets`): when given, bin sample k uses set k, as the
+        data's own jackknife does.
+    weights : ndarray of shape (n,), optional
+        Per-tracer pair weights, as in the main pair pass.
     v12_table : V12Table, optional
         For ``theory_cfg.velocity_model = "table"``.  With ``theory_cfg.bias_from_proxy`` each bin's
         bias comes from its own proxy values (equal tracer weights).
 
     Returns
     -------
-    tuple of ProxyBinFit
+    bins : tuple of ProxyBinFit
         One per proxy bin; a bin with too few tracers, pairs or regions carries ``problem`` instead
         of a fit (the run goes on).
+    joint : dict or None
+        The joint jackknife covariance of the fitted bins (:func:`joint_summary`); None when fewer
+        than two bins have a fit.
     """
     pe = np.asarray(proxy_edges, dtype=float)
     if pe.ndim != 1 or pe.size < 2 or np.any(np.diff(pe) <= 0) or not np.all(np.isfinite(pe)):
         raise InputError(f"proxy bin edges must be at least two finite, increasing values; got {pe.tolist()}")
     proxy = np.asarray(proxy, dtype=float)
-    out = []
-    for lo, hi in itertools.pairwise(pe):
+    n_jk = int(regions.max()) + 1
+    out, curves = [], {}
+    for b, (lo, hi) in enumerate(itertools.pairwise(pe)):
         sel = (proxy >= lo) & (proxy < hi)
         n = int(sel.sum())
         med = float(np.median(proxy[sel])) if n else float("nan")
         zm = float(np.mean(redshifts[sel])) if n else float("nan")
+        n_reg = int(np.unique(regions[sel]).size)
+
+        def skipped(problem, n_pairs=0, n_reg=n_reg):
+            return ProxyBinFit(float(lo), float(hi), med, n, n_pairs, n_reg, zm, None, problem)
+
         if n < 10:
-            out.append(ProxyBinFit(float(lo), float(hi), med, n, 0, 0, zm, None, f"only {n} tracers"))
+            out.append(skipped(f"only {n} tracers", n_reg=0))
             continue
-        _, reg = np.unique(regions[sel], return_inverse=True)
-        n_reg = int(reg.max()) + 1
-        pr = pairwise_momentum(positions[sel], temperatures[sel], edges, regions=reg.astype(np.int64),
-                               redshifts=redshifts[sel], n_threads=n_threads)
+        pr, samples = _bin_pass(sel, positions, temperatures, redshifts, regions, edges, n_jk, retrended, weights,
+                                n_threads)
         n_pairs = int(pr.pair_counts.sum())
-        ok = np.all(np.isfinite(pr.p_jk), axis=0) & np.isfinite(pr.p)
+        ok = np.all(np.isfinite(samples), axis=0) & np.isfinite(pr.p[0])
         if not ok[in_fit].all():
-            out.append(ProxyBinFit(float(lo), float(hi), med, n, n_pairs, n_reg, zm, None,
-                                   "fitted separation bins without pairs in some jackknife sample"))
+            out.append(skipped("fitted separation bins without pairs in some jackknife sample", n_pairs))
             continue
         weight = pr.denominator * in_fit
         z_eff = float(np.sum(weight * np.nan_to_num(pr.z_eff)) / np.sum(weight))
         v12, _ = template_for_run(theory_cfg, cosmo, edges, pair_counts=pr.pair_counts, z_tracers=redshifts[sel],
                                   z_eff=z_eff, power=power, proxy=proxy[sel], v12_table=v12_table)
-        if template_factor is not None:
-            v12 = v12 * template_factor
-        cov = jackknife_covariance(np.where(np.isfinite(pr.p_jk), pr.p_jk, 0.0))
+        t_uk = T_CMB_UK * v12 / C_KM_S
+        offset = np.zeros_like(t_uk)
+        if template_factor is not None and tau_all is not None:  # the trend's loss follows the whole sample's tau
+            offset = tau_all * (1.0 - template_factor) * t_uk
+        elif template_factor is not None:
+            t_uk = t_uk * template_factor
+        p, samples = np.where(ok, pr.p[0], 0.0) + offset, np.where(ok, samples, 0.0) + offset
         try:
-            fit = fit_amplitude(np.where(ok, pr.p, 0.0), T_CMB_UK * v12 / C_KM_S, cov, n_samples=n_reg,
-                                use=in_fit, likelihood=theory_cfg.likelihood)
+            fit = fit_amplitude(p, t_uk, jackknife_covariance(samples), n_samples=n_reg, use=in_fit,
+                                likelihood=theory_cfg.likelihood)
         except PairvelError as err:  # too few regions for the bins, singular covariance: report, go on
-            out.append(ProxyBinFit(float(lo), float(hi), med, n, n_pairs, n_reg, zm, None, str(err)))
+            out.append(skipped(str(err), n_pairs))
             continue
         out.append(ProxyBinFit(float(lo), float(hi), med, n, n_pairs, n_reg, zm, fit))
-    return tuple(out)
+        curves[b] = (p, samples, t_uk)
+    return tuple(out), joint_summary(curves, in_fit, n_regions=[out[b].n_regions for b in curves])
+
+
+def _bin_pass(sel, positions, temperatures, redshifts, regions, edges, n_jk, retrended, weights, n_threads):
+    """The pair pass of one proxy bin's tracers, and its (n_jk, nbins) delete-one samples on the whole
+    sample's regions: sample k of a bin without tracers in region k deletes no pair (it is the whole
+    curve, re-trended without region k when ``retrended`` is given)."""
+    values = temperatures[sel][None, :]
+    if retrended is not None:
+        values = np.vstack([values, retrended[:, sel]])
+    pr = pairwise_momentum(positions[sel], values, edges, regions=regions[sel].astype(np.int64),
+                           redshifts=redshifts[sel], weights=None if weights is None else weights[sel],
+                           n_threads=n_threads)
+    k = np.arange(pr.n_jk)
+    if retrended is None:
+        samples = np.repeat(pr.p[:1], n_jk, axis=0)
+        samples[k] = pr.p_jk[0]
+    else:
+        samples = pr.p[1:].copy()
+        samples[k] = pr.p_jk[1 + k, k]
+    return pr, samples
+
+
+def joint_summary(curves: dict, in_fit, *, n_regions) -> dict | None:
+    """The joint jackknife covariance of the fitted proxy bins and the covariance of their tau_mean.
+
+    ``curves`` maps a bin's index to (p, samples, template) of a fitted bin.  Returns a dict (None for
+    fewer than two bins): ``bins`` (indices), ``n_samples`` (the fewest regions any of them has: the
+    Hartlap count of a fit across them), ``tau`` and ``tau_covariance`` (:mod:`pairvel.stats.jointcov`),
+    ``tau_correlation`` and ``covariance`` (the curves' joint covariance, bin-major).
+    """
+    if len(curves) < 2:
+        return None
+    idx = sorted(curves)
+    joint = joint_jackknife_covariance([curves[b][1] for b in idx])
+    nb = len(in_fit)
+    w = np.array([amplitude_weights(curves[b][2], covariance_block(joint, g, g, nb), in_fit)
+                  for g, b in enumerate(idx)])
+    tau_cov = amplitude_covariance(w, joint)
+    return {"bins": idx, "n_samples": int(min(n_regions)), "tau": [float(w[g] @ curves[b][0]) for g, b in enumerate(idx)],
+            "tau_covariance": tau_cov.tolist(), "tau_correlation": correlation(tau_cov).tolist(),
+            "covariance": joint.tolist()}
+
+
+def joint_markdown(bins, joint: dict | None) -> list:
+    """Report lines under the proxy-bin table: the best bin with the number of bins fitted, and the
+    correlation of the bins' tau_mean from their joint covariance."""
+    tried = [(k, b) for k, b in enumerate(bins) if b.fit is not None]
+    if not tried:
+        return []
+    k, best = max(tried, key=lambda kb: kb[1].fit.snr)
+    lines = ["", f"Highest S/N in bin {k} [{best.proxy_min:g}, {best.proxy_max:g}) ({best.fit.snr:+.2f}; best of "
+                 f"{len(tried)} bins fitted): a bin picked for its S/N after the fact overstates it."]
+    if joint is not None:
+        lines += ["", f"Correlation of tau_mean between bins (joint jackknife covariance, {len(joint['bins'])} bins on "
+                      f"the same regions; use it for any fit across bins):", "",
+                  "| bin | " + " | ".join(str(b) for b in joint["bins"]) + " |", "|---:|" + "---:|" * len(joint["bins"])]
+        lines += [f"| {b} | " + " | ".join(f"{c:+.2f}" for c in row) + " |"
+                  for b, row in zip(joint["bins"], joint["tau_correlation"])]
+    return lines
 
 
 def plot_proxy_bins(bins, folder, stem: str, *, proxy_name: str, tau_all=None, tau_all_error=None) -> list[str]:

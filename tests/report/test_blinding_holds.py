@@ -56,7 +56,8 @@ n_regions = 12
 [theory]
 bias = 1.0
 likelihood = "sellentin-heavens"
-proxy_bin_edges = [14.0, 14.5, 15.0]
+proxy_bin_edges = [14.0, 14.33, 14.67, 15.0]
+proxy_power_law = "log10"
 fit_velocity_scale = true
 tau_prior_mean = 0.015
 tau_prior_sigma = 0.004
@@ -165,6 +166,10 @@ def true_values(folder) -> np.ndarray:
         vals += [r["tau_mean"], r["tau_mean_error"], *r["p_uk"], *r["p_err_uk"]]
     for b in s["proxy_bins"]["bins"]:
         vals += [b["tau_mean"], b["tau_mean_error"]]
+    m = s["tau_against_mass"]
+    vals += [m["tau_0"], m["tau_0_error"], *m["tau"], *m["tau_error"], *m["model_tau"]]
+    for joint in s["joint_covariances"].values():  # the radii's and the proxy bins'
+        vals += [*joint["tau"], *np.ravel(joint["tau_covariance"]), *np.ravel(joint["covariance"])]
     v = s["velocity_scale_fit"]
     vals += [v["measured_product_A"], v["measured_product_A_error"], v["f_sigma8_mean"], v["f_sigma8_std"],
              *v["f_sigma8_68"], v["tau_mean_posterior_mean"], v["tau_mean_posterior_std"]]
@@ -244,11 +249,14 @@ def test_blinded_folder_hides_every_amplitude_and_unblinding_restores_them(tmp_p
     s1 = json.loads((blinded / "summary.json").read_text())
     assert s1["blinded"] and abs(s0["snr"]) > 3                        # a real signal, blinded
     np.testing.assert_allclose(s1["tau_mean"], FACTOR * s0["tau_mean"], rtol=1e-12)
+    m0, m1 = s0["tau_against_mass"], s1["tau_against_mass"]  # tau(M): tau_0 scales, alpha does not
+    assert m0["problem"] is None and set(s0["joint_covariances"]) == {"radius_joint", "proxy_joint"}
+    np.testing.assert_allclose([m1["tau_0"], m1["alpha"]], [FACTOR * m0["tau_0"], m0["alpha"]], rtol=1e-6)
 
     # every file is read; none holds a true amplitude or curve value, nor a number and its blinded twin
     numbers = folder_numbers(blinded)
     assert {"run.log", "report.md", "report.html", "aperture_radii.ecsv", "proxy_bins.ecsv", "velocity_scale.png",
-            "velocity_scale.pdf"} <= set(numbers)
+            "velocity_scale.pdf", "tau_vs_mass.png"} <= set(numbers)
     truth = true_values(plain)
     assert truth.size > 200
     leaks = leaks_of_true_values(numbers, truth)
