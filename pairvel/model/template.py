@@ -165,9 +165,10 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     z_nodes, z_weights : ndarray of shape (m,)
         Redshifts of the pairs and their weights (e.g. from :func:`pair_redshift_distribution`, or a
         single effective redshift with weight 1).
-    bias : float or ndarray of shape (m,)
+    bias : float, ndarray of shape (m,) or (float, float)
         Linear bias, one value or one per redshift node (e.g. from
-        :func:`pairvel.model.halobias.pair_weighted_bias`).
+        :func:`pairvel.model.halobias.pair_weighted_bias`), or the biases (b_1, b_2) of the two
+        catalogues of a cross curve.
     pair_counts : ndarray of shape (nbins,), optional
         Measured pairs per bin; sets the weighting inside each bin (see the module notes).  None falls
         back to volume (r^2) weighting; a bin without pairs takes g(r) from its neighbours.
@@ -187,7 +188,10 @@ def bin_averaged_velocity(edges_mpc, z_nodes, z_weights, bias=1.0, *, cosmo: Cos
     if zn.shape != zw.shape or zn.size == 0 or np.any(zw < 0) or not zw.sum() > 0:
         raise TheoryError(f"redshift nodes and weights must be equal-length, weights >= 0 with a positive sum; "
                           f"got {zn.shape} and {zw.shape}")
-    b_nodes = np.broadcast_to(np.asarray(bias, dtype=float), zn.shape)
+    if isinstance(bias, tuple):  # (b_1, b_2) of a cross curve: the same pair of biases at every node
+        b_nodes = [bias] * zn.size
+    else:
+        b_nodes = np.broadcast_to(np.asarray(bias, dtype=float), zn.shape)
     g = _separation_weights(edges, pair_counts)
     x, w = np.polynomial.legendre.leggauss(n_sub)
     lo = np.maximum(edges[:-1], 0.5)

@@ -194,7 +194,8 @@ def cross_pairs(cfg, skymap, partner, *, positions, temps_raw, z, weights, ra, d
     v12 = v12 * trend_factor
     template_uk = T_CMB_UK * v12 / C_KM_S
     fit = fit_amplitude(p, template_uk, cov, n_samples=n_jk, use=in_fit, likelihood=cfg.theory.likelihood)
-    nulls = [_null_dict(evaluate_null(kind, pr.p[rows], pr.p_jk[rows], n_jk, threshold=cfg.nulls.pte_threshold))
+    nulls = [_null_dict(evaluate_null(kind, pr.p[rows], threshold=cfg.nulls.pte_threshold,
+                                             covariance=cov, n_samples=n_jk))
              for kind, rows in null_rows.items() if rows.stop > rows.start]
     return {
         "partner": {"path": str(cat2.path), "sha256": cat2.sha256, "radius_arcmin": float(radius),

@@ -120,7 +120,7 @@ def test_cross_result_reports_fit_nulls_and_meaning(cross_run):
     assert cross["bias_1"] == 1.0 and cross["bias_2"] == 2.5
     assert "(tau_1 b_2 + tau_2 b_1) / (b_1 + b_2)" in cross["amplitude_meaning"]
     assert {n["kind"] for n in cross["nulls"]} == {"shuffled", "shuffled_in_z"}
-    assert all(n["n_realisations"] == 10 for n in cross["nulls"])
+    assert all(n["n_realisations"] == 100 for n in cross["nulls"])  # nulls.n_shuffle, n_shuffle_z defaults
     assert np.isfinite(cross["fit"]["amplitude"]) and cross["fit"]["error"] > 0
     # the main curve is that of the run without [partner] (its random stream is untouched)
     bare = run_pipeline(dataclasses.replace(cfg, partner=PartnerConfig()))
