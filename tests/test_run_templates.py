@@ -34,7 +34,7 @@ def test_derived_bias_and_jsd99_template_with_a_tolerance_reach_the_outputs(tiny
     assert 1.5 < lo < b["b_eff"] < hi < 8 and b["mass_definition"].startswith("M200m in Msun")
     assert len(b["b_per_redshift_node"]) == len(info["z_nodes"])
     assert s["assumptions"]["bias b"] == b["b_eff"] and f"assumes b = {b['b_eff']:.4g}" in printed
-    assert info["velocity_model"] == "jsd99" and info["kind"].startswith("Juszkiewicz, Springel & Durrer 1999")
+    assert info["velocity_model"] == "jsd99" and info["kind"].startswith("Juszkiewicz et al. 1999")
     c = info["compared"]
     assert set(c["v12_km_s"]) == {"linear", "jsd99"} and c["tolerance"] == 0.1
     # the fit range: bins with centre < 100 Mpc (fit_r_max_mpc) whose templates agree within 10%

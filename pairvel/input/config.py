@@ -264,8 +264,8 @@ class TheoryConfig:
                                           bounds=(1e-300, math.inf))
     mass_at_luminosity_pivot_msun: float | None = _key(None, "M_p of that power law, Msun", bounds=(1e9, 1e17))
     mass_luminosity_slope: float | None = _key(None, "slope of that power law", bounds=(-10.0, 10.0))
-    velocity_model: str = _key("linear", "v12 model of the template: linear, jsd99 (Juszkiewicz, Springel & Durrer "
-                                         "1999 closed form) or table (theory.v12_table_path)",
+    velocity_model: str = _key("linear", "v12 model of the template: linear, jsd99 (Juszkiewicz et al. 1999 "
+                                         "closed form) or table (theory.v12_table_path)",
                                choices=("linear", "jsd99", "table"))
     v12_table_path: Path | None = _key(None, "v12(r[, z]) table for velocity_model = table: ECSV or FITS, columns r "
                                              "(length unit), v12 (velocity unit), optional z")

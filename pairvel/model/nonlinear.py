@@ -1,6 +1,6 @@
 """Pairwise-velocity models beyond linear theory: the JSD99 closed form and a user-supplied v12(r, z) table.
 
-**Juszkiewicz, Springel & Durrer (1999, ApJ 518, L25), their eqs. 6-7** (closed form fitted to
+**Juszkiewicz et al. (1999, ApJ 518, L25), their eqs. 6-7** (closed form fitted to
 perturbation theory and N-body results):
 
     v12(r, z) = -(2/3) H(z) a f(z) r xi2(r, z) [1 + alpha xi2(r, z)],   xi2 = b xibar / (1 + b^2 xi),

@@ -245,7 +245,7 @@ def velocity_model(kind: str, table=None):
 
 
 VELOCITY_MODEL_NAMES = {"linear": "linear theory",
-                        "jsd99": "Juszkiewicz, Springel & Durrer 1999 closed form",
+                        "jsd99": "Juszkiewicz et al. 1999 closed form",
                         "table": "user v12(r, z) table"}
 
 

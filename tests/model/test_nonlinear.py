@@ -26,7 +26,7 @@ def _slow_xi(r, z):
 
 
 def _slow_jsd99(r, z, bias):
-    """Juszkiewicz, Springel & Durrer 1999 (ApJ 518, L25), eqs. 6-7, written out from the paper's formulas."""
+    """Juszkiewicz et al. 1999 (ApJ 518, L25), eqs. 6-7, written out from the paper's formulas."""
     x = np.union1d(np.geomspace(0.02, r.max(), 500), r)  # every r is a node: the integrals end exactly there
     xi_x = _slow_xi(x, z)
     xibar = np.array([3 / ri**3 * np.trapezoid((xi_x * x**2)[x <= ri], x[x <= ri]) for ri in r])
