@@ -60,6 +60,14 @@ def test_grids_that_are_not_separable_cylinders_are_refused(kwargs, key):
     assert err.value.key == key
 
 
+def test_columns_beyond_native_longitude_180_continue_the_turn():
+    # reference pixel in the first column, RA falling to the right: WCSLIB places columns 0..180 only
+    corner = CarMap.from_image(np.zeros((180, 360)), car_wcs(crpix=(1.0, 90.5)))
+    centred = CarMap.from_image(np.zeros((180, 360)), car_wcs(crval=(180.0, 0.0), crpix=(181.0, 90.5)))
+    assert corner.grid.wraps and corner.same_grid(centred)
+    assert np.allclose(corner.pixel_lonlat([359])[0], 1.0)  # column 359 at RA -359 = 1 deg
+
+
 def test_mercator_rows_follow_the_projection():
     # MER: y = ln tan(45 deg + lat / 2) in degrees of arc (Calabretta & Greisen 2002, eq. 84)
     m = CarMap.from_image(np.zeros((100, 360)), car_wcs(ctype=("GLON-MER", "GLAT-MER"), crpix=(180.5, 50.5)))
