@@ -450,8 +450,17 @@ class CarMap(SkyMap):
         full_w[self.pixels] = self.weight
         return full_v, full_w
 
-    def _held_area_sr(self) -> np.ndarray:
-        return self.grid.row_area_sr[self.held_pixels() // self.grid.nx]
+    def _held_rows(self, index=None) -> np.ndarray:
+        """Grid row of held pixels ``index`` (default all)."""
+        index = np.arange(self.n_held) if index is None else index
+        return self._flat(index) // self.grid.nx
+
+    def _row_sums(self, per_pixel) -> np.ndarray:
+        """Sums over each grid row of a per-held-pixel array, (ny,) float64."""
+        g = self.grid
+        if self.pixels is None:
+            return np.sum(np.reshape(per_pixel, (g.ny, g.nx)), axis=1, dtype=np.float64)
+        return np.bincount(self.pixels // g.nx, weights=per_pixel, minlength=g.ny)
 
     # ------------------------------------------------------------------ SkyMap: the grid
     @property
@@ -473,7 +482,7 @@ class CarMap(SkyMap):
         return isinstance(other, CarMap) and self.grid.matches(other.grid)
 
     def usable_fraction(self) -> float:
-        return float(np.sum(self.weight * self._held_area_sr(), dtype=np.float64) / (4.0 * math.pi))
+        return float(self._row_sums(self.weight) @ self.grid.row_area_sr / (4.0 * math.pi))
 
     def with_values(self, values, *, weight=None, path=None) -> "CarMap":
         return CarMap(self.wcs, self.shape, self.pixels, values, self.weight if weight is None else weight,
@@ -520,18 +529,24 @@ class CarMap(SkyMap):
         return unit_vectors(*self.pixel_lonlat(index))
 
     @functools.cached_property
-    def _usable_cumulative_area(self) -> tuple[np.ndarray, np.ndarray]:
+    def _usable_by_row(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Usable held pixels (row-major), the first of each row among them, and the cumulative usable
+        area of the rows."""
         usable = np.flatnonzero(self.weight > 0)
-        return usable, np.cumsum(self._held_area_sr()[usable])
+        counts = np.bincount(self._held_rows(usable), minlength=self.grid.ny)
+        return usable, np.cumsum(counts) - counts, np.cumsum(counts * self.grid.row_area_sr)
 
     def random_points(self, n, rng):
-        """A usable pixel drawn with probability proportional to its solid angle, then a point uniform
-        on the sphere within it (uniform in longitude and in sin(latitude) between the row edges)."""
-        usable, cum = self._usable_cumulative_area
+        """A usable pixel drawn with probability proportional to its solid angle (a row by its usable
+        area, then one of its usable pixels), then a point uniform on the sphere within it (uniform in
+        longitude and in sin(latitude) between the row edges)."""
+        usable, first, cum = self._usable_by_row
         if usable.size == 0:
             raise MapError(f"map {self.path}: no usable pixel to draw random points in", path=self.path)
         g = self.grid
-        pick = np.minimum(np.searchsorted(cum, rng.random(n) * cum[-1], side="right"), usable.size - 1)
+        row = np.minimum(np.searchsorted(cum, rng.random(n) * cum[-1], side="right"), g.ny - 1)
+        count = np.diff(np.append(first, usable.size))[row]
+        pick = first[row] + np.minimum((rng.random(n) * count).astype(np.int64), count - 1)
         y, x = np.divmod(self._flat(usable[pick]), g.nx)
         lon = g.column_lon_deg(x + rng.random(n) - 0.5)
         z = g.z_lo[y] + (g.z_hi[y] - g.z_lo[y]) * rng.random(n)
@@ -600,5 +615,7 @@ class CarMap(SkyMap):
 
     def white_noise(self, level_uk_arcmin, rng) -> np.ndarray:
         """sigma = level / sqrt(pixel area in arcmin^2), each pixel with its own row's area."""
-        area_arcmin2 = self._held_area_sr() / ARCMIN_RAD ** 2
-        return level_uk_arcmin / np.sqrt(area_arcmin2) * rng.standard_normal(self.n_held)
+        sigma = level_uk_arcmin / np.sqrt(self.grid.row_area_sr / ARCMIN_RAD ** 2)  # per row
+        if self.pixels is None:
+            return (rng.standard_normal(self.shape) * sigma[:, None]).reshape(-1)
+        return sigma[self._held_rows()] * rng.standard_normal(self.n_held)
