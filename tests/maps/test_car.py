@@ -171,6 +171,9 @@ def test_galactic_grid_sees_tracers_given_in_equatorial_coordinates():
     amp = 50.0 * math.pi * (theta * ARCMIN_RAD) ** 2
     sky = grid.source_map([101.0, 102.5], [0.5, -1.0], np.full(2, amp), fwhm_arcmin=fwhm)
     res = measure_apertures(sky, ra, dec, theta, pixel_weighting="subsample")
+    deltas = grid.source_map([101.0, 102.5, 150.0], [0.5, -1.0, 0.0], [3.0, 4.0, 5.0])  # the last off the grid
+    assert np.flatnonzero(deltas.values).tolist() == sorted(grid.grid.pixel_of([101.0, 102.5], [0.5, -1.0]).tolist())
+    assert deltas.values.sum() == 7.0
     # analytic: T_AP = f Y / (pi theta^2) (photometry.point_source_fraction), to the sampling of the beam
     assert np.allclose(res.temperatures[0], 50.0 * point_source_fraction(theta, fwhm), rtol=0.01)
 
