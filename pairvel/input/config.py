@@ -102,7 +102,16 @@ class CatalogueConfig:
 class MapConfig:
     path: Path | None = _key(None, "HEALPix temperature map, FITS, full or partial sky (required)")
     field: int = _key(0, "which map column (0-based) to read")
-    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
+    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB, uK_CMB; K_RJ, mK_RJ, uK_RJ "
+                                  "(Rayleigh-Jeans); or a surface brightness such as MJy/sr or Jy/sr (these two "
+                                  "need the frequency or a bandpass)")
+    frequency_ghz: float | None = _key(None, "frequency of map.path in GHz, for Rayleigh-Jeans and surface-brightness "
+                                             "units (wins over a FREQ or RESTFRQ header card; with "
+                                             "[multifrequency], multifrequency.frequencies_ghz is used instead)",
+                                       bounds=(1.0, 3000.0))
+    bandpass_path: Path | None = _key(None, "bandpass of map.path (text: nu [GHz] and transmission per row; or ECSV): "
+                                            "converts Rayleigh-Jeans and surface-brightness units band-weighted "
+                                            "instead of at one frequency (README, 'Map units')")
     ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
                                 choices=(None, "RING", "NESTED"))
     coordsys: str | None = _key(None, "frame of the map when the header has no COORDSYS: C (equatorial), G (Galactic) "
@@ -805,6 +814,10 @@ def _check_multifrequency(cfg, bad) -> None:
                 bad(f"multifrequency.{key}", "is set but multifrequency.map_paths is not")
         return
     k = len(mf.map_paths)
+    for key in ("frequency_ghz", "bandpass_path"):
+        if getattr(cfg.map, key) is not None:
+            bad(f"map.{key}", "describes map.path; with multifrequency.map_paths each map's frequency is "
+                              "multifrequency.frequencies_ghz (no bandpass tables there yet)")
     if cfg.map.path is not None:
         bad("map.path", "and multifrequency.map_paths are both set; keep one (map_paths replaces map.path)")
     if mf.frequencies_ghz is None:

@@ -55,7 +55,7 @@ def read_channel_maps(cfg) -> list:
         warnings.warn(f"multifrequency.beam_fwhm_arcmin differ ({list(mf.beam_fwhm_arcmin)}); the apertures keep "
                       f"different fractions of a cluster's signal in each map and the tSZ/kSZ split is biased",
                       PairvelWarning, stacklevel=2)
-    maps = [_read_one(p, mc) for p in mf.map_paths]
+    maps = [_read_one(p, mc, frequency_ghz=nu) for p, nu in zip(mf.map_paths, mf.frequencies_ghz)]
     if mc.mask_path is not None:
         maps = [m.with_mask(read_mask(mc.mask_path, ordering=mc.ordering, coordsys=m.coordsys)) for m in maps]
     return maps

@@ -219,13 +219,20 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
 
 def _read_each(cfg):
     mc, mf = cfg.map, cfg.multifrequency
-    return [_read_one(p, mc) for p in mf.map_paths]
+    return [_read_one(p, mc, frequency_ghz=nu) for p, nu in zip(mf.map_paths, mf.frequencies_ghz)]
 
 
-def _read_one(path, mc):
-    """One temperature map with the options of ``[map]`` (``mc``), its unit checked on its pixel rms."""
+def _read_one(path, mc, *, frequency_ghz=None):
+    """One temperature map with the options of ``[map]`` (``mc``), its unit checked on its pixel rms.
+
+    ``frequency_ghz`` is the map's frequency in ``[multifrequency]`` (default ``map.frequency_ghz``),
+    for units other than CMB temperatures; the frequency and bandpass keywords reach the reader only
+    when set.
+    """
+    options = {"frequency_ghz": mc.frequency_ghz if frequency_ghz is None else frequency_ghz,
+               "bandpass_path": mc.bandpass_path}
     return read_map(path, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys,
-                    rms_check=mc.rms_unit_check)
+                    rms_check=mc.rms_unit_check, **{k: v for k, v in options.items() if v is not None})
 
 
 def read_input_map(cfg) -> tuple[SkyMap, dict | None]:
