@@ -210,6 +210,17 @@ def set_cell(column: str, row: int, value) -> Callable[[Path], None]:
     return edit_catalogue(edit)
 
 
+def ecsv_unit(column: str, unit: str) -> Callable[[Path], None]:
+    """Give ``column`` of cat.ecsv the unit ``unit``."""
+
+    def prepare(folder: Path) -> None:
+        table = Table.read(folder / "cat.ecsv", format="ascii.ecsv")
+        table[column].unit = unit
+        table.write(folder / "cat.ecsv", format="ascii.ecsv", overwrite=True)
+
+    return prepare
+
+
 def catalogue_as(suffix: str, edit=None, *, extra_config: str = "") -> Callable[[Path], None]:
     """Write the (edited) catalogue as cat.<suffix> and point the config at it."""
 
@@ -510,6 +521,8 @@ CATALOGUE_CASES = [
     Case("proxy-column-missing", "catalogue",
          both(edit_catalogue(lambda f: f.drop(columns="log_mass")), set_in_config("catalogue", "proxy_min = 14.2")),
          r"column 'log_mass' \(catalogue\.proxy_column\) not found"),
+    Case("ra-column-in-mpc", "catalogue", both(catalogue_as("ecsv"), ecsv_unit("ra", "Mpc")),
+         r"catalogue \S*cat\.ecsv: column 'ra' \(catalogue\.ra_column\) has unit 'Mpc', which is not an angle"),
     Case("fits-no-rows", "catalogue", catalogue_as("fits", lambda f: f.iloc[:0]), r"cat\.fits: has no rows"),
     Case("fits-two-numbers-per-row", "catalogue", both(catalogue_as("fits"), write_file("cat.fits", two_column_ra)),
          r"cat\.fits: column 'ra' \(catalogue\.ra_column\) must be one number per row"),

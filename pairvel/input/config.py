@@ -81,8 +81,10 @@ class CatalogueConfig:
     path: Path | None = _key(None, "tracer catalogue: FITS, ECSV, CSV or Parquet table (required)")
     format: str = _key("auto", "auto (from the file suffix), fits, ecsv, csv or parquet",
                        choices=("auto", "fits", "ecsv", "csv", "parquet"))
-    ra_column: str = _key("ra", "column with right ascension in degrees")
-    dec_column: str = _key("dec", "column with declination in degrees")
+    ra_column: str = _key("ra", "column with right ascension: degrees, or converted to degrees from the angle unit the "
+                                "file gives it (FITS TUNITn, ECSV or astropy-written Parquet: rad, arcmin, arcsec, "
+                                "hourangle); a column without a unit is degrees")
+    dec_column: str = _key("dec", "column with declination: degrees, or converted from its angle unit as ra_column")
     z_column: str = _key("z", "column with spectroscopic redshift")
     proxy_column: str | None = _key(None, "optional column with a mass or luminosity proxy (used by proxy cuts)")
     weight_column: str | None = _key(None, "optional column of per-tracer weights w >= 0; pairs are weighted by "

@@ -154,3 +154,17 @@ def test_bad_frequency_card(tmp_path):
 def test_unit_kinds():
     assert [parse_map_unit(s).kind for s in ("uK", "K_CMB", "mK_RJ", "uK(RJ)", "MJy sr-1", "Jy/sr")] == \
         ["cmb", "cmb", "rj", "rj", "brightness", "brightness"]
+
+
+def test_each_frequency_map_is_converted_at_its_own_frequency(tmp_path):
+    from pairvel.input.config import config_from_dict
+    from pairvel.maps.multifreq import _read_each
+
+    v = np.random.default_rng(3).normal(0.0, 3e-5, 12 * 8**2).astype(np.float32)  # K_RJ
+    paths = [str(healpix_file(tmp_path / f"m{nu}.fits", v, unit="K_RJ")) for nu in (90, 150)]
+    cfg = config_from_dict({"catalogue": {"path": "c.fits"}, "theory": {"bias": 2.0},
+                            "multifrequency": {"map_paths": paths, "frequencies_ghz": [90.0, 150.0]}},
+                           source=tmp_path / "run.toml")
+    maps = _read_each(cfg)
+    for m, nu in zip(maps, (90.0, 150.0)):  # astropy via unit_to_uk, checked above
+        np.testing.assert_allclose(m.values, v * unit_to_uk("K_RJ", frequency_ghz=nu), rtol=1e-6)
