@@ -29,7 +29,7 @@ between stopping, warning and dropping the repeats.
 
 from __future__ import annotations
 
-__all__ = ["Catalogue", "RemovedRows", "load_catalogue", "read_table_columns", "canonical_order", "column_in_degrees"]
+__all__ = ["Catalogue", "RemovedRows", "load_catalogue", "read_table_columns", "canonical_order", "column_in_unit"]
 
 import warnings
 from dataclasses import dataclass, field
@@ -164,7 +164,7 @@ def _format_of(path: Path, fmt: str, section: str = "catalogue") -> str:
         path=path, key=f"{section}.format")
 
 
-def read_table_columns(path, columns, *, fmt="auto", section="catalogue", angles=(), what="catalogue") -> dict:
+def read_table_columns(path, columns, *, fmt="auto", section="catalogue", units=None, what="catalogue") -> dict:
     """Read the named columns of a table file as float64 arrays.
 
     Parameters
@@ -177,9 +177,10 @@ def read_table_columns(path, columns, *, fmt="auto", section="catalogue", angles
     fmt : {"auto", "fits", "ecsv", "csv", "parquet"}
     section : str
         Config section of the settings (for the ``format`` key in messages).
-    angles : collection of str
-        Keys of ``columns`` that hold angles: returned in degrees, converted from the column's unit
-        when the file gives one (see :func:`column_in_degrees`).
+    units : dict of str -> str, optional
+        Key of ``columns`` -> the unit its values are returned in (e.g. ``"deg"``, ``"mJy"``),
+        converted from the column's unit when the file gives one; a column without a unit is taken
+        to be in it already (see :func:`column_in_unit`).
     what : str
         What the file is, for messages ("catalogue", "source list").
 
@@ -213,9 +214,9 @@ def read_table_columns(path, columns, *, fmt="auto", section="catalogue", angles
             raise CatalogueError(f"{what} {path}: column '{name}' ({key}) must be numeric; got {values.dtype}",
                                  path=path, key=key)
         values = values.astype(np.float64)
-        if key in angles:
-            values = column_in_degrees(values, getattr(raw, "unit", None), where=f"{what} {path}: column '{name}' "
-                                       f"({key})", path=path, key=key)
+        if key in (units or {}):
+            values = column_in_unit(values, getattr(raw, "unit", None), units[key],
+                                    where=f"{what} {path}: column '{name}' ({key})", path=path, key=key)
         out[name] = values
     return out
 
@@ -252,15 +253,17 @@ _ANGLE_ALIASES = {"degree": "deg", "degrees": "deg", "radian": "rad", "radians":
                   "arcsecs": "arcsec", "hour": "hourangle", "hours": "hourangle", "hourangles": "hourangle"}
 
 
-def column_in_degrees(values, unit, *, where: str, path=None, key=None) -> np.ndarray:
-    """An angle column in degrees, converted from its unit (rad, arcmin, arcsec, hourangle, ...).
+def column_in_unit(values, unit, target: str, *, where: str, path=None, key=None) -> np.ndarray:
+    """A column in the unit ``target`` (e.g. "deg"), converted from its own ``unit`` (e.g. rad, arcmin,
+    arcsec, hourangle for an angle).
 
-    A column without a unit (or a dimensionless one) is taken to be in degrees, as pairvel always read
-    it; a unit that is not an angle, or that astropy cannot read, is a :class:`CatalogueError`.
-    A declination in hour angle is refused too.
+    A column without a unit (or a dimensionless one) is taken to be in ``target`` already, as pairvel
+    always read it; a unit of another kind, or one astropy cannot read, is a :class:`CatalogueError`,
+    and so is a declination (a ``key`` ending in dec_column) in hour angle.
     """
     import astropy.units as u
 
+    goal = u.Unit(target)
     if unit is None:
         return values
     text = str(unit).strip()
@@ -268,14 +271,16 @@ def column_in_degrees(values, unit, *, where: str, path=None, key=None) -> np.nd
     if isinstance(parsed, u.UnrecognizedUnit) or not text:
         alias = _ANGLE_ALIASES.get(text.lower(), text.lower())
         parsed = u.Unit(alias, parse_strict="silent") if text else u.dimensionless_unscaled
-    if parsed == u.dimensionless_unscaled or parsed == u.deg:
+    if parsed == u.dimensionless_unscaled or parsed == goal:
         return values
-    if isinstance(parsed, u.UnrecognizedUnit) or not parsed.is_equivalent(u.deg):
-        raise CatalogueError(f"{where} has unit '{text}', which is not an angle (deg, rad, arcmin, arcsec, "
-                             f"hourangle); fix the column's unit or remove it to read degrees", path=path, key=key)
+    if isinstance(parsed, u.UnrecognizedUnit) or not parsed.is_equivalent(goal):
+        kind = "an angle (deg, rad, arcmin, arcsec, hourangle)" if goal.is_equivalent(u.deg) else \
+            f"a {goal.physical_type} ({goal})"
+        raise CatalogueError(f"{where} has unit '{text}', which is not {kind}; fix the column's unit or remove it "
+                             f"to read {goal}", path=path, key=key)
     if parsed == u.hourangle and key is not None and key.endswith("dec_column"):
         raise CatalogueError(f"{where} has unit 'hourangle', which a declination cannot have", path=path, key=key)
-    return (values * parsed).to_value(u.deg)
+    return (values * parsed).to_value(goal)
 
 
 def _describe_invalid(name, values, ok) -> str:
@@ -304,7 +309,7 @@ def load_catalogue(cfg, *, section: str = "catalogue") -> Catalogue:
     if cfg.weight_column is not None:
         columns[f"{section}.weight_column"] = cfg.weight_column
     data = read_table_columns(path, columns, fmt=cfg.format, section=section,
-                              angles=(f"{section}.ra_column", f"{section}.dec_column"))
+                              units={f"{section}.ra_column": "deg", f"{section}.dec_column": "deg"})
     ra, dec, z = data[cfg.ra_column], data[cfg.dec_column], data[cfg.z_column]
     proxy = data[cfg.proxy_column] if cfg.proxy_column is not None else None
     weight = data[cfg.weight_column] if cfg.weight_column is not None else None
