@@ -37,6 +37,7 @@ from ..core.errors import InputError
 from ..core.provenance import file_sha256
 from ..core.sphere import unit_vectors
 from ..input.catalogue import read_table_columns
+from .photometry import MASKED
 from .skymap import SkyMap
 
 #: Drop reasons of the tracers this module removes (beside :data:`pairvel.maps.photometry.DROP_REASONS`).
@@ -161,7 +162,8 @@ def near_sources(ra_deg, dec_deg, reach_arcmin, sources: SourceList) -> np.ndarr
 
 
 def clip_outliers(temperatures, threshold_sigma: float) -> tuple[np.ndarray, dict]:
-    """Which tracers to keep: |T - median| <= k 1.4826 MAD at every radius (one pass).
+    """Which tracers to keep: |T - median| <= k 1.4826 MAD at every radius (one pass; a radius whose MAD is 0
+    clips nothing).
 
     Parameters
     ----------
@@ -182,13 +184,12 @@ def clip_outliers(temperatures, threshold_sigma: float) -> tuple[np.ndarray, dic
         raise ValueError(f"threshold_sigma must be a positive number; got {threshold_sigma!r}")
     median = np.median(t, axis=1, keepdims=True)
     sigma = MAD_TO_SIGMA * np.median(np.abs(t - median), axis=1, keepdims=True)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        keep = np.all(np.abs(t - median) <= threshold_sigma * sigma, axis=0) | np.all(sigma == 0, axis=0)
+    keep = np.all((np.abs(t - median) <= threshold_sigma * sigma) | (sigma == 0), axis=0)  # MAD 0: no scale, no clip
     return keep, {"threshold_sigma": float(threshold_sigma), "clipped": int((~keep).sum())}
 
 
 def screen_apertures(ra_deg, dec_deg, temperatures, usable, drop_reason, *, reach_arcmin, sources=None,
-                     clip_sigma=None, masked_reason="masked") -> tuple[np.ndarray, np.ndarray, dict]:
+                     clip_sigma=None, masked_reason=MASKED) -> tuple[np.ndarray, np.ndarray, dict]:
     """After the photometry: drop the tracers near a masked source, then clip the outliers of the rest.
 
     Parameters
