@@ -21,8 +21,8 @@ Also here, for every pixelisation: the frame letters, the map units accepted on 
 
 from __future__ import annotations
 
-__all__ = ["SkyMap", "read_map", "read_mask", "footprint_fraction", "unit_to_uk", "remove_monopole_dipole",
-           "frame_letter"]
+__all__ = ["SkyMap", "read_map", "read_mask", "footprint_fraction", "unit_to_uk", "ACCEPTED_UNITS",
+           "remove_monopole_dipole", "frame_letter"]
 
 import importlib
 import math
@@ -32,7 +32,7 @@ from abc import ABC, abstractmethod
 import numpy as np
 
 from ..core.errors import MapError, PairvelWarning
-from .units import ACCEPTED_UNITS, unit_to_uk  # noqa: F401  (re-exported: the units every reader accepts)
+from .units import ACCEPTED_UNITS, unit_to_uk  # re-exported: the units every reader accepts
 
 _EQUATORIAL = ("C", "Q", "CELESTIAL", "EQUATORIAL", "ICRS", "FK5")
 # Frame spellings pairvel accepts, to one letter: equatorial C, Galactic G, ecliptic E.

@@ -84,12 +84,6 @@ class Bandpass:
     transmission: np.ndarray
     path: str | None = None
 
-    @property
-    def centre_ghz(self) -> float:
-        """Transmission-weighted mean frequency, GHz (for messages)."""
-        return float(np.trapezoid(self.transmission * self.nu_ghz, self.nu_ghz)
-                     / np.trapezoid(self.transmission, self.nu_ghz))
-
 
 def _strip(text: str, suffixes) -> str | None:
     for suffix in suffixes:
