@@ -813,7 +813,7 @@ def cross_curve(cfg: Config, sky: SkyInputs, partner, cat: Catalogue, positions,
     return cross_pairs(cfg, sky.skymap, partner, positions=positions, temps_raw=temps_raw, z=cat.z,
                        weights=cat.weight, ra=cat.ra, dec=cat.dec, regions=regions, edges=cfg.bins.edges(),
                        in_fit=model.in_fit,
-                       trend_factor=model.trend_factor, power=power, progress=progress.say)
+                       trend_factor=model.trend_factor, power=power, progress=progress.say, sources=sky.sources)
 
 
 # ---------------------------------------------------------------------------- what else is kept

@@ -12,6 +12,7 @@ from pairvel.maps.photometry import MASKED, measure_apertures
 from pairvel.maps.sourcemask import CLIPPED, NEAR_SOURCE, near_sources
 from pairvel.pipeline import (Apertures, measure_tracers, prepare_map, random_position_sets, read_catalogue,
                               selection_counts, simulated_sets)
+from pairvel.stats.cross import load_partner, partner_tracers
 
 
 @pytest.mark.filterwarnings("ignore:map .* has no COORDSYS", "ignore:aperture radius", "ignore:.* dropped by the")
@@ -24,7 +25,8 @@ def test_masked_sources_and_clipped_outliers_leave_every_set(tiny_survey):
     text = text.replace("n_regions = 12", 'n_regions = 12\nestimator = "simulations"\nn_sim = 2\nsim_cmb = false\n'
                                           'sim_white_noise_uk_arcmin = 400.0')
     (tiny_survey / "src.toml").write_text(text + '\n[source_mask]\npath = "src.csv"\nradius_arcmin = 6.0\n'
-                                                 '\n[outliers]\nclip_sigma = 3.0\n')
+                                                 '\n[outliers]\nclip_sigma = 3.0\n'
+                                                 '\n[partner]\npath = "cat.csv"\nbias = 1.0\n')
     cfg = load_config(tiny_survey / "src.toml")
     quiet = Progress(10, quiet=True)
     sky = prepare_map(cfg, quiet)
@@ -54,3 +56,9 @@ def test_masked_sources_and_clipped_outliers_leave_every_set(tiny_survey):
     randoms = random_position_sets(cfg, sky.skymap, cat, aps.scale, quiet)
     assert sims.shape == (1, 2, len(cat)) and randoms.shape == (2, len(cat))
     assert isinstance(aps, Apertures) and aps.temperatures.shape == (1, len(cat))
+
+    # a [partner] catalogue (here the same file, same radius) loses the same tracers, for the same reasons
+    cat2, temps2, selection2, _ = partner_tracers(cfg, load_partner(cfg), sky.skymap, sources=sky.sources)
+    np.testing.assert_array_equal(cat2.row, cat.row)
+    np.testing.assert_array_equal(temps2, aps.temperatures[0])
+    assert selection2["near_point_source"] == near.sum() and selection2["outliers_clipped"] == selection["outliers_clipped"]
