@@ -385,13 +385,15 @@ def selection_counts(cfg: Config, cat: Catalogue, aps: Apertures, sky: SkyInputs
     dropped = _counts([] if cat.removed is None else cat.removed.reason, DROP_REASONS)
     selection = dict(cat.selection, aperture_masked_dropped=aps.n_dropped, aperture_dropped_by_reason=dropped,
                      used=len(cat))
-    reasons = [] if cat.removed is None else cat.removed.reason
+    screened = _counts([] if cat.removed is None else cat.removed.reason, (NEAR_SOURCE, CLIPPED))  # also from a table
     if sky.sources is not None:
         selection["point_sources_masked"] = len(sky.sources)
-        selection["near_point_source_dropped"] = _counts(reasons, (NEAR_SOURCE,))[NEAR_SOURCE]
+    if sky.sources is not None or screened[NEAR_SOURCE]:
+        selection["near_point_source_dropped"] = screened[NEAR_SOURCE]
     if cfg.outliers.clip_sigma is not None:
         selection["outlier_clip_sigma"] = cfg.outliers.clip_sigma
-        selection["outliers_clipped"] = _counts(reasons, (CLIPPED,))[CLIPPED]
+    if cfg.outliers.clip_sigma is not None or screened[CLIPPED]:
+        selection["outliers_clipped"] = screened[CLIPPED]
     if sky.dipole_fit is not None:
         selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in sky.dipole_fit]
     if aps.scale is not None:

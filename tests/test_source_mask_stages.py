@@ -2,16 +2,18 @@
 the catalogue with their reasons and counts before anything else sees them, so the null and
 simulated-sky sets are made for the same tracers as the data."""
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 import pytest
 
 from pairvel.core.progress import Progress
-from pairvel.input.config import load_config
+from pairvel.input.config import OutlierConfig, load_config
 from pairvel.maps.photometry import MASKED, measure_apertures
 from pairvel.maps.sourcemask import CLIPPED, NEAR_SOURCE, near_sources
-from pairvel.pipeline import (Apertures, measure_tracers, prepare_map, random_position_sets, read_catalogue,
-                              selection_counts, simulated_sets)
+from pairvel.pipeline import (Apertures, SkyInputs, measure_tracers, prepare_map, random_position_sets,
+                              read_catalogue, selection_counts, simulated_sets)
 from pairvel.stats.cross import load_partner, partner_tracers
 
 
@@ -50,6 +52,12 @@ def test_masked_sources_and_clipped_outliers_leave_every_set(tiny_survey):
     assert selection["outliers_clipped"] == np.sum(reasons == CLIPPED) and selection["outlier_clip_sigma"] == 3.0
     assert selection["used"] + selection["aperture_masked_dropped"] + near.sum() + selection["outliers_clipped"] \
         == selection["kept"]
+    # a run from the tracer table (no map, no [source_mask] or [outliers]) still counts the table's reasons
+    from_table = selection_counts(dataclasses.replace(cfg, outliers=OutlierConfig()), cat, aps,
+                                  SkyInputs(None, None, None, None))
+    assert from_table["near_point_source_dropped"] == near.sum()
+    assert from_table["outliers_clipped"] == selection["outliers_clipped"]
+    assert "point_sources_masked" not in from_table and "outlier_clip_sigma" not in from_table
 
     # the null and simulated-sky sets are made for exactly these tracers
     sims = simulated_sets(cfg, sky, cat, np.random.default_rng(1), quiet)
