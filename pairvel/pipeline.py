@@ -898,6 +898,7 @@ def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str, stored
         out["tracer_table"] = {"path": stored.path, "sha256": file_sha256(stored.path)}
     if sky.sources is not None:
         out["point_sources"] = {"path": sky.sources.path, "sha256": sky.sources.sha256}
-    if cfg.map.bandpass_path is not None:
-        out["bandpass"] = {"path": str(cfg.map.bandpass_path), "sha256": file_sha256(cfg.map.bandpass_path)}
+    bands = [cfg.map.bandpass_path] if cfg.map.bandpass_path is not None else cfg.multifrequency.bandpass_paths or []
+    if bands and stored is None:
+        out["bandpass"] = {"path": "; ".join(map(str, bands)), "sha256": "; ".join(file_sha256(b) for b in bands)}
     return out

@@ -331,6 +331,9 @@ class MultifrequencyConfig:
                                                           "map_paths)", bounds=(1.0, 3000.0))
     noise_uk_arcmin: tuple[float, ...] | None = _key(None, "white-noise level of each map, uK arcmin (noise_model "
                                                           "levels)", bounds=(1e-6, 1e6))
+    bandpass_paths: tuple[Path, ...] | None = _key(None, "bandpass table of each map (as map.bandpass_path): converts "
+                                                        "Rayleigh-Jeans and surface-brightness units band-weighted; the "
+                                                        "tSZ factors stay at frequencies_ghz")
     beam_fwhm_arcmin: tuple[float, ...] | None = _key(None, "beam FWHM of each map, arcmin; unequal beams are refused "
                                                            "unless allow_beam_mismatch (unset: assumed equal)",
                                                       bounds=(0.0, 600.0))
@@ -868,20 +871,20 @@ def _check_multifrequency(cfg, bad) -> None:
     """Cross-key checks of ``[multifrequency]``; ``bad(key, message)`` raises the ConfigError."""
     mf = cfg.multifrequency
     if not mf.map_paths:
-        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths"):
             if getattr(mf, key) is not None:
                 bad(f"multifrequency.{key}", "is set but multifrequency.map_paths is not")
         return
     k = len(mf.map_paths)
     for key in ("frequency_ghz", "bandpass_path"):
         if getattr(cfg.map, key) is not None:
-            bad(f"map.{key}", "describes map.path; with multifrequency.map_paths each map's frequency is "
-                              "multifrequency.frequencies_ghz (no bandpass tables there yet)")
+            bad(f"map.{key}", "describes map.path; with multifrequency.map_paths give each map's "
+                              "multifrequency.frequencies_ghz and bandpass_paths")
     if cfg.map.path is not None:
         bad("map.path", "and multifrequency.map_paths are both set; keep one (map_paths replaces map.path)")
     if mf.frequencies_ghz is None:
         bad("multifrequency.frequencies_ghz", f"is required with multifrequency.map_paths (one per map, {k})")
-    for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+    for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths"):
         val = getattr(mf, key)
         if val is not None and len(val) != k:
             bad(f"multifrequency.{key}", f"must have one value per map in multifrequency.map_paths ({k}); "

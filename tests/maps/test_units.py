@@ -11,7 +11,7 @@ from scipy import constants as sc
 from scipy.integrate import quad
 
 from pairvel.core.constants import T_CMB_K
-from pairvel.core.errors import MapError, PairvelWarning
+from pairvel.core.errors import ConfigError, MapError, PairvelWarning
 from pairvel.maps.healpix_io import read_map
 from pairvel.maps.units import Bandpass, parse_map_unit, read_bandpass, unit_to_uk
 
@@ -156,15 +156,27 @@ def test_unit_kinds():
         ["cmb", "cmb", "rj", "rj", "brightness", "brightness"]
 
 
+RUN = {"catalogue": {"path": "c.fits"}, "theory": {"bias": 2.0}}
+
+
 def test_each_frequency_map_is_converted_at_its_own_frequency(tmp_path):
     from pairvel.input.config import config_from_dict
     from pairvel.maps.multifreq import _read_each
 
     v = np.random.default_rng(3).normal(0.0, 3e-5, 12 * 8**2).astype(np.float32)  # K_RJ
     paths = [str(healpix_file(tmp_path / f"m{nu}.fits", v, unit="K_RJ")) for nu in (90, 150)]
-    cfg = config_from_dict({"catalogue": {"path": "c.fits"}, "theory": {"bias": 2.0},
-                            "multifrequency": {"map_paths": paths, "frequencies_ghz": [90.0, 150.0]}},
+    cfg = config_from_dict({**RUN, "multifrequency": {"map_paths": paths, "frequencies_ghz": [90.0, 150.0]}},
                            source=tmp_path / "run.toml")
     maps = _read_each(cfg)
     for m, nu in zip(maps, (90.0, 150.0)):  # astropy via unit_to_uk, checked above
         np.testing.assert_allclose(m.values, v * unit_to_uk("K_RJ", frequency_ghz=nu), rtol=1e-6)
+    for nu in (90, 150):  # delta-like bands at the same frequencies give the same maps [analytic]
+        (tmp_path / f"band{nu}.txt").write_text(f"{nu - 1e-3} 1\n{nu + 1e-3} 1\n")
+    banded = config_from_dict({**RUN, "multifrequency": {
+        "map_paths": paths, "frequencies_ghz": [30.0, 30.0], "combination": "minimum_variance",
+        "bandpass_paths": ["band90.txt", "band150.txt"]}}, source=tmp_path / "run.toml")
+    for m, again in zip(_read_each(banded), maps):
+        np.testing.assert_allclose(m.values, again.values, rtol=1e-6)
+    with pytest.raises(ConfigError, match=r"'multifrequency\.bandpass_paths' must have one value per map .* got 1"):
+        config_from_dict({**RUN, "multifrequency": {"map_paths": paths, "frequencies_ghz": [90.0, 150.0],
+                                                                "bandpass_paths": ["band90.txt"]}})
