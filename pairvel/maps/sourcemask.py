@@ -26,7 +26,7 @@ robust sigma; 1.4826 MAD is the standard deviation of a Gaussian [analytic: 1 / 
 from __future__ import annotations
 
 __all__ = ["SourceList", "read_source_list", "source_radii_arcmin", "mask_sources", "near_sources",
-           "clip_outliers", "NEAR_SOURCE", "CLIPPED", "MAD_TO_SIGMA"]
+           "clip_outliers", "screen_apertures", "NEAR_SOURCE", "CLIPPED", "MAD_TO_SIGMA"]
 
 from dataclasses import dataclass
 from pathlib import Path
@@ -228,7 +228,8 @@ def screen_apertures(ra_deg, dec_deg, temperatures, usable, drop_reason, *, reac
         info["near_point_source"] = int(near.sum())
     if clip_sigma is not None:
         idx = np.flatnonzero(usable)
-        keep, clip = clip_outliers(np.asarray(temperatures)[:, idx], clip_sigma)
+        keep, clip = clip_outliers(np.asarray(temperatures)[:, idx], clip_sigma) if idx.size else \
+            (np.ones(0, bool), {"threshold_sigma": float(clip_sigma), "clipped": 0})
         reason[idx[~keep]] = CLIPPED
         usable[idx[~keep]] = False
         info["outlier_clip_sigma"], info["outliers_clipped"] = clip["threshold_sigma"], clip["clipped"]
