@@ -25,7 +25,7 @@ from astropy.io.fits.verify import VerifyWarning
 from ..core.errors import MapError, OutputError, PairvelWarning
 from .healpix import UNSEEN, HealpixMap, bad_pixels, is_power_of_two
 from .skymap import FRAME_NAMES, check_unit_scale, frame_letter, unit_to_uk
-from .units import header_frequency_ghz, resolve_unit_factor
+from .units import resolve_unit_factor
 
 _UNIT_KEYS = ("BUNIT", "UNIT", "UNITS")
 
@@ -82,7 +82,7 @@ class _RawTable:
     values: np.ndarray
     unit: str | None
     coordsys: str = "C"
-    frequency_ghz: float | None = None
+    header: object = None  # the table's header, for a frequency card (pairvel.maps.units)
 
 
 def _native(a: np.ndarray) -> np.ndarray:
@@ -109,12 +109,12 @@ def _read_table(path, *, field_index: int, nest, kind: str, coordsys=None) -> _R
             nest_hdr = _ordering(hdu.header, nest, what, spath)
             explicit, pix_name, col, unit = _columns(hdu, field_index, what, spath)
             nside, pixels, values = _pixels_and_values(hdu, explicit, pix_name, col, what, spath)
-            frequency = header_frequency_ghz(hdu.header, what, spath) if kind == "map" else None
+            header = hdu.header.copy() if kind == "map" else None
         except MapError:
             raise
         except (OSError, ValueError, TypeError, KeyError, IndexError) as err:
             raise MapError(f"{what} cannot be read as a HEALPix map ({err})", path=spath) from None
-    return _RawTable(nside, nest_hdr, pixels, values, unit, frame, frequency)
+    return _RawTable(nside, nest_hdr, pixels, values, unit, frame, header)
 
 
 def _healpix_table(hdul, what, spath):
@@ -306,7 +306,7 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     nest = _nest_option(nest, ordering, what, str(path))
     raw = _read_table(path, field_index=int(field), nest=nest, kind="map", coordsys=coordsys)
     factor, used_unit = resolve_unit_factor(raw.unit, unit, what=what, path=str(path),
-                                            header_frequency=raw.frequency_ghz, frequency_ghz=frequency_ghz,
+                                            header=raw.header, frequency_ghz=frequency_ghz,
                                             bandpass_path=bandpass_path)
     values = raw.values
     bad = bad_pixels(values)

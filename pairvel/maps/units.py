@@ -262,23 +262,28 @@ def header_frequency_ghz(header, what: str, spath: str) -> float | None:
     return None
 
 
-def resolve_unit_factor(file_unit, requested_unit, *, what: str, path: str, header_frequency=None,
-                        frequency_ghz=None, bandpass_path=None, stacklevel: int = 3) -> tuple[float, str]:
+def resolve_unit_factor(file_unit, requested_unit, *, what: str, path: str, header=None, frequency_ghz=None,
+                        bandpass_path=None, stacklevel: int = 3) -> tuple[float, str]:
     """The factor to uK_CMB of a map whose file names ``file_unit`` (or None), read with the config's
     ``requested_unit``, ``frequency_ghz`` and ``bandpass_path`` (each None when unset).
 
     The requested unit wins over the file's (with a warning when they differ), and the configured
     frequency over the header's (likewise); a bandpass table, when given, replaces both frequencies.
-    Returns the factor and the unit label used.
+    ``header`` (the FITS header, or None) is read for a frequency only when the unit needs one, so a
+    CMB-temperature map is never stopped by a frequency card pairvel cannot read.  Returns the factor
+    and the unit label used.
     """
     if file_unit is None and requested_unit is None:
         raise MapError(f"{what} names no unit (no TUNITn, BUNIT or UNIT keyword); set map.unit in the config to "
                        f"{ACCEPTED_UNITS}", path=path, key="unit")
-    nu = header_frequency
+    used = file_unit if requested_unit is None else requested_unit
+    where = what if requested_unit is None else f"{what}: requested"
+    needs = parse_map_unit(used, where=where, path=path).needs_frequency
+    nu = header_frequency_ghz(header, what, path) if needs and header is not None else None
     if frequency_ghz is not None:
-        if header_frequency is not None and abs(header_frequency - frequency_ghz) > 1e-6 * frequency_ghz:
-            warnings.warn(f"{what}: the header gives frequency {header_frequency:g} GHz but {FREQUENCY_KEY} = "
-                          f"{frequency_ghz:g}; using {frequency_ghz:g} GHz", PairvelWarning, stacklevel=stacklevel)
+        if nu is not None and abs(nu - frequency_ghz) > 1e-6 * frequency_ghz:
+            warnings.warn(f"{what}: the header gives frequency {nu:g} GHz but the config gives {frequency_ghz:g} GHz; "
+                          f"using {frequency_ghz:g} GHz", PairvelWarning, stacklevel=stacklevel)
         nu = frequency_ghz
     band = None if bandpass_path is None else read_bandpass(bandpass_path)
     options = dict(frequency_ghz=nu, bandpass=band, path=path)

@@ -128,7 +128,7 @@ def test_header_frequency_converts_a_brightness_map(tmp_path, card, value):
 def test_config_frequency_wins_over_the_header_with_a_warning(tmp_path):
     v = np.random.default_rng(2).normal(0.0, 1e-5, 12 * 8**2).astype(np.float32)  # K_RJ
     path = healpix_file(tmp_path / "m.fits", v, unit="K_RJ", header={"FREQ": 90.0})
-    with pytest.warns(PairvelWarning, match="header gives frequency 90 GHz but map.frequency_ghz = 150"):
+    with pytest.warns(PairvelWarning, match="header gives frequency 90 GHz but the config gives 150 GHz"):
         sm = read_map(path, frequency_ghz=150.0)
     np.testing.assert_allclose(sm.values, v * unit_to_uk("K_RJ", frequency_ghz=150.0), rtol=1e-6)  # astropy
     band = tmp_path / "band.txt"
@@ -149,6 +149,9 @@ def test_bad_frequency_card(tmp_path):
     path = healpix_file(tmp_path / "m.fits", np.zeros(12 * 8**2, np.float32), unit="MJy/sr", header={"FREQ": "3 Mpc"})
     with pytest.raises(MapError, match=r"header FREQ must be a frequency .*got '3 Mpc'"):
         read_map(path)
+    # a CMB-temperature map needs no frequency, so its cards are not read
+    cmb = healpix_file(tmp_path / "c.fits", np.ones(12 * 8**2, np.float32), unit="uK_CMB", header={"FREQ": "3 Mpc"})
+    assert read_map(cmb).values[0] == 1.0  # analytic: uK_CMB as is
 
 
 def test_unit_kinds():
