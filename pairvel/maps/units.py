@@ -280,6 +280,10 @@ def resolve_unit_factor(file_unit, requested_unit, *, what: str, path: str, head
     where = what if requested_unit is None else f"{what}: requested"
     needs = parse_map_unit(used, where=where, path=path).needs_frequency
     nu = header_frequency_ghz(header, what, path) if needs and header is not None else None
+    if not needs and bandpass_path is not None:
+        warnings.warn(f"{what}: bandpass {bandpass_path} is not used: unit {used!r} is a CMB temperature, which needs "
+                      f"no frequency", PairvelWarning, stacklevel=stacklevel)
+        bandpass_path = None
     if frequency_ghz is not None:
         if nu is not None and abs(nu - frequency_ghz) > 1e-6 * frequency_ghz:
             warnings.warn(f"{what}: the header gives frequency {nu:g} GHz but the config gives {frequency_ghz:g} GHz; "

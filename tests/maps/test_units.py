@@ -149,9 +149,11 @@ def test_bad_frequency_card(tmp_path):
     path = healpix_file(tmp_path / "m.fits", np.zeros(12 * 8**2, np.float32), unit="MJy/sr", header={"FREQ": "3 Mpc"})
     with pytest.raises(MapError, match=r"header FREQ must be a frequency .*got '3 Mpc'"):
         read_map(path)
-    # a CMB-temperature map needs no frequency, so its cards are not read
+    # a CMB-temperature map needs no frequency, so its cards are not read, and a bandpass is not used
     cmb = healpix_file(tmp_path / "c.fits", np.ones(12 * 8**2, np.float32), unit="uK_CMB", header={"FREQ": "3 Mpc"})
     assert read_map(cmb).values[0] == 1.0  # analytic: uK_CMB as is
+    with pytest.warns(PairvelWarning, match=r"bandpass \S*band\.txt is not used: unit 'uK_CMB' is a CMB temperature"):
+        read_map(cmb, bandpass_path=tmp_path / "band.txt")
 
 
 def test_unit_kinds():
