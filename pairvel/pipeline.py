@@ -36,6 +36,7 @@ from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_ape
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
+from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures
 from .maps.trend import remove_redshift_trend
 from .model.template import load_power, load_v12_table, template_for_run
 from .model.trendmodel import trend_transfer
@@ -167,6 +168,7 @@ class SkyInputs:
     combination: dict | None     # several frequency maps combined ([multifrequency]), else None
     dipole_fit: np.ndarray | None  # monopole and dipole removed (uK), else None
     prefilter: object | None     # PrefilterResult of [prefilter], else None
+    sources: object | None = None  # SourceList masked in the map ([source_mask]), else None
 
 
 @dataclass(frozen=True)
@@ -193,7 +195,7 @@ def measured_tracers(cfg: Config, progress: Progress):
     with progress.stage("sky map"):
         sky = prepare_map(cfg, progress)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress)
+        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress, sources=sky.sources)
     return cat, sky, aps, None
 
 
@@ -210,6 +212,7 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
         progress.say(f"      map {skymap.path}: read {skymap.plane_note}")
     if cfg.map.mask_path is not None:
         skymap = skymap.with_mask(read_mask(cfg.map.mask_path, ordering=cfg.map.ordering, coordsys=skymap.coordsys))
+    skymap, sources = mask_point_sources(cfg, skymap, progress)
     dipole_fit = None
     if cfg.map.remove_dipole:
         skymap, dipole_fit = remove_monopole_dipole(skymap)
@@ -217,25 +220,53 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
                      f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
     skymap, prefilter = apply_prefilter(skymap, cfg.prefilter, radius_arcmin=cfg.aperture.radius_arcmin,
                                         seed=cfg.run.seed, progress=progress.say)
-    return SkyInputs(skymap, combination, dipole_fit, prefilter)
+    return SkyInputs(skymap, combination, dipole_fit, prefilter, sources)
 
 
-def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> tuple[Catalogue, Apertures]:
-    """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted."""
+def mask_point_sources(cfg: Config, skymap, progress: Progress):
+    """The map with a disc around every source of ``[source_mask]`` masked, and the sources (None without)."""
+    sm = cfg.source_mask
+    if sm.path is None:
+        return skymap, None
+    sources = read_source_list(sm.path, ra_column=sm.ra_column, dec_column=sm.dec_column, flux_column=sm.flux_column,
+                               fmt=sm.format, radius_arcmin=sm.radius_arcmin, flux_pivot_mjy=sm.flux_pivot_mjy,
+                               radius_max_arcmin=sm.radius_max_arcmin)
+    masked = mask_sources(skymap, sources)
+    n_pixels = int(np.count_nonzero((skymap.weight > 0) & (masked.weight == 0)))
+    progress.say(f"      masked {len(sources)} point sources (disc radii {sources.radius_arcmin.min():.3g}-"
+                 f"{sources.radius_arcmin.max():.3g} arcmin): {n_pixels} usable pixels masked")
+    return masked, sources
+
+
+def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress, *,
+                    sources=None) -> tuple[Catalogue, Apertures]:
+    """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted, and so
+    are those whose aperture touches a masked point source (``sources``) or whose temperature is an outlier
+    (``outliers.clip_sigma``)."""
     options = photometry_options(cfg, cat.z)
     scale = options["radius_scale"]  # None for fixed angular radii
     res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
                             progress=progress.counter("apertures"))
-    usable = res.usable
-    n_dropped = int((~usable).sum())
-    why = ", ".join(f"{n} {reason}" for reason, n in _counts(res.drop_reason[~usable], DROP_REASONS).items() if n)
+    reach = np.sqrt(2.0) * max(aperture_radii(cfg.aperture)) * (1.0 if scale is None else scale)  # outer annulus
+    usable, reason, screened = screen_apertures(cat.ra, cat.dec, res.temperatures, res.usable, res.drop_reason,
+                                                reach_arcmin=reach, sources=sources,
+                                                clip_sigma=cfg.outliers.clip_sigma)
+    by_photometry = np.isin(reason, DROP_REASONS)
+    n_dropped = int(by_photometry.sum())
+    why = ", ".join(f"{n} {why}" for why, n in _counts(reason[by_photometry], DROP_REASONS).items() if n)
     if n_dropped:
         warnings.warn(f"{n_dropped} of {len(cat)} tracers dropped by the photometry ({why}; masked: more than "
                       f"{cfg.map.max_masked_fraction:.0%} of the disc or annulus)", PairvelWarning, stacklevel=2)
+    if "near_point_source" in screened:
+        progress.say(f"      {screened['near_point_source']} tracers dropped: their aperture touches a masked point source")
+    if "outliers_clipped" in screened:
+        progress.say(f"      {screened['outliers_clipped']} tracers clipped: aperture temperature beyond "
+                     f"{screened['outlier_clip_sigma']:g} robust sigma of the median")
     if usable.sum() < 2:
         raise InputError(f"map {skymap.path}: fewer than 2 tracers have usable apertures "
-                         f"({n_dropped} of {len(cat)} dropped: {why})", path=skymap.path)
-    return (cat.subset(usable, reason=res.drop_reason),
+                         f"({int((~usable).sum())} of {len(cat)} dropped: {why or 'none by the photometry'}"
+                         f"{''.join(f', {k} {v:g}' for k, v in screened.items())})", path=skymap.path)
+    return (cat.subset(usable, reason=reason),
             Apertures(res.temperatures[:, usable], None if scale is None else scale[usable], n_dropped))
 
 
@@ -356,6 +387,15 @@ def selection_counts(cfg: Config, cat: Catalogue, aps: Apertures, sky: SkyInputs
     dropped = _counts([] if cat.removed is None else cat.removed.reason, DROP_REASONS)
     selection = dict(cat.selection, aperture_masked_dropped=aps.n_dropped, aperture_dropped_by_reason=dropped,
                      used=len(cat))
+    screened = _counts([] if cat.removed is None else cat.removed.reason, (NEAR_SOURCE, CLIPPED))  # also from a table
+    if sky.sources is not None:
+        selection["point_sources_masked"] = len(sky.sources)
+    if sky.sources is not None or screened[NEAR_SOURCE]:
+        selection["near_point_source_dropped"] = screened[NEAR_SOURCE]
+    if cfg.outliers.clip_sigma is not None:
+        selection["outlier_clip_sigma"] = cfg.outliers.clip_sigma
+    if cfg.outliers.clip_sigma is not None or screened[CLIPPED]:
+        selection["outliers_clipped"] = screened[CLIPPED]
     if sky.dipole_fit is not None:
         selection["map_monopole_dipole_removed_uk"] = [round(float(c), 6) for c in sky.dipole_fit]
     if aps.scale is not None:
@@ -777,7 +817,7 @@ def cross_curve(cfg: Config, sky: SkyInputs, partner, cat: Catalogue, positions,
     return cross_pairs(cfg, sky.skymap, partner, positions=positions, temps_raw=temps_raw, z=cat.z,
                        weights=cat.weight, ra=cat.ra, dec=cat.dec, regions=regions, edges=cfg.bins.edges(),
                        in_fit=model.in_fit,
-                       trend_factor=model.trend_factor, power=power, progress=progress.say)
+                       trend_factor=model.trend_factor, power=power, progress=progress.say, sources=sky.sources)
 
 
 # ---------------------------------------------------------------------------- what else is kept
@@ -858,4 +898,9 @@ def provenance(cfg: Config, cat: Catalogue, sky: SkyInputs, started: str, stored
     }
     if stored is not None:
         out["tracer_table"] = {"path": stored.path, "sha256": file_sha256(stored.path)}
+    if sky.sources is not None:
+        out["point_sources"] = {"path": sky.sources.path, "sha256": sky.sources.sha256}
+    bands = [cfg.map.bandpass_path] if cfg.map.bandpass_path is not None else cfg.multifrequency.bandpass_paths or []
+    if bands and stored is None:
+        out["bandpass"] = {"path": "; ".join(map(str, bands)), "sha256": "; ".join(file_sha256(b) for b in bands)}
     return out

@@ -210,6 +210,17 @@ def set_cell(column: str, row: int, value) -> Callable[[Path], None]:
     return edit_catalogue(edit)
 
 
+def ecsv_unit(column: str, unit: str) -> Callable[[Path], None]:
+    """Give ``column`` of cat.ecsv the unit ``unit``."""
+
+    def prepare(folder: Path) -> None:
+        table = Table.read(folder / "cat.ecsv", format="ascii.ecsv")
+        table[column].unit = unit
+        table.write(folder / "cat.ecsv", format="ascii.ecsv", overwrite=True)
+
+    return prepare
+
+
 def catalogue_as(suffix: str, edit=None, *, extra_config: str = "") -> Callable[[Path], None]:
     """Write the (edited) catalogue as cat.<suffix> and point the config at it."""
 
@@ -510,6 +521,13 @@ CATALOGUE_CASES = [
     Case("proxy-column-missing", "catalogue",
          both(edit_catalogue(lambda f: f.drop(columns="log_mass")), set_in_config("catalogue", "proxy_min = 14.2")),
          r"column 'log_mass' \(catalogue\.proxy_column\) not found"),
+    Case("source-list-missing", "catalogue", set_in_config("source_mask", 'path = "sources.csv"'),
+         r"source list \S*sources\.csv: file not found"),
+    Case("source-list-nan-dec", "catalogue",
+         both(write_file("sources.csv", b"ra,dec\n30.0,2.0\n31.0,nan\n"), set_in_config("source_mask", 'path = "sources.csv"')),
+         r"source list \S*sources\.csv: column 'dec' must be finite .*first: row 1"),
+    Case("ra-column-in-mpc", "catalogue", both(catalogue_as("ecsv"), ecsv_unit("ra", "Mpc")),
+         r"catalogue \S*cat\.ecsv: column 'ra' \(catalogue\.ra_column\) has unit 'Mpc', which is not an angle"),
     Case("fits-no-rows", "catalogue", catalogue_as("fits", lambda f: f.iloc[:0]), r"cat\.fits: has no rows"),
     Case("fits-two-numbers-per-row", "catalogue", both(catalogue_as("fits"), write_file("cat.fits", two_column_ra)),
          r"cat\.fits: column 'ra' \(catalogue\.ra_column\) must be one number per row"),
@@ -583,11 +601,21 @@ MAP_CASES = [
          r"map\.fits: pixel indices must be in \[0, 786432\) at NSIDE = 256"),
     Case("pixel-index-repeated", "map", rewrite_map(pixels=lambda p, v: np.append(p[:-1], p[0])),
          r"map\.fits: pixel indices must be unique; 1 repeat \(first: pixel \d+\)"),
-    Case("unknown-unit", "map", rewrite_map(unit="Jy/sr"),
-         r"map \S*map\.fits unit must be a CMB temperature unit .*got 'Jy/sr'"),
+    Case("unknown-unit", "map", rewrite_map(unit="counts"),
+         r"map \S*map\.fits unit must be a CMB temperature \(K_CMB.*got 'counts'"),
+    Case("brightness-unit-without-frequency", "map", rewrite_map(unit="Jy/sr"),
+         r"map \S*map\.fits unit 'Jy/sr' is not a CMB temperature.*needs the map's frequency; set map\.frequency_ghz"),
     Case("no-unit", "map", rewrite_map(unit=None), r"map\.fits names no unit .*set map\.unit"),
-    Case("unknown-unit-in-config", "map", both(rewrite_map(unit=None), set_in_config("map", 'unit = "K_RJ"')),
-         r"map\.fits: requested unit must be a CMB temperature unit .*got 'K_RJ'"),
+    Case("unknown-unit-in-config", "map", both(rewrite_map(unit=None), set_in_config("map", 'unit = "K_Planck"')),
+         r"map\.fits: requested unit must be a CMB temperature \(K_CMB.*got 'K_Planck'"),
+    Case("rj-unit-in-config-without-frequency", "map", both(rewrite_map(unit=None), set_in_config("map", 'unit = "K_RJ"')),
+         r"map\.fits: requested unit 'K_RJ' is not a CMB temperature.*set map\.frequency_ghz"),
+    Case("bad-frequency-card", "map", rewrite_map(unit="MJy/sr", header={"FREQ": "warm"}),
+         r"map\.fits: header FREQ must be a frequency .*got 'warm'"),
+    Case("bandpass-decreasing", "map",
+         both(rewrite_map(unit="MJy/sr"), lambda folder: (folder / "band.txt").write_text("150 1\n140 1\n"),
+              set_in_config("map", 'bandpass_path = "band.txt"')),
+         r"bandpass \S*band\.txt: frequencies must increase strictly; row 1 \(140 GHz\)"),
     Case("bad-coordsys", "map", rewrite_map(header={"COORDSYS": "X"}),
          r"map\.fits: COORDSYS must be C \(equatorial\), G \(Galactic\) or E \(ecliptic\); got 'X'"),
     Case("field-beyond-columns", "map", set_in_config("map", "field = 3"),

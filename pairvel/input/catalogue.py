@@ -1,7 +1,9 @@
 """Tracer catalogue: read a table, check every value, apply the redshift and proxy cuts.
 
-Reads FITS and ECSV (astropy), CSV and Parquet (pandas/pyarrow).  The input file is only ever
-read.  Rows with NaN or out-of-range positions or redshifts stop the run with the count and the
+Reads FITS and ECSV (astropy), CSV and Parquet (pandas/pyarrow; astropy for Parquet files astropy
+wrote).  The input file is only ever read.  Positions are degrees: an ra or dec column whose file
+gives it an angle unit (FITS TUNITn, ECSV and astropy-Parquet units: rad, arcmin, arcsec, hourangle
+for ra) is converted to degrees; a column without a unit (always so in CSV) is read as degrees.  Rows with NaN or out-of-range positions or redshifts stop the run with the count and the
 first offending row, unless the config allows dropping them, in which case they are counted in
 the selection report and a warning is issued.
 
@@ -27,7 +29,7 @@ between stopping, warning and dropping the repeats.
 
 from __future__ import annotations
 
-__all__ = ["Catalogue", "RemovedRows", "load_catalogue", "read_table_columns", "canonical_order"]
+__all__ = ["Catalogue", "RemovedRows", "load_catalogue", "read_table_columns", "canonical_order", "column_in_unit"]
 
 import warnings
 from dataclasses import dataclass, field
@@ -162,7 +164,7 @@ def _format_of(path: Path, fmt: str, section: str = "catalogue") -> str:
         path=path, key=f"{section}.format")
 
 
-def read_table_columns(path, columns, *, fmt="auto", section="catalogue") -> dict:
+def read_table_columns(path, columns, *, fmt="auto", section="catalogue", units=None, what="catalogue") -> dict:
     """Read the named columns of a table file as float64 arrays.
 
     Parameters
@@ -173,6 +175,14 @@ def read_table_columns(path, columns, *, fmt="auto", section="catalogue") -> dic
         Config key -> column name, e.g. ``{"catalogue.z_column": "Z"}``; the key names the setting
         in error messages.
     fmt : {"auto", "fits", "ecsv", "csv", "parquet"}
+    section : str
+        Config section of the settings (for the ``format`` key in messages).
+    units : dict of str -> str, optional
+        Key of ``columns`` -> the unit its values are returned in (e.g. ``"deg"``, ``"mJy"``),
+        converted from the column's unit when the file gives one; a column without a unit is taken
+        to be in it already (see :func:`column_in_unit`).
+    what : str
+        What the file is, for messages ("catalogue", "source list").
 
     Returns
     -------
@@ -181,41 +191,96 @@ def read_table_columns(path, columns, *, fmt="auto", section="catalogue") -> dic
     path = Path(path)
     kind = _format_of(path, fmt, section)
     if not path.is_file():
-        raise CatalogueError(f"catalogue {path}: file not found", path=path)
+        raise CatalogueError(f"{what} {path}: file not found", path=path)
     try:
-        if kind in ("fits", "ecsv"):
-            from astropy.table import Table
-
-            table = Table.read(path, format="fits" if kind == "fits" else "ascii.ecsv")
-            available = list(table.colnames)
-            getter = lambda name: table[name]  # noqa: E731
-        else:
-            import pandas as pd
-
-            frame = pd.read_csv(path) if kind == "csv" else pd.read_parquet(path)
-            available = [str(c) for c in frame.columns]
-            getter = lambda name: frame[name].to_numpy()  # noqa: E731
+        available, getter = _open_table(path, kind)
     except CatalogueError:
         raise
     except Exception as err:  # any reader failure is an unreadable input, reported in one line
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
-        raise CatalogueError(f"catalogue {path}: cannot be read as {kind} ({reason})", path=path) from None
+        raise CatalogueError(f"{what} {path}: cannot be read as {kind} ({reason})", path=path) from None
     out = {}
     for key, name in columns.items():
         if name not in available:
             hint = ", ".join(available[:12]) + (" ..." if len(available) > 12 else "")
-            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) not found; columns are: {hint}",
+            raise CatalogueError(f"{what} {path}: column '{name}' ({key}) not found; columns are: {hint}",
                                  path=path, key=key)
         raw = getter(name)
         if getattr(raw, "ndim", 1) != 1:
-            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be one number per row",
+            raise CatalogueError(f"{what} {path}: column '{name}' ({key}) must be one number per row",
                                  path=path, key=key)
         values = np.ma.filled(np.ma.asarray(raw), np.nan) if np.ma.isMaskedArray(raw) else np.asarray(raw)
         if values.size and values.dtype.kind not in "fiub":  # a header-only text table reads as object
-            raise CatalogueError(f"catalogue {path}: column '{name}' ({key}) must be numeric; got {values.dtype}",
+            raise CatalogueError(f"{what} {path}: column '{name}' ({key}) must be numeric; got {values.dtype}",
                                  path=path, key=key)
-        out[name] = values.astype(np.float64)
+        values = values.astype(np.float64)
+        if key in (units or {}):
+            values = column_in_unit(values, getattr(raw, "unit", None), units[key],
+                                    where=f"{what} {path}: column '{name}' ({key})", path=path, key=key)
+        out[name] = values
     return out
+
+
+def _open_table(path: Path, kind: str):
+    """(column names, name -> column) of a table file.  FITS, ECSV and Parquet files written by astropy
+    are read with astropy, so that their columns keep their units; CSV and other Parquet files with pandas."""
+    if kind == "parquet" and not _astropy_parquet(path):
+        import pandas as pd
+
+        frame = pd.read_parquet(path)
+        return [str(c) for c in frame.columns], lambda name: frame[name].to_numpy()
+    if kind == "csv":
+        import pandas as pd
+
+        frame = pd.read_csv(path)
+        return [str(c) for c in frame.columns], lambda name: frame[name].to_numpy()
+    from astropy.table import Table
+
+    table = Table.read(path, format={"fits": "fits", "ecsv": "ascii.ecsv", "parquet": "parquet"}[kind])
+    return list(table.colnames), lambda name: table[name]
+
+
+def _astropy_parquet(path: Path) -> bool:
+    """Whether a Parquet file carries astropy's table metadata (and so its column units)."""
+    import pyarrow.parquet as pq
+
+    metadata = pq.read_schema(path).metadata or {}
+    return b"table_meta_yaml" in metadata
+
+
+# Unit spellings astropy does not parse but catalogues use, lower case, to astropy names.
+_ANGLE_ALIASES = {"degree": "deg", "degrees": "deg", "radian": "rad", "radians": "rad", "arcmins": "arcmin",
+                  "arcsecs": "arcsec", "hour": "hourangle", "hours": "hourangle", "hourangles": "hourangle"}
+
+
+def column_in_unit(values, unit, target: str, *, where: str, path=None, key=None) -> np.ndarray:
+    """A column in the unit ``target`` (e.g. "deg"), converted from its own ``unit`` (e.g. rad, arcmin,
+    arcsec, hourangle for an angle).
+
+    A column without a unit (or a dimensionless one) is taken to be in ``target`` already, as pairvel
+    always read it; a unit of another kind, or one astropy cannot read, is a :class:`CatalogueError`,
+    and so is a declination (a ``key`` ending in dec_column) in hour angle.
+    """
+    import astropy.units as u
+
+    goal = u.Unit(target)
+    if unit is None:
+        return values
+    text = str(unit).strip()
+    parsed = u.Unit(text, parse_strict="silent") if not isinstance(unit, u.UnitBase) else unit
+    if isinstance(parsed, u.UnrecognizedUnit) or not text:
+        alias = _ANGLE_ALIASES.get(text.lower(), text.lower())
+        parsed = u.Unit(alias, parse_strict="silent") if text else u.dimensionless_unscaled
+    if parsed == u.dimensionless_unscaled or parsed == goal:
+        return values
+    if isinstance(parsed, u.UnrecognizedUnit) or not parsed.is_equivalent(goal):
+        kind = "an angle (deg, rad, arcmin, arcsec, hourangle)" if goal.is_equivalent(u.deg) else \
+            f"a {goal.physical_type} ({goal})"
+        raise CatalogueError(f"{where} has unit '{text}', which is not {kind}; fix the column's unit or remove it "
+                             f"to read {goal}", path=path, key=key)
+    if parsed == u.hourangle and key is not None and key.endswith("dec_column"):
+        raise CatalogueError(f"{where} has unit 'hourangle', which a declination cannot have", path=path, key=key)
+    return (values * parsed).to_value(goal)
 
 
 def _describe_invalid(name, values, ok) -> str:
@@ -243,7 +308,8 @@ def load_catalogue(cfg, *, section: str = "catalogue") -> Catalogue:
         columns[f"{section}.proxy_column"] = cfg.proxy_column
     if cfg.weight_column is not None:
         columns[f"{section}.weight_column"] = cfg.weight_column
-    data = read_table_columns(path, columns, fmt=cfg.format, section=section)
+    data = read_table_columns(path, columns, fmt=cfg.format, section=section,
+                              units={f"{section}.ra_column": "deg", f"{section}.dec_column": "deg"})
     ra, dec, z = data[cfg.ra_column], data[cfg.dec_column], data[cfg.z_column]
     proxy = data[cfg.proxy_column] if cfg.proxy_column is not None else None
     weight = data[cfg.weight_column] if cfg.weight_column is not None else None

@@ -29,6 +29,8 @@ __all__ = [
     "RestartConfig",
     "PartnerConfig",
     "SingleClusterConfig",
+    "SourceMaskConfig",
+    "OutlierConfig",
     "is_folder_name",
 ]
 
@@ -81,8 +83,10 @@ class CatalogueConfig:
     path: Path | None = _key(None, "tracer catalogue: FITS, ECSV, CSV or Parquet table (required)")
     format: str = _key("auto", "auto (from the file suffix), fits, ecsv, csv or parquet",
                        choices=("auto", "fits", "ecsv", "csv", "parquet"))
-    ra_column: str = _key("ra", "column with right ascension in degrees")
-    dec_column: str = _key("dec", "column with declination in degrees")
+    ra_column: str = _key("ra", "column with right ascension: degrees, or converted to degrees from the angle unit the "
+                                "file gives it (FITS TUNITn, ECSV or astropy-written Parquet: rad, arcmin, arcsec, "
+                                "hourangle); a column without a unit is degrees")
+    dec_column: str = _key("dec", "column with declination: degrees, or converted from its angle unit as ra_column")
     z_column: str = _key("z", "column with spectroscopic redshift")
     proxy_column: str | None = _key(None, "optional column with a mass or luminosity proxy (used by proxy cuts)")
     weight_column: str | None = _key(None, "optional column of per-tracer weights w >= 0; pairs are weighted by "
@@ -104,7 +108,16 @@ class MapConfig:
                                        "cylindrical WCS (CAR, CEA, MER; required)")
     field: int = _key(0, "which map column (0-based) to read; for an image cube, the Stokes parameter (0 = I) on a "
                           "STOKES axis, else the plane")
-    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
+    unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB, uK_CMB; K_RJ, mK_RJ, uK_RJ "
+                                  "(Rayleigh-Jeans); or a surface brightness such as MJy/sr or Jy/sr (these two "
+                                  "need the frequency or a bandpass)")
+    frequency_ghz: float | None = _key(None, "frequency of map.path in GHz, for Rayleigh-Jeans and surface-brightness "
+                                             "units (wins over a FREQ or RESTFRQ header card; with "
+                                             "[multifrequency], multifrequency.frequencies_ghz is used instead)",
+                                       bounds=(1.0, 3000.0))
+    bandpass_path: Path | None = _key(None, "bandpass of map.path (text: nu [GHz] and transmission per row; or ECSV): "
+                                            "converts Rayleigh-Jeans and surface-brightness units band-weighted "
+                                            "instead of at one frequency (README, 'Map units')")
     ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
                                 choices=(None, "RING", "NESTED"))
     coordsys: str | None = _key(None, "frame of the map when the header has no COORDSYS: C (equatorial), G (Galactic) "
@@ -321,6 +334,9 @@ class MultifrequencyConfig:
                                                           "map_paths)", bounds=(1.0, 3000.0))
     noise_uk_arcmin: tuple[float, ...] | None = _key(None, "white-noise level of each map, uK arcmin (noise_model "
                                                           "levels)", bounds=(1e-6, 1e6))
+    bandpass_paths: tuple[Path, ...] | None = _key(None, "bandpass table of each map (as map.bandpass_path): converts "
+                                                        "Rayleigh-Jeans and surface-brightness units band-weighted; the "
+                                                        "tSZ factors stay at frequencies_ghz")
     beam_fwhm_arcmin: tuple[float, ...] | None = _key(None, "beam FWHM of each map, arcmin; unequal beams are refused "
                                                            "unless allow_beam_mismatch (unset: assumed equal)",
                                                       bounds=(0.0, 600.0))
@@ -405,6 +421,33 @@ class SingleClusterConfig:
                                      "spectrum")
 
 
+@dataclass(frozen=True)
+class SourceMaskConfig:
+    path: Path | None = _key(None, "point-source list, FITS, ECSV, CSV or Parquet (equatorial positions, optional "
+                                   "flux): a disc around each source is masked in the map, and tracers whose aperture "
+                                   "(outer annulus radius at the largest radius) touches a disc are dropped and "
+                                   "counted (unset: no sources masked)")
+    format: str = _key("auto", "auto (from the file suffix), fits, ecsv, csv or parquet",
+                       choices=("auto", "fits", "ecsv", "csv", "parquet"))
+    ra_column: str = _key("ra", "column with the sources' right ascension (degrees, or converted from its angle unit)")
+    dec_column: str = _key("dec", "column with the sources' declination (degrees, or converted from its angle unit)")
+    flux_column: str | None = _key(None, "column of source flux densities (mJy, or converted from the column's unit); "
+                                         "used with flux_pivot_mjy")
+    radius_arcmin: float = _key(3.0, "radius of each masked disc, arcmin; with flux_pivot_mjy, that of sources up to "
+                                     "the pivot flux", bounds=(0.05, 600.0))
+    flux_pivot_mjy: float | None = _key(None, "with flux_column: radius = radius_arcmin * max(1, sqrt(flux / "
+                                              "flux_pivot_mjy)), at most radius_max_arcmin", bounds=(1e-9, 1e12))
+    radius_max_arcmin: float = _key(30.0, "largest disc radius the flux rule may give, arcmin", bounds=(0.05, 600.0))
+
+
+@dataclass(frozen=True)
+class OutlierConfig:
+    clip_sigma: float | None = _key(None, "drop tracers whose aperture temperature, at any radius and before the "
+                                          "redshift-trend removal, lies more than this many robust sigma (1.4826 x "
+                                          "median absolute deviation) from the median; one pass, counted in the "
+                                          "selection (unset: no clipping)", bounds=(1.0, 1e3))
+
+
 #: Catalogue keys a run started from a tracer table still uses (cuts on the table's rows, and which
 #: of its proxy and weight columns to use); the other catalogue keys describe a file it does not read.
 RESTART_CATALOGUE_KEYS = ("proxy_column", "weight_column", "z_min", "z_max", "proxy_min", "proxy_max")
@@ -431,6 +474,8 @@ class Config:
     restart: RestartConfig = field(default_factory=RestartConfig)
     partner: PartnerConfig = field(default_factory=PartnerConfig)
     single_cluster: SingleClusterConfig = field(default_factory=SingleClusterConfig)
+    source_mask: SourceMaskConfig = field(default_factory=SourceMaskConfig)
+    outliers: OutlierConfig = field(default_factory=OutlierConfig)
     source: Path | None = None
 
     def as_dict(self) -> dict:
@@ -710,6 +755,7 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
 
     _check_multifrequency(cfg, bad)
     _check_partner(cfg, bad)
+    _check_source_mask(cfg, bad)
     pf = cfg.prefilter
     if pf.kind in ("matched", "wiener"):
         if pf.noise_uk_arcmin is None:
@@ -741,13 +787,38 @@ def _check_restart(cfg, bad) -> None:
                                     "read; use jackknife or bootstrap")
 
 
+def _refuse_keys_without_path(section, sec_name: str, what: str, bad) -> None:
+    """``bad`` for the first key of ``section`` set away from its default while its ``path`` is unset."""
+    for f in dataclasses.fields(section):
+        if getattr(section, f.name) != f.default:
+            bad(f"{sec_name}.{f.name}", f"is set but {sec_name}.path is not ({what})")
+
+
+def _check_source_mask(cfg, bad) -> None:
+    """Cross-key checks of ``[source_mask]`` and ``[outliers]``."""
+    sm = cfg.source_mask
+    if sm.path is None:
+        _refuse_keys_without_path(sm, "source_mask", "the point-source list", bad)
+    if (sm.flux_column is None) != (sm.flux_pivot_mjy is None):
+        bad("source_mask.flux_pivot_mjy", "and source_mask.flux_column go together (the flux rule of the disc "
+                                          "radius); set both or neither")
+    if sm.radius_max_arcmin < sm.radius_arcmin:
+        bad("source_mask.radius_max_arcmin", f"must be at least source_mask.radius_arcmin ({sm.radius_arcmin:g}); "
+                                             f"got {sm.radius_max_arcmin:g}")
+    if cfg.restart.table_path is not None:
+        if sm.path is not None:
+            bad("source_mask.path", "needs the map and the photometry, which a run from restart.table_path does not "
+                                    "redo (the table's run decided which tracers it used); remove one of them")
+        if cfg.outliers.clip_sigma is not None:
+            bad("outliers.clip_sigma", "is not used when restart.table_path is set (the table's run clipped its "
+                                       "tracers already, or not); remove it")
+
+
 def _check_partner(cfg, bad) -> None:
     """Cross-key checks of ``[partner]``, the second catalogue of the cross curve."""
     pc = cfg.partner
     if pc.path is None:
-        for f in dataclasses.fields(pc):
-            if getattr(pc, f.name) != f.default:
-                bad(f"partner.{f.name}", "is set but partner.path is not (the second catalogue of the cross curve)")
+        _refuse_keys_without_path(pc, "partner", "the second catalogue of the cross curve", bad)
         return
     if pc.bias is None:
         bad("partner.bias", "is required with partner.path: the cross template needs the linear bias of both "
@@ -803,16 +874,20 @@ def _check_multifrequency(cfg, bad) -> None:
     """Cross-key checks of ``[multifrequency]``; ``bad(key, message)`` raises the ConfigError."""
     mf = cfg.multifrequency
     if not mf.map_paths:
-        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths"):
             if getattr(mf, key) is not None:
                 bad(f"multifrequency.{key}", "is set but multifrequency.map_paths is not")
         return
     k = len(mf.map_paths)
+    for key in ("frequency_ghz", "bandpass_path"):
+        if getattr(cfg.map, key) is not None:
+            bad(f"map.{key}", "describes map.path; with multifrequency.map_paths give each map's "
+                              "multifrequency.frequencies_ghz and bandpass_paths")
     if cfg.map.path is not None:
         bad("map.path", "and multifrequency.map_paths are both set; keep one (map_paths replaces map.path)")
     if mf.frequencies_ghz is None:
         bad("multifrequency.frequencies_ghz", f"is required with multifrequency.map_paths (one per map, {k})")
-    for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights"):
+    for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths"):
         val = getattr(mf, key)
         if val is not None and len(val) != k:
             bad(f"multifrequency.{key}", f"must have one value per map in multifrequency.map_paths ({k}); "

@@ -26,7 +26,8 @@ from astropy.wcs import WCS, FITSFixedWarning
 from ..core.errors import MapError, OutputError, PairvelWarning
 from .car import CarMap
 from .healpix import bad_pixels
-from .skymap import ACCEPTED_UNITS, check_unit_scale, frame_letter, unit_to_uk
+from .skymap import check_unit_scale, frame_letter, unit_to_uk
+from .units import resolve_unit_factor
 
 _STOKES_NAMES = {1: "I", 2: "Q", 3: "U", 4: "V"}
 
@@ -154,7 +155,8 @@ def _frame_warning(skymap, coordsys, what):
                       f"the frame requested ({coordsys})", PairvelWarning, stacklevel=3)
 
 
-def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None, rms_check=False) -> CarMap:
+def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None, rms_check=False,
+             frequency_ghz=None, bandpass_path=None) -> CarMap:
     """Read a rectangular-pixel temperature map (FITS image, cylindrical WCS) into uK_CMB.
 
     Parameters
@@ -164,8 +166,12 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
         With a STOKES axis, the Stokes parameter (0 = I, the temperature); otherwise the plane of a
         3-D cube in file order.  A 2-D image has only field 0.
     unit : str, optional
-        Unit of the map (K_CMB, mK_CMB, uK_CMB and variants), used when the header has no BUNIT;
-        when it has one and this differs, this one is used with a :class:`PairvelWarning`.
+        Unit of the map (K_CMB, mK_CMB, uK_CMB, Rayleigh-Jeans or surface brightness: see
+        :mod:`pairvel.maps.units`), used when the header has no BUNIT; when it has one and this
+        differs, this one is used with a :class:`PairvelWarning`.
+    frequency_ghz, bandpass_path : optional
+        Frequency or bandpass table for Rayleigh-Jeans and surface-brightness units, as in
+        :func:`pairvel.maps.healpix_io.read_map` (a FREQ or RESTFRQ header card serves otherwise).
     nest, ordering : ignored
         HEALPix pixel orders, accepted so that one set of options serves every pixelisation.
     coordsys : {"C", "G", "E"}, optional
@@ -190,23 +196,15 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     what = f"map {path}"
     header, wcs, values, note = _read_image(path, int(field), "map", coordsys)
     file_unit = str(header.get("BUNIT", "")).strip() or None
-    if file_unit is None and unit is None:
-        raise MapError(f"{what} names no unit (no BUNIT keyword); set map.unit in the config to {ACCEPTED_UNITS}",
-                       path=str(path), key="BUNIT")
-    if unit is not None:
-        factor = unit_to_uk(unit, where=f"{what}: requested")
-        if file_unit is not None and unit_to_uk(file_unit, where=f"{what} (BUNIT)") != factor:
-            warnings.warn(f"{what}: the file says unit {file_unit!r} but {unit!r} was requested; using {unit!r}",
-                          PairvelWarning, stacklevel=2)
-    else:
-        factor = unit_to_uk(file_unit, where=f"{what} (BUNIT)")
+    factor, used_unit = resolve_unit_factor(file_unit, unit, what=what, path=str(path), header=header,
+                                            frequency_ghz=frequency_ghz, bandpass_path=bandpass_path)
     values = values.reshape(-1)
     bad = bad_pixels(values)
     if bad.all():
         raise MapError(f"{what}: every pixel is NaN", path=str(path))
     if factor != 1.0:
         values *= values.dtype.type(factor)
-    check_unit_scale(values, bad, what, file_unit if unit is None else unit, stop=rms_check, path=str(path))
+    check_unit_scale(values, bad, what, used_unit, stop=rms_check, path=str(path))
     skymap = CarMap(wcs, (header["NAXIS2"], header["NAXIS1"]), None, values, path=str(path), plane_note=note)
     _frame_warning(skymap, coordsys, what)
     return skymap

@@ -21,7 +21,7 @@ import numpy as np
 
 from ..core.errors import ConfigError, InputError, PairvelWarning
 from ..core.sphere import unit_vectors
-from .multifreq import _read_one
+from .multifreq import _each_map, _read_one
 from .photometry import measure_apertures, measure_random_apertures
 from .skymap import read_mask
 
@@ -55,7 +55,7 @@ def read_channel_maps(cfg) -> list:
         warnings.warn(f"multifrequency.beam_fwhm_arcmin differ ({list(mf.beam_fwhm_arcmin)}); the apertures keep "
                       f"different fractions of a cluster's signal in each map and the tSZ/kSZ split is biased",
                       PairvelWarning, stacklevel=2)
-    maps = [_read_one(p, mc) for p in mf.map_paths]
+    maps = [_read_one(p, mc, frequency_ghz=nu, bandpass_path=band) for p, nu, band in _each_map(mf)]
     if mc.mask_path is not None:
         maps = [m.with_mask(read_mask(mc.mask_path, ordering=mc.ordering, coordsys=m.coordsys)) for m in maps]
     return maps

@@ -3,7 +3,8 @@
 The reader follows the HEALPix FITS conventions (Gorski et al. 2005, ApJ 622, 759): a binary
 table with PIXTYPE = 'HEALPIX', NSIDE, ORDERING (RING or NESTED) and INDXSCHM (IMPLICIT for a
 full-sky map stored in pixel order, EXPLICIT for a partial map with a PIXEL column).  Input maps
-in K_CMB or mK_CMB are converted to uK_CMB; UNSEEN and NaN pixels get weight 0.  The result is a
+in K_CMB or mK_CMB (or in Rayleigh-Jeans or surface-brightness units at a stated frequency,
+:mod:`pairvel.maps.units`) are converted to uK_CMB; UNSEEN and NaN pixels get weight 0.  The result is a
 :class:`~pairvel.maps.healpix.HealpixMap`; :func:`pairvel.maps.skymap.read_map` comes here for
 every file this module's :func:`claims_file` accepts.
 """
@@ -23,7 +24,8 @@ from astropy.io.fits.verify import VerifyWarning
 
 from ..core.errors import MapError, OutputError, PairvelWarning
 from .healpix import UNSEEN, HealpixMap, bad_pixels, is_power_of_two
-from .skymap import ACCEPTED_UNITS, FRAME_NAMES, check_unit_scale, frame_letter, unit_to_uk
+from .skymap import FRAME_NAMES, check_unit_scale, frame_letter, unit_to_uk
+from .units import resolve_unit_factor
 
 _UNIT_KEYS = ("BUNIT", "UNIT", "UNITS")
 
@@ -80,6 +82,7 @@ class _RawTable:
     values: np.ndarray
     unit: str | None
     coordsys: str = "C"
+    header: object = None  # the table's header, for a frequency card (pairvel.maps.units)
 
 
 def _native(a: np.ndarray) -> np.ndarray:
@@ -106,11 +109,12 @@ def _read_table(path, *, field_index: int, nest, kind: str, coordsys=None) -> _R
             nest_hdr = _ordering(hdu.header, nest, what, spath)
             explicit, pix_name, col, unit = _columns(hdu, field_index, what, spath)
             nside, pixels, values = _pixels_and_values(hdu, explicit, pix_name, col, what, spath)
+            header = hdu.header.copy() if kind == "map" else None
         except MapError:
             raise
         except (OSError, ValueError, TypeError, KeyError, IndexError) as err:
             raise MapError(f"{what} cannot be read as a HEALPix map ({err})", path=spath) from None
-    return _RawTable(nside, nest_hdr, pixels, values, unit, frame)
+    return _RawTable(nside, nest_hdr, pixels, values, unit, frame, header)
 
 
 def _healpix_table(hdul, what, spath):
@@ -250,7 +254,8 @@ def _sorted_unique(pixels, values, nside, what, spath):
     return pixels, values
 
 
-def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None, rms_check=False) -> HealpixMap:
+def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=None, rms_check=False,
+             frequency_ghz=None, bandpass_path=None) -> HealpixMap:
     """Read a HEALPix temperature map from FITS, full sky or partial sky, into uK_CMB.
 
     Parameters
@@ -261,7 +266,8 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     field : int, default 0
         Which signal column to read (0-based, not counting PIXEL).
     unit : str, optional
-        Unit of the map (K_CMB, mK_CMB, uK_CMB and variants).  Used when the file names no unit
+        Unit of the map: K_CMB, mK_CMB, uK_CMB and variants, K_RJ, mK_RJ, uK_RJ, or a surface
+        brightness such as MJy/sr (see :mod:`pairvel.maps.units`).  Used when the file names no unit
         (TUNITn of the column, or a BUNIT/UNIT/UNITS header key); when the file does name one and
         this differs, this one is used and a :class:`PairvelWarning` says so.
     nest : bool, optional
@@ -276,6 +282,11 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
         Raise :class:`MapError` when the rms of the pixels with data, in uK after the conversion, is
         below 1e-3 uK or above 3e7 uK (a unit label wrong by ~10^6); otherwise only warn outside
         1e-2..1e5 uK.  See :func:`pairvel.maps.skymap.check_unit_scale`.
+    frequency_ghz : float, optional
+        The map's frequency, for Rayleigh-Jeans and surface-brightness units; wins over a FREQ,
+        RESTFRQ header card (with a warning when they differ).
+    bandpass_path : str or Path, optional
+        Bandpass table used instead of one frequency (:func:`pairvel.maps.units.read_bandpass`).
 
     Returns
     -------
@@ -294,16 +305,9 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     what = f"map {path}"
     nest = _nest_option(nest, ordering, what, str(path))
     raw = _read_table(path, field_index=int(field), nest=nest, kind="map", coordsys=coordsys)
-    if raw.unit is None and unit is None:
-        raise MapError(f"{what} names no unit (no TUNITn, BUNIT or UNIT keyword); set map.unit in the config "
-                       f"to {ACCEPTED_UNITS}", path=path, key="unit")
-    if unit is not None:
-        factor = unit_to_uk(unit, where=f"{what}: requested")
-        if raw.unit is not None and unit_to_uk(raw.unit, where=what) != factor:
-            warnings.warn(f"{what}: the file says unit {raw.unit!r} but {unit!r} was requested; using {unit!r}",
-                          PairvelWarning, stacklevel=2)
-    else:
-        factor = unit_to_uk(raw.unit, where=what)
+    factor, used_unit = resolve_unit_factor(raw.unit, unit, what=what, path=str(path),
+                                            header=raw.header, frequency_ghz=frequency_ghz,
+                                            bandpass_path=bandpass_path)
     values = raw.values
     bad = bad_pixels(values)
     if factor != 1.0:
@@ -312,7 +316,7 @@ def read_map(path, *, field=0, unit=None, nest=None, coordsys=None, ordering=Non
     if bad.all():
         raise MapError(f"{what}: every pixel is UNSEEN or NaN", path=path)
     weight = np.where(bad, np.float32(0.0), np.float32(1.0))
-    check_unit_scale(values, bad, what, raw.unit if unit is None else unit, stop=rms_check, path=str(path))
+    check_unit_scale(values, bad, what, used_unit, stop=rms_check, path=str(path))
     return HealpixMap(raw.nside, raw.nest, raw.pixels, values, weight, path=str(path), coordsys=raw.coordsys)
 
 

@@ -218,14 +218,25 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
 
 
 def _read_each(cfg):
-    mc, mf = cfg.map, cfg.multifrequency
-    return [_read_one(p, mc) for p in mf.map_paths]
+    return [_read_one(p, cfg.map, frequency_ghz=nu, bandpass_path=band) for p, nu, band in _each_map(cfg.multifrequency)]
 
 
-def _read_one(path, mc):
-    """One temperature map with the options of ``[map]`` (``mc``), its unit checked on its pixel rms."""
+def _each_map(mf):
+    """(path, frequency in GHz, bandpass table or None) of each map of ``[multifrequency]``."""
+    return zip(mf.map_paths, mf.frequencies_ghz, mf.bandpass_paths or [None] * len(mf.map_paths))
+
+
+def _read_one(path, mc, *, frequency_ghz=None, bandpass_path=None):
+    """One temperature map with the options of ``[map]`` (``mc``), its unit checked on its pixel rms.
+
+    ``frequency_ghz`` and ``bandpass_path`` are the map's in ``[multifrequency]`` (default
+    ``map.frequency_ghz`` and ``map.bandpass_path``), for units other than CMB temperatures; they reach
+    the reader only when set.
+    """
+    options = {"frequency_ghz": mc.frequency_ghz if frequency_ghz is None else frequency_ghz,
+               "bandpass_path": mc.bandpass_path if bandpass_path is None else bandpass_path}
     return read_map(path, field=mc.field, unit=mc.unit, ordering=mc.ordering, coordsys=mc.coordsys,
-                    rms_check=mc.rms_unit_check)
+                    rms_check=mc.rms_unit_check, **{k: v for k, v in options.items() if v is not None})
 
 
 def read_input_map(cfg) -> tuple[SkyMap, dict | None]:

@@ -13,15 +13,16 @@ business.  :class:`pairvel.maps.healpix.HealpixMap` is the HEALPix one.  A new p
 more file with a subclass that implements the abstract methods, and a module that reads its files
 (``claims_file``, ``read_map``, ``read_mask``) named in ``_FILE_FORMATS`` below.
 
-Also here, for every pixelisation: the frame letters, the temperature units accepted on reading,
+Also here, for every pixelisation: the frame letters, the map units accepted on reading (from
+:mod:`pairvel.maps.units`),
 :func:`read_map` and :func:`read_mask` (which pick the reader from the file), and
 :func:`remove_monopole_dipole`.
 """
 
 from __future__ import annotations
 
-__all__ = ["SkyMap", "read_map", "read_mask", "footprint_fraction", "unit_to_uk", "remove_monopole_dipole",
-           "frame_letter"]
+__all__ = ["SkyMap", "read_map", "read_mask", "footprint_fraction", "unit_to_uk", "ACCEPTED_UNITS",
+           "remove_monopole_dipole", "frame_letter"]
 
 import importlib
 import math
@@ -31,20 +32,13 @@ from abc import ABC, abstractmethod
 import numpy as np
 
 from ..core.errors import MapError, PairvelWarning
+from .units import ACCEPTED_UNITS, unit_to_uk  # re-exported: the units every reader accepts
 
 _EQUATORIAL = ("C", "Q", "CELESTIAL", "EQUATORIAL", "ICRS", "FK5")
 # Frame spellings pairvel accepts, to one letter: equatorial C, Galactic G, ecliptic E.
 _FRAMES = {**{k: "C" for k in _EQUATORIAL}, "G": "G", "GAL": "G", "GALACTIC": "G", "E": "E", "ECL": "E",
            "ECLIPTIC": "E"}
 FRAME_NAMES = {"C": "equatorial", "G": "Galactic", "E": "ecliptic"}
-
-# Temperature units pairvel accepts, after normalisation (see _normalise_unit), as factors to uK_CMB.
-_UNIT_TO_UK = {
-    "k": 1e6, "kelvin": 1e6,
-    "mk": 1e3, "millik": 1e3, "millikelvin": 1e3,
-    "uk": 1.0, "muk": 1.0, "microk": 1.0, "microkelvin": 1.0,
-}
-ACCEPTED_UNITS = "K_CMB, mK_CMB or uK_CMB"
 
 # Modules that read map files of one pixelisation, asked in turn whether a file is theirs.
 _FILE_FORMATS = ("pairvel.maps.healpix_io", "pairvel.maps.car_io")
@@ -294,28 +288,6 @@ def footprint_fraction(skymap: SkyMap) -> float:
 
 
 # ---------------------------------------------------------------------- units
-def _normalise_unit(unit: str) -> str:
-    u = str(unit).strip().lower().replace(" ", "").replace("\u00b5", "u").replace("\u03bc", "u")
-    for suffix in ("_cmb", "-cmb", "(cmb)", "cmb", "_thermo"):
-        if u.endswith(suffix) and len(u) > len(suffix):
-            u = u[: -len(suffix)]
-            break
-    return u
-
-
-def unit_to_uk(unit: str, *, where: str = "map") -> float:
-    """Factor that converts a temperature in ``unit`` to uK_CMB.
-
-    Accepts K_CMB, mK_CMB and uK_CMB with case and spelling variants (``K``, ``Kcmb``, ``mK``,
-    ``uK``, ``muK``, ``microK``, ``µK``).  Anything else (e.g. Rayleigh-Jeans or intensity units)
-    raises :class:`MapError`.
-    """
-    factor = _UNIT_TO_UK.get(_normalise_unit(unit))
-    if factor is None:
-        raise MapError(f"{where} unit must be a CMB temperature unit ({ACCEPTED_UNITS}); got {unit!r}")
-    return factor
-
-
 # The pixel rms of a CMB temperature map, in uK_CMB [common practice]: the primary anisotropies give
 # ~100 uK on degree scales; instrument noise in arcminute pixels runs from ~10 uK (deep maps) to a
 # few mK (shallow or high-frequency ones, where foregrounds also reach tens of mK); high-passed or

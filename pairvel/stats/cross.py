@@ -41,8 +41,9 @@ from ..core.errors import InputError, PairvelWarning
 from ..core.rng import derived_generators
 from ..core.sphere import unit_vectors
 from ..input.catalogue import load_catalogue
-from ..maps.photometry import measure_apertures
+from ..maps.photometry import DROP_REASONS, measure_apertures
 from ..maps.radii import radius_scale
+from ..maps.sourcemask import screen_apertures
 from ..maps.trend import remove_redshift_trend
 from ..model.template import template_for_run
 from ..pairs.estimator import pairwise_momentum_cross
@@ -117,16 +118,23 @@ def load_partner(cfg):
     return None if cfg.partner.path is None else load_catalogue(cfg.partner, section="partner")
 
 
-def partner_tracers(cfg, cat, skymap, progress=None):
-    """The second catalogue measured: (used tracers, raw aperture temperatures (N,), selection dict, radius)."""
+def partner_tracers(cfg, cat, skymap, progress=None, *, sources=None):
+    """The second catalogue measured: (used tracers, raw aperture temperatures (N,), selection dict, radius).
+
+    Tracers near a masked point source (``sources``) and, with ``outliers.clip_sigma``, outliers among
+    these tracers are dropped as for the run's catalogue (:func:`pairvel.maps.sourcemask.screen_apertures`).
+    """
     pc = cfg.partner
     radius = cfg.aperture.radius_arcmin if pc.radius_arcmin is None else pc.radius_arcmin
     scale = radius_scale(cfg.aperture, cat.z, cfg.cosmology)  # a physical radius shrinks with z here too
     res = measure_apertures(skymap, cat.ra, cat.dec, radius, max_masked_fraction=cfg.map.max_masked_fraction,
                             pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method,
                             radius_scale=scale)
-    usable = res.usable
-    n_dropped = int((~usable).sum())
+    reach = np.sqrt(2.0) * radius * (1.0 if scale is None else scale)
+    usable, reason, screened = screen_apertures(cat.ra, cat.dec, res.temperatures, res.usable, res.drop_reason,
+                                                reach_arcmin=reach, sources=sources,
+                                                clip_sigma=cfg.outliers.clip_sigma)
+    n_dropped = int(np.isin(reason, DROP_REASONS).sum())
     if n_dropped:
         warnings.warn(f"partner catalogue {pc.path}: {n_dropped} of {len(cat)} tracers dropped by the photometry "
                       f"(aperture unusable)", PairvelWarning, stacklevel=2)
@@ -135,12 +143,12 @@ def partner_tracers(cfg, cat, skymap, progress=None):
                          f"{len(cat)} dropped)", path=pc.path, key="partner.path")
     if progress is not None:
         progress(f"      partner catalogue: {int(usable.sum())} tracers used of {cat.selection['rows_read']} read")
-    selection = dict(cat.selection, aperture_dropped=n_dropped, used=int(usable.sum()))
-    return cat.subset(usable, reason=res.drop_reason), res.temperatures[0, usable], selection, radius
+    selection = dict(cat.selection, aperture_dropped=n_dropped, **screened, used=int(usable.sum()))
+    return cat.subset(usable, reason=reason), res.temperatures[0, usable], selection, radius
 
 
 def cross_pairs(cfg, skymap, partner, *, positions, temps_raw, z, weights, ra, dec, regions, edges, in_fit, trend_factor,
-                power, progress=None) -> dict:
+                power, progress=None, sources=None) -> dict:
     """The cross curve of the run's catalogue (1) against ``[partner]`` (2), its covariance, fit and nulls.
 
     Parameters
@@ -161,6 +169,8 @@ def cross_pairs(cfg, skymap, partner, *, positions, temps_raw, z, weights, ra, d
         The run's predicted fraction of the signal kept by the trend removal, applied to the cross
         template too (the two catalogues share the survey volume and the trend kernel; an approximation).
     power : TabulatedPower or None
+    sources : SourceList, optional
+        The point sources masked in the map: partner tracers near them are dropped too.
 
     Returns
     -------
@@ -168,7 +178,7 @@ def cross_pairs(cfg, skymap, partner, *, positions, temps_raw, z, weights, ra, d
         JSON-ready; every key has a blinding rule in ``pairvel.report.blinding.EXTRA_RULES["cross"]``.
     """
     pc = cfg.partner
-    cat2, temps2_raw, selection, radius = partner_tracers(cfg, partner, skymap, progress)
+    cat2, temps2_raw, selection, radius = partner_tracers(cfg, partner, skymap, progress, sources=sources)
     pos2 = comoving_positions(cat2.ra, cat2.dec, cat2.z, cosmo=cfg.cosmology)
     regions2 = partner_regions(cat2.ra, cat2.dec, ra, dec, regions)
     n_jk = int(regions.max()) + 1

@@ -50,9 +50,15 @@ def test_unit_spellings(unit, factor):
     assert unit_to_uk(unit) == factor  # analytic: SI prefixes
 
 
-@pytest.mark.parametrize("unit", ["K_RJ", "Jy/sr", "MJy/sr", "", "y"])
+@pytest.mark.parametrize("unit", ["", "y", "Mpc", "K_Planck", "counts"])
 def test_unknown_units_refused(unit):
-    with pytest.raises(MapError, match="unit must be a CMB temperature unit"):
+    with pytest.raises(MapError, match=r"unit must be a CMB temperature \(K_CMB, mK_CMB, uK_CMB\), a Rayleigh-Jeans"):
+        unit_to_uk(unit)
+
+
+@pytest.mark.parametrize("unit", ["K_RJ", "uK_RJ", "Jy/sr", "MJy/sr"])
+def test_non_cmb_units_need_a_frequency(unit):
+    with pytest.raises(MapError, match=r"is not a CMB temperature, so its conversion .* set map\.frequency_ghz"):
         unit_to_uk(unit)
 
 
@@ -113,8 +119,8 @@ def test_header_errors_name_the_file(tmp_path):
     with pytest.raises(MapError, match=r"map .*noord\.fits has no ORDERING keyword; set map\.ordering to RING or NESTED"):
         read_map(table_file(tmp_path / "noord.fits", v, ordering=None))
     assert read_map(tmp_path / "noord.fits", nest=True).nest
-    with pytest.raises(MapError, match=r"jy\.fits unit must be a CMB temperature unit .*; got 'Jy/sr'"):
-        read_map(table_file(tmp_path / "jy.fits", v, unit="Jy/sr"))
+    with pytest.raises(MapError, match=r"jy\.fits unit must be a CMB temperature \(K_CMB.*; got 'Jy/Mpc'"):
+        read_map(table_file(tmp_path / "jy.fits", v, unit="Jy/Mpc"))
     with pytest.raises(MapError, match=r"nounit\.fits names no unit .*; set map\.unit in the config"):
         read_map(table_file(tmp_path / "nounit.fits", v, unit=None))
     assert read_map(tmp_path / "nounit.fits", unit="mK_CMB").values.dtype == np.float32
