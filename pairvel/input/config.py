@@ -240,8 +240,9 @@ class TheoryConfig:
                                         "the run's own geometry (false: the plain template, biased low by the loss)")
     likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
                            "sellentin-heavens (marginalised over the jackknife covariance) or hartlap-percival (Gaussian, error "
-                           "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise)",
-                           choices=("hartlap", "sellentin-heavens", "hartlap-percival"))
+                           "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise) or variance-weighted (bins weighted "
+                           "by the covariance's diagonal, error from the whole covariance: no noisy inverse in tau_mean)",
+                           choices=("hartlap", "sellentin-heavens", "hartlap-percival", "variance-weighted"))
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
                                                     "with these edges, at least two, finite and strictly increasing "
                                                     "(needs catalogue.proxy_column)", increasing=True)
