@@ -309,6 +309,7 @@ def _cmd_velocities(args, run_log) -> int:
 
 def _add_validate_parser(sub, common) -> None:
     from .sims.validate import MIN_MOCKS_FOR_VERDICTS, ValidationOptions
+    from .stats.fit import LIKELIHOODS
 
     d = ValidationOptions()
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",
@@ -341,7 +342,7 @@ def _add_validate_parser(sub, common) -> None:
     val.add_argument("--no-trend", action="store_true", help="skip the redshift-trend removal")
     val.add_argument("--fit-r-min", type=float, default=d.fit_r_min_mpc, help="fit bins with centre >= this, Mpc")
     val.add_argument("--fit-r-max", type=float, default=d.fit_r_max_mpc, help="fit bins with centre < this, Mpc")
-    val.add_argument("--likelihood", choices=("hartlap", "sellentin-heavens", "hartlap-percival"), default=d.likelihood,
+    val.add_argument("--likelihood", choices=LIKELIHOODS, default=d.likelihood,
                      help=f"likelihood of the amplitude fit (default {d.likelihood})")
     val.add_argument("--cell-mpc", type=float, default=d.cell_mpc,
                      help=f"cell of the mocks' Gaussian field, Mpc (default {d.cell_mpc:g})")

@@ -136,7 +136,8 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
         radius_fits = fit_radii(aperture_radii(cfg.aperture), pr.p[stack.radius_rows], cov.jk_rows[stack.radius_rows],
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
-        radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit)
+        radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit,
+                                   likelihood=cfg.theory.likelihood)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
         cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
@@ -769,7 +770,8 @@ def significance(fit, model: TemplateResult, cov: CovarianceResult, pr, stack: T
     rows = {kind: r for kind, r in stack.null_rows.items() if kind in NULL_KINDS}
     if stack.sim_rows.stop > stack.sim_rows.start:
         rows["simulated skies"] = stack.sim_rows
-    amps = {name: fitted_amplitudes(pr.p[r], model.template_uk, cov.matrix, use=model.in_fit)
+    amps = {name: fitted_amplitudes(pr.p[r], model.template_uk, cov.matrix, use=model.in_fit,
+                                     likelihood=fit.likelihood)
             for name, r in rows.items() if r.stop > r.start}
     return empirical_significance(fit.amplitude, amps)
 

@@ -199,9 +199,10 @@ class CovarianceConfig:
                                          "(the whole chain deleted-one; false: trend from all tracers, which "
                                          "inflates large-separation errors)")
     jackknife_deletes: str = _key("pairs", "what jackknife sample k leaves out: pairs (every pair touching region "
-                                           "k: per-bin errors 1.2-1.7x the mock scatter beyond 40 Mpc, tau_mean's "
-                                           "error calibrated) or tracers (region k's tracers, their partners keep "
-                                           "their terms: per-bin errors and chi2 calibrated, tau coverage ~0.55)",
+                                           "k: per-bin errors 1.0-1.5x the mock scatter, chi2 about 0.6 of its dof, "
+                                           "tau_mean's error calibrated) or tracers (region k's tracers, their "
+                                           "partners keep their terms: per-bin errors and chi2 calibrated; tau "
+                                           "calibrated at the validate defaults with likelihood = variance-weighted)",
                                   choices=("tracers", "pairs"))
     extra_region_seeds: int = _key(0, "with k-means regions: assign the regions again with this many other seeds "
                                       "(derived from run.seed), refit tau_mean with each one's jackknife covariance "
@@ -254,10 +255,12 @@ class TheoryConfig:
     model_trend_loss: bool = _key(True, "with trend.enabled, multiply the template by the linear-theory fraction of "
                                         "the pairwise signal that survives the redshift-trend removal, computed on "
                                         "the run's own geometry (false: the plain template, biased low by the loss)")
-    likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
+    likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision), "
                            "sellentin-heavens (marginalised over the jackknife covariance) or hartlap-percival (Gaussian, error "
-                           "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise)",
-                           choices=("hartlap", "sellentin-heavens", "hartlap-percival"))
+                           "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise) or variance-weighted (bins weighted "
+                           "by 1 / their variance, error sqrt(w^T C w) from the whole covariance: no noisy inverse in "
+                           "tau_mean; chi2 values as hartlap)",
+                           choices=("hartlap", "sellentin-heavens", "hartlap-percival", "variance-weighted"))
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
                                                     "with these edges, at least two, finite and strictly increasing "
                                                     "(needs catalogue.proxy_column)", increasing=True)

@@ -85,6 +85,15 @@ def _trend_loss(result) -> str | None:
     return None
 
 
+#: theory.likelihood -> how tau_mean and its error are made from the curve and its covariance.
+ESTIMATOR_NOTES = {
+    "hartlap": "least squares with the Hartlap-corrected inverse covariance",
+    "hartlap-percival": "least squares with the Hartlap-corrected inverse covariance, error x sqrt(m1)",
+    "sellentin-heavens": "least squares, interval of the Sellentin-Heavens likelihood",
+    "variance-weighted": "bins weighted by 1/variance, error sqrt(w^T C w) from the whole covariance",
+}
+
+
 def _bias(cfg, info: dict):
     """theory.bias, or the pair-weighted b_eff derived from the proxy (theory.bias_from_proxy)."""
     derived = info.get("bias_from_proxy")
@@ -110,6 +119,10 @@ def assumptions(result) -> dict:
     if "growth_rate" in info:
         out["growth rate"] = info["growth_rate"] + " (matter + Lambda)"
     out["fit range"] = _fit_range(result)
+    out["amplitude estimator"] = ESTIMATOR_NOTES.get(cfg.theory.likelihood, cfg.theory.likelihood)
+    if cfg.covariance.estimator == "jackknife":
+        out["jackknife sample k drops"] = ("region k's tracers" if cfg.covariance.jackknife_deletes == "tracers"
+                                           else "every pair touching region k")
     loss = _trend_loss(result)
     if loss is not None:
         out["trend-loss factor"] = loss

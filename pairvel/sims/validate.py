@@ -534,7 +534,15 @@ def _fit_cases(opt: ValidationOptions, cases, template, in_fit, n_jk) -> dict:
         if label in ("", "signal_"):
             row[f"{label}p_uk"] = p
         row[f"{label}p_err_uk"] = np.sqrt(np.diag(cov))
+        if label in ("tracersjk_", "pairsjk_"):  # both amplitude estimators on the same covariance
+            for short, lik in ESTIMATORS.items():
+                g = fit_amplitude(p, template, cov, n_samples=n_jk, use=in_fit, likelihood=lik)
+                row[f"{label}{short}tau_hat"], row[f"{label}{short}tau_err"] = g.amplitude, g.error
     return row
+
+
+#: Amplitude estimators every jackknife variant is also fitted with: row infix -> likelihood.
+ESTIMATORS = {"gls_": "hartlap", "vw_": "variance-weighted"}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -621,6 +629,12 @@ def jackknife_variants(rows: dict, truth: float) -> dict:
         widened = rows[f"{prefix}tau_err"] * np.sqrt(percival_m1(rows["n_jk"], dof + 1))
         out[name]["error_ratio_m1"] = _ratio_stats(widened, rows[f"{prefix}tau_hat"])[0]
         out[name]["coverage_68_m1"] = float(np.mean(np.abs(rows[f"{prefix}tau_hat"] - truth) <= widened))
+        for short in ESTIMATORS:  # tau calibration of each amplitude estimator on this variant's covariance
+            if f"{prefix}{short}tau_hat" in rows:
+                est, err = rows[f"{prefix}{short}tau_hat"], rows[f"{prefix}{short}tau_err"]
+                out[name][f"{short}coverage_68"] = float(np.mean(np.abs(est - truth) <= err))
+                out[name][f"{short}error_ratio"] = _ratio_stats(err, est)[0]
+                out[name][f"{short}scatter"] = float(np.std(est, ddof=1))
     return out
 
 
@@ -843,6 +857,10 @@ def format_summary(result: ValidationResult) -> str:
                      f"{v['chi2_min_mean_over_dof']:.2f} ± {v['chi2_min_mean_over_dof_se']:.2f}, PTE KS p "
                      f"{v['pte_ks_p']:.3g}, tau coverage {v['coverage_68']:.2f}, tau error / scatter {v['error_ratio']:.2f} "
                      f"(error x sqrt(m1): {v['coverage_68_m1']:.2f}, {v['error_ratio_m1']:.2f})")
+        for short, lik in ESTIMATORS.items():
+            if f"{short}coverage_68" in v:
+                lines.append(f"    tau fitted {lik}: coverage {v[short + 'coverage_68']:.2f}, error / scatter "
+                             f"{v[short + 'error_ratio']:.2f}, scatter {v[short + 'scatter']:.3g}")
     o = s.get("object_split_jackknife")
     if o is not None:
         lines.append(f"  diagnostic, object-split jackknife on the measured curve: error / scatter {o['error_ratio']:.3f} "

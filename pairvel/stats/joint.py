@@ -97,7 +97,7 @@ def hpd_levels(posterior, masses=(ONE_SIGMA, 0.9545)):
 
 def _log_like(a, fit: AmplitudeFit, n_samples):
     """ln L of the amplitude A, from the one-parameter fit's chi2 curve (exact for a linear model)."""
-    if fit.likelihood == "hartlap":
+    if fit.likelihood != "sellentin-heavens":  # Gaussian in A about the fit, with its error
         return -0.5 * (fit.chi2_min + ((a - fit.amplitude) / fit.error) ** 2)
     # Sellentin-Heavens: chi2 with the plain inverse is the Hartlap chi2 / factor; recover sigma_0 from
     # the Student-t half-width error = sigma_0 sqrt((nu + chi2_min)/nu) t_ppf (pairvel.stats.fit notes)

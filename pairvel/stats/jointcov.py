@@ -11,7 +11,7 @@ whose diagonal blocks are each group's own jackknife covariance.  A fit across g
 radius or against the mass proxy) needs the off-diagonal blocks: curves of nested apertures, or of
 tracers moving in the same large-scale flows, are correlated.
 
-Each group's amplitude is the generalised least-squares fit of :func:`pairvel.stats.fit.fit_amplitude`,
+Each group's amplitude is the fit of :func:`pairvel.stats.fit.fit_amplitude` (with the run's likelihood),
 linear in its curve: tau_g = w_g . p_g with w_g = Psi_g t_g / (t_g^T Psi_g t_g) over the fitted bins
 (the Hartlap factor cancels in w_g).  The covariance of the amplitudes is then
 
@@ -31,6 +31,7 @@ import numpy as np
 
 from ..core.errors import InputError
 from .covariance import jackknife_covariance
+from .fit import amplitude_weights as _fit_weights
 
 
 def joint_jackknife_covariance(samples) -> np.ndarray:
@@ -58,27 +59,10 @@ def covariance_block(joint, g: int, h: int, nbins: int) -> np.ndarray:
     return np.asarray(joint)[g * nbins:(g + 1) * nbins, h * nbins:(h + 1) * nbins]
 
 
-def amplitude_weights(template, covariance, use) -> np.ndarray:
-    """w with w . p equal to the least-squares amplitude of :func:`~pairvel.stats.fit.fit_amplitude`.
-
-    Parameters
-    ----------
-    template : ndarray of shape (nbins,)
-    covariance : ndarray of shape (nbins, nbins)
-    use : ndarray of shape (nbins,), bool
-        The fitted bins; w is 0 elsewhere.
-
-    Returns
-    -------
-    ndarray of shape (nbins,)
-    """
-    t = np.asarray(template, dtype=float)
-    sel = np.asarray(use, dtype=bool)
-    cov = np.asarray(covariance, dtype=float)[np.ix_(sel, sel)]
-    ct = np.linalg.solve(cov, t[sel])
-    w = np.zeros(t.size)
-    w[sel] = ct / (t[sel] @ ct)
-    return w
+def amplitude_weights(template, covariance, use, *, likelihood="hartlap") -> np.ndarray:
+    """w with w . p equal to the amplitude :func:`~pairvel.stats.fit.fit_amplitude` fits with ``likelihood``
+    (:func:`pairvel.stats.fit.amplitude_weights`); w is 0 outside the fitted bins ``use``."""
+    return _fit_weights(template, covariance, use, likelihood=likelihood)
 
 
 def amplitude_covariance(weights, joint) -> np.ndarray:

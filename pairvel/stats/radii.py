@@ -78,7 +78,7 @@ def fit_radii(radii, p_rows, p_jk_rows, template_uk, *, n_jk, in_fit, likelihood
     return out
 
 
-def radius_joint(fits: list, p_jk_rows, template_uk, *, in_fit) -> dict | None:
+def radius_joint(fits: list, p_jk_rows, template_uk, *, in_fit, likelihood="hartlap") -> dict | None:
     """The joint jackknife covariance of the radii's curves and the covariance of their tau_mean.
 
     Every radius's jackknife samples come from the same pair pass and regions (re-trended the same
@@ -93,7 +93,8 @@ def radius_joint(fits: list, p_jk_rows, template_uk, *, in_fit) -> dict | None:
     samples = np.asarray(p_jk_rows)[done]
     joint = joint_jackknife_covariance(samples)
     nb = samples.shape[-1]
-    w = np.array([amplitude_weights(template_uk, joint[g * nb:(g + 1) * nb, g * nb:(g + 1) * nb], in_fit)
+    w = np.array([amplitude_weights(template_uk, joint[g * nb:(g + 1) * nb, g * nb:(g + 1) * nb], in_fit,
+                                   likelihood=likelihood)
                   for g in range(len(done))])
     tau_cov = amplitude_covariance(w, joint)
     return {"radius_arcmin": [fits[k].radius_arcmin for k in done], "tau": [float(w[g] @ fits[k].p)

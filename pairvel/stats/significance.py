@@ -18,12 +18,15 @@ __all__ = ["describe", "empirical_significance", "fitted_amplitudes", "headline"
 import numpy as np
 
 from ..core.errors import InputError
+from .fit import amplitude_weights
 
 
-def fitted_amplitudes(curves, template, covariance, *, use=None) -> np.ndarray:
-    """The least-squares amplitude t^T C^-1 d / t^T C^-1 t of ``template`` in each of ``curves``.
+def fitted_amplitudes(curves, template, covariance, *, use=None, likelihood="hartlap") -> np.ndarray:
+    """The amplitude of ``template`` in each of ``curves``, fitted as the measured one is.
 
-    The same estimator as :func:`pairvel.stats.fit.fit_amplitude` (a Hartlap factor cancels).
+    The same estimator as :func:`pairvel.stats.fit.fit_amplitude` with ``likelihood``
+    (:func:`pairvel.stats.fit.amplitude_weights`): t^T C^-1 d / t^T C^-1 t, a Hartlap factor
+    cancelling, or the diagonal's weights for "variance-weighted".
 
     Parameters
     ----------
@@ -32,6 +35,8 @@ def fitted_amplitudes(curves, template, covariance, *, use=None) -> np.ndarray:
     covariance : ndarray of shape (nbins, nbins)
     use : ndarray of shape (nbins,), bool, optional
         The fitted bins; default all.
+    likelihood : str, default "hartlap"
+        ``theory.likelihood`` of the run.
 
     Returns
     -------
@@ -42,9 +47,7 @@ def fitted_amplitudes(curves, template, covariance, *, use=None) -> np.ndarray:
     sel = np.ones(t.size, bool) if use is None else np.asarray(use, dtype=bool)
     if d.shape[1] != t.size or sel.shape != t.shape:
         raise InputError(f"curves {d.shape}, template {t.shape} and fit range {sel.shape} must share their bins")
-    cov = np.asarray(covariance, dtype=float)[np.ix_(sel, sel)]
-    w = np.linalg.solve(cov, t[sel])
-    return d[:, sel] @ w / (t[sel] @ w)
+    return d @ amplitude_weights(t, covariance, sel, likelihood=likelihood)
 
 
 def empirical_significance(amplitude: float, sets: dict) -> list[dict]:

@@ -148,7 +148,8 @@ def fit_proxy_bins(proxy_edges, *, proxy, positions, temperatures, redshifts, re
             continue
         out.append(ProxyBinFit(float(lo), float(hi), med, n, n_pairs, n_reg, zm, fit))
         curves[b] = (p, samples, t_uk)
-    return tuple(out), joint_summary(curves, in_fit, n_regions=[out[b].n_regions for b in curves])
+    return tuple(out), joint_summary(curves, in_fit, n_regions=[out[b].n_regions for b in curves],
+                                     likelihood=theory_cfg.likelihood)
 
 
 def _bin_pass(sel, positions, temperatures, redshifts, regions, edges, n_jk, retrended, weights, n_threads):
@@ -171,7 +172,7 @@ def _bin_pass(sel, positions, temperatures, redshifts, regions, edges, n_jk, ret
     return pr, samples
 
 
-def joint_summary(curves: dict, in_fit, *, n_regions) -> dict | None:
+def joint_summary(curves: dict, in_fit, *, n_regions, likelihood="hartlap") -> dict | None:
     """The joint jackknife covariance of the fitted proxy bins and the covariance of their tau_mean.
 
     ``curves`` maps a bin's index to (p, samples, template) of a fitted bin.  Returns a dict (None for
@@ -184,7 +185,7 @@ def joint_summary(curves: dict, in_fit, *, n_regions) -> dict | None:
     idx = sorted(curves)
     joint = joint_jackknife_covariance([curves[b][1] for b in idx])
     nb = len(in_fit)
-    w = np.array([amplitude_weights(curves[b][2], covariance_block(joint, g, g, nb), in_fit)
+    w = np.array([amplitude_weights(curves[b][2], covariance_block(joint, g, g, nb), in_fit, likelihood=likelihood)
                   for g, b in enumerate(idx)])
     tau_cov = amplitude_covariance(w, joint)
     return {"bins": idx, "n_samples": int(min(n_regions)), "tau": [float(w[g] @ curves[b][0]) for g, b in enumerate(idx)],
