@@ -23,8 +23,8 @@ The a_lm layout is the triangular m-major one of :mod:`pairvel.maps.harmonics`.
 
 from __future__ import annotations
 
-__all__ = ["RingGrid", "ring_grid", "pixel_solid_angles", "synthesise_grid", "analyse_grid", "filtered_grid",
-           "rectangular_pixel_window"]
+__all__ = ["RingGrid", "ring_grid", "pixel_solid_angles", "synthesise_grid", "synthesise_pixels", "analyse_grid",
+           "filtered_grid", "rectangular_pixel_window", "grid_pixel_window"]
 
 import math
 import os
@@ -55,6 +55,9 @@ class RingGrid:
         Longitude of the first column.
     nphi : int
         Columns in a full ring, 2 pi / |dlon_rad|.
+    row_area_sr : ndarray of shape (n_lat,), sr, or None
+        Solid angle of a pixel of each row, when the grid's own row edges give it (e.g. from a WCS);
+        None: rows end midway between their centres (:func:`pixel_solid_angles`).
     """
 
     theta_rad: np.ndarray
@@ -62,6 +65,7 @@ class RingGrid:
     dlon_rad: float
     phi0_rad: float
     nphi: int
+    row_area_sr: np.ndarray | None = None
 
     @property
     def n_lat(self) -> int:
@@ -73,8 +77,9 @@ class RingGrid:
         return self.n_lon == self.nphi
 
 
-def ring_grid(theta_rad, n_lon: int, dlon_rad: float, phi0_rad: float, *, what: str = "map") -> RingGrid:
-    """A checked :class:`RingGrid`.
+def ring_grid(theta_rad, n_lon: int, dlon_rad: float, phi0_rad: float, *, row_area_sr=None,
+              what: str = "map") -> RingGrid:
+    """A checked :class:`RingGrid` (arguments as its attributes; ``what`` names the map in messages).
 
     Raises
     ------
@@ -98,7 +103,12 @@ def ring_grid(theta_rad, n_lon: int, dlon_rad: float, phi0_rad: float, *, what: 
     if not 1 <= n_lon <= nphi:
         raise MapError(f"{what}: a row must have between 1 and {nphi} columns (a full ring at a "
                        f"{abs(math.degrees(dlon)):.6g}-degree step); got {n_lon}")
-    return RingGrid(np.clip(theta, 0.0, math.pi), n_lon, dlon, float(phi0_rad), nphi)
+    area = None
+    if row_area_sr is not None:
+        area = np.ascontiguousarray(row_area_sr, dtype=np.float64).ravel()
+        if area.shape != theta.shape or not np.all(np.isfinite(area) & (area >= 0)):
+            raise MapError(f"{what}: row_area_sr must hold one finite solid angle >= 0 per row ({theta.size})")
+    return RingGrid(np.clip(theta, 0.0, math.pi), n_lon, dlon, float(phi0_rad), nphi, area)
 
 
 # ---------------------------------------------------------------------- geometry
@@ -119,11 +129,11 @@ def _row_edges(theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def pixel_solid_angles(grid: RingGrid) -> np.ndarray:
-    """Solid angle (sr) of a pixel in each row, (n_lat,): |dlon| (cos theta_lo - cos theta_hi).
-
-    Row edges lie midway between rows (half a spacing beyond the end rows, cut at the poles), so the
-    rows of a grid that runs pole to pole tile the sphere exactly.
-    """
+    """Solid angle (sr) of a pixel in each row, (n_lat,): ``grid.row_area_sr`` when given, otherwise
+    |dlon| (cos theta_lo - cos theta_hi) with row edges midway between rows (half a spacing beyond the
+    end rows, cut at the poles), so that the rows of a grid that runs pole to pole tile the sphere."""
+    if grid.row_area_sr is not None:
+        return grid.row_area_sr
     lo, hi = _row_edges(grid.theta_rad)
     return abs(grid.dlon_rad) * (np.cos(lo) - np.cos(hi))
 
@@ -182,6 +192,18 @@ def synthesise_grid(alm, grid: RingGrid, *, lmax: int, n_threads=None) -> np.nda
     rings = ducc0.sht.experimental.synthesis(alm=alm[None, :], lmax=int(lmax), spin=0, nthreads=_threads(n_threads),
                                              **_geometry(grid.theta_rad, grid.nphi, phi_first))
     return rings[0].reshape(grid.n_lat, grid.nphi)[:, cols]
+
+
+def synthesise_pixels(alm, grid: RingGrid, flat_index, *, lmax: int, n_threads=None) -> np.ndarray:
+    """The band-limited field at the pixels ``flat_index`` (row n_lon + column) of the grid, (n,).
+
+    Only the rows holding those pixels are synthesised (the Legendre work scales with the rows).
+    """
+    flat = np.asarray(flat_index, dtype=np.int64)
+    rows, inv = np.unique(flat // grid.n_lon, return_inverse=True)
+    sub = RingGrid(grid.theta_rad[rows], grid.n_lon, grid.dlon_rad, grid.phi0_rad, grid.nphi)
+    image = synthesise_grid(alm, sub, lmax=lmax, n_threads=n_threads)
+    return image[inv.ravel(), flat % grid.n_lon]
 
 
 def _exact_geometry(grid: RingGrid, lmax: int) -> str | None:
@@ -265,7 +287,9 @@ def analyse_grid(values, grid: RingGrid, *, lmax: int, n_iter: int = 3, n_thread
     rings[where, :grid.n_lon] = values[:, cols]
     geom = _geometry(theta, grid.nphi, phi_first)
     lo, hi = _row_edges(theta)
-    weight = (abs(grid.dlon_rad) * (np.cos(lo) - np.cos(hi)))[:, None]
+    weight = abs(grid.dlon_rad) * (np.cos(lo) - np.cos(hi))
+    weight[where] = pixel_solid_angles(grid)
+    weight = weight[:, None]
     target = rings.ravel()[None, :]
     alm = ducc0.sht.experimental.adjoint_synthesis(map=(rings * weight).reshape(1, -1), lmax=lmax, spin=0,
                                                    nthreads=nthreads, **geom)
@@ -346,3 +370,11 @@ def rectangular_pixel_window(height_rad: float, width_rad: float, lmax: int, *, 
     kx = ell * float(height_rad) * np.cos(psi)[None, :] / (2.0 * math.pi)
     ky = ell * float(width_rad) * np.sin(psi)[None, :] / (2.0 * math.pi)
     return np.sqrt((np.sinc(kx) * np.sinc(ky)) ** 2 @ (0.5 * w))
+
+
+def grid_pixel_window(grid: RingGrid, lmax: int) -> np.ndarray:
+    """:func:`rectangular_pixel_window` of the grid's mean pixel: height the mean row height in
+    colatitude, width the mean pixel solid angle divided by that height."""
+    lo, hi = _row_edges(grid.theta_rad)
+    height = float(np.mean(hi - lo)) if grid.n_lat > 1 else abs(grid.dlon_rad)
+    return rectangular_pixel_window(height, float(np.mean(pixel_solid_angles(grid))) / height, lmax)

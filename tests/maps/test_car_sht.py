@@ -8,7 +8,8 @@ import pytest
 from scipy.special import sph_harm_y
 
 from pairvel.core.errors import MapError
-from pairvel.maps.car_sht import (analyse_grid, filtered_grid, pixel_solid_angles, rectangular_pixel_window,
+from pairvel.maps.car_sht import (analyse_grid, filtered_grid, grid_pixel_window, pixel_solid_angles,
+                                  rectangular_pixel_window, synthesise_pixels,
                                   ring_grid, synthesise_grid)
 from pairvel.maps.harmonics import alm_ell_m, gaussian_beam
 
@@ -130,3 +131,19 @@ def test_rectangular_pixel_window():
         phase = ell * (x * math.cos(psi) + y * math.sin(psi))
         power.append(np.mean(np.cos(phase)) ** 2 + np.mean(np.sin(phase)) ** 2)
     assert p[ell] == pytest.approx(math.sqrt(np.mean(power)), rel=1e-3)
+
+
+def test_synthesis_at_listed_pixels_matches_the_whole_grid():
+    grid = _partial_grid()
+    alm = _random_alm(30, 4)
+    whole = synthesise_grid(alm, grid, lmax=30, n_threads=1).ravel()
+    flat = np.array([5, 41, 42, 900, grid.n_lat * grid.n_lon - 1])
+    # internal equivalence: a few rows only vs every row
+    np.testing.assert_allclose(synthesise_pixels(alm, grid, flat, lmax=30, n_threads=1), whole[flat], atol=1e-12)
+
+
+def test_grid_pixel_window_of_an_equatorial_square_grid():
+    step = math.radians(0.5)
+    grid = ring_grid(math.pi / 2 + step * np.arange(-2, 3), 10, step, 0.0)
+    # near the equator the pixels are squares of side step (areas |dlon| (cos lo - cos hi) ~ step^2)
+    np.testing.assert_allclose(grid_pixel_window(grid, 500), rectangular_pixel_window(step, step, 500), rtol=1e-4)
