@@ -37,6 +37,7 @@ from .harmonics import alm_ell_m
 
 _WHOLE_TOL = 1e-6          # 2 pi / |dlon| within this of a whole number counts as one
 _EQUAL_SPACING_TOL = 1e-9  # rows equally spaced to this (radians) can be extended to the poles
+_RING_VALUES_PER_BLOCK = 1 << 22  # ring pixels transformed per ducc0 call (32 MB of float64)
 
 
 @dataclass(frozen=True, eq=False)
@@ -185,13 +186,36 @@ def synthesise_grid(alm, grid: RingGrid, *, lmax: int, n_threads=None) -> np.nda
     ndarray of shape (n_lat, n_lon), float64
         Rows as in ``grid.theta_rad``, columns in the grid's order.
     """
+    alm = _checked_alm(alm, int(lmax))[None, :]
+    phi_first, cols = _columns(grid)
+    out = np.empty((grid.n_lat, grid.n_lon))
+    for rows in _row_blocks(grid.n_lat, grid.nphi):
+        out[rows] = _synthesis(alm, grid.theta_rad[rows], grid.nphi, phi_first, int(lmax), _threads(n_threads))[:, cols]
+    return out
+
+
+def _row_blocks(n_rows: int, nphi: int):
+    """Slices of at most ~2^22 / nphi rows: whole rings are transformed, a block at a time, so that a
+    narrow strip of a fine grid does not hold every ring around the sphere at once."""
+    step = max(1, _RING_VALUES_PER_BLOCK // nphi)
+    return [slice(a, min(a + step, n_rows)) for a in range(0, n_rows, step)]
+
+
+def _synthesis(alm, theta, nphi, phi_first, lmax, nthreads) -> np.ndarray:
+    """Whole rings (len(theta), nphi) of the field of ``alm`` (shape (1, nalm))."""
     import ducc0
 
-    alm = _checked_alm(alm, int(lmax))
-    phi_first, cols = _columns(grid)
-    rings = ducc0.sht.experimental.synthesis(alm=alm[None, :], lmax=int(lmax), spin=0, nthreads=_threads(n_threads),
-                                             **_geometry(grid.theta_rad, grid.nphi, phi_first))
-    return rings[0].reshape(grid.n_lat, grid.nphi)[:, cols]
+    rings = ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads,
+                                             **_geometry(theta, nphi, phi_first))
+    return rings[0].reshape(theta.size, nphi)
+
+
+def _adjoint(rings, theta, phi_first, lmax, nthreads) -> np.ndarray:
+    """Y^T of whole rings ``rings`` (len(theta), nphi): a_lm of shape (1, nalm)."""
+    import ducc0
+
+    return ducc0.sht.experimental.adjoint_synthesis(map=rings.reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads,
+                                                    **_geometry(theta, rings.shape[1], phi_first))
 
 
 def synthesise_pixels(alm, grid: RingGrid, flat_index, *, lmax: int, n_threads=None) -> np.ndarray:
@@ -283,21 +307,23 @@ def analyse_grid(values, grid: RingGrid, *, lmax: int, n_iter: int = 3, n_thread
         return ducc0.sht.experimental.analysis_2d(map=image, spin=0, lmax=lmax, geometry=exact, phi0=phi_first,
                                                   nthreads=nthreads)[0]
     theta, where = _pole_to_pole(grid.theta_rad) if n_iter > 0 else (grid.theta_rad, np.arange(grid.n_lat))
-    rings = np.zeros((theta.size, grid.nphi))
-    rings[where, :grid.n_lon] = values[:, cols]
-    geom = _geometry(theta, grid.nphi, phi_first)
+    grid_row = np.full(theta.size, -1)
+    grid_row[where] = np.arange(grid.n_lat)
     lo, hi = _row_edges(theta)
     weight = abs(grid.dlon_rad) * (np.cos(lo) - np.cos(hi))
     weight[where] = pixel_solid_angles(grid)
-    weight = weight[:, None]
-    target = rings.ravel()[None, :]
-    alm = ducc0.sht.experimental.adjoint_synthesis(map=(rings * weight).reshape(1, -1), lmax=lmax, spin=0,
-                                                   nthreads=nthreads, **geom)
+    blocks = _row_blocks(theta.size, grid.nphi)
+
+    def target(rows):  # the map on whole rings ``rows``, zero off the grid
+        out = np.zeros((rows.stop - rows.start, grid.nphi))
+        inside = grid_row[rows] >= 0
+        out[inside, :grid.n_lon] = values[grid_row[rows][inside]][:, cols]
+        return out
+
+    alm = sum(_adjoint(target(r) * weight[r, None], theta[r], phi_first, lmax, nthreads) for r in blocks)
     for _ in range(int(n_iter)):
-        model = ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads, **geom)
-        resid = ((target - model).reshape(theta.size, grid.nphi) * weight).reshape(1, -1)
-        alm = alm + ducc0.sht.experimental.adjoint_synthesis(map=resid, lmax=lmax, spin=0, nthreads=nthreads,
-                                                             **geom)
+        alm = alm + sum(_adjoint((target(r) - _synthesis(alm, theta[r], grid.nphi, phi_first, lmax, nthreads))
+                                 * weight[r, None], theta[r], phi_first, lmax, nthreads) for r in blocks)
     return alm[0]
 
 
