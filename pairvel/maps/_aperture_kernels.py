@@ -56,6 +56,41 @@ def _lookup(p, held, full, values, weight):
     return 0.0, 0.0
 
 
+@numba.njit(cache=True, inline="always")
+def reach_of(c_out, t, half_ramp):
+    """(squared chord, angle, cos of the angle) out to which position t's pixels can count: the largest
+    outer radius plus the ramp half-width, at most the whole sphere."""
+    c_reach = 0.0
+    for r in range(c_out.shape[0]):
+        c_reach = max(c_reach, c_out[r, t] + half_ramp)
+    c_reach = min(c_reach, 2.0)
+    ang_reach = 2.0 * math.asin(0.5 * c_reach)
+    return c_reach * c_reach, ang_reach, math.cos(ang_reach)
+
+
+@numba.njit(cache=True, inline="always")
+def add_pixel(sums, t, c_in, c_out, half_ramp, d2, w, wv, area):
+    """Add one pixel at squared chord distance d2 from position t to the disc and annulus sums of every
+    radius, counting ``area`` (1 for equal-area pixels), its usable weight w and weighted value wv."""
+    d = math.sqrt(d2) if half_ramp > 0 else 0.0
+    for r in range(c_in.shape[0]):
+        if half_ramp > 0:
+            fd = min(1.0, max(0.0, (c_in[r, t] + half_ramp - d) / (2.0 * half_ramp)))
+            fo = min(1.0, max(0.0, (c_out[r, t] + half_ramp - d) / (2.0 * half_ramp)))
+            fa = fo - fd
+        else:
+            fd = 1.0 if d2 <= c_in[r, t] * c_in[r, t] else 0.0
+            fa = 1.0 if (fd == 0.0 and d2 <= c_out[r, t] * c_out[r, t]) else 0.0
+        if fd > 0:
+            sums[0, r, t] += fd * area
+            sums[1, r, t] += fd * w * area
+            sums[2, r, t] += fd * wv * area
+        if fa > 0:
+            sums[3, r, t] += fa * area
+            sums[4, r, t] += fa * w * area
+            sums[5, r, t] += fa * wv * area
+
+
 @numba.njit(cache=True, parallel=True)
 def aperture_sums(nside, vec, c_in, c_out, half_ramp, held, full, values, weight, sums):
     """Accumulate disc and annulus sums for every position and radius.
@@ -67,16 +102,9 @@ def aperture_sums(nside, vec, c_in, c_out, half_ramp, held, full, values, weight
     zeroed by the caller: [disc pixel count, disc weight, disc weighted sum, same for the annulus].
     """
     n = vec.shape[0]
-    nr_rad = c_in.shape[0]
     n_rings = 4 * nside - 1
     for t in numba.prange(n):
-        c_reach = 0.0
-        for r in range(nr_rad):
-            c_reach = max(c_reach, c_out[r, t] + half_ramp)
-        c_reach = min(c_reach, 2.0)
-        reach2 = c_reach * c_reach
-        ang_reach = 2.0 * math.asin(0.5 * c_reach)
-        cos_reach = math.cos(ang_reach)
+        reach2, ang_reach, cos_reach = reach_of(c_out, t, half_ramp)
         x0, y0, z0 = vec[t, 0], vec[t, 1], vec[t, 2]
         th0 = math.acos(min(1.0, max(-1.0, z0)))
         ph0 = math.atan2(y0, x0)
@@ -114,21 +142,5 @@ def aperture_sums(nside, vec, c_in, c_out, half_ramp, held, full, values, weight
                     continue
                 v, w = _lookup(first + jj, held, full, values, weight)
                 wv = w * v if w > 0 else 0.0
-                d = math.sqrt(d2) if half_ramp > 0 else 0.0
-                for r in range(nr_rad):
-                    if half_ramp > 0:
-                        fd = min(1.0, max(0.0, (c_in[r, t] + half_ramp - d) / (2.0 * half_ramp)))
-                        fo = min(1.0, max(0.0, (c_out[r, t] + half_ramp - d) / (2.0 * half_ramp)))
-                        fa = fo - fd
-                    else:
-                        fd = 1.0 if d2 <= c_in[r, t] * c_in[r, t] else 0.0
-                        fa = 1.0 if (fd == 0.0 and d2 <= c_out[r, t] * c_out[r, t]) else 0.0
-                    if fd > 0:
-                        sums[0, r, t] += fd
-                        sums[1, r, t] += fd * w
-                        sums[2, r, t] += fd * wv
-                    if fa > 0:
-                        sums[3, r, t] += fa
-                        sums[4, r, t] += fa * w
-                        sums[5, r, t] += fa * wv
+                add_pixel(sums, t, c_in, c_out, half_ramp, d2, w, wv, 1.0)
     return sums

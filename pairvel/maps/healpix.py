@@ -285,11 +285,6 @@ class HealpixMap(SkyMap):
         return HealpixMap(self.nside, self.nest, self.pixels, values, self.weight if weight is None else weight,
                           path=self.path if path is None else path, coordsys=self.coordsys)
 
-    def _check_grid(self, grid):
-        if not self.same_grid(grid):
-            raise MapError(f"map {grid.path} has {grid.grid_label} but map {self.path} has {self.grid_label}; "
-                           f"their pixels cannot be matched", path=grid.path)
-
     def values_on(self, grid) -> tuple[np.ndarray, np.ndarray]:
         if grid is self:
             return self.values, self.weight

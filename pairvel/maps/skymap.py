@@ -155,6 +155,12 @@ class SkyMap(ABC):
         return self.with_values(self.values, weight=self.weight * factor)
 
     # ------------------------------------------------------------------ maps of one grid read together
+    def _check_grid(self, grid: "SkyMap"):
+        """MapError unless ``grid`` lies on this map's pixel grid."""
+        if not self.same_grid(grid):
+            raise MapError(f"map {grid.path} has {grid.grid_label} but map {self.path} has {self.grid_label}; "
+                           f"their pixels cannot be matched", path=grid.path)
+
     @abstractmethod
     def values_on(self, grid: "SkyMap") -> tuple[np.ndarray, np.ndarray]:
         """This map's values and weights at the held pixels of ``grid``, a map on the same grid.
