@@ -206,6 +206,8 @@ def read_catalogue(cfg: Config, progress: Progress) -> Catalogue:
 def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
     """Read (or combine) the map, apply the mask, remove monopole and dipole, pre-filter."""
     skymap, combination = read_input_map(cfg)  # one map, or the combination of [multifrequency]
+    if skymap.plane_note:
+        progress.say(f"      map {skymap.path}: read {skymap.plane_note}")
     if cfg.map.mask_path is not None:
         skymap = skymap.with_mask(read_mask(cfg.map.mask_path, ordering=cfg.map.ordering, coordsys=skymap.coordsys))
     dipole_fit = None

@@ -8,8 +8,10 @@ and those temperatures with the redshift trend removed.
 Depends on :mod:`pairvel.core` and :mod:`pairvel.model`.
 
 ``skymap`` is the map interface the stages use; ``healpix`` (with ``healpix_io`` for its FITS
-files and the private ``_aperture_kernels``) is its HEALPix implementation.
+files and the private ``_aperture_kernels``) is its HEALPix implementation; ``car`` (with ``car_io``
+and the private ``_car_sums`` and ``_car_kernels``) the rectangular-pixel one, for FITS images with
+a cylindrical WCS.
 """
 
-__all__ = ["channels", "harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
+__all__ = ["car", "car_io", "channels", "harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
            "trend"]

@@ -47,7 +47,7 @@ _UNIT_TO_UK = {
 ACCEPTED_UNITS = "K_CMB, mK_CMB or uK_CMB"
 
 # Modules that read map files of one pixelisation, asked in turn whether a file is theirs.
-_FILE_FORMATS = ("pairvel.maps.healpix_io",)
+_FILE_FORMATS = ("pairvel.maps.healpix_io", "pairvel.maps.car_io")
 
 
 def frame_letter(coordsys) -> str | None:
@@ -69,6 +69,9 @@ class SkyMap(ABC):
     coordsys : {"C", "G", "E"}
         Frame of the pixel grid: equatorial, Galactic or ecliptic.  Tracer positions, always
         equatorial, are rotated into it; the map is never rotated.
+    plane_note : str or None
+        Which plane of a several-plane file the values come from (e.g. ``"Stokes I (plane 0 of 3 on
+        axis 3)"``), said in the run log; None when the file has one.
 
     Notes
     -----
@@ -80,6 +83,7 @@ class SkyMap(ABC):
     weight: np.ndarray
     path: str | None
     coordsys: str
+    plane_note: str | None = None
 
     # ------------------------------------------------------------------ the grid
     @property
