@@ -245,22 +245,19 @@ def _exact_geometry(grid: RingGrid, lmax: int) -> str | None:
     return None
 
 
-def _pole_to_pole(theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The rows ``theta`` extended to both poles with their own (equal) spacing, and where each
-    original row sits among them; rows not equally spaced are returned as they are."""
-    order = np.argsort(theta)
-    t = theta[order]
-    if t.size < 2:
-        return theta, np.arange(theta.size)
-    step = float(np.mean(np.diff(t)))
-    if step <= 0 or not np.allclose(np.diff(t), step, rtol=0.0, atol=_EQUAL_SPACING_TOL):
-        return theta, np.arange(theta.size)
-    n_before = int(math.floor(t[0] / step + 1e-9))
-    n_after = int(math.floor((math.pi - t[-1]) / step + 1e-9))
-    full = t[0] + step * np.arange(-n_before, t.size + n_after)
-    where = np.empty(theta.size, dtype=np.int64)
-    where[order] = n_before + np.arange(t.size)
-    return np.clip(full, 0.0, math.pi), where
+def _caps(theta: np.ndarray, lmax: int) -> np.ndarray:
+    """Colatitudes of rows covering the caps beyond the rows ``theta`` and their half-spacing edges,
+    where such a cap is wider than one row spacing, centred in equal bands no wider than
+    max(grid spacing, pi / (2 lmax + 2)): enough to sample a field of l <= lmax there."""
+    t = np.sort(theta)
+    step = float(np.min(np.diff(t))) if t.size > 1 else math.pi / (2 * lmax + 2)
+    spacing = max(step, math.pi / (2 * lmax + 2))
+    rows = []
+    for start, stop in ((0.0, t[0] - 0.5 * step), (t[-1] + 0.5 * step, math.pi)):
+        if stop - start > step:
+            n = int(math.ceil((stop - start) / spacing))
+            rows.append(start + (np.arange(n) + 0.5) * (stop - start) / n)
+    return np.concatenate(rows) if rows else np.zeros(0)
 
 
 def analyse_grid(values, grid: RingGrid, *, lmax: int, n_iter: int = 3, n_threads=None) -> np.ndarray:
@@ -285,10 +282,13 @@ def analyse_grid(values, grid: RingGrid, *, lmax: int, n_iter: int = 3, n_thread
     A full Clenshaw-Curtis or Fejer-1 grid with nphi >= 2 lmax + 1 and lmax within
     ``ducc0.sht.experimental.maximum_safe_l`` is analysed exactly (``analysis_2d``).  Any other grid:
     a_lm = Y^T W m with W the pixel solid angles (:func:`pixel_solid_angles`), then
-    a_lm += Y^T W (m - Y a_lm) ``n_iter`` times, on whole rings over the grid's rows extended to
-    the poles with the same spacing (equally spaced rows only), with the pixels outside the grid at 0.
-    The first step is exact only as far as a Riemann sum of the pixels is; the iterations shrink the
-    band-limited part of the error geometrically.
+    a_lm += Y^T W (m - Y a_lm) ``n_iter`` times (Jacobi iterations, as ``healpy.map2alm``'s
+    ``iter``), on whole rings: the grid's rows (pixels off the grid at 0), and for the sky beyond
+    them rows covering both caps to the poles, where the map is 0, sampled as l <= lmax needs
+    (rows and columns at most pi / (2 lmax + 2) apart, or the grid's spacing when finer), so a small
+    patch does not pay for the whole sphere at its own resolution.  The first step is exact only as
+    far as a Riemann sum over the pixels is; the iterations shrink the band-limited part of the
+    error geometrically.
     """
     import ducc0
 
@@ -306,24 +306,34 @@ def analyse_grid(values, grid: RingGrid, *, lmax: int, n_iter: int = 3, n_thread
         image = np.ascontiguousarray(values[order][:, cols])[None, :, :]
         return ducc0.sht.experimental.analysis_2d(map=image, spin=0, lmax=lmax, geometry=exact, phi0=phi_first,
                                                   nthreads=nthreads)[0]
-    theta, where = _pole_to_pole(grid.theta_rad) if n_iter > 0 else (grid.theta_rad, np.arange(grid.n_lat))
-    grid_row = np.full(theta.size, -1)
-    grid_row[where] = np.arange(grid.n_lat)
-    lo, hi = _row_edges(theta)
-    weight = abs(grid.dlon_rad) * (np.cos(lo) - np.cos(hi))
-    weight[where] = pixel_solid_angles(grid)
-    blocks = _row_blocks(theta.size, grid.nphi)
+    weight = pixel_solid_angles(grid)
+    blocks = _row_blocks(grid.n_lat, grid.nphi)
 
     def target(rows):  # the map on whole rings ``rows``, zero off the grid
         out = np.zeros((rows.stop - rows.start, grid.nphi))
-        inside = grid_row[rows] >= 0
-        out[inside, :grid.n_lon] = values[grid_row[rows][inside]][:, cols]
+        out[:, :grid.n_lon] = values[rows][:, cols]
         return out
 
-    alm = sum(_adjoint(target(r) * weight[r, None], theta[r], phi_first, lmax, nthreads) for r in blocks)
+    def grid_step(alm):  # Y^T W (m - Y a) on the grid's rings
+        return sum(_adjoint((target(r) - (0.0 if alm is None else _synthesis(alm, grid.theta_rad[r], grid.nphi,
+                                                                               phi_first, lmax, nthreads)))
+                            * weight[r, None], grid.theta_rad[r], phi_first, lmax, nthreads) for r in blocks)
+
+    # beyond the grid the map is 0: rings covering the caps at the sampling l <= lmax needs, for
+    # the residual -Y a of the iterations there
+    cap_theta = _caps(grid.theta_rad, lmax)
+    cap_nphi = min(grid.nphi, 2 * lmax + 2)
+    lo, hi = _row_edges(np.concatenate([grid.theta_rad, cap_theta]))
+    cap_weight = (2.0 * math.pi / cap_nphi) * (np.cos(lo) - np.cos(hi))[grid.n_lat:]
+    cap_blocks = _row_blocks(cap_theta.size, cap_nphi)
+
+    def cap_step(alm):  # Y^T W (0 - Y a) on the caps
+        return sum(_adjoint(-_synthesis(alm, cap_theta[r], cap_nphi, 0.0, lmax, nthreads) * cap_weight[r, None],
+                            cap_theta[r], 0.0, lmax, nthreads) for r in cap_blocks)
+
+    alm = grid_step(None)
     for _ in range(int(n_iter)):
-        alm = alm + sum(_adjoint((target(r) - _synthesis(alm, theta[r], grid.nphi, phi_first, lmax, nthreads))
-                                 * weight[r, None], theta[r], phi_first, lmax, nthreads) for r in blocks)
+        alm = alm + grid_step(alm) + (cap_step(alm) if cap_theta.size else 0.0)
     return alm[0]
 
 

@@ -92,13 +92,9 @@ def car_white_noise(spec, noise_uk_arcmin: float, rng) -> np.ndarray:
 
 
 def write_car_map(path, spec, values, *, header: dict) -> None:
-    """Write flat ``values`` (uK_CMB) as the CAR footprint image, float32, with ``header`` cards."""
-    from astropy.io import fits
+    """Write flat ``values`` (uK_CMB) as the CAR footprint image, float32, with ``header`` cards
+    (:func:`pairvel.maps.car_io.write_car_map`)."""
+    from ..maps import car_io
 
-    footprint = car_footprint(spec)
-    hdr = footprint.wcs.to_header()
-    hdr["BUNIT"] = ("uK_CMB", "thermodynamic CMB temperature")
-    for key, card in header.items():
-        hdr[key] = card
-    image = np.asarray(values, dtype=np.float32).reshape(footprint.shape)
-    fits.PrimaryHDU(image, header=hdr).writeto(path)
+    image = car_footprint(spec).with_values(np.asarray(values, dtype=np.float32))
+    car_io.write_car_map(path, image, unit="uK_CMB", extra_header=header)
