@@ -24,6 +24,28 @@ from pairvel.maps.healpix import HealpixMap
 from pairvel.maps.photometry import measure_apertures
 
 
+def time_kernel_and_direct(sm, ra, dec, radii, weighting, n_direct, *, direct_label="direct"):
+    """Time the kernel on every position (after a warm-up on 100) and the direct path on the first
+    ``n_direct``, printing both and the extrapolated speed-up; returns the two ApertureResults."""
+    n = ra.size
+    t0 = time.perf_counter()
+    measure_apertures(sm, ra[:100], dec[:100], radii, pixel_weighting=weighting, method="kernel")
+    print(f"kernel warm-up (compile or cache load) on 100 tracers: {time.perf_counter() - t0:.2f} s")
+
+    t0 = time.perf_counter()
+    fast = measure_apertures(sm, ra, dec, radii, pixel_weighting=weighting, method="kernel")
+    t_fast = time.perf_counter() - t0
+    print(f"kernel: {n:,} tracers x {len(radii)} radii in {t_fast:.2f} s ({t_fast / n * 1e6:.2f} us per tracer)")
+
+    t0 = time.perf_counter()
+    direct = measure_apertures(sm, ra[:n_direct], dec[:n_direct], radii, pixel_weighting=weighting,
+                               method="direct")
+    t_direct = time.perf_counter() - t0
+    print(f"{direct_label}: {n_direct:,} tracers in {t_direct:.2f} s -> {t_direct / n_direct * n:.0f} s extrapolated to "
+          f"{n:,}; kernel speed-up {t_direct / n_direct * n / t_fast:.1f}x")
+    return fast, direct
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--n", type=float, default=1e6, help="tracers (default 1e6)")
@@ -48,22 +70,7 @@ def main(argv=None):
           f"{time.perf_counter() - t0:.1f} s (not counted)")
     print(f"tracers: {n:,} uniform on the sphere; radii {radii} arcmin; pixel weighting {args.weighting}")
 
-    t0 = time.perf_counter()
-    measure_apertures(sm, ra[:100], dec[:100], radii, pixel_weighting=args.weighting, method="kernel")
-    print(f"kernel warm-up (compile or cache load) on 100 tracers: {time.perf_counter() - t0:.2f} s")
-
-    t0 = time.perf_counter()
-    fast = measure_apertures(sm, ra, dec, radii, pixel_weighting=args.weighting, method="kernel")
-    t_fast = time.perf_counter() - t0
-    print(f"kernel: {n:,} tracers x {len(radii)} radii in {t_fast:.2f} s ({t_fast / n * 1e6:.2f} us per tracer)")
-
-    t0 = time.perf_counter()
-    direct = measure_apertures(sm, ra[:n_direct], dec[:n_direct], radii, pixel_weighting=args.weighting,
-                               method="direct")
-    t_direct = time.perf_counter() - t0
-    print(f"direct: {n_direct:,} tracers in {t_direct:.2f} s -> {t_direct / n_direct * n:.0f} s extrapolated to "
-          f"{n:,}; kernel speed-up {t_direct / n_direct * n / t_fast:.0f}x")
-
+    fast, direct = time_kernel_and_direct(sm, ra, dec, radii, args.weighting, n_direct)
     for k, r in enumerate(radii):
         rms = float(np.nanstd(fast.temperatures[k]))
         a, b = fast.temperatures[k, :n_direct], direct.temperatures[k]

@@ -100,15 +100,18 @@ class CatalogueConfig:
 
 @dataclass(frozen=True)
 class MapConfig:
-    path: Path | None = _key(None, "HEALPix temperature map, FITS, full or partial sky (required)")
-    field: int = _key(0, "which map column (0-based) to read")
+    path: Path | None = _key(None, "temperature map, FITS: HEALPix (full or partial sky) or an image with a "
+                                       "cylindrical WCS (CAR, CEA, MER; required)")
+    field: int = _key(0, "which map column (0-based) to read; for an image cube, the Stokes parameter (0 = I) on a "
+                          "STOKES axis, else the plane")
     unit: str | None = _key(None, "map unit when the header has none: K_CMB, mK_CMB or uK_CMB")
     ordering: str | None = _key(None, "RING or NESTED when the header has no ORDERING",
                                 choices=(None, "RING", "NESTED"))
     coordsys: str | None = _key(None, "frame of the map when the header has no COORDSYS: C (equatorial), G (Galactic) "
                                       "or E (ecliptic); tracer positions are rotated into it",
                                 choices=(None, "C", "G", "E"))
-    mask_path: Path | None = _key(None, "optional HEALPix mask (1 = use, 0 = masked) of the map's nside")
+    mask_path: Path | None = _key(None, "optional mask (1 = use, 0 = masked) on the map's pixel grid (HEALPix nside, "
+                                            "or the image's WCS grid)")
     remove_dipole: bool = _key(False, "fit and subtract a monopole and dipole over the usable (unmasked) pixels before "
                                       "photometry")
     max_masked_fraction: float = _key(0.1, "drop tracers whose disc or annulus is more than this fraction masked",

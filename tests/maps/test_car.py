@@ -90,6 +90,21 @@ def test_kernel_and_numpy_reference_give_the_same_sums():
         a = m.aperture_sums(vec, theta, math.sqrt(2) * theta, weighting=weighting, method="kernel")
         b = m.aperture_sums(vec, theta, math.sqrt(2) * theta, weighting=weighting, method="direct")
         assert np.allclose(a, b, rtol=1e-10, atol=1e-9), weighting
+    # a CEA grid with a column step that does not divide 360 deg, and a map holding only some pixels
+    w, shape = box_wcs((20, 31), (50, 62), 0.7, projection="CEA")
+    cea = CarMap.from_image(rng.normal(size=shape), w)
+    lon, lat = rng.uniform(19, 32, 60), rng.uniform(49, 63, 60)
+    support = cea.aperture_support(lon[:30], lat[:30], 6.0)
+    held = cea.with_values(cea.values).values_on(support)[0]
+    part = support.with_values(held)
+    theta = np.full((1, 60), 3.0 * ARCMIN_RAD)
+    vec = hp.ang2vec(lon, lat, lonlat=True)
+    for m_ in (cea, part):
+        a = m_.aperture_sums(vec, theta, math.sqrt(2) * theta, method="kernel")
+        b = m_.aperture_sums(vec, theta, math.sqrt(2) * theta, method="direct")
+        assert np.allclose(a, b, rtol=1e-10, atol=1e-9)
+    assert not np.allclose(cea.aperture_sums(vec, theta, math.sqrt(2) * theta)[1],
+                           part.aperture_sums(vec, theta, math.sqrt(2) * theta)[1])  # the support holds fewer
     # full-sky grid: across the longitude seam and around a pole
     w, shape = box_wcs((0, 360), (-90, 90), 20.0)
     sky = CarMap.from_image(rng.normal(size=shape), w)
