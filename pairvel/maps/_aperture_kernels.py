@@ -71,7 +71,10 @@ def reach_of(c_out, t, half_ramp):
 @numba.njit(cache=True, inline="always")
 def add_pixel(sums, t, c_in, c_out, half_ramp, d2, w, wv, area):
     """Add one pixel at squared chord distance d2 from position t to the disc and annulus sums of every
-    radius, counting ``area`` (1 for equal-area pixels), its usable weight w and weighted value wv."""
+    radius, counting ``area`` (1 for equal-area pixels), its usable weight w and weighted value wv.
+
+    Also inlined into ``_car_kernels.py``: numba's on-disk cache keys a kernel on its own file only,
+    so after changing this (or :func:`reach_of`) touch that file too, or clear its ``__pycache__``."""
     d = math.sqrt(d2) if half_ramp > 0 else 0.0
     for r in range(c_in.shape[0]):
         if half_ramp > 0:

@@ -20,12 +20,12 @@ import math
 import numba
 import numpy as np
 
-from ._aperture_kernels import add_pixel, reach_of
+from ._aperture_kernels import _lookup, add_pixel, reach_of
 
 
 @numba.njit(cache=True, parallel=True)
 def aperture_sums(vec, c_in, c_out, half_ramp, row_lat, row_z, row_s, row_area, row_index, lon0, dlon, period,
-                  n_turn, nx, col_cos, col_sin, values, weight, sums):
+                  n_turn, nx, col_cos, col_sin, held, full, values, weight, sums):
     """Accumulate area-weighted disc and annulus sums for every position and radius.
 
     vec (N, 3) unit vectors in the map frame; c_in, c_out (R, N) chord radii; half_ramp 0 for whole
@@ -33,7 +33,8 @@ def aperture_sums(vec, c_in, c_out, half_ramp, row_lat, row_z, row_s, row_area, 
     sorted by latitude (radians), sin and cos of it, pixel area over the mean pixel area, and the
     grid row (-1 virtual).  lon0, dlon: longitude of column 0 and the column step (radians, signed);
     period: columns per 360 deg; n_turn: lattice columns; nx: real columns; col_cos, col_sin
-    (n_turn,).  values, weight: the image, row-major (ny nx), weight 0 where not held.  sums
+    (n_turn,).  held: sorted flat indices y nx + x of a partial map's pixels (ignored when full);
+    values, weight: the map's, row-major over the image when full, else aligned with held.  sums
     (6, R, N), zeroed by the caller: [disc area, disc weight x area, disc weighted sum, same for the
     annulus], areas in mean pixels.
     """
@@ -77,9 +78,7 @@ def aperture_sums(vec, c_in, c_out, half_ramp, row_lat, row_z, row_s, row_area, 
                     continue
                 v, w = 0.0, 0.0
                 if grid_row >= 0 and j < nx:
-                    k = grid_row * nx + j
-                    w = weight[k]
-                    v = values[k]
+                    v, w = _lookup(grid_row * nx + j, held, full, values, weight)
                 wv = w * v if w > 0 else 0.0
                 add_pixel(sums, t, c_in, c_out, half_ramp, d2, w, wv, area)
     return sums

@@ -178,7 +178,9 @@ def sums_kernel(skymap, vec, c_in, c_out, weighting, progress):
     grid = skymap.grid
     ext = grid.extended_rows
     col_cos, col_sin = grid.lattice_columns
-    values, weight = skymap._full_arrays
+    full = skymap.pixels is None
+    held = np.zeros(0, np.int64) if full else skymap.pixels
+    values = skymap.values if skymap.values.dtype in (np.float32, np.float64) else skymap.values.astype(np.float64)
     half = _half_ramp(grid) if weighting == "fraction" else 0.0
     n, nr = vec.shape[0], c_in.shape[0]
     # visit positions row by row, so neighbouring apertures read neighbouring memory
@@ -195,7 +197,7 @@ def sums_kernel(skymap, vec, c_in, c_out, weighting, progress):
         aperture_sums(np.ascontiguousarray(vec_sorted[b0:b1]), np.ascontiguousarray(c_in[:, rows]),
                       np.ascontiguousarray(c_out[:, rows]), half, ext["lat"], ext["z"], ext["s"], area_unit,
                       ext["row"], math.radians(grid.lon0_deg), math.radians(grid.dlon_deg), grid.period,
-                      grid.n_turn, grid.nx, col_cos, col_sin, values, weight, part)
+                      grid.n_turn, grid.nx, col_cos, col_sin, held, full, values, skymap.weight, part)
         sums[:, :, rows] = part
         if progress is not None:
             progress(b1, n)

@@ -67,6 +67,9 @@ class CarGrid:
     frame : {"C", "G", "E"}
     projection : str
         Three-letter WCS projection code.
+    wcs : astropy.wcs.WCS
+    x_ref : float
+        A column the WCS places on the sky, where row latitudes are evaluated.
     """
 
     ny: int
@@ -80,6 +83,7 @@ class CarGrid:
     frame: str
     projection: str
     wcs: WCS = field(repr=False)
+    x_ref: float = 0.0
 
     @property
     def period(self) -> float:
@@ -177,7 +181,7 @@ def _virtual_rows(grid: CarGrid, side: int):
     step = abs(grid.lat_deg[-1] - grid.lat_deg[-2]) if side > 0 else abs(grid.lat_deg[1] - grid.lat_deg[0])
     k = int(min(math.ceil(_VIRTUAL_REACH_DEG / max(step, 1e-9)) + 1, 200_000))
     y = (grid.ny - 1 + np.arange(1, k + 1)) if side > 0 else -np.arange(1, k + 1, dtype=np.float64)
-    lat = _row_latitudes(grid.wcs, y, 0.0)
+    lat = _row_latitudes(grid.wcs, y, grid.x_ref)
     edge_lat = grid.lat_deg[-1] if side > 0 else grid.lat_deg[0]
     ascending = grid.lat_deg[-1] > grid.lat_deg[0]
     outward = 1.0 if (side > 0) == ascending else -1.0
@@ -186,8 +190,8 @@ def _virtual_rows(grid: CarGrid, side: int):
     # keep the unbroken run next to the grid
     stop = int(np.argmin(ok)) if not ok.all() else ok.size
     y, lat = y[:stop], lat[:stop]
-    z_a = _edges_z(grid.wcs, y - 0.5, 0.0, lat)
-    z_b = _edges_z(grid.wcs, y + 0.5, 0.0, lat)
+    z_a = _edges_z(grid.wcs, y - 0.5, grid.x_ref, lat)
+    z_b = _edges_z(grid.wcs, y + 0.5, grid.x_ref, lat)
     return lat, z_a, z_b
 
 
@@ -222,17 +226,21 @@ def car_grid(wcs, shape, what="map", path=None) -> CarGrid:
     radesys = str(wcs.wcs.radesys or "").strip().upper()
     if frame == "C" and radesys not in _EQUATORIAL_SYSTEMS:
         raise MapError(f"{what}: RADESYS must be ICRS or FK5 (J2000); got {radesys!r}", path=path, key="RADESYS")
-    y_ref, x_ref = 0.5 * (ny - 1), 0.5 * (nx - 1)
+    y_ref = 0.5 * (ny - 1)
     lon_cols = _world(wcs, np.arange(nx), np.full(nx, y_ref))[0]
+    # WCSLIB gives no sky beyond native longitude +-180 deg; such columns repeat the turn (x is linear in
+    # longitude on a cylinder), so the step comes from the columns it does place
+    placed = np.flatnonzero(np.isfinite(lon_cols))
+    if placed.size < min(nx, 2):
+        raise MapError(f"{what}: its columns lie off the sky; check CRPIX1/CDELT1", path=path, key="CRPIX1")
+    x_ref = float(placed[np.argmin(np.abs(placed - 0.5 * (nx - 1)))])
     lat = _row_latitudes(wcs, np.arange(ny), x_ref)
     if not (np.all(np.isfinite(lat)) and np.all(np.abs(lat) <= 90.0 + 1e-9)):
         first = int(np.flatnonzero(~(np.isfinite(lat) & (np.abs(lat) <= 90.0 + 1e-9)))[0])
         raise MapError(f"{what}: row {first} lies off the sky (beyond a pole); check CRPIX2/CDELT2", path=path,
                        key="CRPIX2")
-    if not np.all(np.isfinite(lon_cols)):
-        raise MapError(f"{what}: some columns lie off the sky; check CRPIX1/CDELT1", path=path, key="CRPIX1")
-    _check_separable(wcs, lon_cols, lat, ny, nx, what, path)
-    lon0, dlon = _linear_longitudes(lon_cols, what, path)
+    _check_separable(wcs, lon_cols, lat, placed, ny, what, path)
+    lon0, dlon = _linear_longitudes(lon_cols, placed, what, path)
     if ny > 1 and not (np.all(np.diff(lat) > 0) or np.all(np.diff(lat) < 0)):
         raise MapError(f"{what}: row latitudes must change monotonically; check CDELT2/PC2_2", path=path, key="CDELT2")
     if nx * abs(dlon) > 360.0 * (1.0 + 1e-6):
@@ -241,12 +249,13 @@ def car_grid(wcs, shape, what="map", path=None) -> CarGrid:
     y = np.arange(ny, dtype=np.float64)
     z_a, z_b = _edges_z(wcs, y - 0.5, x_ref, lat), _edges_z(wcs, y + 0.5, x_ref, lat)
     area = math.radians(abs(dlon)) * np.abs(z_b - z_a)
-    return CarGrid(ny, nx, lon0, dlon, lat, z_a, z_b, area, frame, projection, wcs)
+    return CarGrid(ny, nx, lon0, dlon, lat, z_a, z_b, area, frame, projection, wcs, x_ref)
 
 
-def _check_separable(wcs, lon_cols, lat, ny, nx, what, path):
-    """Longitude must depend on the column only and latitude on the row only (checked on 25 pixels)."""
-    xs = np.unique(np.linspace(0, nx - 1, 5).round().astype(int))
+def _check_separable(wcs, lon_cols, lat, placed, ny, what, path):
+    """Longitude must depend on the column only and latitude on the row only (checked on 25 pixels of
+    the columns WCSLIB places)."""
+    xs = np.unique(np.linspace(placed[0], placed[-1], 5).round().astype(int))
     ys = np.unique(np.linspace(0, ny - 1, 5).round().astype(int))
     gx, gy = np.meshgrid(xs, ys)
     lon, la = _world(wcs, gx.ravel(), gy.ravel())
@@ -262,17 +271,21 @@ def _check_separable(wcs, lon_cols, lat, ny, nx, what, path):
                        f"{wcs.wcs.lonpole:g}) or a rotated PC matrix; reproject to CRVAL2 = 0", path=path, key="CRVAL2")
 
 
-def _linear_longitudes(lon_cols, what, path) -> tuple[float, float]:
+def _linear_longitudes(lon_cols, placed, what, path) -> tuple[float, float]:
+    """(longitude of column 0, step), degrees, from the placed columns, which must be evenly spaced."""
     if lon_cols.size == 1:
         raise MapError(f"{what}: a grid of one column has no longitude step; NAXIS1 must be >= 2", path=path,
                        key="NAXIS1")
-    unwrapped = np.degrees(np.unwrap(np.radians(lon_cols)))
-    dlon = float((unwrapped[-1] - unwrapped[0]) / (lon_cols.size - 1))
-    resid = unwrapped - (unwrapped[0] + dlon * np.arange(lon_cols.size))
+    if np.any(np.diff(placed) != 1):
+        raise MapError(f"{what}: WCSLIB places columns {placed[0]}..{placed[-1]} with gaps; not a cylindrical grid",
+                       path=path, key="CTYPE1")
+    unwrapped = np.degrees(np.unwrap(np.radians(lon_cols[placed])))
+    dlon = float((unwrapped[-1] - unwrapped[0]) / max(placed[-1] - placed[0], 1))
+    resid = unwrapped - (unwrapped[0] + dlon * (placed - placed[0]))
     if dlon == 0.0 or np.max(np.abs(resid)) > max(_TOL_DEG, 1e-6 * abs(dlon)):
         raise MapError(f"{what}: column longitudes are not evenly spaced (off by up to {np.max(np.abs(resid)):.3g} "
                        f"deg); check CDELT1 and the projection", path=path, key="CDELT1")
-    return float(unwrapped[0] % 360.0), dlon
+    return float((unwrapped[0] - dlon * placed[0]) % 360.0), dlon
 
 
 def box_wcs(lon_range_deg, lat_range_deg, pixel_arcmin, *, frame="C", projection="CAR") -> tuple[WCS, tuple[int, int]]:
@@ -437,8 +450,17 @@ class CarMap(SkyMap):
         full_w[self.pixels] = self.weight
         return full_v, full_w
 
-    def _held_area_sr(self) -> np.ndarray:
-        return self.grid.row_area_sr[self.held_pixels() // self.grid.nx]
+    def _held_rows(self, index=None) -> np.ndarray:
+        """Grid row of held pixels ``index`` (default all)."""
+        index = np.arange(self.n_held) if index is None else index
+        return self._flat(index) // self.grid.nx
+
+    def _row_sums(self, per_pixel) -> np.ndarray:
+        """Sums over each grid row of a per-held-pixel array, (ny,) float64."""
+        g = self.grid
+        if self.pixels is None:
+            return np.sum(np.reshape(per_pixel, (g.ny, g.nx)), axis=1, dtype=np.float64)
+        return np.bincount(self.pixels // g.nx, weights=per_pixel, minlength=g.ny)
 
     # ------------------------------------------------------------------ SkyMap: the grid
     @property
@@ -460,7 +482,7 @@ class CarMap(SkyMap):
         return isinstance(other, CarMap) and self.grid.matches(other.grid)
 
     def usable_fraction(self) -> float:
-        return float(np.sum(self.weight * self._held_area_sr(), dtype=np.float64) / (4.0 * math.pi))
+        return float(self._row_sums(self.weight) @ self.grid.row_area_sr / (4.0 * math.pi))
 
     def with_values(self, values, *, weight=None, path=None) -> "CarMap":
         return CarMap(self.wcs, self.shape, self.pixels, values, self.weight if weight is None else weight,
@@ -507,18 +529,24 @@ class CarMap(SkyMap):
         return unit_vectors(*self.pixel_lonlat(index))
 
     @functools.cached_property
-    def _usable_cumulative_area(self) -> tuple[np.ndarray, np.ndarray]:
+    def _usable_by_row(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Usable held pixels (row-major), the first of each row among them, and the cumulative usable
+        area of the rows."""
         usable = np.flatnonzero(self.weight > 0)
-        return usable, np.cumsum(self._held_area_sr()[usable])
+        counts = np.bincount(self._held_rows(usable), minlength=self.grid.ny)
+        return usable, np.cumsum(counts) - counts, np.cumsum(counts * self.grid.row_area_sr)
 
     def random_points(self, n, rng):
-        """A usable pixel drawn with probability proportional to its solid angle, then a point uniform
-        on the sphere within it (uniform in longitude and in sin(latitude) between the row edges)."""
-        usable, cum = self._usable_cumulative_area
+        """A usable pixel drawn with probability proportional to its solid angle (a row by its usable
+        area, then one of its usable pixels), then a point uniform on the sphere within it (uniform in
+        longitude and in sin(latitude) between the row edges)."""
+        usable, first, cum = self._usable_by_row
         if usable.size == 0:
             raise MapError(f"map {self.path}: no usable pixel to draw random points in", path=self.path)
         g = self.grid
-        pick = np.minimum(np.searchsorted(cum, rng.random(n) * cum[-1], side="right"), usable.size - 1)
+        row = np.minimum(np.searchsorted(cum, rng.random(n) * cum[-1], side="right"), g.ny - 1)
+        count = np.diff(np.append(first, usable.size))[row]
+        pick = first[row] + np.minimum((rng.random(n) * count).astype(np.int64), count - 1)
         y, x = np.divmod(self._flat(usable[pick]), g.nx)
         lon = g.column_lon_deg(x + rng.random(n) - 0.5)
         z = g.z_lo[y] + (g.z_hi[y] - g.z_lo[y]) * rng.random(n)
@@ -609,5 +637,7 @@ class CarMap(SkyMap):
 
     def white_noise(self, level_uk_arcmin, rng) -> np.ndarray:
         """sigma = level / sqrt(pixel area in arcmin^2), each pixel with its own row's area."""
-        area_arcmin2 = self._held_area_sr() / ARCMIN_RAD ** 2
-        return level_uk_arcmin / np.sqrt(area_arcmin2) * rng.standard_normal(self.n_held)
+        sigma = level_uk_arcmin / np.sqrt(self.grid.row_area_sr / ARCMIN_RAD ** 2)  # per row
+        if self.pixels is None:
+            return (rng.standard_normal(self.shape) * sigma[:, None]).reshape(-1)
+        return sigma[self._held_rows()] * rng.standard_normal(self.n_held)

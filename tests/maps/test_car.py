@@ -60,6 +60,14 @@ def test_grids_that_are_not_separable_cylinders_are_refused(kwargs, key):
     assert err.value.key == key
 
 
+def test_columns_beyond_native_longitude_180_continue_the_turn():
+    # reference pixel in the first column, RA falling to the right: WCSLIB places columns 0..180 only
+    corner = CarMap.from_image(np.zeros((180, 360)), car_wcs(crpix=(1.0, 90.5)))
+    centred = CarMap.from_image(np.zeros((180, 360)), car_wcs(crval=(180.0, 0.0), crpix=(181.0, 90.5)))
+    assert corner.grid.wraps and corner.same_grid(centred)
+    assert np.allclose(corner.pixel_lonlat([359])[0], 1.0)  # column 359 at RA -359 = 1 deg
+
+
 def test_mercator_rows_follow_the_projection():
     # MER: y = ln tan(45 deg + lat / 2) in degrees of arc (Calabretta & Greisen 2002, eq. 84)
     m = CarMap.from_image(np.zeros((100, 360)), car_wcs(ctype=("GLON-MER", "GLAT-MER"), crpix=(180.5, 50.5)))
@@ -163,6 +171,9 @@ def test_galactic_grid_sees_tracers_given_in_equatorial_coordinates():
     amp = 50.0 * math.pi * (theta * ARCMIN_RAD) ** 2
     sky = grid.source_map([101.0, 102.5], [0.5, -1.0], np.full(2, amp), fwhm_arcmin=fwhm)
     res = measure_apertures(sky, ra, dec, theta, pixel_weighting="subsample")
+    deltas = grid.source_map([101.0, 102.5, 150.0], [0.5, -1.0, 0.0], [3.0, 4.0, 5.0])  # the last off the grid
+    assert np.flatnonzero(deltas.values).tolist() == sorted(grid.grid.pixel_of([101.0, 102.5], [0.5, -1.0]).tolist())
+    assert deltas.values.sum() == 7.0
     # analytic: T_AP = f Y / (pi theta^2) (photometry.point_source_fraction), to the sampling of the beam
     assert np.allclose(res.temperatures[0], 50.0 * point_source_fraction(theta, fwhm), rtol=0.01)
 
@@ -249,3 +260,15 @@ def test_aperture_temperatures_agree_with_healpix_on_the_same_sky():
         b = measure_apertures(hpx, ra, dec, theta, pixel_weighting=weighting).temperatures[0]
         assert abs(a.mean() / expected - 1) < 0.005 and abs(b.mean() / expected - 1) < 0.005, weighting
         assert np.sqrt(np.mean((a - b) ** 2)) < per_source * expected, weighting
+
+
+def test_monopole_and_dipole_are_removed_from_a_partial_car_map():
+    from pairvel.maps.skymap import remove_monopole_dipole
+
+    w, shape = box_wcs((-60, 80), (-50, 40), 60.0)
+    m = CarMap.from_image(np.zeros(shape), w)
+    v = m.pixel_vectors(np.arange(m.values.size))
+    truth = np.array([3.0, 2.0, -1.5, 0.5])  # analytic: T = a0 + a . n is fitted exactly
+    sky = m.with_values(truth[0] + v @ truth[1:])
+    cleaned, coef = remove_monopole_dipole(sky)
+    assert np.allclose(coef, truth, atol=1e-10) and np.max(np.abs(cleaned.values)) < 1e-10
