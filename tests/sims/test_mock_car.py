@@ -56,3 +56,12 @@ def test_car_mock_holds_the_painted_sources(tmp_path):
     # the ideal aperture returns dT up to the beam's spill beyond the disc, 0.996 [analytic, mock docstring],
     # and the pixelisation of a 2.1-arcmin disc on 1-arcmin pixels (a few per cent)
     assert truth.aperture_response == pytest.approx(0.996, abs=0.04)
+
+
+def test_cli_refuses_a_car_pixel_that_does_not_divide_360_degrees(tmp_path, capsys):
+    from pairvel.cli import main
+
+    assert main(["mock", str(tmp_path / "m"), "--pixels", "car", "--car-arcmin", "0.7"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "'car_arcmin' must be a pixel size" in err[0] and "got 0.7" in err[0]
+    assert not (tmp_path / "m").exists()
