@@ -78,7 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--force", action="store_true", help="replace an earlier pairvel output that holds only its own, unchanged files")
     common(demo)
 
-    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix map, truth.json, run.toml)",
+    mock = sub.add_parser("mock", help="write a synthetic survey (catalogue, HEALPix or CAR map, truth.json, run.toml)",
                           description="Generate a self-consistent synthetic survey with a known kSZ signal.")
     mock.add_argument("out", help="new folder for the mock files")
     mock.add_argument("--n-tracers", type=int, default=30000, help="number of tracers (default 30000)")
@@ -99,6 +99,11 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--electron-temperature", type=float, default=None, metavar="KEV",
                       help="give every tracer the tSZ of gas at this temperature (y = tau kT_e / m_e c^2) and write "
                            "per-tracer truth, for `pairvel velocities`")
+    mock.add_argument("--pixels", choices=("healpix", "car"), default="healpix",
+                      help="pixelisation of the maps: partial HEALPix (default) or a plate-carree (CAR) FITS image; "
+                           "with car, --nside only sets the CMB's band limit")
+    mock.add_argument("--car-arcmin", type=float, default=0.5, metavar="ARCMIN",
+                      help="pixel size of the CAR maps (default 0.5; 360 degrees must be a whole number of pixels)")
     common(mock)
 
     vel = sub.add_parser("velocities", help="line-of-sight velocities of single clusters from several frequency maps",
@@ -272,6 +277,8 @@ def _cmd_mock(args) -> int:
                        partner_tau_mean=args.partner_tau_mean)
     if args.electron_temperature is not None:
         options["electron_temperature_kev"] = args.electron_temperature
+    if args.pixels == "car":
+        options.update(pixels="car", car_arcmin=args.car_arcmin)
     truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")

@@ -566,15 +566,37 @@ class CarMap(SkyMap):
 
     # ------------------------------------------------------------------ SkyMap: harmonic space
     def filtered(self, transfer, *, n_iter=3) -> "CarMap":
-        raise MapError(f"map {self.path}: harmonic filtering (pre-filters) is not yet available for rectangular maps",
-                       path=self.path)
+        """Through a_lm -> F_l a_lm with :func:`pairvel.maps.car_sht.filtered_grid` (masked, unheld and
+        off-image pixels at the mean of the usable values; exact quadrature on a full CC/F1 grid,
+        solid-angle weights with ``n_iter`` Jacobi iterations otherwise)."""
+        from .car_sht import filtered_grid
+
+        values, weight = self._full_arrays
+        g = self.grid
+        image = filtered_grid(values.reshape(g.ny, g.nx), weight.reshape(g.ny, g.nx) > 0, self._rings, transfer,
+                              n_iter=n_iter)
+        return self.with_values(image.reshape(-1)[self.held_pixels()].astype(self.values.dtype, copy=False))
 
     def pixel_window(self, lmax) -> np.ndarray:
-        raise MapError(f"map {self.path}: the pixel window is not yet available for rectangular maps", path=self.path)
+        """Orientation-averaged window of the grid's mean rectangular pixel (:func:`pairvel.maps.car_sht.grid_pixel_window`)."""
+        from .car_sht import grid_pixel_window
+
+        return grid_pixel_window(self._rings, int(lmax))
 
     def synthesise(self, alm, *, lmax, n_threads=None) -> np.ndarray:
-        raise MapError(f"map {self.path}: harmonic synthesis (simulated skies) is not yet available for rectangular "
-                       f"maps", path=self.path)
+        """``ducc0`` synthesis on the rows holding the held pixels (:func:`pairvel.maps.car_sht.synthesise_pixels`)."""
+        from .car_sht import synthesise_pixels
+
+        return synthesise_pixels(alm, self._rings, self.held_pixels(), lmax=lmax, n_threads=n_threads)
+
+    @functools.cached_property
+    def _rings(self):
+        """The grid as rings for the harmonic transforms; a MapError unless 360 deg is a whole number of columns."""
+        from .car_sht import ring_grid
+
+        g = self.grid
+        return ring_grid(np.radians(90.0 - g.lat_deg), g.nx, math.radians(g.dlon_deg), math.radians(g.lon0_deg),
+                         row_area_sr=g.row_area_sr, what="map" if self.path is None else f"map {self.path}")
 
     def source_map(self, lon_deg, lat_deg, amplitude, *, fwhm_arcmin=None) -> "CarMap":
         """Every pixel of the image; Gaussian beams evaluated at the pixel centres out to 5 sigma."""

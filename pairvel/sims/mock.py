@@ -17,7 +17,8 @@ patch, observed at 150 GHz by the Skerry Millimetre Telescope.  Steps:
    integral dT_i pi theta_ap^2 (so an ideal aperture of radius theta_ap returns dT_i: tau is the
    aperture optical depth), and a negative thermal-SZ term that grows with mass and redshift.
 4. Map = beam-smoothed primary CMB (package C_l table) + painted sources + white noise, HEALPix
-   RING, written for the footprint only as a partial-sky map.
+   RING, written for the footprint only as a partial-sky map; or, with ``pixels="car"``, the same
+   content on a plate-carree image (:mod:`pairvel.sims.mock_car`).
 
 The low default bias keeps the clipped fraction of cells small, so the sampled pairs follow the
 linear-theory template with that bias (clusters in a real survey have b ~ 3; the bias is a
@@ -29,6 +30,7 @@ from __future__ import annotations
 __all__ = ["MockTruth", "make_mock_survey", "SURVEY_NAME", "TELESCOPE_NAME", "extra_map_file"]
 
 import dataclasses
+import functools
 import json
 import math
 import time
@@ -47,6 +49,7 @@ from ..model.cosmology import DEFAULT_COSMOLOGY, Cosmology
 from ..model.sz import ELECTRON_REST_ENERGY_KEV
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
+from .mock_car import car_cmb, car_footprint, car_map_file, car_painted, car_white_noise, check_car_options, write_car_map
 from .mockconfig import RUN_CONFIG_FILE, mock_run_config
 from .partner import PartnerSpec, partner_ksz, partner_record, partner_spec, write_partner
 
@@ -247,7 +250,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None,
                      electron_temperature_kev=None, partner_n_tracers=0, partner_bias=0.3,
                      partner_tau_mean=5.0e-4,
-                     tau_mass_slope=2.0 / 3.0) -> MockTruth:
+                     tau_mass_slope=2.0 / 3.0, pixels="healpix", car_arcmin=0.5) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -309,6 +312,13 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     tau_mass_slope : float, default 2/3
         alpha of the injected tau_i proportional to M_i^alpha (truth.json ``tau_mass_relation`` gives
         the normalisation at M = 10^14.5 Msun).
+    pixels : {"healpix", "car"}, default "healpix"
+        "car": write the maps as plate-carree FITS images (``skerry_<nu>ghz_car.fits``) of
+        ``car_arcmin`` pixels instead (:mod:`pairvel.sims.mock_car`).  ``nside`` then only sets the
+        CMB's band limit, min(3 nside - 1, 8000), so a HEALPix and a CAR mock of one seed and nside
+        hold the same tracers and the same CMB a_lm.
+    car_arcmin : float, arcmin, default 0.5
+        Pixel size of the CAR maps; 360 degrees must be a whole number of pixels.
 
     Returns
     -------
@@ -344,10 +354,12 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                    aperture_radius_arcmin=aperture_radius_arcmin, include_cmb=include_cmb,
                    tsz_amplitude_uk=tsz_amplitude_uk, cosmo=cosmo, tau_mass_slope=tau_mass_slope)
     _check_options({**options, "progress": progress})
+    check_car_options(pixels, car_arcmin)
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     _check_electron_temperature(electron_temperature_kev)
     spec = _MockSpec(**options, extra_noise=extra_noise, electron_temperature_kev=electron_temperature_kev,
-                     partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean))
+                     partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean), pixels=pixels,
+                     car_arcmin=float(car_arcmin) if pixels == "car" else None)
     with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
         if seed is None:
             seed = int(np.random.SeedSequence().entropy)  # fresh, and recorded
@@ -367,7 +379,8 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         _lap(timings, "tracers", t0)
         say(f"mock: {tracers.z.size} tracers, clipped cells {clipped_fraction:.2%}")
 
-        foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0)
+        foot = _footprint_pixels(nside, ra_min, ra_max, dec_min, dec_max, margin_deg=1.0) if pixels == "healpix" \
+            else np.arange(car_footprint(spec).n_held)
         cmb = _cmb_on_footprint(spec, foot, rng, say)
         _lap(timings, "cmb", t0)
         ksz, tsz = _painted_sources(spec, tracers, amplitudes)
@@ -379,7 +392,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         response = _aperture_response(spec, tracers, ksz, amplitudes.dt_ksz_uk)
         _lap(timings, "truth", t0)
 
-        files = _survey_files(maps)
+        files = _survey_files(maps, pixels)
         if electron_temperature_kev is not None:
             files["tracer_truth"] = TRACER_TRUTH_FILE
         truth = MockTruth(
@@ -454,6 +467,8 @@ class _MockSpec:
     extra_noise: dict
     electron_temperature_kev: float | None = None
     partner: PartnerSpec | None = None
+    pixels: str = "healpix"
+    car_arcmin: float | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -619,6 +634,9 @@ def _cmb_on_footprint(spec: _MockSpec, foot, rng, say) -> np.ndarray:
         lmax = min(3 * spec.nside - 1, int(ell[-1]))
         alm = _gaussian_alm(cl[: lmax + 1], lmax, rng)
         hp.almxfl(alm, hp.gauss_beam(math.radians(spec.beam_fwhm_arcmin / 60.0), lmax=lmax), inplace=True)
+        if spec.pixels == "car":
+            say(f"mock: primary CMB on {spec.car_arcmin:g}-arcmin CAR pixels, lmax {lmax}")
+            return values + car_cmb(spec, alm, lmax)
         say(f"mock: primary CMB at nside {spec.nside}, lmax {lmax}")
         values += hp.alm2map(alm, spec.nside, lmax=lmax)[foot]
     return values
@@ -628,8 +646,15 @@ def _painted_sources(spec: _MockSpec, tracers: _Tracers, amplitudes: _Amplitudes
     """(pixels, values) of the kSZ and of the 150 GHz tSZ painted as beam-shaped sources whose solid-angle
     integral is the aperture temperature times pi theta_ap^2."""
     area = math.pi * (spec.aperture_radius_arcmin * ARCMIN_RAD) ** 2
-    return tuple(paint_beam_sources(spec.nside, tracers.ra, tracers.dec, amp * area, spec.beam_fwhm_arcmin)
+    return tuple(painter(spec)(tracers.ra, tracers.dec, amp * area, spec.beam_fwhm_arcmin)
                  for amp in (amplitudes.dt_ksz_uk, amplitudes.tsz_uk))
+
+
+def painter(spec: _MockSpec):
+    """paint(ra, dec, integral_uk_sr, fwhm_arcmin) -> (pixels, values) on the mock's pixelisation."""
+    if spec.pixels == "car":
+        return functools.partial(car_painted, spec)
+    return functools.partial(paint_beam_sources, spec.nside)
 
 
 def _sky_maps(spec: _MockSpec, foot, cmb, ksz, tsz, rng) -> dict:
@@ -637,19 +662,21 @@ def _sky_maps(spec: _MockSpec, foot, cmb, ksz, tsz, rng) -> dict:
     (so the extra maps leave the 150 GHz one unchanged): CMB + kSZ + tSZ(nu) + white noise."""
     from ..model.sz import tsz_spectrum
 
-    maps = {150.0: _frequency_map(foot, cmb, ksz, tsz, 1.0, spec.noise_uk_arcmin, spec.nside, rng)}
+    maps = {150.0: _frequency_map(foot, cmb, ksz, tsz, 1.0, spec.noise_uk_arcmin, spec, rng)}
     for nu, noise_nu in spec.extra_noise.items():
         scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz tSZ is _TSZ_F150 times the amplitude
-        maps[nu] = _frequency_map(foot, cmb, ksz, tsz, scale, noise_nu, spec.nside, rng)
+        maps[nu] = _frequency_map(foot, cmb, ksz, tsz, scale, noise_nu, spec, rng)
     return maps
 
 
-def _frequency_map(foot, cmb_values, ksz, tsz, tsz_scale, noise_uk_arcmin, nside, rng):
+def _frequency_map(foot, cmb_values, ksz, tsz, tsz_scale, noise_uk_arcmin, spec, rng):
     """CMB + kSZ + ``tsz_scale`` times the 150 GHz tSZ + white noise, on the footprint pixels."""
     values = cmb_values.copy()
     for (pix, val), factor in ((ksz, 1.0), (tsz, tsz_scale)):
         _add_to_footprint(values, foot, pix, factor * val)
-    return values + _white_noise(noise_uk_arcmin, nside, foot.size, rng)
+    if spec.pixels == "car":
+        return values + car_white_noise(spec, noise_uk_arcmin, rng)
+    return values + _white_noise(noise_uk_arcmin, spec.nside, foot.size, rng)
 
 
 @dataclass(frozen=True, eq=False)
@@ -692,7 +719,10 @@ def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> fl
     from ..maps.photometry import measure_apertures
 
     pix, val = ksz
-    ksz_only = HealpixMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))
+    if spec.pixels == "car":
+        ksz_only = car_footprint(spec).with_values(np.bincount(pix, val, minlength=car_footprint(spec).n_held))
+    else:
+        ksz_only = HealpixMap(spec.nside, False, pix, val, np.ones(pix.size, np.float32))
     resp = measure_apertures(ksz_only, tracers.ra, tracers.dec, spec.aperture_radius_arcmin,
                              max_masked_fraction=1.0).temperatures[0]
     ok = np.isfinite(resp)
@@ -704,14 +734,16 @@ def _aperture_response(spec: _MockSpec, tracers: _Tracers, ksz, dt_ksz_uk) -> fl
     return response
 
 
-def _map_file(nu) -> tuple:
+def _map_file(nu, pixels="healpix") -> tuple:
     """(key in the truth's ``files``, file name) of the map at ``nu`` GHz."""
+    if pixels == "car":
+        return ("map", car_map_file(nu)) if nu == 150 else (f"map_{nu:g}ghz", car_map_file(nu))
     return ("map", MAP_FILE) if nu == 150 else (f"map_{nu:g}ghz", extra_map_file(nu))
 
 
-def _survey_files(maps: dict) -> dict:
+def _survey_files(maps: dict, pixels="healpix") -> dict:
     """The truth's ``files`` entry: the catalogue and one map per frequency of ``maps``."""
-    return {"catalogue": CATALOGUE_FILE, **dict(_map_file(nu) for nu in maps)}
+    return {"catalogue": CATALOGUE_FILE, **dict(_map_file(nu, pixels) for nu in maps)}
 
 
 def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot, maps: dict) -> None:
@@ -725,6 +757,11 @@ def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, fo
     table.meta.update({"SURVEY": SURVEY_NAME, "COMMENT": "synthetic catalogue made by pairvel mock"})
     table.write(folder / CATALOGUE_FILE)
     for nu, values in maps.items():
+        if spec.pixels == "car":
+            write_car_map(folder / car_map_file(nu), spec, values, header={
+                "TELESCOP": TELESCOPE_NAME, "FREQ": (f"{nu:g} GHz", "observing frequency"),
+                "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
+            continue
         write_partial_map(folder / _map_file(nu)[1], foot, values.astype(np.float32), nside=spec.nside, nest=False,
                           unit="uK_CMB", extra_header={"TELESCOP": TELESCOPE_NAME,
                                                        "FREQ": (f"{nu:g} GHz", "observing frequency"),
@@ -760,6 +797,9 @@ def _options_record(spec: _MockSpec) -> dict:
     options["cosmology"] = options.pop("cosmo")
     if options.get("partner") is None:
         options.pop("partner")
+    if options["pixels"] == "healpix":  # the record of a HEALPix mock stays as it was
+        options.pop("pixels")
+        options.pop("car_arcmin")
     if extra_noise:
         options["extra_frequencies_ghz"] = {f"{nu:g}": noise_nu for nu, noise_nu in extra_noise.items()}
     return _plain(options)

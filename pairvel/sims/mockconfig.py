@@ -75,7 +75,7 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
         sections["single_cluster"] = {"electron_temperature_kev": float(o["electron_temperature_kev"])}
     lines = [
         f"# Ready-to-run config written by pairvel {__version__} (`pairvel mock`) beside the synthetic survey it",
-        f"# made: {record['n_tracers']} tracers, nside {o['nside']}, injected tau_mean = {record['tau_mean']:g}, "
+        f"# made: {record['n_tracers']} tracers, {_pixels_label(o)}, injected tau_mean = {record['tau_mean']:g}, "
         f"seed {record.get('seed')}.",
         "# Paths are relative to this file. Run it with:  pairvel run <this folder>/run.toml --out <new folder>",
         "# The keys below repeat the assumptions the mock was made with (bias, cosmology, aperture and",
@@ -104,3 +104,9 @@ def _multifrequency_keys(record: dict, extra: list) -> dict:
                                                                for nu, _ in extra)],
             "beam_fwhm_arcmin": [float(o["beam_fwhm_arcmin"])] * len(maps)}
 
+
+def _pixels_label(options) -> str:
+    """The map's pixelisation in a few words: ``nside 2048`` or ``0.5-arcmin CAR pixels``."""
+    if options.get("pixels") == "car":
+        return f"{options['car_arcmin']:g}-arcmin CAR pixels"
+    return f"nside {options['nside']}"

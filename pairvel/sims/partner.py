@@ -21,7 +21,6 @@ import numpy as np
 
 from ..core.constants import ARCMIN_RAD, C_KM_S, T_CMB_UK
 from ..core.errors import InputError
-from ..maps.sources import paint_beam_sources
 
 PARTNER_FILE = "partner_galaxies.fits"
 
@@ -53,7 +52,9 @@ def partner_ksz(spec, tracers):
     (beam-shaped, solid-angle integral dT pi theta_ap^2)."""
     dt = -spec.partner.tau_mean * T_CMB_UK * tracers.v_r / C_KM_S
     area = math.pi * (spec.aperture_radius_arcmin * ARCMIN_RAD) ** 2
-    return paint_beam_sources(spec.nside, tracers.ra, tracers.dec, dt * area, spec.beam_fwhm_arcmin)
+    from .mock import painter
+
+    return painter(spec)(tracers.ra, tracers.dec, dt * area, spec.beam_fwhm_arcmin)
 
 
 def partner_record(spec, *, tracers_mean_tau: float, n_written: int, clipped_fraction: float) -> dict:

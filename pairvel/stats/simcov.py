@@ -97,7 +97,8 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
         Noise power spectrum (not beam-convolved), synthesised with the sky.
     lmax : int, optional
         Default the grid's band limit, 3 nside - 1 for HEALPix (the length of ``transfer`` minus
-        one when that is given).
+        one when that is given); lowered to the last multipole with power (8000 for the package's
+        C_l table without a noise spectrum).
     max_masked_fraction, pixel_weighting, method, radius_scale
         As for :func:`~pairvel.maps.photometry.measure_apertures` (the data's photometry options).
     transfer : ndarray of shape (lmax + 1,), optional
@@ -129,6 +130,10 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     if transfer is not None:
         spec = (spec + (white_noise_uk_arcmin * ARCMIN_RAD) ** 2) * transfer**2
     harmonic = bool(np.any(spec > 0))
+    # no a_lm beyond the last multipole with power: the package C_l table ends at l = 8000, while a
+    # fine grid's band limit (e.g. 21599 for 0.5' CAR pixels) would make a_lm arrays of several GB
+    lmax = int(np.flatnonzero(spec > 0)[-1]) if harmonic else lmax
+    spec = spec[: lmax + 1]
     ell, m = alm_ell_m(lmax)
     amp = np.sqrt(spec[ell])
     m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries

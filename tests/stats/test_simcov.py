@@ -143,3 +143,13 @@ def test_prefilter_transfer_scales_the_simulated_sky():
     half = simulate_aperture_temperatures(64, ra, dec, 90.0, 3, seed=5, transfer=np.full(lmax + 1, 0.5), **kw)
     np.testing.assert_allclose(half, 0.5 * one, rtol=1e-10)
     assert np.all(np.isfinite(one)) and np.std(one) > 0
+
+
+def test_multipoles_without_power_are_not_drawn():
+    """Internal equivalence: a C_l table ending at l = 100 gives the same skies with lmax 100 as with a
+    grid band limit of 767 (no a_lm, and no random numbers, beyond the last multipole with power)."""
+    ra, dec = np.array([10.0, 11.0, 12.5]), np.array([0.0, 1.0, -2.0])
+    cl = np.r_[0.0, 0.0, 1e3 / np.arange(2, 101) ** 2]
+    full = simulate_aperture_temperatures(256, ra, dec, 30.0, 3, seed=8, cmb_cl=cl)
+    cut = simulate_aperture_temperatures(256, ra, dec, 30.0, 3, seed=8, cmb_cl=cl, lmax=100)
+    np.testing.assert_array_equal(full, cut)
