@@ -128,6 +128,8 @@ def summary_dict(result) -> dict:
         out["prefilter"] = result.extra["prefilter"]
     if "cross" in result.extra:  # cross pairs with the [partner] catalogue
         out["cross"] = result.extra["cross"]
+    if "channels" in result.extra:  # each frequency map alone, and their differences as nulls
+        out["channels"] = result.extra["channels"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -193,6 +195,10 @@ def _write_theory_outputs(result, folder: Path) -> list:
         from ..stats.radii import write_radius_outputs
 
         written += write_radius_outputs(result.extra["radius_fits"], folder)
+    if "channels" in result.extra:
+        from ..stats.perchannel import write_channel_table
+
+        written.append(write_channel_table(result.extra["channels"], result.edges, folder))
     return written + write_template_table(result.extra.get("template", {}), folder)
 
 
@@ -331,6 +337,7 @@ def report_sections(result) -> dict:
     from ..stats.mockcalib import SECTION_TITLE as CALIBRATION_TITLE
     from ..stats.mockcalib import calibration_markdown
     from ..stats.cross import cross_markdown
+    from ..stats.perchannel import channels_markdown
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
@@ -345,7 +352,8 @@ def report_sections(result) -> dict:
                 ("multifrequency", "Several frequency maps", combination_markdown),
                 ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
                 ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)),
-                ("cross", "Cross pairs with a second catalogue", cross_markdown))
+                ("cross", "Cross pairs with a second catalogue", cross_markdown),
+                ("channels", "Each frequency map alone", lambda info: channels_markdown(info, result.fit)))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 

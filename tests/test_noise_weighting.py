@@ -1,0 +1,74 @@
+"""Tracer noise weights from an inverse-variance map, end to end on a mock of strongly varying depth."""
+
+import warnings
+
+import numpy as np
+import pytest
+
+from pairvel.core.errors import ConfigError, PairvelWarning
+from pairvel.input.config import config_from_dict
+from pairvel.pipeline import run_pipeline
+from pairvel.report.blinding import apply_factor
+from pairvel.sims.depth import ivar_file
+from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
+
+TAU = 1.0e-2
+MOCK = dict(n_tracers=6000, nside=256, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
+            tau_mean=TAU, bias=0.4, cell_mpc=8.0, beam_fwhm_arcmin=10.0, noise_uk_arcmin=1500.0,
+            aperture_radius_arcmin=15.0, include_cmb=False, tsz_amplitude_uk=0.0, depth_ratio=10.0)
+
+
+def _config(folder, **noise):
+    return config_from_dict({
+        "run": {"seed": 3}, "catalogue": {"path": str(folder / CATALOGUE_FILE)},
+        "map": {"path": str(folder / MAP_FILE)},
+        "noise": {"path": str(folder / ivar_file(MAP_FILE)), **noise},
+        "aperture": {"radius_arcmin": 15.0}, "bins": {"r_max_mpc": 200.0, "width_mpc": 20.0},
+        "covariance": {"n_regions": 30}, "theory": {"bias": 0.4},
+        "nulls": {"n_random": 0, "n_shuffle": 0, "n_shuffle_z": 0}})
+
+
+@pytest.fixture(scope="module")
+def deep_and_shallow(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("depth") / "m"
+    truth = make_mock_survey(folder, seed=21, **MOCK)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PairvelWarning)
+        runs = {w: run_pipeline(_config(folder, tracer_weighting=w)) for w in (False, True)}
+    return truth, runs
+
+
+def test_weighted_and_plain_both_recover_the_injected_tau(deep_and_shallow):
+    truth, runs = deep_and_shallow
+    expected = truth.tau_mean * truth.aperture_response
+    for res in runs.values():  # each within 3 sigma of the truth (a fixed seed)
+        assert abs(res.fit.amplitude - expected) < 3 * res.fit.error, (res.fit.amplitude, res.fit.error, expected)
+    info = runs[True].extra["noise_weighting"]
+    # the stripes of the mock swing the noise rms by 10, so the weights span a wide range
+    assert info["weight_max_over_min"] > 5 and info["weighting"] and not runs[False].extra["noise_weighting"]["weighting"]
+
+
+def test_tracer_table_and_blinding_carry_the_noise(deep_and_shallow):
+    _, runs = deep_and_shallow
+    table = runs[True].tracers
+    used = np.asarray(table["used"])
+    noise, w = np.asarray(table["noise_uK"])[used], np.asarray(table["noise_weight"])[used]
+    assert np.all(noise > 0) and w.mean() == pytest.approx(1.0, rel=1e-9)
+    assert np.corrcoef(noise, w)[0, 1] < -0.5  # noisier tracers weigh less
+    assert "weight" not in table.colnames  # the catalogue had no weight column; the noise weights stay apart
+    assert "noise_weight" not in runs[False].tracers.colnames
+    blind = apply_factor(runs[True], 1.25, blinding={"blinded": True})
+    info, b = runs[True].extra["noise_weighting"], blind.extra["noise_weighting"]
+    assert b["sky_variance_uk2"] == pytest.approx(1.25**2 * info["sky_variance_uk2"], rel=1e-12)
+    np.testing.assert_allclose(np.asarray(blind.tracers["noise_uK"])[used], 1.25 * noise, rtol=1e-12)
+    np.testing.assert_array_equal(np.asarray(blind.tracers["noise_weight"])[used], w)
+
+
+def test_noise_keys_need_the_noise_map():
+    base = {"catalogue": {"path": "c.fits"}, "map": {"path": "m.fits"}, "theory": {"bias": 1.0}}
+    with pytest.raises(ConfigError, match="'noise.tracer_weighting' is set but noise.path is not"):
+        config_from_dict({**base, "noise": {"tracer_weighting": True}})
+    with pytest.raises(ConfigError, match="'noise.hit_rms_uk' is required with noise.kind = 'hits'"):
+        config_from_dict({**base, "noise": {"path": "h.fits", "kind": "hits"}})
+    with pytest.raises(ConfigError, match="'noise.in_simulations' is used only with covariance.estimator"):
+        config_from_dict({**base, "noise": {"path": "h.fits", "in_simulations": True}})
