@@ -48,7 +48,8 @@ def run_config(folder: Path, seed: int, weighting: bool) -> dict:
 
 def one_mock(folder: Path, seed: int, args) -> dict:
     truth = make_mock_survey(folder, seed=seed, n_tracers=args.n_tracers, noise_uk_arcmin=args.noise_uk_arcmin,
-                             depth_ratio=args.depth_ratio, **MOCK)
+                             depth_ratio=args.depth_ratio, **{**MOCK, "tau_mean": args.tau_mean,
+                                                              "include_cmb": not args.no_cmb})
     expected = truth.tau_mean * truth.aperture_response
     out = {"seed": seed, "expected": expected}
     for label, weighting in (("plain", False), ("weighted", True)):
@@ -111,6 +112,8 @@ def main(argv=None) -> int:
     p.add_argument("--n-tracers", type=int, default=6000)
     p.add_argument("--noise-uk-arcmin", type=float, default=60.0, help="noise at the footprint's centre line")
     p.add_argument("--depth-ratio", type=float, default=10.0)
+    p.add_argument("--tau-mean", type=float, default=TAU, help="injected tau_mean (a low one: noise-dominated)")
+    p.add_argument("--no-cmb", action="store_true", help="mocks without the primary CMB (noise-dominated apertures)")
     p.add_argument("--seed", type=int, default=500)
     p.add_argument("--out", type=Path, default=None, help="folder for noise_weighting.png/.pdf (default: none)")
     args = p.parse_args(argv)
@@ -123,12 +126,12 @@ def main(argv=None) -> int:
                   f"weighted {r['weighted'][0]:.4e} +- {r['weighted'][1]:.2e}  "
                   f"(effective fraction {r['effective_fraction']:.2f})", flush=True)
     s = summarise(rows)
-    print(f"\n{_dt.date.today()}: {args.n_mocks} mocks of ~{args.n_tracers} tracers, noise {args.noise_uk_arcmin:g} "
+    print(f"\n{_dt.date.today()}: {args.n_mocks} mocks of ~{args.n_tracers} tracers, tau_mean {args.tau_mean:g}, {'no CMB, ' if args.no_cmb else ''}noise {args.noise_uk_arcmin:g} "
           f"uK-arcmin at the centre, depth ratio {args.depth_ratio:g}")
     for label in ("plain", "weighted"):
         x = s[label]
         print(f"  {label:8s}: mean tau/truth {x['ratio_mean']:.3f} +- {x['ratio_sem']:.3f}  mean pull "
-              f"{x['pull_mean']:+.2f} (std {x['pull_std']:.2f})  mean error/truth {x['error_mean'] / TAU:.3f}  "
+              f"{x['pull_mean']:+.2f} (std {x['pull_std']:.2f})  mean error/truth {x['error_mean'] / args.tau_mean:.3f}  "
               f"scatter of tau/truth {x['tau_std'] / np.mean([r['expected'] for r in rows]):.3f}")
     print(f"  quoted error, weighted / plain: {s['error_ratio']:.3f}; scatter across mocks, weighted / plain: "
           f"{s['scatter_ratio']:.3f}")

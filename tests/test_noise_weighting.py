@@ -13,7 +13,7 @@ from pairvel.sims.depth import ivar_file
 from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
 
 TAU = 1.0e-2
-MOCK = dict(n_tracers=6000, nside=256, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
+MOCK = dict(n_tracers=4000, nside=256, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
             tau_mean=TAU, bias=0.4, cell_mpc=8.0, beam_fwhm_arcmin=10.0, noise_uk_arcmin=1500.0,
             aperture_radius_arcmin=15.0, include_cmb=False, tsz_amplitude_uk=0.0, depth_ratio=10.0)
 
@@ -62,6 +62,17 @@ def test_tracer_table_and_blinding_carry_the_noise(deep_and_shallow):
     assert b["sky_variance_uk2"] == pytest.approx(1.25**2 * info["sky_variance_uk2"], rel=1e-12)
     np.testing.assert_allclose(np.asarray(blind.tracers["noise_uK"])[used], 1.25 * noise, rtol=1e-12)
     np.testing.assert_array_equal(np.asarray(blind.tracers["noise_weight"])[used], w)
+
+
+def test_mock_ivar_map_spans_the_depth_ratio(deep_and_shallow, tmp_path_factory):
+    from pairvel.maps.noise import read_noise_map
+
+    truth, _ = deep_and_shallow
+    folder = next(p for p in tmp_path_factory.getbasetemp().glob("depth*/m"))
+    ivar = read_noise_map(folder / ivar_file(MAP_FILE), kind="ivar").values
+    # analytic: the rms swings by depth_ratio between stripes, so the inverse variance by its square
+    assert ivar.max() / ivar.min() == pytest.approx(MOCK["depth_ratio"] ** 2, rel=0.02)
+    assert truth.options["depth_ratio"] == MOCK["depth_ratio"]
 
 
 def test_noise_keys_need_the_noise_map():

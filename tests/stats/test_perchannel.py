@@ -1,6 +1,7 @@
 """Each frequency map alone and the difference of two maps as a null test, on two-channel mocks."""
 
 import json
+import shutil
 import warnings
 
 import numpy as np
@@ -33,9 +34,16 @@ def _run(folder, **sections):
         return run_pipeline(config_from_dict(cfg))
 
 
-def test_channels_agree_and_difference_null_passes_without_tsz(tmp_path):
-    make_mock_survey(tmp_path / "m", seed=8, extra_frequencies_ghz=(220.0,), tsz_amplitude_uk=0.0, **MOCK)
-    res = _run(tmp_path / "m", trend={"enabled": False})
+@pytest.fixture(scope="module")
+def two_channels(tmp_path_factory):
+    """A two-channel mock (150 and 220 GHz) without tSZ: the channels differ by their noise alone."""
+    folder = tmp_path_factory.mktemp("channels") / "m"
+    make_mock_survey(folder, seed=8, extra_frequencies_ghz=(220.0,), tsz_amplitude_uk=0.0, **MOCK)
+    return folder
+
+
+def test_channels_agree_and_difference_null_passes_without_tsz(two_channels, tmp_path):
+    res = _run(two_channels, trend={"enabled": False})
     info = res.extra["channels"]
     (diff,) = info["differences"]
     assert diff["maps"] == [0, 1] and diff["passed"], diff["pte"]
@@ -45,12 +53,6 @@ def test_channels_agree_and_difference_null_passes_without_tsz(tmp_path):
     # the two channels agree within the error of their difference (fitted to the difference curve)
     assert abs(taus[0] - taus[1]) < 3 * diff["fit"]["error"]
     assert abs(diff["fit"]["amplitude"]) < 3 * diff["fit"]["error"]
-    out = write_outputs(res, tmp_path / "out")
-    report = (out / "report.md").read_text()
-    assert "## Each frequency map alone" in report and "| 150 GHz - 220 GHz |" in report
-    summary = json.loads((out / "summary.json").read_text())
-    assert summary["channels"]["differences"][0]["passed"] is True
-    assert (out / "channels.ecsv").exists()
     # blinding scales each channel's curve and tau like the main ones, and leaves the null's PTE
     blind = apply_factor(res, 1.3, blinding={"blinded": True})
     b = blind.extra["channels"]
@@ -82,10 +84,10 @@ def _add_tsz_residual(folder, amplitude_uk):
     write_partial_map(path, sky.pixels, values.astype(np.float32), nside=MOCK["nside"])
 
 
-def test_difference_null_fails_with_a_tsz_residual(tmp_path):
+def test_difference_null_fails_with_a_tsz_residual(two_channels, tmp_path):
     # the 220 GHz map carries a tSZ residual that grows with redshift; with the redshift-trend removal off
     # (which would take most of it out) it enters that channel's curve, and the difference null fails
-    make_mock_survey(tmp_path / "m", seed=8, extra_frequencies_ghz=(220.0,), tsz_amplitude_uk=0.0, **MOCK)
+    shutil.copytree(two_channels, tmp_path / "m")
     _add_tsz_residual(tmp_path / "m", 30.0)
     res = _run(tmp_path / "m", trend={"enabled": False})
     (diff,) = res.extra["channels"]["differences"]
@@ -93,3 +95,19 @@ def test_difference_null_fails_with_a_tsz_residual(tmp_path):
     # its curve is not the template's shape, so the tau fitted to the difference (1.2e-3 +- 2.2e-3 here,
     # measured) does not see it: the chi2 against zero over all bins is the sharper test
     assert np.isfinite(diff["fit"]["error"])
+
+
+@pytest.mark.validation
+def test_channel_outputs_are_written(two_channels, tmp_path):
+    """The report section, summary.json entry and channels.ecsv (writing every output takes a while)."""
+    from astropy.table import Table
+
+    res = _run(two_channels, trend={"enabled": False})
+    out = write_outputs(res, tmp_path / "out")
+    report = (out / "report.md").read_text()
+    assert "## Each frequency map alone" in report and "| 150 GHz - 220 GHz |" in report
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["channels"]["differences"][0]["passed"] is True
+    table = Table.read(out / "channels.ecsv")
+    np.testing.assert_allclose(table["p_150ghz_uK"], res.extra["channels"]["maps"][0]["p"], rtol=1e-9)
+    assert table.meta["differences"][0]["maps"] == [0, 1]
