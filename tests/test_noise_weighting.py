@@ -62,6 +62,10 @@ def test_tracer_table_and_blinding_carry_the_noise(deep_and_shallow):
     assert b["sky_variance_uk2"] == pytest.approx(1.25**2 * info["sky_variance_uk2"], rel=1e-12)
     np.testing.assert_allclose(np.asarray(blind.tracers["noise_uK"])[used], 1.25 * noise, rtol=1e-12)
     np.testing.assert_array_equal(np.asarray(blind.tracers["noise_weight"])[used], w)
+    from pairvel.maps.noise import noise_markdown
+
+    assert "weights span a factor" in noise_markdown(info) and "Not used as weights" in noise_markdown(
+        runs[False].extra["noise_weighting"])
 
 
 def test_mock_ivar_map_spans_the_depth_ratio(deep_and_shallow, tmp_path_factory):

@@ -43,7 +43,7 @@ estimate that is too high cannot give a few quiet tracers all the weight.
 from __future__ import annotations
 
 __all__ = ["NOISE_KINDS", "SKY_VARIANCE_FLOOR", "read_noise_map", "pixel_variance", "aperture_noise_variance",
-           "sky_variance", "noise_weights"]
+           "sky_variance", "noise_weights", "noise_markdown"]
 
 import math
 import warnings
@@ -168,6 +168,23 @@ def sky_variance(temps, noise_variance) -> float:
         raise InputError(f"the sky variance needs at least 2 tracers with finite noise; got {int(ok.sum())}")
     total = float(np.var(t[ok], ddof=1))
     return max(total - float(nv[ok].mean()), SKY_VARIANCE_FLOOR * total)
+
+
+def noise_markdown(info: dict) -> str:
+    """The report's lines on the noise map and the tracer weights (``extra["noise_weighting"]``)."""
+    sky = "estimated from the data" if info["sky_variance_estimated"] else "set by noise.sky_variance_uk2"
+    lines = [f"Noise map `{info['path']}` ({info['kind']}): median aperture noise {info['median_noise_uk']:.3g} uK, "
+             f"mean noise variance {info['mean_noise_variance_uk2']:.3g} uK^2; sky variance "
+             f"{info['sky_variance_uk2']:.3g} uK^2 ({sky}); {info['n_without_noise']} tracers without noise information "
+             f"(tracers.fits column noise_uK)."]
+    if info["weighting"]:
+        lines.append(f"Tracers weighted by 1 / (noise variance + sky variance): weights span a factor "
+                     f"{info['weight_max_over_min']:.3g}, effective fraction of tracers {info['effective_fraction']:.3f} "
+                     f"(column noise_weight).")
+    else:
+        lines.append(f"Not used as weights (noise.tracer_weighting = false); they would span a factor "
+                     f"{info['weight_max_over_min']:.3g} (effective fraction {info['effective_fraction']:.3f}).")
+    return "\n\n".join(lines)
 
 
 def noise_weights(noise_variance, sky_variance_uk2: float) -> np.ndarray:

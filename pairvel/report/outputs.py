@@ -130,6 +130,8 @@ def summary_dict(result) -> dict:
         out["cross"] = result.extra["cross"]
     if "channels" in result.extra:  # each frequency map alone, and their differences as nulls
         out["channels"] = result.extra["channels"]
+    if "noise_weighting" in result.extra:  # aperture noise from a noise map, and the tracer weights
+        out["noise_weighting"] = result.extra["noise_weighting"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -332,6 +334,7 @@ def report_sections(result) -> dict:
     """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
     blinded sections), then the free-text sections a caller added (the check against a truth)."""
     from ..maps.multifreq import combination_markdown
+    from ..maps.noise import noise_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown
     from ..stats.mockcalib import SECTION_TITLE as CALIBRATION_TITLE
@@ -353,7 +356,8 @@ def report_sections(result) -> dict:
                 ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
                 ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)),
                 ("cross", "Cross pairs with a second catalogue", cross_markdown),
-                ("channels", "Each frequency map alone", lambda info: channels_markdown(info, result.fit)))
+                ("channels", "Each frequency map alone", lambda info: channels_markdown(info, result.fit)),
+                ("noise_weighting", "Map noise and tracer weights", noise_markdown))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 
