@@ -13,7 +13,7 @@ from pairvel.sims.depth import ivar_file
 from pairvel.sims.mock import CATALOGUE_FILE, MAP_FILE, make_mock_survey
 
 TAU = 1.0e-2
-MOCK = dict(n_tracers=4000, nside=256, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
+MOCK = dict(n_tracers=3000, nside=256, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15, z_max=0.45,
             tau_mean=TAU, bias=0.4, cell_mpc=8.0, beam_fwhm_arcmin=10.0, noise_uk_arcmin=1500.0,
             aperture_radius_arcmin=15.0, include_cmb=False, tsz_amplitude_uk=0.0, depth_ratio=10.0)
 

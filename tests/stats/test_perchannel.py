@@ -84,6 +84,7 @@ def _add_tsz_residual(folder, amplitude_uk):
     write_partial_map(path, sky.pixels, values.astype(np.float32), nside=MOCK["nside"])
 
 
+@pytest.mark.validation
 def test_difference_null_fails_with_a_tsz_residual(two_channels, tmp_path):
     # the 220 GHz map carries a tSZ residual that grows with redshift; with the redshift-trend removal off
     # (which would take most of it out) it enters that channel's curve, and the difference null fails
