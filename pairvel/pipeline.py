@@ -266,7 +266,8 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> 
 def tracer_noise(cfg: Config, cat: Catalogue, sky: SkyInputs, aps: Apertures, temps, progress: Progress):
     """Each tracer's aperture noise at the primary radius (``[noise]``, :mod:`pairvel.maps.noise`); with
     ``noise.tracer_weighting`` the catalogue returned carries the noise weights (times its own), so the
-    pair pass, template, trend-loss model and every covariance use them.
+    pair pass, the pair-averaged template, every null and every covariance use them (the redshift-trend
+    removal and the trend-loss model stay unweighted, as for ``catalogue.weight_column``).
 
     Returns (cat, info for ``extra["noise_weighting"]``, tracers.fits columns of the used tracers).
     """

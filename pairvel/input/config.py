@@ -133,8 +133,8 @@ class NoiseConfig:
     hit_rms_uk: float | None = _key(None, "noise rms of a pixel with one hit, uK (required with kind = hits)",
                                     bounds=(1e-9, 1e9))
     tracer_weighting: bool = _key(False, "weight each tracer by 1 / (aperture noise variance + sky variance), times any "
-                                         "catalogue.weight_column; the template, trend-loss model and every covariance "
-                                         "use the same weights")
+                                         "catalogue.weight_column; the pair-averaged template, the nulls and every "
+                                         "covariance use the same weights (the redshift-trend removal stays unweighted)")
     sky_variance_uk2: float | None = _key(None, "aperture variance of the CMB and other sky signal common to all "
                                                 "tracers, uK^2 (unset: the variance of the aperture temperatures less "
                                                 "their mean noise variance, at least 5% of the former)",
