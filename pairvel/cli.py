@@ -90,6 +90,9 @@ def _parser() -> argparse.ArgumentParser:
     mock.add_argument("--extra-frequency", type=float, action="append", default=[], metavar="GHZ",
                       help="also write a map at this frequency (same CMB and kSZ, tSZ scaled from 150 GHz, own "
                            "noise); repeat for several")
+    mock.add_argument("--depth-ratio", type=float, default=1.0, metavar="R",
+                      help="let the noise rms vary by the factor R between deep and shallow stripes in RA and write "
+                           "an inverse-variance map beside each map (default 1: uniform depth, no such map)")
     mock.add_argument("--partner-tracers", type=int, default=0, metavar="N",
                       help="also write a galaxy-like second catalogue of about N tracers with kSZ of its own, for the "
                            "cross curve (README 'Clusters against galaxies'; default 0: none)")
@@ -279,6 +282,8 @@ def _cmd_mock(args) -> int:
         options["electron_temperature_kev"] = args.electron_temperature
     if args.pixels == "car":
         options.update(pixels="car", car_arcmin=args.car_arcmin)
+    if args.depth_ratio != 1.0:
+        options["depth_ratio"] = args.depth_ratio
     truth = make_mock_survey(args.out, **options, progress=_log.info)
     print(f"pairvel: synthetic survey written to {args.out} ({truth.n_tracers:,} tracers, "
           f"tau_mean = {truth.tau_mean:.3e})")

@@ -31,7 +31,8 @@ from .core.rng import as_generator, derived_generators
 from .core.warnlog import collect_warnings
 from .input.catalogue import DUPLICATE, OUTSIDE_PROXY, OUTSIDE_Z, Catalogue, RemovedRows, load_catalogue
 from .input.config import Config
-from .maps.multifreq import map_provenance, read_input_map
+from .maps.multifreq import map_provenance, read_channel_maps, read_input_map
+from .maps.noise import aperture_noise_variance, noise_weights, pixel_variance, read_noise_map, sky_variance
 from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_apertures
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
@@ -61,6 +62,7 @@ from .stats.covdiag import covariance_diagnostics
 from .stats.cross import cross_pairs, load_partner
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
+from .stats.perchannel import channel_results
 from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null, rotated_sets, shuffled_sets, slice_means
 from .stats.masstrend import fit_mass_trend
 from .stats.radii import fit_radii, radius_joint
@@ -110,6 +112,10 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     cat, sky, aps, stored = measured_tracers(cfg, progress)
     with progress.stage("redshift-trend correction"):
         temps = correct_trend(cfg, aps.temperatures, cat.z)
+    listed, noise_columns = cat, {}
+    if sky.pixel_noise_var is not None:
+        with progress.stage("aperture noise from the noise map"):
+            cat, noise_info, noise_columns = tracer_noise(cfg, cat, sky, aps, temps[0], progress)
     with progress.stage("geometry and jackknife regions"):
         positions, regions = geometry_and_regions(cfg, cat, rng, progress)
         retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg)
@@ -140,6 +146,9 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                    likelihood=cfg.theory.likelihood)
         spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
         cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
+    if cfg.multifrequency.per_channel:
+        with progress.stage(f"each of the {len(cfg.multifrequency.map_paths)} frequency maps alone"):
+            channels = channel_curves(cfg, cat, positions, regions, model, aps.scale, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
                           v12_table=v12_table, retrended=retrended[:cov.n_jk] if stack.n_retrend else None,
@@ -147,11 +156,16 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     extra["empirical_significance"] = significance(fit, model, cov, pr, stack)
     if cross is not None:
         extra["cross"] = cross
+    if noise_columns:
+        extra["noise_weighting"] = noise_info
+    if cfg.multifrequency.per_channel:
+        extra["channels"] = channels
     if stored is not None and stored.blinding["blinded"]:  # temperatures blinded already: so is all made from them
         extra["blinding"] = {**stored.blinding, "from_table": stored.path}
     prov = provenance(cfg, cat, sky, started, stored)
-    tracers = tracer_table(cat, regions=regions, temps_raw=aps.temperatures, temps=temps,
-                           radii_arcmin=aperture_radii(cfg.aperture), meta=tracer_table_cards(cfg, prov, stored))
+    tracers = tracer_table(listed, regions=regions, temps_raw=aps.temperatures, temps=temps,
+                           radii_arcmin=aperture_radii(cfg.aperture), meta=tracer_table_cards(cfg, prov, stored),
+                           extra_columns=noise_columns)
     return RunResult(
         config=cfg, edges=edges, p=cov.p, covariance=cov.matrix, p_jk=cov.p_jk, pair_counts=pr.pair_counts,
         z_eff_bins=pr.z_eff, z_eff=model.z_eff, v12_template=model.v12, in_fit=model.in_fit, fit=fit,
@@ -170,6 +184,7 @@ class SkyInputs:
     dipole_fit: np.ndarray | None  # monopole and dipole removed (uK), else None
     prefilter: object | None     # PrefilterResult of [prefilter], else None
     sources: object | None = None  # SourceList masked in the map ([source_mask]), else None
+    pixel_noise_var: np.ndarray | None = None  # [noise]: noise variance (uK^2) of each held pixel, inf where unknown
 
 
 @dataclass(frozen=True)
@@ -211,6 +226,17 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
     skymap, combination = read_input_map(cfg)  # one map, or the combination of [multifrequency]
     if skymap.plane_note:
         progress.say(f"      map {skymap.path}: read {skymap.plane_note}")
+    skymap, dipole_fit, prefilter, sources = treat_map(cfg, skymap, progress)
+    nc, pixel_noise_var = cfg.noise, None
+    if nc.path is not None:
+        noise = read_noise_map(nc.path, kind=nc.kind, field=nc.field, ordering=cfg.map.ordering, coordsys=skymap.coordsys)
+        pixel_noise_var = pixel_variance(noise, skymap, kind=nc.kind, hit_rms_uk=nc.hit_rms_uk)
+    return SkyInputs(skymap, combination, dipole_fit, prefilter, sources, pixel_noise_var)
+
+
+def treat_map(cfg: Config, skymap, progress: Progress):
+    """The mask, point-source discs, monopole/dipole removal and pre-filter every temperature map of
+    the run gets; returns (map, dipole fit or None, PrefilterResult or None, SourceList or None)."""
     if cfg.map.mask_path is not None:
         skymap = skymap.with_mask(read_mask(cfg.map.mask_path, ordering=cfg.map.ordering, coordsys=skymap.coordsys))
     skymap, sources = mask_point_sources(cfg, skymap, progress)
@@ -221,7 +247,7 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
                      f"{np.linalg.norm(dipole_fit[1:]):.4g} uK over the usable pixels")
     skymap, prefilter = apply_prefilter(skymap, cfg.prefilter, radius_arcmin=cfg.aperture.radius_arcmin,
                                         seed=cfg.run.seed, progress=progress.say)
-    return SkyInputs(skymap, combination, dipole_fit, prefilter, sources)
+    return skymap, dipole_fit, prefilter, sources
 
 
 def mask_point_sources(cfg: Config, skymap, progress: Progress):
@@ -269,6 +295,43 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress, *,
                          f"{''.join(f', {k} {v:g}' for k, v in screened.items())})", path=skymap.path)
     return (cat.subset(usable, reason=reason),
             Apertures(res.temperatures[:, usable], None if scale is None else scale[usable], n_dropped))
+
+
+def tracer_noise(cfg: Config, cat: Catalogue, sky: SkyInputs, aps: Apertures, temps, progress: Progress):
+    """Each tracer's aperture noise at the primary radius (``[noise]``, :mod:`pairvel.maps.noise`); with
+    ``noise.tracer_weighting`` the catalogue returned carries the noise weights (times its own), so the
+    pair pass, the pair-averaged template, every null and every covariance use them (the redshift-trend
+    removal and the trend-loss model stay unweighted, as for ``catalogue.weight_column``).
+
+    Returns (cat, info for ``extra["noise_weighting"]``, tracers.fits columns of the used tracers).
+    """
+    nc, ap = cfg.noise, cfg.aperture
+    if sky.prefilter is not None:
+        warnings.warn("noise.path: the aperture noise is that of the unfiltered map's white pixel noise; the "
+                      "pre-filter changes it (the weights then only rank the tracers)", PairvelWarning, stacklevel=2)
+    var = aperture_noise_variance(sky.skymap, sky.pixel_noise_var, cat.ra, cat.dec, aperture_radii(ap)[:1],
+                                  pixel_weighting=ap.pixel_weighting, method=ap.method, radius_scale=aps.scale)[0]
+    unknown = ~np.isfinite(var)
+    if unknown.any():
+        warnings.warn(f"noise.path: {int(unknown.sum())} of {len(cat)} tracers have pixels without noise "
+                      f"information in their aperture (infinite noise{', weight 0' if nc.tracer_weighting else ''})",
+                      PairvelWarning, stacklevel=2)
+    sky_var = nc.sky_variance_uk2 if nc.sky_variance_uk2 is not None else sky_variance(temps, var)
+    w = noise_weights(var, sky_var)
+    finite = var[~unknown]
+    info = {"path": str(nc.path), "kind": nc.kind, "weighting": nc.tracer_weighting,
+            "sky_variance_uk2": float(sky_var), "sky_variance_estimated": nc.sky_variance_uk2 is None,
+            "mean_noise_variance_uk2": float(finite.mean()), "median_noise_uk": float(np.sqrt(np.median(finite))),
+            "n_without_noise": int(unknown.sum()), "weight_max_over_min": float(w.max() / w[w > 0].min()),
+            "effective_fraction": float(w.sum() ** 2 / np.sum(w**2) / w.size)}
+    progress.say(f"      median aperture noise {info['median_noise_uk']:.3g} uK; noise weights "
+                 f"{'used' if nc.tracer_weighting else 'not used (noise.tracer_weighting = false)'}, "
+                 f"effective fraction of tracers {info['effective_fraction']:.3f}")
+    columns = {"noise_uK": np.sqrt(var)}
+    if nc.tracer_weighting:
+        columns["noise_weight"] = w
+        cat = dataclasses.replace(cat, weight=w if cat.weight is None else cat.weight * w)
+    return cat, info, columns
 
 
 def photometry_options(cfg: Config, z) -> dict:
@@ -550,13 +613,21 @@ def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: P
                                           n_threads=cfg.compute.n_threads,
                                           progress=progress.counter("simulated maps"),
                                           transfer=None if pf is None else pf.transfer / pf.response,
-                                          signal=simulated_signal(cfg, cat))
+                                          signal=simulated_signal(cfg, cat),
+                                          pixel_noise_variance=_noise_variance_map(cfg, sky))
     out = np.empty(sims.shape).transpose(1, 0, 2)
     for k, per_radius in enumerate(sims):
         for r, t in enumerate(per_radius):
             ok = np.isfinite(t)
             out[r, k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
     return out
+
+
+def _noise_variance_map(cfg: Config, sky: SkyInputs):
+    """The per-pixel noise variance of ``[noise]`` as a map for the simulated skies (``noise.in_simulations``)."""
+    if not cfg.noise.in_simulations:
+        return None
+    return sky.skymap.with_values(sky.pixel_noise_var)  # inf (no noise information) reads as a pixel without data
 
 
 def simulated_signal(cfg: Config, cat: Catalogue):
@@ -753,6 +824,38 @@ def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict
     progress.say(f"      template x signal kept by the trend removal: {factor.min():.3f}-{factor.max():.3f} "
                  f"(first bin {factor[0]:.3f}, last {factor[-1]:.3f})")
     return factor
+
+
+def channel_curves(cfg: Config, cat: Catalogue, positions, regions, model: TemplateResult, scale,
+                   progress: Progress) -> dict:
+    """Each map of ``[multifrequency]`` alone and the difference of every two (:mod:`pairvel.stats.perchannel`):
+    photometry at the used tracers with the run's options and map treatment, one pair pass of all of
+    them with their re-trended jackknife sets, a jackknife fit per map and a null test per difference."""
+    import itertools
+
+    mf = cfg.multifrequency
+    options = {**photometry_options(cfg, cat.z), "radius_scale": scale}
+    raw = []
+    for path, skymap in zip(mf.map_paths, read_channel_maps(cfg)):
+        skymap = treat_map(cfg, skymap, progress)[0]
+        t = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture)[:1], **options).temperatures[0]
+        bad = ~np.isfinite(t)
+        if bad.any():
+            warnings.warn(f"multifrequency.per_channel: {int(bad.sum())} tracers have no usable aperture on {path}; "
+                          f"they enter its curve at the mean temperature", PairvelWarning, stacklevel=2)
+            t = np.where(bad, np.nanmean(t), t)
+        raw.append(t)
+    pairs = list(itertools.combinations(range(len(raw)), 2))
+    raw = np.array(raw + [raw[a] - raw[b] for a, b in pairs])
+    stack = TemperatureStack.build(correct_trend(cfg, raw, cat.z), {}, retrended_sets(raw, cat.z, regions, cfg),
+                                   np.zeros((0, len(cat))))
+    pr = pair_pass(cfg, positions, stack.values, cfg.bins.edges(), regions, cat, progress)
+    n_jk = int(regions.max()) + 1
+    jk = _jackknife_rows(cfg, pr, stack, n_jk)
+    maps = [{"path": p, "frequency_ghz": nu} for p, nu in zip(mf.map_paths, mf.frequencies_ghz)]
+    return channel_results(pr.p[stack.radius_rows], jk[stack.radius_rows], model.template_uk, maps=maps, pairs=pairs,
+                           n_jk=n_jk, in_fit=model.in_fit, likelihood=cfg.theory.likelihood,
+                           threshold=cfg.nulls.pte_threshold)
 
 
 def evaluate_nulls(cfg: Config, pr, stack: TemperatureStack, cov: CovarianceResult) -> list:

@@ -31,6 +31,7 @@ __all__ = [
     "SingleClusterConfig",
     "SourceMaskConfig",
     "OutlierConfig",
+    "NoiseConfig",
     "is_folder_name",
 ]
 
@@ -135,6 +136,28 @@ class MapConfig:
                                       "with data) is below 1e-3 or above 3e7 uK, a factor 10^3 beyond the 1 uK-30 mK "
                                       "of any plausible CMB temperature map: a unit label wrong by 10^6 (K vs uK); "
                                       "applies to every map read; false: only warn")
+
+
+@dataclass(frozen=True)
+class NoiseConfig:
+    path: Path | None = _key(None, "optional inverse-variance (1/uK_CMB^2 per pixel) or hit-count map on the temperature "
+                                   "map's grid and frame, read unit-free: gives each tracer's aperture noise (tracers.fits "
+                                   "column noise_uK)")
+    kind: str = _key("ivar", "what noise.path holds: ivar (inverse variance per pixel, 1/uK^2) or hits (hit counts; "
+                             "pixel variance hit_rms_uk^2 / hits)", choices=("ivar", "hits"))
+    field: int = _key(0, "which column (0-based) of noise.path to read", bounds=(0, 1000))
+    hit_rms_uk: float | None = _key(None, "noise rms of a pixel with one hit, uK (required with kind = hits)",
+                                    bounds=(1e-9, 1e9))
+    tracer_weighting: bool = _key(False, "weight each tracer by 1 / (aperture noise variance + sky variance), times any "
+                                         "catalogue.weight_column; the pair-averaged template, the nulls and every "
+                                         "covariance use the same weights (the redshift-trend removal stays unweighted)")
+    sky_variance_uk2: float | None = _key(None, "aperture variance of the CMB and other sky signal common to all "
+                                                "tracers, uK^2 (unset: the variance of the aperture temperatures less "
+                                                "their mean noise variance, at least 5% of the former)",
+                                          bounds=(0.0, 1e12))
+    in_simulations: bool = _key(False, "with covariance.estimator = simulations: add white noise drawn from the noise "
+                                       "map's per-pixel variance to every simulated sky (on top of "
+                                       "covariance.sim_white_noise_uk_arcmin)")
 
 
 @dataclass(frozen=True)
@@ -349,6 +372,9 @@ class MultifrequencyConfig:
                                         "(sum w = 1, least noise) or weights (the list below)",
                             choices=("tsz_free", "minimum_variance", "weights"))
     weights: tuple[float, ...] | None = _key(None, "weight of each map when combination = weights; must sum to 1")
+    per_channel: bool = _key(False, "also measure each map alone (same tracers, weights, regions, template and "
+                                    "jackknife covariance) and fit its tau_mean, and test the difference of every "
+                                    "two maps against zero as a null test (channels.ecsv, report)")
     noise_model: str = _key("auto", "noise covariance of the maps, diagonal: levels (from noise_uk_arcmin), "
                                     "pixel_differences (measured from pixel-minus-neighbour-mean differences, less "
                                     "the CMB and tSZ common to the maps) or auto (levels when noise_uk_arcmin is set)",
@@ -463,6 +489,7 @@ class Config:
     run: RunConfig = field(default_factory=RunConfig)
     catalogue: CatalogueConfig = field(default_factory=CatalogueConfig)
     map: MapConfig = field(default_factory=MapConfig)
+    noise: NoiseConfig = field(default_factory=NoiseConfig)
     aperture: ApertureConfig = field(default_factory=ApertureConfig)
     trend: TrendConfig = field(default_factory=TrendConfig)
     bins: BinsConfig = field(default_factory=BinsConfig)
@@ -757,6 +784,7 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("theory.tau_prior_mean", "is used only by the joint fit; set theory.fit_velocity_scale = true")
 
     _check_multifrequency(cfg, bad)
+    _check_noise(cfg, bad)
     _check_partner(cfg, bad)
     _check_source_mask(cfg, bad)
     pf = cfg.prefilter
@@ -815,6 +843,20 @@ def _check_source_mask(cfg, bad) -> None:
         if cfg.outliers.clip_sigma is not None:
             bad("outliers.clip_sigma", "is not used when restart.table_path is set (the table's run clipped its "
                                        "tracers already, or not); remove it")
+
+
+def _check_noise(cfg, bad) -> None:
+    """Cross-key checks of ``[noise]``: every key but path needs path; hits need hit_rms_uk."""
+    nc = cfg.noise
+    if nc.path is None:
+        _refuse_keys_without_path(nc, "noise", "the inverse-variance or hit-count map", bad)
+        return
+    if cfg.restart.table_path is not None:
+        bad("noise.path", "needs the map's grid, which a run from restart.table_path does not read; remove one of them")
+    if (nc.kind == "hits") != (nc.hit_rms_uk is not None):
+        bad("noise.hit_rms_uk", "is required with noise.kind = 'hits', and used only with it")
+    if nc.in_simulations and cfg.covariance.estimator != "simulations":
+        bad("noise.in_simulations", "is used only with covariance.estimator = 'simulations'")
 
 
 def _check_partner(cfg, bad) -> None:
@@ -877,8 +919,8 @@ def _check_multifrequency(cfg, bad) -> None:
     """Cross-key checks of ``[multifrequency]``; ``bad(key, message)`` raises the ConfigError."""
     mf = cfg.multifrequency
     if not mf.map_paths:
-        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths"):
-            if getattr(mf, key) is not None:
+        for key in ("frequencies_ghz", "noise_uk_arcmin", "beam_fwhm_arcmin", "weights", "bandpass_paths", "per_channel"):
+            if getattr(mf, key) not in (None, False):
                 bad(f"multifrequency.{key}", "is set but multifrequency.map_paths is not")
         return
     k = len(mf.map_paths)

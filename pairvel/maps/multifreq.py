@@ -14,7 +14,7 @@ later stage uses as it would a single map.
 from __future__ import annotations
 
 __all__ = ["combination_weights", "noise_cost", "combine_maps", "pixel_difference_covariance",
-           "read_input_map", "map_provenance", "combination_markdown"]
+           "read_input_map", "read_channel_maps", "map_provenance", "combination_markdown"]
 
 import math
 import warnings
@@ -219,6 +219,11 @@ def pixel_difference_covariance(maps, f_tsz=None) -> tuple[np.ndarray, int]:
 
 def _read_each(cfg):
     return [_read_one(p, cfg.map, frequency_ghz=nu, bandpass_path=band) for p, nu, band in _each_map(cfg.multifrequency)]
+
+
+def read_channel_maps(cfg) -> list:
+    """Each map of ``multifrequency.map_paths`` alone, read as for the combination (uK_CMB)."""
+    return _read_each(cfg)
 
 
 def _each_map(mf):

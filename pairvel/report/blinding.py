@@ -217,6 +217,15 @@ EXTRA_RULES = {
                         "pte_mean_curve": 0, "pte_threshold": 0, "passed": 0, "mean_p": 1, "mean_error": 1}},
     # the comparison with a synthetic survey's injected truth (run.truth_path, refused with blinding
     # when the config is read), and free report text: true by construction
+    # [noise]: aperture noise and sky variances come from the (blinded) temperatures' scale, the weights do not
+    "noise_weighting": {"path": 0, "kind": 0, "weighting": 0, "sky_variance_uk2": 2, "sky_variance_estimated": 0,
+                        "mean_noise_variance_uk2": 2, "median_noise_uk": 1, "n_without_noise": 0,
+                        "weight_max_over_min": 0, "effective_fraction": 0},
+    # [multifrequency] per_channel: each map's curve and fit scale like the main ones, the nulls' chi2 and PTE do not
+    "channels": {"maps": {"path": 0, "frequency_ghz": 0, "p": 1, "p_err": 1, "fit": FIT_RULES, "problem": 0},
+                 "differences": {"maps": 0, "p": 1, "p_err": 1, "chi2": 0, "dof": 0, "pte": 0, "passed": 0,
+                                 "threshold": 0, "fit": FIT_RULES, "problem": 0},
+                 "n_jk": 0, "covariance": 0},
     "mock_calibration": 0,             # error / scatter of mocks (covariance.calibration_dir), no data in it
     "truth_check": _refuse("truth_check"), "plot_curves": _refuse("plot_curves"),
     "report_sections": _refuse("report_sections"),

@@ -128,6 +128,10 @@ def summary_dict(result) -> dict:
         out["prefilter"] = result.extra["prefilter"]
     if "cross" in result.extra:  # cross pairs with the [partner] catalogue
         out["cross"] = result.extra["cross"]
+    if "channels" in result.extra:  # each frequency map alone, and their differences as nulls
+        out["channels"] = result.extra["channels"]
+    if "noise_weighting" in result.extra:  # aperture noise from a noise map, and the tracer weights
+        out["noise_weighting"] = result.extra["noise_weighting"]
     return _finite_or_none(json.loads(json.dumps(out, default=_json_default)))
 
 
@@ -193,6 +197,10 @@ def _write_theory_outputs(result, folder: Path) -> list:
         from ..stats.radii import write_radius_outputs
 
         written += write_radius_outputs(result.extra["radius_fits"], folder)
+    if "channels" in result.extra:
+        from ..stats.perchannel import write_channel_table
+
+        written.append(write_channel_table(result.extra["channels"], result.edges, folder))
     return written + write_template_table(result.extra.get("template", {}), folder)
 
 
@@ -326,11 +334,13 @@ def report_sections(result) -> dict:
     """Report sections made at write time from the data in ``result.extra`` (a blinded result gets
     blinded sections), then the free-text sections a caller added (the check against a truth)."""
     from ..maps.multifreq import combination_markdown
+    from ..maps.noise import noise_markdown
     from ..maps.prefilter import prefilter_markdown
     from ..stats.covdiag import diagnostics_markdown
     from ..stats.mockcalib import SECTION_TITLE as CALIBRATION_TITLE
     from ..stats.mockcalib import calibration_markdown
     from ..stats.cross import cross_markdown
+    from ..stats.perchannel import channels_markdown
     from ..stats.radii import radius_report
     from ..stats.regionseeds import SECTION_TITLE, spread_markdown
 
@@ -345,7 +355,9 @@ def report_sections(result) -> dict:
                 ("multifrequency", "Several frequency maps", combination_markdown),
                 ("covariance_diagnostics", "Covariance diagnostics", lambda d: diagnostics_markdown(d, result.edges)),
                 ("mock_calibration", CALIBRATION_TITLE, lambda d: calibration_markdown(d, result.edges)),
-                ("cross", "Cross pairs with a second catalogue", cross_markdown))
+                ("cross", "Cross pairs with a second catalogue", cross_markdown),
+                ("channels", "Each frequency map alone", lambda info: channels_markdown(info, result.fit)),
+                ("noise_weighting", "Map noise and tracer weights", noise_markdown))
     sections = {title: build(result.extra[key]) for key, title, build in builders if key in result.extra}
     return sections | result.extra.get("report_sections", {})
 

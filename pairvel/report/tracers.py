@@ -6,7 +6,9 @@ One row per catalogue row read, in the canonical order of
 last).  Columns: ``row`` (row in the input file), ``ra_deg``, ``dec_deg``, ``z``, ``region`` (-1
 when not used), ``used``, ``drop_reason`` ("" when used), ``t_raw_uK`` and ``t_uK`` at the primary
 radius (NaN when not used), ``t_raw_uK_<r>arcmin`` and ``t_uK_<r>arcmin`` for each extra radius,
-and ``proxy`` and ``weight`` when the run read them.  Header cards say which radius is primary,
+``proxy`` and ``weight`` when the run read them, and with ``[noise]`` the aperture noise rms
+``noise_uK`` at the primary radius (and ``noise_weight``, mean 1 over the used tracers, with
+``noise.tracer_weighting``; ``weight`` stays the catalogue's own).  Header cards say which radius is primary,
 how the apertures were measured, which map and catalogue they came from (with checksums) and
 whether the temperatures are blinded.
 
@@ -50,7 +52,7 @@ def scale_temperatures(table, scale):
     return out
 
 
-def tracer_table(cat: Catalogue, *, regions, temps_raw, temps, radii_arcmin, meta: dict):
+def tracer_table(cat: Catalogue, *, regions, temps_raw, temps, radii_arcmin, meta: dict, extra_columns=None):
     """The per-tracer table of a run (module docstring).
 
     Parameters
@@ -67,6 +69,9 @@ def tracer_table(cat: Catalogue, *, regions, temps_raw, temps, radii_arcmin, met
         The aperture radii, primary first.
     meta : dict
         Header cards (keyword -> value); ``PRIMRAD`` is set here.
+    extra_columns : dict, optional
+        More per-tracer columns of the used tracers, name -> ndarray of shape (N,) (NaN for the rest),
+        e.g. ``noise_uK`` and ``noise_weight`` of ``[noise]``.
 
     Returns
     -------
@@ -101,6 +106,8 @@ def tracer_table(cat: Catalogue, *, regions, temps_raw, temps, radii_arcmin, met
     for name in ("proxy", "weight"):
         if columns[name] is not None:
             table[name] = columns[name][order]
+    for name, values in (extra_columns or {}).items():
+        table[name] = both(np.asarray(values, dtype=np.float64), None)[order]
     table["ra_deg"].unit = table["dec_deg"].unit = "deg"
     for name in temperature_columns(table):
         table[name].unit = "uK"

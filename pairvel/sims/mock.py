@@ -50,6 +50,7 @@ from ..model.sz import ELECTRON_REST_ENERGY_KEV
 from ..report.folders import claim_output_dir
 from ._fields import _cone_box, _gaussian_fields, _patch_frame
 from .mock_car import car_cmb, car_footprint, car_map_file, car_painted, car_white_noise, check_car_options, write_car_map
+from .depth import check_depth_ratio, ivar_file, noise_scale, write_ivar_map
 from .mockconfig import RUN_CONFIG_FILE, mock_run_config
 from .partner import PartnerSpec, partner_ksz, partner_record, partner_spec, write_partner
 
@@ -250,7 +251,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
                      progress=None, extra_frequencies_ghz=(), extra_noise_uk_arcmin=None,
                      electron_temperature_kev=None, partner_n_tracers=0, partner_bias=0.3,
                      partner_tau_mean=5.0e-4,
-                     tau_mass_slope=2.0 / 3.0, pixels="healpix", car_arcmin=0.5) -> MockTruth:
+                     tau_mass_slope=2.0 / 3.0, pixels="healpix", car_arcmin=0.5, depth_ratio=1.0) -> MockTruth:
     """Write a synthetic survey (catalogue, partial HEALPix map, truth.json, run.toml) into a new folder.
 
     Parameters
@@ -309,6 +310,9 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         each with optical depth ``partner_tau_mean`` (no tSZ); its kSZ is painted into the same
         maps and run.toml gets a ``[partner]`` section (:mod:`pairvel.sims.partner`).  0: none (and
         nothing else changes).
+    depth_ratio : float, default 1
+        Noise rms varies by this factor between deep and shallow stripes in RA (:mod:`pairvel.sims.depth`;
+        geometric mean ``noise_uk_arcmin``); above 1 an inverse-variance map is written beside each map.
     tau_mass_slope : float, default 2/3
         alpha of the injected tau_i proportional to M_i^alpha (truth.json ``tau_mass_relation`` gives
         the normalisation at M = 10^14.5 Msun).
@@ -358,6 +362,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
     extra_noise = _check_extra_frequencies(extra_frequencies_ghz, extra_noise_uk_arcmin, noise_uk_arcmin)
     _check_electron_temperature(electron_temperature_kev)
     spec = _MockSpec(**options, extra_noise=extra_noise, electron_temperature_kev=electron_temperature_kev,
+                     depth_ratio=_depth_for(pixels, depth_ratio),
                      partner=partner_spec(partner_n_tracers, partner_bias, partner_tau_mean), pixels=pixels,
                      car_arcmin=float(car_arcmin) if pixels == "car" else None)
     with claim_output_dir(out, replace_empty=True) as claim:  # before the work; released if it fails
@@ -392,7 +397,7 @@ def make_mock_survey(out_dir, *, n_tracers=30000, nside=2048, ra_min=-20.0, ra_m
         response = _aperture_response(spec, tracers, ksz, amplitudes.dt_ksz_uk)
         _lap(timings, "truth", t0)
 
-        files = _survey_files(maps, pixels)
+        files = _survey_files(maps, pixels, with_ivar=spec.depth_ratio != 1.0)
         if electron_temperature_kev is not None:
             files["tracer_truth"] = TRACER_TRUTH_FILE
         truth = MockTruth(
@@ -469,6 +474,7 @@ class _MockSpec:
     partner: PartnerSpec | None = None
     pixels: str = "healpix"
     car_arcmin: float | None = None
+    depth_ratio: float = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -662,21 +668,22 @@ def _sky_maps(spec: _MockSpec, foot, cmb, ksz, tsz, rng) -> dict:
     (so the extra maps leave the 150 GHz one unchanged): CMB + kSZ + tSZ(nu) + white noise."""
     from ..model.sz import tsz_spectrum
 
-    maps = {150.0: _frequency_map(foot, cmb, ksz, tsz, 1.0, spec.noise_uk_arcmin, spec, rng)}
+    depth = 1.0 if spec.pixels == "car" else noise_scale(spec.nside, foot, spec.ra_min, spec.ra_max, spec.depth_ratio)
+    maps = {150.0: _frequency_map(foot, cmb, ksz, tsz, 1.0, spec.noise_uk_arcmin, spec, rng, depth)}
     for nu, noise_nu in spec.extra_noise.items():
         scale = float(tsz_spectrum(nu)) / _TSZ_F150  # the 150 GHz tSZ is _TSZ_F150 times the amplitude
-        maps[nu] = _frequency_map(foot, cmb, ksz, tsz, scale, noise_nu, spec, rng)
+        maps[nu] = _frequency_map(foot, cmb, ksz, tsz, scale, noise_nu, spec, rng, depth)
     return maps
 
 
-def _frequency_map(foot, cmb_values, ksz, tsz, tsz_scale, noise_uk_arcmin, spec, rng):
-    """CMB + kSZ + ``tsz_scale`` times the 150 GHz tSZ + white noise, on the footprint pixels."""
+def _frequency_map(foot, cmb_values, ksz, tsz, tsz_scale, noise_uk_arcmin, spec, rng, depth=1.0):
+    """CMB + kSZ + ``tsz_scale`` times the 150 GHz tSZ + white noise (rms times ``depth``), on the footprint pixels."""
     values = cmb_values.copy()
     for (pix, val), factor in ((ksz, 1.0), (tsz, tsz_scale)):
         _add_to_footprint(values, foot, pix, factor * val)
     if spec.pixels == "car":
         return values + car_white_noise(spec, noise_uk_arcmin, rng)
-    return values + _white_noise(noise_uk_arcmin, spec.nside, foot.size, rng)
+    return values + _white_noise(noise_uk_arcmin, spec.nside, foot.size, rng) * depth
 
 
 @dataclass(frozen=True, eq=False)
@@ -741,9 +748,22 @@ def _map_file(nu, pixels="healpix") -> tuple:
     return ("map", MAP_FILE) if nu == 150 else (f"map_{nu:g}ghz", extra_map_file(nu))
 
 
-def _survey_files(maps: dict, pixels="healpix") -> dict:
-    """The truth's ``files`` entry: the catalogue and one map per frequency of ``maps``."""
-    return {"catalogue": CATALOGUE_FILE, **dict(_map_file(nu, pixels) for nu in maps)}
+def _survey_files(maps: dict, pixels="healpix", *, with_ivar=False) -> dict:
+    """The truth's ``files`` entry: the catalogue and one map per frequency of ``maps`` (and its
+    inverse-variance map, key ``ivar`` or ``ivar_<nu>ghz``, ``with_ivar``)."""
+    named = [_map_file(nu, pixels) for nu in maps]
+    files = {"catalogue": CATALOGUE_FILE, **dict(named)}
+    if with_ivar:
+        files.update({key.replace("map", "ivar", 1): ivar_file(name) for key, name in named})
+    return files
+
+
+def _depth_for(pixels, depth_ratio) -> float:
+    """The checked depth ratio; striped depth is painted on HEALPix skies only."""
+    ratio = check_depth_ratio(depth_ratio)
+    if pixels == "car" and ratio != 1.0:
+        raise InputError("pairvel mock: --depth-ratio is available for HEALPix skies only; drop it or --pixels car")
+    return ratio
 
 
 def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, foot, maps: dict) -> None:
@@ -766,6 +786,10 @@ def _write_survey(folder: Path, spec: _MockSpec, tracers: _Tracers, log_mass, fo
                           unit="uK_CMB", extra_header={"TELESCOP": TELESCOPE_NAME,
                                                        "FREQ": (f"{nu:g} GHz", "observing frequency"),
                                                        "BEAMFWHM": (spec.beam_fwhm_arcmin, "arcmin")})
+        if spec.depth_ratio != 1.0:
+            noise = spec.noise_uk_arcmin if nu == 150 else spec.extra_noise[nu]
+            write_ivar_map(folder / ivar_file(_map_file(nu)[1]), foot, noise,
+                           noise_scale(spec.nside, foot, spec.ra_min, spec.ra_max, spec.depth_ratio), spec.nside)
 
 
 def _check_electron_temperature(te_kev) -> None:
@@ -794,6 +818,8 @@ def _options_record(spec: _MockSpec) -> dict:
     extra_noise = options.pop("extra_noise")
     if options["electron_temperature_kev"] is None:  # the record of a mock without it stays as it was
         options.pop("electron_temperature_kev")
+    if options["depth_ratio"] == 1.0:  # likewise
+        options.pop("depth_ratio")
     options["cosmology"] = options.pop("cosmo")
     if options.get("partner") is None:
         options.pop("partner")

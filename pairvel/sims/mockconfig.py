@@ -65,6 +65,8 @@ def mock_run_config(record: dict, *, folder_name: str, trend_sigma_z: float) -> 
         "theory": {"bias": float(record["bias"])},
         "cosmology": dict(o["cosmology"]),  # every parameter as the mock recorded it (numbers and switches)
     }
+    if "ivar" in files:  # a map of varying depth: its inverse variance gives each tracer's aperture noise
+        sections["noise"] = {"path": files["ivar"], "kind": "ivar", "tracer_weighting": False}
     if "partner" in record:  # a second, galaxy-like catalogue: the cross curve (README 'Clusters against galaxies')
         sections["partner"] = {"path": record["partner"]["file"], "z_min": float(o["z_min"]),
                                "z_max": float(o["z_max"]), "bias": float(record["partner"]["bias"])}

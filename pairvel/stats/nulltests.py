@@ -42,6 +42,7 @@ NULL_KINDS = {
     "shuffled": "temperatures shuffled among the tracers",
     "shuffled_in_z": "temperatures shuffled among tracers within narrow redshift slices",
     "rotated": "map rotated in longitude before photometry",
+    "channel_difference": "one frequency map minus another ([multifrequency] per_channel): CMB and kSZ cancel",
 }
 
 #: A kind is tested against its own realisations' scatter when it has at least this many more

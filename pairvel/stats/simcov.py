@@ -66,7 +66,7 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
                                    noise_cl=None, lmax: int | None = None, max_masked_fraction: float = 0.1,
                                    n_threads: int | None = None, progress=None, transfer=None,
                                    pixel_weighting: str = "centre", method: str = "auto", radius_scale=None,
-                                   signal=None) -> np.ndarray:
+                                   signal=None, pixel_noise_variance=None) -> np.ndarray:
     """Aperture temperatures of ``n_sim`` Gaussian sky realisations at the tracers.
 
     Each realisation is a partial map on the data map's grid holding the pixels the apertures read,
@@ -108,6 +108,10 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     signal : callable(rng) -> ndarray of shape (n_radii, N), uK, optional
         Aperture temperatures of a tracer signal added to each realisation, drawn from the same
         generator after its sky (e.g. :func:`pairvel.sims.skysignal.tracer_signal`).
+    pixel_noise_variance : SkyMap, optional
+        Noise variance of each pixel (uK^2) on the data map's grid, e.g. from an inverse-variance map
+        (:mod:`pairvel.maps.noise`): white noise of that variance is added to each realisation
+        (unfiltered, after any ``transfer``); pixels it does not hold get none.
 
     Returns
     -------
@@ -126,6 +130,10 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     radii = np.atleast_1d(np.asarray(radius_arcmin, dtype=float))
     support = _support(grid, sky, ra_deg, dec_deg, radii, radius_scale, pixel_weighting)
     spec = _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl)
+    noise_sigma = None
+    if pixel_noise_variance is not None:  # per-pixel white noise of a noise map, on the pixels the apertures read
+        pv, pw = pixel_noise_variance.values_on(support)
+        noise_sigma = np.sqrt(np.where(pw > 0, np.nan_to_num(pv.astype(np.float64)), 0.0))
     pixel_noise = white_noise_uk_arcmin > 0 and transfer is None
     if transfer is not None:
         spec = (spec + (white_noise_uk_arcmin * ARCMIN_RAD) ** 2) * transfer**2
@@ -144,6 +152,8 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
             values += support.synthesise(_draw_alm(amp, m0, rng), lmax=lmax, n_threads=n_threads)
         if pixel_noise:
             values += support.white_noise(white_noise_uk_arcmin, rng)
+        if noise_sigma is not None:
+            values += noise_sigma * rng.standard_normal(values.size)
         res = measure_apertures(support.with_values(values), ra_deg, dec_deg, radii,
                                 max_masked_fraction=max_masked_fraction, pixel_weighting=pixel_weighting,
                                 method=method, radius_scale=radius_scale)
