@@ -47,6 +47,9 @@ from ..core.errors import ConfigError
 from ..model.cosmology import Cosmology
 from ..model.sz import tsz_spectrum
 
+#: likelihoods of the amplitude fit (theory.likelihood; implemented in stats.fit)
+LIKELIHOODS = ("hartlap", "sellentin-heavens", "hartlap-percival")
+
 
 def _key(default, doc, **extra):
     """A config field with a default and its documentation line.
@@ -241,7 +244,7 @@ class TheoryConfig:
     likelihood: str = _key("hartlap", "likelihood of the amplitude fit: hartlap (Gaussian, Hartlap-corrected precision) "
                            "sellentin-heavens (marginalised over the jackknife covariance) or hartlap-percival (Gaussian, error "
                            "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise)",
-                           choices=("hartlap", "sellentin-heavens", "hartlap-percival"))
+                           choices=LIKELIHOODS)
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
                                                     "with these edges, at least two, finite and strictly increasing "
                                                     "(needs catalogue.proxy_column)", increasing=True)
