@@ -26,12 +26,13 @@ import numpy as np
 
 from . import _kernels
 
-# seconds on the 2-core development machine, 2 threads; fitted 2026-12-05 by
-# `benchmarks/bench_many_sets.py --calibrate` (demo-like band at r_max 300 Mpc and the sparse
-# quarter-sky shell at 150 Mpc, 1-200 sets)
-PAIR_SET_S = 3.5e-10       # direct: one pair, one set (the jackknife region sums count as a second)
-PAIR_OBJECT_S = 5.0e-8     # linear: the per-object visit of one pair (both ends)
-ROW_SET_S = 2.0e-9         # linear: one object row, one bin, one set (gather and product)
+# seconds per unit, 2 threads, fitted 2026-12-05 09:00-09:12 UTC by `benchmarks/bench_many_sets.py
+# --geometry both --calibrate --sweep 1,16,84,200` (demo catalogue at r_max 300 Mpc and the sparse
+# shell at 150 Mpc).  The machine was shared (load average ~20 on 2 cores), so the absolute values
+# are inflated; the choice depends only on their ratios, which all three shared the load for.
+PAIR_SET_S = 2.1e-9        # direct: one pair, one set (the jackknife region sums count as a second)
+PAIR_OBJECT_S = 3.1e-7     # linear: the per-object visit of one pair (both ends)
+ROW_SET_S = 4.4e-9         # linear: one object row, one bin, one set (gather and product)
 
 
 @dataclass(frozen=True)

@@ -5,7 +5,8 @@ apertures read only the pixels within sqrt(2) theta of a tracer, so each realisa
 beam-smoothed harmonic field at exactly those pixel centres of the data map's grid (point values: no
 pixel window; :meth:`~pairvel.maps.skymap.SkyMap.aperture_support` and
 :meth:`~pairvel.maps.skymap.SkyMap.synthesise`, for HEALPix ``ducc0``'s synthesis on the rings holding
-them), adds white pixel noise, gives it the data map's usable weights (mask and holes) and hands
+them; only up to the multipole beyond which the apertures see less than ``TAIL_FRACTION`` of their
+variance, in float32: :func:`band_needed`), adds white pixel noise, gives it the data map's usable weights (mask and holes) and hands
 that partial map to the same aperture photometry (radii, per-tracer physical radius, pixel
 weighting), trend removal and many-set pair pass as the data.  A tracer signal (kSZ, thermal SZ)
 can be added to each realisation by a callback, which the synthetic-sky code provides.
@@ -135,7 +136,8 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
         Noise power spectrum (not beam-convolved), synthesised with the sky.
     lmax : int, optional
         Default the grid's band limit, 3 nside - 1 for HEALPix (the length of ``transfer`` minus
-        one when that is given).
+        one when that is given).  The a_lm are drawn to lmax (the same random stream for any
+        band), but synthesised only to :func:`band_needed` for the smallest aperture.
     max_masked_fraction, pixel_weighting, method, radius_scale
         As for :func:`~pairvel.maps.photometry.measure_apertures` (the data's photometry options).
     transfer : ndarray of shape (lmax + 1,), optional
