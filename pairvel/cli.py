@@ -320,8 +320,8 @@ def _cmd_velocities(args, run_log) -> int:
 
 
 def _add_validate_parser(sub, common) -> None:
-    from .sims.validate import MIN_MOCKS_FOR_VERDICTS, ValidationOptions
-    from .stats.fit import LIKELIHOODS
+    from .sims.validateopts import MIN_MOCKS_FOR_VERDICTS, ValidationOptions
+    from .input.config import LIKELIHOODS
 
     d = ValidationOptions()
     val = sub.add_parser("validate", help="calibrate tau_mean and its error bars on many mocks with a known truth",

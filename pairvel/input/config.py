@@ -50,6 +50,9 @@ from ..core.errors import ConfigError
 from ..model.cosmology import Cosmology
 from ..model.sz import tsz_spectrum
 
+#: likelihoods of the amplitude fit (theory.likelihood; implemented in stats.fit)
+LIKELIHOODS = ("hartlap", "sellentin-heavens", "hartlap-percival", "variance-weighted")
+
 
 def _key(default, doc, **extra):
     """A config field with a default and its documentation line.
@@ -283,7 +286,7 @@ class TheoryConfig:
                            "widened by sqrt(m1) of Percival et al. 2014 for the covariance's own noise) or variance-weighted (bins weighted "
                            "by 1 / their variance, error sqrt(w^T C w) from the whole covariance: no noisy inverse in "
                            "tau_mean; chi2 values as hartlap)",
-                           choices=("hartlap", "sellentin-heavens", "hartlap-percival", "variance-weighted"))
+                           choices=LIKELIHOODS)
     proxy_bin_edges: tuple[float, ...] | None = _key(None, "also fit tau_mean in bins [lo, hi) of the proxy column "
                                                     "with these edges, at least two, finite and strictly increasing "
                                                     "(needs catalogue.proxy_column)", increasing=True)

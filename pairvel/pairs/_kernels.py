@@ -557,3 +557,22 @@ def gather_centred(src, cols, out):
         mean /= max(n, 1)
         for c in range(cols.size):
             out[r, c] = src[r, cols[c]] - mean
+
+
+@nb.njit(cache=True)
+def neighbourhood_candidates(start, dims, rows):
+    """Sum over objects of the objects in their cell's whole neighbourhood (itself included), i.e.
+    the candidates a full visit examines; rows from :func:`all_rows`.  O(cells x rows): no pairs."""
+    nbr_lo = np.empty(rows.shape[0], dtype=np.int64)
+    nbr_hi = np.empty(rows.shape[0], dtype=np.int64)
+    total = 0.0
+    for cell in range(start.size - 1):
+        own = start[cell + 1] - start[cell]
+        if own == 0:
+            continue
+        nn = _all_ranges(cell, dims, start, rows, nbr_lo, nbr_hi)
+        seen = 0
+        for kk in range(nn):
+            seen += nbr_hi[kk] - nbr_lo[kk]
+        total += own * float(seen)
+    return total

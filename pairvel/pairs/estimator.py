@@ -18,10 +18,7 @@ import numpy as np
 
 from ..core.errors import InputError
 from . import _kernels
-
-# from this many temperature sets on, method='auto' takes the linear path (measured with
-# benchmarks/bench_many_sets.py at 1e5 tracers and 50 regions: below ~200 sets the direct loop is cheaper)
-LINEAR_MIN_SETS = 200
+from .pathcost import estimate_pairs, path_costs
 
 _log = logging.getLogger(__name__)
 
@@ -135,8 +132,9 @@ def pairwise_momentum(positions, temperatures, edges, *, regions=None, redshifts
         "direct" does the arithmetic of every temperature set inside the pair loop (cost grows
         with M); "linear" makes one pass that gives every tracer its per-bin pair sums and then
         forms every set's numerator, and every jackknife region's, by matrix products (cost nearly
-        independent of M).  "auto" picks "linear" from ``LINEAR_MIN_SETS`` sets on.  Both give
-        the same sums up to floating-point rounding.
+        independent of M).  "auto" picks the one a cost model of the geometry (pairs expected
+        within r_max from the cell grid, sets, bins, regions: :mod:`pairvel.pairs.pathcost`)
+        finds faster.  Both give the same sums up to floating-point rounding.
 
     Returns
     -------
@@ -211,10 +209,11 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
         return (np.zeros((m_sets, nbins)), np.zeros(nbins), np.zeros(nbins, np.int64), np.zeros(nbins),
                 np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
-    linear = method == "linear" or (method == "auto" and m_sets >= LINEAR_MIN_SETS)
     order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
     ws = np.ascontiguousarray(w[order])
     regs = np.ascontiguousarray(reg[order])
+    full = _kernels.all_rows(int(rows[-1, 3]))
+    linear, layout = _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, edges[-1])
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
     _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, %s path", n, m_sets, nbins,
@@ -225,11 +224,7 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
                                   start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
         if not linear:
             return sums
-        full = _kernels.all_rows(int(rows[-1, 3]))
-        if n_jk:
-            row_start, row_reg = _kernels.object_rows(regs, start, dims, full, n_jk)
-        else:
-            row_start, row_reg = np.zeros(n + 1, dtype=np.int64), np.zeros(0, dtype=np.int64)
+        row_start, row_reg = layout if layout is not None else _row_layout(regs, start, dims, full, n_jk)
         w_obj, v_obj = _kernels.object_sums(xs, us, ws, regs, start, dims, full, edges, _is_uniform(edges),
                                             row_start, row_reg, n_jk)
     finally:
@@ -237,6 +232,29 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
     _, den, cnt, zsum, _, jk_den, jk_cnt = sums
     return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
+
+
+def _row_layout(regs, start, dims, full, n_jk):
+    """The linear path's sparse rows (:func:`_kernels.object_rows`); none without regions."""
+    if n_jk:
+        return _kernels.object_rows(regs, start, dims, full, n_jk)
+    return np.zeros(regs.size + 1, dtype=np.int64), np.zeros(0, dtype=np.int64)
+
+
+def _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, r_max):
+    """(linear?, row layout or None).  For "auto", the path the cost model finds cheaper; the
+    row layout it needs is made only when the linear path could win without it."""
+    if method != "auto":
+        return method == "linear", None
+    n_sub = int(full[:, 3].max())
+    pairs = estimate_pairs(pos, start, dims, n_sub, r_max)
+    if path_costs(pos.shape[0], m_sets, nbins, n_jk, pairs, 0).best == "direct":
+        return False, None
+    layout = _row_layout(regs, start, dims, full, n_jk)
+    costs = path_costs(pos.shape[0], m_sets, nbins, n_jk, pairs, int(layout[1].size))
+    _log.debug("path model: %.3g pairs expected, %d sparse rows; direct %.3g s, linear %.3g s", pairs,
+               layout[1].size, costs.direct_s, costs.linear_s)
+    return costs.best == "linear", layout
 
 
 def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20):

@@ -49,9 +49,8 @@ import numpy as np
 from scipy import stats
 
 from ..core.errors import InputError
+from ..input.config import LIKELIHOODS  # the likelihoods fit_amplitude offers, declared with the config key
 
-#: Likelihoods :func:`fit_amplitude` offers.
-LIKELIHOODS = ("hartlap", "sellentin-heavens", "hartlap-percival", "variance-weighted")
 #: Probability inside +-1 sigma of a Gaussian, 0.682689...
 ONE_SIGMA = float(stats.norm.cdf(1.0) - stats.norm.cdf(-1.0))
 

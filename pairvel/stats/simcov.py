@@ -5,7 +5,8 @@ apertures read only the pixels within sqrt(2) theta of a tracer, so each realisa
 beam-smoothed harmonic field at exactly those pixel centres of the data map's grid (point values: no
 pixel window; :meth:`~pairvel.maps.skymap.SkyMap.aperture_support` and
 :meth:`~pairvel.maps.skymap.SkyMap.synthesise`, for HEALPix ``ducc0``'s synthesis on the rings holding
-them), adds white pixel noise, gives it the data map's usable weights (mask and holes) and hands
+them; only up to the multipole beyond which the apertures see less than ``TAIL_FRACTION`` of their
+variance, in float32: :func:`band_needed`), adds white pixel noise, gives it the data map's usable weights (mask and holes) and hands
 that partial map to the same aperture photometry (radii, per-tracer physical radius, pixel
 weighting), trend removal and many-set pair pass as the data.  A tracer signal (kSZ, thermal SZ)
 can be added to each realisation by a callback, which the synthetic-sky code provides.
@@ -13,7 +14,7 @@ can be added to each realisation by a callback, which the synthetic-sky code pro
 
 from __future__ import annotations
 
-__all__ = ["simulate_aperture_temperatures", "simulation_covariance"]
+__all__ = ["simulate_aperture_temperatures", "simulation_covariance", "band_needed", "aperture_window"]
 
 import math
 
@@ -40,6 +41,44 @@ def _spectrum(lmax, beam_fwhm_arcmin, noise_cl, cmb_cl):
         nl[:n] = noise_cl[:n]
         total += nl
     return total
+
+
+# Multipoles above the band the apertures see are not synthesised: the synthesis stops at the lowest
+# l whose tail (CMB x beam, harmonic noise) carries less than TAIL_FRACTION of the aperture variance.
+# 1e-3 of the variance moves each bin's simulated error by <= 0.05%, 1/100 of its own noise even for
+# 1000 skies (sqrt(1 / (2 n_sim)) = 2.2%); benchmarks/bench_simsky.py compares with the full band.
+TAIL_FRACTION = 1e-3
+# the sky is synthesised in float32 (ducc0 complex64 a_lm): relative rounding ~1e-6 of the field,
+# far inside the same budget
+SYNTHESIS_DTYPE = np.complex64
+
+
+def aperture_window(ell, radius_arcmin: float) -> np.ndarray:
+    """Harmonic window of a compensated aperture (disc of radius theta minus the annulus to
+    sqrt(2) theta, equal areas): W_l = 2 (D_l(theta) - D_l(sqrt(2) theta)) with the flat-sky disc
+    mean D_l(x) = 2 J1(l x) / (l x) [analytic, e.g. the Fourier transform of a top hat]."""
+    from scipy.special import j1
+
+    ell = np.maximum(np.asarray(ell, dtype=float), 1e-12)
+
+    def disc(x):
+        return 2.0 * j1(ell * x) / (ell * x)
+
+    theta = radius_arcmin * ARCMIN_RAD
+    return 2.0 * (disc(theta) - disc(math.sqrt(2.0) * theta))
+
+
+def band_needed(spec, radius_arcmin: float, *, white_cl: float = 0.0, tail: float = TAIL_FRACTION) -> int:
+    """Lowest lmax whose dropped tail of ``spec`` (uK^2) holds less than ``tail`` of the aperture
+    variance sum (2l + 1) / 4 pi (C_l + white_cl) W_l^2 of the smallest aperture ``radius_arcmin``."""
+    ell = np.arange(spec.size)
+    w2 = aperture_window(ell, radius_arcmin) ** 2 * (2 * ell + 1) / (4 * math.pi)
+    total = np.sum((spec + white_cl) * w2)
+    above = np.cumsum((spec * w2)[::-1])[::-1]                 # above[l]: the part from l on
+    if total <= 0:
+        return spec.size - 1
+    keep = np.flatnonzero(above >= tail * total)
+    return int(keep[-1]) if keep.size else 0
 
 
 def _draw_alm(amp, m0, rng) -> np.ndarray:
@@ -98,7 +137,8 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     lmax : int, optional
         Default the grid's band limit, 3 nside - 1 for HEALPix (the length of ``transfer`` minus
         one when that is given); lowered to the last multipole with power (8000 for the package's
-        C_l table without a noise spectrum).
+        C_l table without a noise spectrum).  The a_lm are drawn to that lmax (the same random
+        stream for any band), but synthesised only to :func:`band_needed` for the smallest aperture.
     max_masked_fraction, pixel_weighting, method, radius_scale
         As for :func:`~pairvel.maps.photometry.measure_apertures` (the data's photometry options).
     transfer : ndarray of shape (lmax + 1,), optional
@@ -145,11 +185,15 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     ell, m = alm_ell_m(lmax)
     amp = np.sqrt(spec[ell])
     m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries
+    smallest = float(radii.min() * (1.0 if radius_scale is None else np.min(radius_scale)))
+    band = band_needed(spec, smallest, white_cl=(white_noise_uk_arcmin * ARCMIN_RAD) ** 2 if pixel_noise else 0.0)
+    in_band = ell <= band                # the a_lm of l <= band, in the layout of that band
     out = np.empty((int(n_sim), radii.size, len(ra_deg)))
     for k in range(int(n_sim)):
         values = np.zeros(support.values.size)
         if harmonic:
-            values += support.synthesise(_draw_alm(amp, m0, rng), lmax=lmax, n_threads=n_threads)
+            alm = _draw_alm(amp, m0, rng)[in_band].astype(SYNTHESIS_DTYPE)    # the full draw: same stream
+            values += support.synthesise(alm, lmax=band, n_threads=n_threads)
         if pixel_noise:
             values += support.white_noise(white_noise_uk_arcmin, rng)
         if noise_sigma is not None:

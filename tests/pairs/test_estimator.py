@@ -2,11 +2,14 @@
 
 import numpy as np
 import pytest
+from scipy.spatial import cKDTree
 
 from pairvel.core.constants import C_KM_S, T_CMB_UK
 from pairvel.core.errors import InputError
+from pairvel.pairs import _kernels
 from pairvel.pairs.estimator import mean_pairwise_velocity_3d, pairwise_momentum, pairwise_momentum_cross
 from pairvel.pairs.geometry import unit_vectors
+from pairvel.pairs.pathcost import estimate_pairs, path_costs
 
 
 def reference(pos, temps, edges, regions=None, z=None, weights=None):
@@ -273,9 +276,26 @@ def test_linear_path_equals_direct_for_many_sets_offsets_and_sparse_regions(monk
     scale = np.abs(a.numerator).max()
     np.testing.assert_allclose(b.numerator, a.numerator, rtol=0, atol=1e-11 * scale)
     np.testing.assert_allclose(b.p_jk, a.p_jk, rtol=1e-9)
-    monkeypatch.setattr("pairvel.pairs.estimator.LINEAR_MIN_SETS", 40)
-    c = pairwise_momentum(pos, temps, edges, method="auto", **kw)   # 40 sets: now the linear path
+    monkeypatch.setattr("pairvel.pairs.pathcost.PAIR_SET_S", 1.0)   # direct made dear: auto goes linear
+    c = pairwise_momentum(pos, temps, edges, method="auto", **kw)
     np.testing.assert_array_equal(c.p, b.p)
+    monkeypatch.setattr("pairvel.pairs.pathcost.PAIR_SET_S", 0.0)   # direct made free: auto goes direct
+    d = pairwise_momentum(pos, temps, edges, method="auto", **kw)
+    np.testing.assert_array_equal(d.p, a.p)
+
+
+def test_path_model_estimates_pairs_from_the_cell_grid_and_prefers_linear_for_many_sets():
+    pos, _ = sky(6000, 51)
+    r_max = 100.0
+    order, start, dims, rows = _kernels.build_cells(pos, r_max)
+    est = estimate_pairs(pos, start, dims, int(rows[-1, 3]), r_max)
+    true = np.sum(cKDTree(pos).query_pairs(r_max, output_type="ndarray").shape[0])
+    assert 0.7 * true < est < 1.3 * true      # common practice: uniform-density estimate, edges cost ~10-20%
+    # by construction of the model: linear costs a few sets' direct work more up front, then less per
+    # set when tracers have many more partners than bins x region rows; never when they have few
+    dense = [path_costs(10**6, m, 15, 50, 1e9, 2 * 10**7).best for m in (1, 1000)]
+    sparse = [path_costs(10**6, m, 15, 50, 1e7, 2 * 10**7).best for m in (1, 1000)]
+    assert dense == ["direct", "linear"] and sparse == ["direct", "direct"]
 
 
 def test_weights_zero_removes_a_tracer_and_bad_weights_are_refused():

@@ -253,7 +253,7 @@ def test_too_few_usable_apertures_stop_at_the_first_mock(monkeypatch):
     with the same option named."""
     import pairvel.sims.validate as validate
 
-    monkeypatch.setattr(validate, "_centres_per_disc", lambda nside, radius: 10.0)  # fool the prediction
+    monkeypatch.setattr("pairvel.sims.validateopts._centres_per_disc", lambda nside, radius: 10.0)  # fool the prediction
     opt = ValidationOptions(with_map=True, nside=256, n_tracers=100)
     rng = np.random.default_rng(2)
     ra, dec = rng.uniform(-10, 10, 200), rng.uniform(-10, 10, 200)

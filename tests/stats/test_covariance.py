@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 
 from pairvel.core.errors import InputError
-from pairvel.stats.covariance import jackknife_covariance, kmeans_regions
+import pairvel.stats.covariance as covariance
+from pairvel.stats.covariance import fit_subsample, jackknife_covariance, kmeans_regions
 
 
 def test_jackknife_of_a_mean_reproduces_var_over_n():
@@ -38,6 +39,21 @@ def test_kmeans_regions_cover_and_are_compact():
     np.testing.assert_array_equal(lab, kmeans_regions(ra, dec, 20, seed=3))  # seeded: reproducible
     with pytest.raises(InputError, match="between 2 and the 5000 tracers"):
         kmeans_regions(ra, dec, 1)
+
+
+def test_kmeans_regions_from_a_subsample_do_not_depend_on_row_order(monkeypatch):
+    rng = np.random.default_rng(7)
+    n = 6000
+    monkeypatch.setattr("pairvel.stats.covariance.FIT_MIN", 5000)   # the centres come from a subsample
+    ra, dec = rng.uniform(0, 90, n), np.degrees(np.arcsin(rng.uniform(-0.3, 0.5, n)))
+    assert n > max(covariance.FIT_PER_REGION * 20, covariance.FIT_MIN)
+    lab = kmeans_regions(ra, dec, 20, seed=5)
+    perm = rng.permutation(n)
+    np.testing.assert_array_equal(kmeans_regions(ra[perm], dec[perm], 20, seed=5), lab[perm])  # analytic
+    counts = np.bincount(lab)
+    assert counts.size == 20 and counts.min() > 0.5 * counts.mean()   # common practice: k-means areas within 2x
+    sub = fit_subsample(ra, dec, 1000)
+    np.testing.assert_array_equal(np.sort(perm[fit_subsample(ra[perm], dec[perm], 1000)]), np.sort(sub))
 
 
 def test_healpix_regions_merge_sparse_pixels():
