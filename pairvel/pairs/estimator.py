@@ -212,19 +212,44 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
                 np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
     linear = method == "linear" or (method == "auto" and m_sets >= LINEAR_MIN_SETS)
+    if linear:
+        sums, columns = linear_geometry(pos, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads,
+                                        n_sets=m_sets)
+        num, jk_num = _numerators_from_columns(temps2, columns, n_jk)
+        _, den, cnt, zsum, _, jk_den, jk_cnt = sums
+        return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
     order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
-    ws = np.ascontiguousarray(w[order])
+    previous = numba.get_num_threads()
+    numba.set_num_threads(_threads(n_threads))
+    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, direct path", n, m_sets, nbins,
+               numba.get_num_threads())
+    try:
+        return _kernels.pair_sums(xs, us, np.ascontiguousarray(temps2[:, order].T), np.ascontiguousarray(w[order]),
+                                  np.ascontiguousarray(reg[order]), np.ascontiguousarray(zz[order]),
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
+    finally:
+        numba.set_num_threads(previous)
+
+
+def linear_geometry(pos, reg, zz, edges, n_jk, want_z, *, weights, n_threads=None, n_sets=0) -> tuple:
+    """The pair pass of the linear path, which needs no temperatures: (sums, columns).
+
+    ``sums`` are the additive sums of :func:`pass_sums` for no set (den, cnt, zsum, jk_den and
+    jk_cnt filled; num and jk_num with 0 sets); ``columns`` is what :func:`_numerators_from_columns`
+    turns any sets' temperatures (M, N) into their numerators with, so sets can come in chunks.
+    Inputs validated, ``weights`` an (N,) array, N >= 2; ``n_sets`` only for the log line.
+    """
+    n, nbins = pos.shape[0], edges.size - 1
+    order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
+    ws = np.ascontiguousarray(weights[order])
     regs = np.ascontiguousarray(reg[order])
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
-    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, %s path", n, m_sets, nbins,
-               numba.get_num_threads(), "linear" if linear else "direct")
+    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, linear path", n, n_sets, nbins,
+               numba.get_num_threads())
     try:
-        ts = np.empty((n, 0)) if linear else np.ascontiguousarray(temps2[:, order].T)   # (N, M)
-        sums = _kernels.pair_sums(xs, us, ts, ws, regs, np.ascontiguousarray(zz[order]),
+        sums = _kernels.pair_sums(xs, us, np.empty((n, 0)), ws, regs, np.ascontiguousarray(zz[order]),
                                   start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
-        if not linear:
-            return sums
         full = _kernels.all_rows(int(rows[-1, 3]))
         if n_jk:
             row_start, row_reg = _kernels.object_rows(regs, start, dims, full, n_jk)
@@ -234,21 +259,16 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
                                             row_start, row_reg, n_jk)
     finally:
         numba.set_num_threads(previous)
-    num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
-    _, den, cnt, zsum, _, jk_den, jk_cnt = sums
-    return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
+    return sums, _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
 
 
-def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20):
-    """Numerators of every set, and of the pairs touching every region, from the per-object sums.
+def _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk) -> tuple:
+    """What every set's numerators are products with: (cols, q, seg, nbins), made once per pass.
 
-    temps2 (M, N) in input order; the other arrays are in cell order (``order`` maps cell order to
-    input order).  Sets are taken in blocks of about ``block_bytes``; for each block the needed
-    columns are gathered once, region by region, so every product is one matrix multiplication
-    on contiguous slices.  A constant added to a set changes no numerator (pair differences), so
-    each set's mean is removed first to keep the products well conditioned.
+    Columns region by region: the region's own tracers (all of w_i W_i), then the tracers outside
+    it with partners inside (their V rows for that region); ``seg`` cuts them.
     """
-    m_sets, n = temps2.shape
+    n = order.size
     nbins = w_obj.shape[1]
     nj = max(n_jk, 1)
     reg_in = np.empty(n, dtype=np.int64)
@@ -260,8 +280,6 @@ def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg
     owner, row_reg, v_obj = owner[used], row_reg[used], v_obj[used]
     row_obj = order[owner]
     vv = v_obj * ws[owner, None]
-    # columns region by region: the region's own tracers (all of w_i W_i), then the tracers
-    # outside it with partners inside (their V rows for that region)
     by_region = np.argsort(reg_in, kind="stable")
     cuts = np.searchsorted(reg_in[by_region], np.arange(nj + 1))
     rows_by_region = np.argsort(row_reg, kind="stable")
@@ -272,9 +290,20 @@ def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg
         cols += [by_region[cuts[k]:cuts[k + 1]], row_obj[rk]]
         q_parts += [ww[by_region[cuts[k]:cuts[k + 1]]], vv[rk]]
         seg += [seg[-1] + cuts[k + 1] - cuts[k], seg[-1] + cuts[k + 1] - cuts[k] + rk.size]
-    cols = np.concatenate(cols)
-    q = np.concatenate(q_parts)
-    seg = np.array(seg)
+    return np.concatenate(cols), np.concatenate(q_parts), np.array(seg), nbins
+
+
+def _numerators_from_columns(temps2, columns, n_jk, *, block_bytes=128 * 2**20):
+    """(num (M, nb), jk_num (max(n_jk, 1), M, nb)) of the sets temps2 (M, N), input order.
+
+    Sets are taken in blocks of about ``block_bytes``; for each block the needed columns are
+    gathered once, so every product is one matrix multiplication on contiguous slices.  A
+    constant added to a set changes no numerator (pair differences), so each set's mean is
+    removed first to keep the products well conditioned.
+    """
+    cols, q, seg, nbins = columns
+    m_sets = temps2.shape[0]
+    nj = max(n_jk, 1)
     num = np.zeros((m_sets, nbins))
     jk_num = np.zeros((nj, m_sets, nbins))
     step = max(1, min(m_sets, int(block_bytes // (8 * max(cols.size, 1)))))
