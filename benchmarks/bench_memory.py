@@ -46,7 +46,7 @@ print(f"PEAK {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 / 1e9:.4
 def peak_of_run(config: Path, code: Path) -> tuple[float, float, str]:
     """(peak RSS GB, wall s, amplitude) of run_pipeline on ``config`` with the package at ``code``."""
     out = subprocess.run([sys.executable, "-c", CHILD, str(config)], capture_output=True, text=True,
-                         env={**os.environ, "PYTHONPATH": str(code)})
+                         env={**os.environ, "PYTHONPATH": str(code)}, cwd=str(code))
     line = [ln for ln in out.stdout.splitlines() if ln.startswith("PEAK ")]
     if out.returncode or not line:
         raise SystemExit(f"run of {config} with {code} failed:\n{out.stderr[-3000:]}")
