@@ -184,7 +184,7 @@ def _cmd_run(args, config_path: Path, default_out: Path, run_log) -> int:
         key_path = _usable_key_path(cfg, out)
         _log.debug("config %s; output folder %s", cfg.source, out)
         _log.debug("pair engine threads: %s", cfg.compute.n_threads or "all cores")
-        progress = Progress(10)  # never quiet: --quiet raises the stderr level, run.log keeps every line
+        progress = Progress(12)  # never quiet: --quiet raises the stderr level, run.log keeps every line
         result = run_pipeline(cfg, progress=progress)
         if cfg.blinding.enabled and not result.extra.get("blinding", {}).get("blinded"):  # not blinded by its input
             from .report.blinding import blind_result

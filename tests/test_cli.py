@@ -236,7 +236,7 @@ def test_stderr_levels_run_log_and_warnings(tiny_survey, capsys):
     assert main(argv) == 0
     printed = capsys.readouterr()
     err = printed.err.splitlines()
-    assert "[1/10] catalogue ..." in err and any(line.startswith("[10/10] writing outputs: done in") for line in err)
+    assert "[1/12] catalogue ..." in err and any(line.startswith("[12/12] writing outputs: done in") for line in err)
     warned = [line.removeprefix("pairvel: warning: ") for line in err if line.startswith("pairvel: warning: ")]
     assert any("has no COORDSYS keyword" in w for w in warned) and any("rotation skipped" in w for w in warned)
     assert not any(line.startswith("pair pass: ") for line in err)            # a DEBUG record
@@ -245,8 +245,8 @@ def test_stderr_levels_run_log_and_warnings(tiny_survey, capsys):
     log = (out / "run.log").read_text().splitlines()
     assert log[0].startswith("# pairvel ") and ": pairvel run " in log[0]
     assert all(STAMPED.match(line) for line in log[1:]), log
-    assert any(line.endswith(" INFO    [1/10] catalogue ...") for line in log)
-    assert any(line.endswith(" INFO    [10/10] writing outputs ...") for line in log)
+    assert any(line.endswith(" INFO    [1/12] catalogue ...") for line in log)
+    assert any(line.endswith(" INFO    [12/12] writing outputs ...") for line in log)
     assert [line.split(" WARNING ", 1)[1] for line in log if " WARNING " in line] == warned
     assert pairvel_logger_state() == state
 
@@ -256,12 +256,12 @@ def test_stderr_levels_run_log_and_warnings(tiny_survey, capsys):
     assert err and all(line.startswith("pairvel: warning: ") for line in err), err
     assert "tau_mean = " in printed.out
     quiet_log = (out / "run.log").read_text()
-    assert " INFO    [1/10] catalogue ..." in quiet_log and " WARNING " in quiet_log
+    assert " INFO    [1/12] catalogue ..." in quiet_log and " WARNING " in quiet_log
     assert pairvel_logger_state() == state
 
     assert main(argv + ["--force", "--verbose", "--debug"]) == 0
     err = capsys.readouterr().err.splitlines()
-    assert "[1/10] catalogue ..." in err
+    assert "[1/12] catalogue ..." in err
     assert any(line.startswith("pair pass: ") and " threads, " in line for line in err)
     assert any(line.startswith("config ") and f"output folder {out}" in line for line in err)
     assert any(line.startswith("pairvel: warning: ") and ".py:" in line and "PairvelWarning: " in line for line in err)

@@ -347,6 +347,10 @@ class BlindingConfig:
 @dataclass(frozen=True)
 class ComputeConfig:
     n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
+    memory_budget_gb: float = _key(0.25, "memory for the temperature sets in flight (GB): null, jackknife and simulated "
+                                         "sets are made and summed in chunks of about this size, so the run's peak "
+                                         "memory does not grow with the number of sets (without a scheduler)",
+                                   bounds=(1e-6, 10000.0))
     scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
                                                "the pair pass over; unset: run in this process")
     n_units: int = _key(16, "spatial work units the pair pass is cut into when a scheduler is used",

@@ -197,7 +197,8 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     (num (M, nb), den, cnt, zsum, jk_num (max(n_jk,1), M, nb), jk_den, jk_cnt).
 
     The sums of disjoint sets of pairs add, which is what lets work units run anywhere.
-    ``method`` is as in :func:`pairwise_momentum`.
+    ``method`` is as in :func:`pairwise_momentum`; "auto" takes the path the cost model of
+    :mod:`pairvel.pairs.pathcost` finds cheaper for this geometry and number of sets.
     """
     n = pos.shape[0]
     nbins = edges.size - 1
@@ -210,28 +211,64 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
                 np.zeros((nj, m_sets, nbins)), np.zeros((nj, nbins)), np.zeros((nj, nbins), np.int64))
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
     order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
-    ws = np.ascontiguousarray(w[order])
     regs = np.ascontiguousarray(reg[order])
     full = _kernels.all_rows(int(rows[-1, 3]))
     linear, layout = _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, edges[-1])
+    if linear:
+        sums, columns = linear_geometry(pos, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads,
+                                        n_sets=m_sets, layout=layout)
+        num, jk_num = _numerators_from_columns(temps2, columns, n_jk)
+        _, den, cnt, zsum, _, jk_den, jk_cnt = sums
+        return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
-    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, %s path", n, m_sets, nbins,
-               numba.get_num_threads(), "linear" if linear else "direct")
+    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, direct path", n, m_sets, nbins,
+               numba.get_num_threads())
     try:
-        ts = np.empty((n, 0)) if linear else np.ascontiguousarray(temps2[:, order].T)   # (N, M)
-        sums = _kernels.pair_sums(xs, us, ts, ws, regs, np.ascontiguousarray(zz[order]),
+        return _kernels.pair_sums(xs, us, np.ascontiguousarray(temps2[:, order].T), np.ascontiguousarray(w[order]),
+                                  regs, np.ascontiguousarray(zz[order]),
                                   start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
-        if not linear:
-            return sums
+    finally:
+        numba.set_num_threads(previous)
+
+
+def linear_is_cheaper(pos, reg, edges, n_jk, m_sets) -> bool:
+    """Whether the cost model picks the linear path for ``m_sets`` sets on these validated inputs."""
+    if pos.shape[0] < 2:
+        return False
+    order, start, dims, rows, _, _ = _prepare(pos, edges[-1])
+    full = _kernels.all_rows(int(rows[-1, 3]))
+    return _choose_path("auto", pos, start, dims, np.ascontiguousarray(reg[order]), full, m_sets, edges.size - 1,
+                        n_jk, edges[-1])[0]
+
+
+def linear_geometry(pos, reg, zz, edges, n_jk, want_z, *, weights, n_threads=None, n_sets=0, layout=None) -> tuple:
+    """The pair pass of the linear path, which needs no temperatures: (sums, columns).
+
+    ``sums`` are the additive sums of :func:`pass_sums` for no set (den, cnt, zsum, jk_den and
+    jk_cnt filled; num and jk_num with 0 sets); ``columns`` is what :func:`_numerators_from_columns`
+    turns any sets' temperatures (M, N) into their numerators with, so sets can come in chunks.
+    Inputs validated, ``weights`` an (N,) array, N >= 2; ``n_sets`` only for the log line;
+    ``layout`` the sparse rows when :func:`_choose_path` made them already.
+    """
+    n, nbins = pos.shape[0], edges.size - 1
+    order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
+    ws = np.ascontiguousarray(weights[order])
+    regs = np.ascontiguousarray(reg[order])
+    full = _kernels.all_rows(int(rows[-1, 3]))
+    previous = numba.get_num_threads()
+    numba.set_num_threads(_threads(n_threads))
+    _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, linear path", n, n_sets, nbins,
+               numba.get_num_threads())
+    try:
+        sums = _kernels.pair_sums(xs, us, np.empty((n, 0)), ws, regs, np.ascontiguousarray(zz[order]),
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
         row_start, row_reg = layout if layout is not None else _row_layout(regs, start, dims, full, n_jk)
         w_obj, v_obj = _kernels.object_sums(xs, us, ws, regs, start, dims, full, edges, _is_uniform(edges),
                                             row_start, row_reg, n_jk)
     finally:
         numba.set_num_threads(previous)
-    num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
-    _, den, cnt, zsum, _, jk_den, jk_cnt = sums
-    return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
+    return sums, _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
 
 
 def _row_layout(regs, start, dims, full, n_jk):
@@ -257,16 +294,13 @@ def _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, r_ma
     return costs.best == "linear", layout
 
 
-def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20):
-    """Numerators of every set, and of the pairs touching every region, from the per-object sums.
+def _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk) -> tuple:
+    """What every set's numerators are products with: (cols, q, seg, nbins), made once per pass.
 
-    temps2 (M, N) in input order; the other arrays are in cell order (``order`` maps cell order to
-    input order).  Sets are taken in blocks of about ``block_bytes``; for each block the needed
-    columns are gathered once, region by region, so every product is one matrix multiplication
-    on contiguous slices.  A constant added to a set changes no numerator (pair differences), so
-    each set's mean is removed first to keep the products well conditioned.
+    Columns region by region: the region's own tracers (all of w_i W_i), then the tracers outside
+    it with partners inside (their V rows for that region); ``seg`` cuts them.
     """
-    m_sets, n = temps2.shape
+    n = order.size
     nbins = w_obj.shape[1]
     nj = max(n_jk, 1)
     reg_in = np.empty(n, dtype=np.int64)
@@ -278,8 +312,6 @@ def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg
     owner, row_reg, v_obj = owner[used], row_reg[used], v_obj[used]
     row_obj = order[owner]
     vv = v_obj * ws[owner, None]
-    # columns region by region: the region's own tracers (all of w_i W_i), then the tracers
-    # outside it with partners inside (their V rows for that region)
     by_region = np.argsort(reg_in, kind="stable")
     cuts = np.searchsorted(reg_in[by_region], np.arange(nj + 1))
     rows_by_region = np.argsort(row_reg, kind="stable")
@@ -290,9 +322,20 @@ def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg
         cols += [by_region[cuts[k]:cuts[k + 1]], row_obj[rk]]
         q_parts += [ww[by_region[cuts[k]:cuts[k + 1]]], vv[rk]]
         seg += [seg[-1] + cuts[k + 1] - cuts[k], seg[-1] + cuts[k + 1] - cuts[k] + rk.size]
-    cols = np.concatenate(cols)
-    q = np.concatenate(q_parts)
-    seg = np.array(seg)
+    return np.concatenate(cols), np.concatenate(q_parts), np.array(seg), nbins
+
+
+def _numerators_from_columns(temps2, columns, n_jk, *, block_bytes=128 * 2**20):
+    """(num (M, nb), jk_num (max(n_jk, 1), M, nb)) of the sets temps2 (M, N), input order.
+
+    Sets are taken in blocks of about ``block_bytes``; for each block the needed columns are
+    gathered once, so every product is one matrix multiplication on contiguous slices.  A
+    constant added to a set changes no numerator (pair differences), so each set's mean is
+    removed first to keep the products well conditioned.
+    """
+    cols, q, seg, nbins = columns
+    m_sets = temps2.shape[0]
+    nj = max(n_jk, 1)
     num = np.zeros((m_sets, nbins))
     jk_num = np.zeros((nj, m_sets, nbins))
     step = max(1, min(m_sets, int(block_bytes // (8 * max(cols.size, 1)))))
