@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .core.cluster import TaskRunner, open_runner
 from .core.constants import C_KM_S, T_CMB_UK
 from .core.errors import InputError, PairvelWarning, TheoryError
 from .core.progress import Progress
@@ -36,6 +37,7 @@ from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_ape
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
+from .maps.tasks import measure_apertures_in_chunks, trend_without_each_region
 from .maps.trend import remove_redshift_trend
 from .model.template import load_power, load_v12_table, template_for_run
 from .model.trendmodel import trend_transfer
@@ -89,8 +91,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     progress = progress or Progress(10, quiet=True)
     truth = read_truth(cfg.run.truth_path) if cfg.run.truth_path else None  # a bad truth file fails before the work
     calib = read_mock_calibration(cfg.covariance.calibration_dir) if cfg.covariance.calibration_dir else None
-    with collect_warnings(lambda: progress.current) as kept:
-        result = run_stages(cfg, progress)
+    with collect_warnings(lambda: progress.current) as kept, compute_runner(cfg) as runner:
+        result = run_stages(cfg, progress, runner)
         if truth is not None:
             result = attach_truth_check(result, truth, path=cfg.run.truth_path)
     if calib is not None:  # per-bin errors against a validation run's mock scatter
@@ -98,20 +100,21 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     return dataclasses.replace(result, warnings=tuple(kept))
 
 
-def run_stages(cfg: Config, progress: Progress) -> RunResult:
-    """The stages of :func:`run_pipeline`, in order."""
+def run_stages(cfg: Config, progress: Progress, runner: TaskRunner | None = None) -> RunResult:
+    """The stages of :func:`run_pipeline`, in order; ``runner`` (:func:`compute_runner`) is where the
+    photometry, the trend re-estimates and the pair pass run (None: in this process)."""
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
     v12_table = load_v12_table(cfg.theory)  # so is a v12 table
     partner = load_partner(cfg)  # the second catalogue of the cross curve, likewise (None without [partner])
 
-    cat, sky, aps, stored = measured_tracers(cfg, progress)
+    cat, sky, aps, stored = measured_tracers(cfg, progress, runner)
     with progress.stage("redshift-trend correction"):
         temps = correct_trend(cfg, aps.temperatures, cat.z)
     with progress.stage("geometry and jackknife regions"):
         positions, regions = geometry_and_regions(cfg, cat, rng, progress)
-        retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg)
+        retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg, runner)
     with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
         random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress)
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
@@ -125,7 +128,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
     stack = TemperatureStack.build(temps, null_sets, retrended, sims)
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
-        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress)
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress, runner)
     with progress.stage("covariance, template and fit"):
         cov = covariance(cfg, pr, stack, positions, temps[0], edges, regions, cat, rng)
         model = template(cfg, pr, edges, cat, positions, power, rng, progress, v12_table=v12_table)
@@ -136,7 +139,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 model.template_uk, n_jk=cov.n_jk, in_fit=model.in_fit,
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
         radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit)
-        spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
+        spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error, runner)
         cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     extra = extra_results(cfg, fit, model, cov, radius_fits, sky, rotations, spread, cat=cat, positions=positions,
                           temps=temps[0], regions=regions, edges=edges, power=power, progress=progress,
@@ -178,7 +181,7 @@ class Apertures:
     n_dropped: int            # tracers whose aperture was unusable (maps.photometry.DROP_REASONS)
 
 
-def measured_tracers(cfg: Config, progress: Progress):
+def measured_tracers(cfg: Config, progress: Progress, runner: TaskRunner | None = None):
     """The used tracers, the map and their raw aperture temperatures: from catalogue + map, or from the
     tracer table of an earlier run (``restart.table_path``, then the map is None).
 
@@ -193,7 +196,7 @@ def measured_tracers(cfg: Config, progress: Progress):
     with progress.stage("sky map"):
         sky = prepare_map(cfg, progress)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress)
+        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress, runner)
     return cat, sky, aps, None
 
 
@@ -218,12 +221,18 @@ def prepare_map(cfg: Config, progress: Progress) -> SkyInputs:
     return SkyInputs(skymap, combination, dipole_fit, prefilter)
 
 
-def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress) -> tuple[Catalogue, Apertures]:
-    """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted."""
+def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress,
+                    runner: TaskRunner | None = None) -> tuple[Catalogue, Apertures]:
+    """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted.
+    On a Dask cluster (``runner``) the tracers are measured in chunks, with the same result."""
     options = photometry_options(cfg, cat.z)
     scale = options["radius_scale"]  # None for fixed angular radii
-    res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
-                            progress=progress.counter("apertures"))
+    if runner is not None and runner.distributed:
+        res = measure_apertures_in_chunks(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
+                                          runner=runner)
+    else:
+        res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
+                                progress=progress.counter("apertures"))
     usable = res.usable
     n_dropped = int((~usable).sum())
     why = ", ".join(f"{n} {reason}" for reason, n in _counts(res.drop_reason[~usable], DROP_REASONS).items() if n)
@@ -390,7 +399,7 @@ def geometry_and_regions(cfg: Config, cat: Catalogue, rng, progress: Progress) -
     return positions, regions
 
 
-def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
+def retrended_sets(temps_raw, z, regions, cfg: Config, runner: TaskRunner | None = None) -> np.ndarray:
     """Set r n_jk + k: the temperatures of radius r with the redshift trend estimated from the
     tracers outside region k (region k's own tracers, whose pairs the jackknife sample drops, are
     set to 0).  ``temps_raw`` (n_radii, N).
@@ -400,12 +409,15 @@ def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
     errors of p(r) by up to ~2.8x at 300 Mpc.  Without the re-estimate (trend correction or
     ``jackknife_retrend`` off) the tracer-split jackknife (``jackknife_deletes = "tracers"``) still
     needs set k, the corrected temperatures zeroed in region k; the pair-deleting one then needs
-    none: empty (0, N).
+    none: empty (0, N).  On a Dask cluster (``runner``) the regions' re-estimates are tasks.
     """
     n, n_jk = z.size, int(regions.max()) + 1
     retrend = cfg.trend.enabled and cfg.covariance.jackknife_retrend
     if not (retrend or cfg.covariance.jackknife_deletes == "tracers"):
         return np.zeros((0, n))
+    if retrend and runner is not None and runner.distributed:
+        return trend_without_each_region(temps_raw, z, regions, sigma_z=cfg.trend.sigma_z,
+                                         runner=runner).reshape(-1, n)
     once = None if retrend else correct_trend(cfg, temps_raw, z)  # the tracer split alone: zero region k
     out = np.zeros((temps_raw.shape[0], n_jk, n))
     for k in range(n_jk):
@@ -569,12 +581,20 @@ class TemperatureStack:
         return self.values.shape[0]
 
 
-def pair_pass(cfg: Config, positions, values, edges, regions, cat: Catalogue, progress: Progress):
-    """One pass over every pair for every temperature set, locally or on a Dask scheduler."""
-    if cfg.compute.scheduler_address:
+def compute_runner(cfg: Config):
+    """Context manager: the :class:`~pairvel.core.cluster.TaskRunner` of ``[compute]``, a Dask cluster when
+    a scheduler is configured, else this process."""
+    cc = cfg.compute
+    return open_runner(cc.scheduler_address, scheduler_file=cc.scheduler_file, worker_wait_s=cc.worker_wait_s)
+
+
+def pair_pass(cfg: Config, positions, values, edges, regions, cat: Catalogue, progress: Progress,
+              runner: TaskRunner | None = None):
+    """One pass over every pair for every temperature set, locally or as work units on a Dask cluster."""
+    if runner is not None and runner.distributed:
         pr = pairwise_momentum_units(positions, values, edges, regions=regions, redshifts=cat.z,
                                      weights=cat.weight, n_units=cfg.compute.n_units,
-                                     scheduler=cfg.compute.scheduler_address, n_threads=cfg.compute.n_threads)
+                                     scheduler=runner, n_threads=cfg.compute.n_threads)
     else:
         pr = pairwise_momentum(positions, values, edges, regions=regions, redshifts=cat.z,
                                weights=cat.weight, n_threads=cfg.compute.n_threads)
@@ -733,7 +753,7 @@ def significance(fit, model: TemplateResult, cov: CovarianceResult, pr, stack: T
 
 
 def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps, cov: CovarianceResult,
-                       model: TemplateResult, quoted_error: float) -> dict | None:
+                       model: TemplateResult, quoted_error: float, runner: TaskRunner | None = None) -> dict | None:
     """tau_mean refitted with the jackknife covariance of k-means regions drawn with other seeds.
 
     Entry 0 is the run's own regions (``cov.jackknife``); each of ``covariance.extra_region_seeds``
@@ -752,9 +772,9 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
     fits, skipped = [refit(cov.jackknife, cov.n_jk)], 0
     for gen in derived_generators(cfg.run.seed, "jackknife region seeds", cc.extra_region_seeds):
         regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=gen)
-        stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg),
+        stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg, runner),
                                        np.zeros((0, len(cat))))
-        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet)
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet, runner)
         p_jk = _jackknife_rows(cfg, pr, stack, cc.n_regions)[0]
         if not np.all(np.isfinite(p_jk)):
             skipped += 1

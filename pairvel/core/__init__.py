@@ -16,4 +16,4 @@ import logging
 
 logging.getLogger("pairvel").addHandler(logging.NullHandler())
 
-__all__ = ["constants", "errors", "plotstyle", "progress", "provenance", "rng", "sphere", "warnlog"]
+__all__ = ["cluster", "constants", "errors", "plotstyle", "progress", "provenance", "rng", "sphere", "warnlog"]

@@ -302,10 +302,15 @@ class BlindingConfig:
 @dataclass(frozen=True)
 class ComputeConfig:
     n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
-    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
-                                               "the pair pass over; unset: run in this process")
-    n_units: int = _key(16, "spatial work units the pair pass is cut into when a scheduler is used",
-                        bounds=(1, 100000))
+    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to run the "
+                                               "photometry, trend re-estimates and pair pass on; unset: run in this "
+                                               "process")
+    scheduler_file: Path | None = _key(None, "scheduler file written by `dask scheduler --scheduler-file` (instead "
+                                             "of scheduler_address)")
+    n_units: int | None = _key(None, "spatial work units of the pair pass on a scheduler; unset: 3 per worker, "
+                                     "capped so that every slab is at least r_max thick", bounds=(1, 100000))
+    worker_wait_s: float = _key(120.0, "seconds a run on a scheduler waits with no worker before it fails",
+                                bounds=(0.0, 86400.0))
 
 
 @dataclass(frozen=True)
@@ -718,6 +723,8 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
                                          f"{ap.beam_fwhm_arcmin:g} and {pf.beam_fwhm_arcmin:g}")
     if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
+    if cfg.compute.scheduler_address and cfg.compute.scheduler_file is not None:
+        bad("compute.scheduler_file", "and compute.scheduler_address are both set; keep one")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
         bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
 

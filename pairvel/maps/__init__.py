@@ -12,4 +12,4 @@ files and the private ``_aperture_kernels``) is its HEALPix implementation.
 """
 
 __all__ = ["channels", "harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
-           "trend"]
+           "tasks", "trend"]

@@ -194,12 +194,16 @@ def _validate(positions, temperatures, edges, regions, redshifts, weights=None):
     return pos, temps2, single, edges, reg, n_jk, zz, want_z, w
 
 
-def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_threads=None, method="auto") -> tuple:
+def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_threads=None, method="auto",
+              columns=None) -> tuple:
     """One pass of the compiled engine over validated inputs; returns the additive sums
     (num (M, nb), den, cnt, zsum, jk_num (max(n_jk,1), M, nb), jk_den, jk_cnt).
 
     The sums of disjoint sets of pairs add, which is what lets work units run anywhere.
-    ``method`` is as in :func:`pairwise_momentum`.
+    ``method`` is as in :func:`pairwise_momentum`.  ``columns`` (x0, x1) keeps only the pairs
+    owned by the cells of columns x0 <= cx < x1 along the first axis of the grid of
+    ``_kernels.build_cells(pos, edges[-1])`` (None: all); ranges that tile the columns give sums
+    that add up to the whole pass.
     """
     n = pos.shape[0]
     nbins = edges.size - 1
@@ -213,6 +217,8 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
     linear = method == "linear" or (method == "auto" and m_sets >= LINEAR_MIN_SETS)
     order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
+    plane = int(dims[1] * dims[2])
+    cell_lo, cell_hi = (0, start.size - 1) if columns is None else (int(columns[0]) * plane, int(columns[1]) * plane)
     ws = np.ascontiguousarray(w[order])
     regs = np.ascontiguousarray(reg[order])
     previous = numba.get_num_threads()
@@ -222,7 +228,7 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     try:
         ts = np.empty((n, 0)) if linear else np.ascontiguousarray(temps2[:, order].T)   # (N, M)
         sums = _kernels.pair_sums(xs, us, ts, ws, regs, np.ascontiguousarray(zz[order]),
-                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z, cell_lo, cell_hi)
         if not linear:
             return sums
         full = _kernels.all_rows(int(rows[-1, 3]))
@@ -231,7 +237,7 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
         else:
             row_start, row_reg = np.zeros(n + 1, dtype=np.int64), np.zeros(0, dtype=np.int64)
         w_obj, v_obj = _kernels.object_sums(xs, us, ws, regs, start, dims, full, edges, _is_uniform(edges),
-                                            row_start, row_reg, n_jk)
+                                            row_start, row_reg, n_jk, cell_lo, cell_hi)
     finally:
         numba.set_num_threads(previous)
     num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
