@@ -89,24 +89,43 @@ def test_task_graph_does_not_grow_with_the_number_of_tracers(cluster):
     assert sizes[0] == sizes[1] < 4096  # common practice: a graph of a few hundred bytes per task
 
 
-def test_a_lost_worker_is_survived_and_no_worker_at_all_is_one_clear_error():
-    distributed = pytest.importorskip("dask.distributed")
+def test_a_worker_lost_in_the_middle_of_a_run_is_survived(cluster, tmp_path):
+    """The first unit to start kills its worker process; the scheduler reruns it on the other worker,
+    which holds the broadcast data too."""
+    _, client = cluster
+    marker = tmp_path / "a-worker-died"
+
+    def unit_that_kills_its_worker_once(*args):
+        import os
+
+        if not marker.exists():
+            marker.touch()
+            os._exit(1)
+        return unit_sums(*args)
+
     pos, temps, reg, z = survey(3000)
     edges = np.linspace(0, 80, 9)
     ref = pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z)
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+    runner = TaskRunner(client, worker_wait_s=30)
+    plan = plan_units(pos, edges[-1], n_units=3)
+    shared = runner.share((np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None))
+    parts = runner.run(unit_that_kills_its_worker_once, [(shared, cols, edges, 9, True, 1, "auto")
+                                                          for cols in plan.columns])
+    assert marker.exists()
+    np.testing.assert_array_equal(sum(p[2] for p in parts), ref.pair_counts)  # every pair once: analytic
+
+
+def test_no_worker_at_all_is_one_clear_error():
+    distributed = pytest.importorskip("dask.distributed")
+    pos, temps, reg, z = survey(500)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                                   dashboard_address=None) as local, distributed.Client(local) as client:
-        with open_runner(client, worker_wait_s=3.0) as runner:
-            runner.client.run(lambda: None)  # both workers up
-            local.scale(1)
-            client.wait_for_workers(1)
-            assert_same(pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, n_units=4,
-                                                scheduler=runner), ref)
+        with open_runner(client, worker_wait_s=1.0) as runner:
             shared = runner.share((pos, temps, reg, z, None))
             local.scale(0)
             with pytest.raises(ClusterError, match=r"workers holding this run's shared data are gone \(0 workers"):
-                runner.run(unit_sums, [(shared, (0, 2), edges, 9, True, 1, "auto")])
-            with pytest.raises(ClusterError, match=r"no Dask worker left on the cluster for 3 s \(1 of 1 tasks unf"):
+                runner.run(unit_sums, [(shared, (0, 2), np.linspace(0, 80, 9), 9, True, 1, "auto")])
+            with pytest.raises(ClusterError, match=r"no Dask worker left on the cluster for 1 s \(1 of 1 tasks unf"):
                 runner.run(np.add, [(1, 2)])
-            with pytest.raises(ClusterError, match=r"for 3 s \(the shared data could not be sent\); start workers"):
+            with pytest.raises(ClusterError, match=r"for 1 s \(the shared data could not be sent\); start workers"):
                 runner.share(pos)

@@ -1,0 +1,101 @@
+"""The pair pass as work units on a two-worker Dask LocalCluster against the same pass in this process.
+
+    .venv/bin/python benchmarks/bench_dask.py                     # demo catalogue, 84 sets, 50 regions
+    .venv/bin/python benchmarks/bench_dask.py --sets 300 --workers 2 --repeat 3
+
+Prints the local time (all numba threads), the Dask time (``--workers`` workers of one thread, each
+unit on one numba thread), their ratio, and per unit: its grid columns, slab thickness in r_max,
+pairs summed and estimated cost share; then the bytes moved (the broadcast tracer data times the
+workers, and the sums sent back).  Both timings are the best of ``--repeat`` after a warm-up run
+(numba loads its cache in each worker on first use).  On a shared machine the figures move with the
+load: run it on an otherwise idle one.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+from pathlib import Path
+
+import numpy as np
+
+from pairvel.input.catalogue import load_catalogue
+from pairvel.input.config import load_config
+from pairvel.pairs.distributed import UNITS_PER_WORKER, plan_units, unit_parts, unit_sums
+from pairvel.pairs.estimator import pairwise_momentum
+from pairvel.pairs.geometry import comoving_positions
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def demo_tracers():
+    cfg = load_config(ROOT / "configs" / "demo.toml")
+    cat = load_catalogue(cfg.catalogue)
+    return comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology), cat.z, cfg.bins.edges()
+
+
+def best_of(repeat, fn):
+    times, out = [], None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return min(times), out
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sets", type=int, default=84, help="temperature sets (the demo run has 84)")
+    ap.add_argument("--regions", type=int, default=50)
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--units", type=int, default=None, help="work units (default: 3 per worker, r_max-capped)")
+    ap.add_argument("--repeat", type=int, default=2)
+    args = ap.parse_args(argv)
+    from dask.distributed import Client, LocalCluster
+
+    pos, z, edges = demo_tracers()
+    rng = np.random.default_rng(1)
+    temps = rng.normal(0, 30, (args.sets, pos.shape[0]))
+    reg = rng.integers(0, args.regions, pos.shape[0])
+    print(f"{pos.shape[0]} tracers (demo catalogue), {args.sets} sets, {args.regions} regions, "
+          f"r_max {edges[-1]:g} Mpc, extent {np.ptp(pos, axis=0).round(0).tolist()} Mpc")
+    pairwise_momentum(pos[:500], temps[:, :500], edges, regions=reg[:500], redshifts=z[:500])  # warm-up
+    t_local, ref = best_of(args.repeat, lambda: pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z))
+    with LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster, Client(cluster) as client:
+        def on_dask():
+            return unit_parts(pos, temps, edges, regions=reg, redshifts=z, n_units=args.units, runner=client,
+                              n_threads=1)
+
+        unit_parts(pos[:500], temps[:, :500], edges, regions=reg[:500], redshifts=z[:500], runner=client,
+                   n_threads=1)  # warm-up
+        t_dask, (parts, plan, (*_, shared_bytes)) = best_of(args.repeat, on_dask)
+    pairs = [int(p[2].sum()) for p in parts]
+    assert sum(pairs) == int(ref.pair_counts.sum())
+    back = sum(sum(a.nbytes for a in p) for p in parts)
+    print(f"local (all numba threads): {t_local:.2f} s   Dask ({args.workers} workers x 1 thread): {t_dask:.2f} s   "
+          f"ratio Dask/local {t_dask / t_local:.2f}")
+    print("unit  columns   thickness/r_max  pairs        share of pairs  estimated cost")
+    for u, ((a, b), n, c) in enumerate(zip(plan.columns, pairs, plan.cost)):
+        print(f"{u:4d}  {a:3d}-{b:<3d}   {(b - a) / plan.columns_per_r_max:8.2f}        {n:>11,}  "
+              f"{n / sum(pairs):8.3f}        {c:8.3f}")
+    data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None)
+    t_fixed, _ = best_of(args.repeat, lambda: unit_sums(data, (0, 0), edges, args.regions, True, 1, "auto"))
+    t_pairs = t_dask * args.workers - len(parts) * t_fixed  # single-thread seconds of pair work in all units
+    print(f"per-unit fixed cost (cell sort of all tracers, sets reordered; no pairs): {t_fixed:.2f} s; "
+          f"pair work {t_pairs / sum(pairs) * 1e9:.0f} ns per pair and thread")
+    print("model for W workers, 3 units per worker at equal cost (capped by the r_max-thick slabs): "
+          "t_W = (pair work + U x fixed) / W, bounded below by the largest unit")
+    for w in (1, 2, 4, 8, 16):
+        cap = plan_units(pos, edges[-1], n_workers=w)
+        largest = max(cap.cost) * t_pairs + t_fixed
+        t_w = max((t_pairs + len(cap.columns) * t_fixed) / w, largest)
+        print(f"  W={w:3d}: {len(cap.columns):3d} units (at most {UNITS_PER_WORKER * w}), "
+              f"predicted {t_w:6.2f} s, speed-up over one worker {(t_pairs + t_fixed) / t_w:5.2f}")
+    print(f"moved: tracer data {shared_bytes / 2**20:.1f} MiB broadcast to {args.workers} workers "
+          f"({args.workers * shared_bytes / 2**20:.1f} MiB); sums back {back / 2**20:.2f} MiB "
+          f"({back / len(parts) / 2**20:.2f} MiB per unit)")
+
+
+if __name__ == "__main__":
+    main()
