@@ -7,21 +7,27 @@ Prints the local time (all numba threads), the Dask time (``--workers`` workers 
 unit on one numba thread), their ratio, and per unit: its grid columns, slab thickness in r_max,
 pairs summed and estimated cost share; then the bytes moved (the broadcast tracer data times the
 workers, and the sums sent back).  Both timings are the best of ``--repeat`` after a warm-up run
-(numba loads its cache in each worker on first use).  On a shared machine the figures move with the
-load: run it on an otherwise idle one.
+(numba loads its cache in each worker on first use).  On a shared machine wall times move with the
+load, so CPU seconds are printed too: the local process's, and each unit's own (the thread time of
+its task on the worker).  The busiest worker's CPU seconds (units dealt costliest first) over the
+local CPU seconds per thread is the ratio an idle machine would show; the speed-up model for W
+workers is made from the same CPU seconds.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import time
 from pathlib import Path
 
+import numba
 import numpy as np
 
 from pairvel.input.catalogue import load_catalogue
 from pairvel.input.config import load_config
-from pairvel.pairs.distributed import UNITS_PER_WORKER, plan_units, unit_parts, unit_sums
+from pairvel.core.cluster import TaskRunner
+from pairvel.pairs.distributed import UNITS_PER_WORKER, plan_units, unit_sums
 from pairvel.pairs.estimator import pairwise_momentum
 from pairvel.pairs.geometry import comoving_positions
 
@@ -34,13 +40,42 @@ def demo_tracers():
     return comoving_positions(cat.ra, cat.dec, cat.z, cosmo=cfg.cosmology), cat.z, cfg.bins.edges()
 
 
-def best_of(repeat, fn):
-    times, out = [], None
+def best_of(repeat, fn, cpu=time.process_time):
+    """Best wall time of ``repeat`` calls, the CPU seconds ``cpu()`` counted during that call, and its result."""
+    best, out = (np.inf, None), None
     for _ in range(repeat):
-        t0 = time.perf_counter()
+        c0, t0 = cpu(), time.perf_counter()
         out = fn()
-        times.append(time.perf_counter() - t0)
-    return min(times), out
+        wall = time.perf_counter() - t0
+        if wall < best[0]:
+            best = (wall, np.subtract(cpu(), c0))
+    return best[0], best[1], out
+
+
+def timed_unit(*args):
+    """:func:`unit_sums` and the CPU seconds of the thread that ran it (the unit's own work)."""
+    t0 = time.thread_time()
+    out = unit_sums(*args)
+    return out, time.thread_time() - t0
+
+
+def on_cluster(client, pos, temps, edges, reg, z, n_units):
+    """The units of :func:`unit_parts`, each timed on its worker; returns (parts, unit CPU s, plan, shared bytes)."""
+    runner = TaskRunner(client)
+    plan = plan_units(pos, edges[-1], n_units=n_units, n_workers=runner.n_workers())
+    data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None)
+    shared = runner.share(data)
+    done = runner.run(timed_unit, [(shared, cols, edges, int(reg.max()) + 1, True, 1, "auto")
+                                   for cols in plan.columns])
+    return [d[0] for d in done], np.array([d[1] for d in done]), plan, sum(a.nbytes for a in data if a is not None)
+
+
+def busiest(unit_cpu, n_workers):
+    """CPU seconds of the busiest worker when units start costliest first on the first free worker."""
+    load = np.zeros(n_workers)
+    for c in sorted(unit_cpu, reverse=True):
+        load[np.argmin(load)] += c
+    return load.max()
 
 
 def main(argv=None):
@@ -60,32 +95,34 @@ def main(argv=None):
     print(f"{pos.shape[0]} tracers (demo catalogue), {args.sets} sets, {args.regions} regions, "
           f"r_max {edges[-1]:g} Mpc, extent {np.ptp(pos, axis=0).round(0).tolist()} Mpc")
     pairwise_momentum(pos[:500], temps[:, :500], edges, regions=reg[:500], redshifts=z[:500])  # warm-up
-    t_local, ref = best_of(args.repeat, lambda: pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z))
+    t_local, cpu_local, ref = best_of(args.repeat,
+                                      lambda: pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z))
     with LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None) as cluster, Client(cluster) as client:
-        def on_dask():
-            return unit_parts(pos, temps, edges, regions=reg, redshifts=z, n_units=args.units, runner=client,
-                              n_threads=1)
-
-        unit_parts(pos[:500], temps[:, :500], edges, regions=reg[:500], redshifts=z[:500], runner=client,
-                   n_threads=1)  # warm-up
-        t_dask, (parts, plan, (*_, shared_bytes)) = best_of(args.repeat, on_dask)
+        on_cluster(client, pos[:500], temps[:, :500], edges, reg[:500], z[:500], None)  # warm-up
+        t_dask, _, (parts, unit_cpu, plan, shared_bytes) = best_of(
+            args.repeat, lambda: on_cluster(client, pos, temps, edges, reg, z, args.units))
     pairs = [int(p[2].sum()) for p in parts]
     assert sum(pairs) == int(ref.pair_counts.sum())
     back = sum(sum(a.nbytes for a in p) for p in parts)
     print(f"local (all numba threads): {t_local:.2f} s   Dask ({args.workers} workers x 1 thread): {t_dask:.2f} s   "
           f"ratio Dask/local {t_dask / t_local:.2f}")
-    print("unit  columns   thickness/r_max  pairs        share of pairs  estimated cost")
-    for u, ((a, b), n, c) in enumerate(zip(plan.columns, pairs, plan.cost)):
+    n_local = min(numba.config.NUMBA_NUM_THREADS, os.cpu_count() or 1)
+    top = busiest(unit_cpu, args.workers)
+    print(f"CPU seconds: local {cpu_local:.2f} on {n_local} threads; units {unit_cpu.sum():.2f} in all, busiest "
+          f"worker {top:.2f}; busiest worker / (local / {n_local}) = {top / (cpu_local / n_local):.2f}, the ratio "
+          f"an idle machine would show")
+    print("unit  columns   thickness/r_max  pairs        share of pairs  estimated cost  CPU s")
+    for u, ((a, b), n, c, t) in enumerate(zip(plan.columns, pairs, plan.cost, unit_cpu)):
         print(f"{u:4d}  {a:3d}-{b:<3d}   {(b - a) / plan.columns_per_r_max:8.2f}        {n:>11,}  "
-              f"{n / sum(pairs):8.3f}        {c:8.3f}")
+              f"{n / sum(pairs):8.3f}        {c:8.3f}        {t:6.2f}")
     data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None)
-    t_fixed, _ = best_of(args.repeat, lambda: unit_sums(data, (0, 0), edges, args.regions, True, 1, "auto"))
-    t_pairs = t_dask * args.workers - len(parts) * t_fixed  # single-thread seconds of pair work in all units
-    print(f"per-unit fixed cost (cell sort of all tracers, sets reordered; no pairs): {t_fixed:.2f} s; "
+    _, t_fixed, _ = best_of(args.repeat, lambda: unit_sums(data, (0, 0), edges, args.regions, True, 1, "auto"))
+    t_pairs = unit_cpu.sum() - len(parts) * t_fixed  # CPU seconds of pair work in all units
+    print(f"per-unit fixed cost (cell sort of all tracers, sets reordered; no pairs): {t_fixed:.2f} CPU s; "
           f"pair work {t_pairs / sum(pairs) * 1e9:.0f} ns per pair and thread")
-    print("model for W workers, 3 units per worker at equal cost (capped by the r_max-thick slabs): "
-          "t_W = (pair work + U x fixed) / W, bounded below by the largest unit")
+    print("model for W one-thread workers, 3 units per worker at equal cost (capped by the r_max-thick "
+          "slabs), from the CPU seconds: t_W = (pair work + U x fixed) / W, at least the largest unit")
     for w in (1, 2, 4, 8, 16):
         cap = plan_units(pos, edges[-1], n_workers=w)
         largest = max(cap.cost) * t_pairs + t_fixed

@@ -1,21 +1,17 @@
 """The whole run on a real Dask LocalCluster gives the numbers of the run in this process."""
 
 import numpy as np
-import pytest
 
 from conftest import TINY_CONFIG
 from pairvel.input.config import load_config
 from pairvel.pipeline import run_pipeline
 
 
-def test_run_on_a_local_cluster_equals_the_run_in_this_process(tiny_survey):
-    distributed = pytest.importorskip("dask.distributed")
+def test_run_on_a_local_cluster_equals_the_run_in_this_process(tiny_survey, dask_cluster):
     local = run_pipeline(load_config(tiny_survey / "run.toml"))
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as cluster:
-        (tiny_survey / "dask.toml").write_text(TINY_CONFIG + f'\n[compute]\nscheduler_address = '
-                                                             f'"{cluster.scheduler_address}"\nn_threads = 1\n')
-        spread = run_pipeline(load_config(tiny_survey / "dask.toml"))
+    (tiny_survey / "dask.toml").write_text(TINY_CONFIG + f'\n[compute]\nscheduler_address = '
+                                                         f'"{dask_cluster[0].scheduler_address}"\nn_threads = 1\n')
+    spread = run_pipeline(load_config(tiny_survey / "dask.toml"))
     assert spread.n_tracers == local.n_tracers and spread.selection == local.selection
     np.testing.assert_array_equal(spread.pair_counts, local.pair_counts)
     np.testing.assert_array_equal(spread.tracers["t_raw_uK"], local.tracers["t_raw_uK"])  # same apertures, bit for bit

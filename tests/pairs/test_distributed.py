@@ -22,12 +22,9 @@ def assert_same(a, b):
         np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-12, atol=0)
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    distributed = pytest.importorskip("dask.distributed")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as local, distributed.Client(local) as client:
-        yield local, client
+@pytest.fixture
+def cluster(dask_cluster):
+    return dask_cluster  # tests/conftest.py: one LocalCluster for every Dask test
 
 
 @pytest.mark.parametrize("n_units", [None, 2, 40])
