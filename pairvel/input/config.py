@@ -725,6 +725,9 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
     if cfg.compute.scheduler_address and cfg.compute.scheduler_file is not None:
         bad("compute.scheduler_file", "and compute.scheduler_address are both set; keep one")
+    if cfg.compute.scheduler_file is not None and not Path(cfg.compute.scheduler_file).is_file():
+        bad("compute.scheduler_file", f"must be the file `dask scheduler --scheduler-file` wrote; "
+                                      f"{cfg.compute.scheduler_file} does not exist (start the scheduler first)")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
         bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
 
