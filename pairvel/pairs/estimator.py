@@ -240,19 +240,22 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
                                             row_start, row_reg, n_jk, cell_lo, cell_hi)
     finally:
         numba.set_num_threads(previous)
-    num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
+    num, jk_num = _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk,
+                                     objects=None if columns is None else slice(start[cell_lo], start[cell_hi]))
     _, den, cnt, zsum, _, jk_den, jk_cnt = sums
     return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
 
 
-def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20):
+def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, block_bytes=128 * 2**20,
+                       objects=None):
     """Numerators of every set, and of the pairs touching every region, from the per-object sums.
 
     temps2 (M, N) in input order; the other arrays are in cell order (``order`` maps cell order to
     input order).  Sets are taken in blocks of about ``block_bytes``; for each block the needed
     columns are gathered once, region by region, so every product is one matrix multiplication
     on contiguous slices.  A constant added to a set changes no numerator (pair differences), so
-    each set's mean is removed first to keep the products well conditioned.
+    each set's mean is removed first to keep the products well conditioned.  ``objects`` (a slice in
+    cell order) limits the columns to those objects, the only ones a work unit gave sums to.
     """
     m_sets, n = temps2.shape
     nbins = w_obj.shape[1]
@@ -269,6 +272,10 @@ def _linear_numerators(temps2, order, ws, regs, w_obj, v_obj, row_start, row_reg
     # columns region by region: the region's own tracers (all of w_i W_i), then the tracers
     # outside it with partners inside (their V rows for that region)
     by_region = np.argsort(reg_in, kind="stable")
+    if objects is not None:  # a work unit: the other objects' W are 0
+        mine = np.zeros(n, dtype=bool)
+        mine[order[objects]] = True
+        by_region = by_region[mine[by_region]]
     cuts = np.searchsorted(reg_in[by_region], np.arange(nj + 1))
     rows_by_region = np.argsort(row_reg, kind="stable")
     row_cuts = np.searchsorted(row_reg[rows_by_region], np.arange(nj + 1))

@@ -1,5 +1,7 @@
 """Work units in-process and on a real Dask LocalCluster equal the single pass."""
 
+import json
+
 import numpy as np
 import pytest
 
@@ -59,15 +61,20 @@ def test_units_with_weights_and_many_sets_on_the_linear_path():
         np.testing.assert_allclose(getattr(got, name), getattr(ref, name), rtol=1e-9, atol=0)
 
 
-def test_dask_local_cluster_equals_single_pass(cluster):
+def test_dask_local_cluster_equals_single_pass(cluster, tmp_path):
     local, client = cluster
     pos, temps, reg, z = survey()
     edges = np.linspace(5, 100, 12)
     ref = pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z)
     got = pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, n_units=6, scheduler=client)
     by_address = pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, scheduler=local.scheduler_address)
+    (tmp_path / "sched.json").write_text(json.dumps({"address": local.scheduler_address}))  # as `dask scheduler` writes
+    with open_runner(scheduler_file=tmp_path / "sched.json", worker_wait_s=30) as runner:
+        assert runner.n_workers() == 2
+        by_file = pairwise_momentum_units(pos, temps, edges, regions=reg, redshifts=z, scheduler=runner)
     assert_same(got, ref)
     assert_same(by_address, ref)
+    assert_same(by_file, ref)
 
 
 def test_task_graph_does_not_grow_with_the_number_of_tracers(cluster):
