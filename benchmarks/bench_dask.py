@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import os
 import time
+import warnings
 from pathlib import Path
 
 import numba
@@ -27,7 +28,7 @@ import numpy as np
 from pairvel.input.catalogue import load_catalogue
 from pairvel.input.config import load_config
 from pairvel.core.cluster import TaskRunner
-from pairvel.pairs.distributed import UNITS_PER_WORKER, plan_units, unit_sums
+from pairvel.pairs.distributed import UNITS_PER_WORKER, plan_units, run_units, unit_sums
 from pairvel.pairs.estimator import pairwise_momentum
 from pairvel.pairs.geometry import comoving_positions
 
@@ -60,14 +61,10 @@ def timed_unit(*args):
 
 
 def on_cluster(client, pos, temps, edges, reg, z, n_units):
-    """The units of :func:`unit_parts`, each timed on its worker; returns (parts, unit CPU s, plan, shared bytes)."""
-    runner = TaskRunner(client)
-    plan = plan_units(pos, edges[-1], n_units=n_units, n_workers=runner.n_workers())
-    data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None)
-    shared = runner.share(data)
-    done = runner.run(timed_unit, [(shared, cols, edges, int(reg.max()) + 1, True, 1, "auto")
-                                   for cols in plan.columns])
-    return [d[0] for d in done], np.array([d[1] for d in done]), plan, sum(a.nbytes for a in data if a is not None)
+    """The units of the pass, each timed on its worker; returns (sums, unit CPU s, plan)."""
+    done, plan = run_units(TaskRunner(client), (pos, temps, reg, z, None), edges, int(reg.max()) + 1, True,
+                           n_units=n_units, n_threads=1, task=timed_unit)
+    return [d[0] for d in done], np.array([d[1] for d in done]), plan
 
 
 def busiest(unit_cpu, n_workers):
@@ -100,8 +97,11 @@ def main(argv=None):
     with LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None) as cluster, Client(cluster) as client:
         on_cluster(client, pos[:500], temps[:, :500], edges, reg[:500], z[:500], None)  # warm-up
-        t_dask, _, (parts, unit_cpu, plan, shared_bytes) = best_of(
-            args.repeat, lambda: on_cluster(client, pos, temps, edges, reg, z, args.units))
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            t_dask, _, (parts, unit_cpu, plan) = best_of(
+                args.repeat, lambda: on_cluster(client, pos, temps, edges, reg, z, args.units))
+    large = sum("large graph" in str(w.message) for w in caught)
     pairs = [int(p[2].sum()) for p in parts]
     assert sum(pairs) == int(ref.pair_counts.sum())
     back = sum(sum(a.nbytes for a in p) for p in parts)
@@ -117,6 +117,7 @@ def main(argv=None):
         print(f"{u:4d}  {a:3d}-{b:<3d}   {(b - a) / plan.columns_per_r_max:8.2f}        {n:>11,}  "
               f"{n / sum(pairs):8.3f}        {c:8.3f}        {t:6.2f}")
     data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None)
+    shared_bytes = sum(a.nbytes for a in data if a is not None)
     _, t_fixed, _ = best_of(args.repeat, lambda: unit_sums(data, (0, 0), edges, args.regions, True, 1, "auto"))
     t_pairs = unit_cpu.sum() - len(parts) * t_fixed  # CPU seconds of pair work in all units
     print(f"per-unit fixed cost (cell sort of all tracers, sets reordered; no pairs): {t_fixed:.2f} CPU s; "
@@ -129,6 +130,7 @@ def main(argv=None):
         t_w = max((t_pairs + len(cap.columns) * t_fixed) / w, largest)
         print(f"  W={w:3d}: {len(cap.columns):3d} units (at most {UNITS_PER_WORKER * w}), "
               f"predicted {t_w:6.2f} s, speed-up over one worker {(t_pairs + t_fixed) / t_w:5.2f}")
+    print(f"'large graph' warnings from Dask: {large}")
     print(f"moved: tracer data {shared_bytes / 2**20:.1f} MiB broadcast to {args.workers} workers "
           f"({args.workers * shared_bytes / 2**20:.1f} MiB); sums back {back / 2**20:.2f} MiB "
           f"({back / len(parts) / 2**20:.2f} MiB per unit)")

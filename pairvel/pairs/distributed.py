@@ -22,7 +22,7 @@ sort of all tracers; the speed-up on W workers approaches min(U, W) while the pa
 
 from __future__ import annotations
 
-__all__ = ["UNITS_PER_WORKER", "UnitPlan", "plan_units", "unit_sums", "pairwise_momentum_units"]
+__all__ = ["UNITS_PER_WORKER", "UnitPlan", "plan_units", "unit_sums", "run_units", "pairwise_momentum_units"]
 
 from dataclasses import dataclass
 
@@ -88,25 +88,21 @@ def unit_sums(data, columns, edges, n_jk, want_z, n_threads, method):
                      columns=columns)
 
 
-def unit_parts(positions, temperatures, edges, *, regions=None, redshifts=None, weights=None, n_units=None,
-               runner=None, n_threads=None, method="auto"):
-    """The per-unit sums and the plan, for :func:`pairwise_momentum_units` and the benchmark.
+def run_units(runner, data, edges, n_jk, want_z, *, n_units=None, n_threads=None, method="auto", task=unit_sums):
+    """``task`` (default :func:`unit_sums`) of every unit on ``runner``; returns (results in unit order, plan).
 
-    Returns (parts, plan, validated) with ``validated`` = (single, edges, n_jk, want_z, shared bytes).
+    ``data`` = validated (positions, temperature sets (M, N), regions, redshifts, weights or None),
+    shared with the workers once; the costliest units are started first.
     """
-    pos, temps2, single, edges, reg, n_jk, zz, want_z, w = _validate(positions, temperatures, edges, regions,
-                                                                      redshifts, weights)
-    with open_runner(runner) as run:
-        plan = plan_units(pos, edges[-1], n_units=n_units, n_workers=run.n_workers())
-        data = (np.ascontiguousarray(pos[:, list(plan.axes)]), temps2, reg, zz, w)
-        shared = run.share(data)
-        costly_first = np.argsort(plan.cost, kind="stable")[::-1]  # the largest units start first: even finish
-        done = run.run(unit_sums, [(shared, plan.columns[u], edges, n_jk, want_z, n_threads, method)
-                                   for u in costly_first])
+    pos, temps2, reg, zz, w = data
+    plan = plan_units(pos, edges[-1], n_units=n_units, n_workers=runner.n_workers())
+    shared = runner.share((np.ascontiguousarray(pos[:, list(plan.axes)]), temps2, reg, zz, w))
+    costly_first = np.argsort(plan.cost, kind="stable")[::-1]
+    done = runner.run(task, [(shared, plan.columns[u], edges, n_jk, want_z, n_threads, method) for u in costly_first])
     parts = [None] * len(done)
     for u, part in zip(costly_first, done):
         parts[u] = part
-    return parts, plan, (single, edges, n_jk, want_z, sum(a.nbytes for a in data if a is not None))
+    return parts, plan
 
 
 def pairwise_momentum_units(positions, temperatures, edges, *, regions=None, redshifts=None, weights=None,
@@ -130,8 +126,10 @@ def pairwise_momentum_units(positions, temperatures, edges, *, regions=None, red
     PairwiseResult
         Equal to the single-pass result up to floating-point summation order (~1e-13 relative).
     """
-    parts, _, (single, edges, n_jk, want_z, _) = unit_parts(
-        positions, temperatures, edges, regions=regions, redshifts=redshifts, weights=weights, n_units=n_units,
-        runner=scheduler, n_threads=n_threads, method=method)
+    pos, temps2, single, edges, reg, n_jk, zz, want_z, w = _validate(positions, temperatures, edges, regions,
+                                                                      redshifts, weights)
+    with open_runner(scheduler) as runner:
+        parts, _ = run_units(runner, (pos, temps2, reg, zz, w), edges, n_jk, want_z, n_units=n_units,
+                             n_threads=n_threads, method=method)
     total = tuple(sum(part[k] for part in parts) for k in range(7))
     return finalise(total, edges, single=single, n_jk=n_jk, want_z=want_z)

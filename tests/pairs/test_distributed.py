@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from pairvel.core.cluster import ClusterError, TaskRunner, open_runner
-from pairvel.pairs.distributed import pairwise_momentum_units, plan_units, unit_sums
+from pairvel.pairs.distributed import pairwise_momentum_units, plan_units, run_units, unit_sums
 from pairvel.pairs.estimator import pairwise_momentum
 from pairvel.pairs.geometry import unit_vectors
 
@@ -110,11 +110,8 @@ def test_a_worker_lost_in_the_middle_of_a_run_is_survived(cluster, tmp_path):
     pos, temps, reg, z = survey(3000)
     edges = np.linspace(0, 80, 9)
     ref = pairwise_momentum(pos, temps, edges, regions=reg, redshifts=z)
-    runner = TaskRunner(client, worker_wait_s=30)
-    plan = plan_units(pos, edges[-1], n_units=3)
-    shared = runner.share((np.ascontiguousarray(pos[:, list(plan.axes)]), temps, reg, z, None))
-    parts = runner.run(unit_that_kills_its_worker_once, [(shared, cols, edges, 9, True, 1, "auto")
-                                                          for cols in plan.columns])
+    parts, _ = run_units(TaskRunner(client, worker_wait_s=30), (pos, temps, reg, z, None), edges, 9, True,
+                         n_units=3, n_threads=1, task=unit_that_kills_its_worker_once)
     assert marker.exists()
     np.testing.assert_array_equal(sum(p[2] for p in parts), ref.pair_counts)  # every pair once: analytic
 
