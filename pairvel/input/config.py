@@ -310,7 +310,7 @@ class ComputeConfig:
     n_units: int | None = _key(None, "spatial work units of the pair pass on a scheduler; unset: 3 per worker, "
                                      "capped so that every slab is at least r_max thick", bounds=(1, 100000))
     worker_wait_s: float = _key(120.0, "seconds a run on a scheduler waits with no worker before it fails",
-                                bounds=(0.0, 86400.0))
+                                bounds=(1.0, 86400.0))
 
 
 @dataclass(frozen=True)
