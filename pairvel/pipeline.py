@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .core.cluster import TaskRunner, open_runner
 from .core.constants import C_KM_S, T_CMB_UK
 from .core.errors import InputError, PairvelWarning, TheoryError
 from .core.progress import Progress
@@ -38,6 +39,7 @@ from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
 from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures
+from .maps.tasks import measure_apertures_in_chunks, trend_without_each_region
 from .maps.trend import remove_redshift_trend
 from .model.template import load_power, load_v12_table, template_for_run
 from .model.trendmodel import trend_transfer
@@ -93,8 +95,8 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     progress = progress or Progress(10, quiet=True)
     truth = read_truth(cfg.run.truth_path) if cfg.run.truth_path else None  # a bad truth file fails before the work
     calib = read_mock_calibration(cfg.covariance.calibration_dir) if cfg.covariance.calibration_dir else None
-    with collect_warnings(lambda: progress.current) as kept:
-        result = run_stages(cfg, progress)
+    with collect_warnings(lambda: progress.current) as kept, compute_runner(cfg) as runner:
+        result = run_stages(cfg, progress, runner)
         if truth is not None:
             result = attach_truth_check(result, truth, path=cfg.run.truth_path)
     if calib is not None:  # per-bin errors against a validation run's mock scatter
@@ -102,15 +104,16 @@ def run_pipeline(cfg: Config, *, progress: Progress | None = None) -> RunResult:
     return dataclasses.replace(result, warnings=tuple(kept))
 
 
-def run_stages(cfg: Config, progress: Progress) -> RunResult:
-    """The stages of :func:`run_pipeline`, in order."""
+def run_stages(cfg: Config, progress: Progress, runner: TaskRunner | None = None) -> RunResult:
+    """The stages of :func:`run_pipeline`, in order; ``runner`` (:func:`compute_runner`) is where the
+    photometry, the trend re-estimates and the pair pass run (None: in this process)."""
     rng = as_generator(cfg.run.seed)
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     power = load_power(cfg.theory, cfg.cosmology)  # read a P(k) table first: a bad file fails before the pair pass
     v12_table = load_v12_table(cfg.theory)  # so is a v12 table
     partner = load_partner(cfg)  # the second catalogue of the cross curve, likewise (None without [partner])
 
-    cat, sky, aps, stored = measured_tracers(cfg, progress)
+    cat, sky, aps, stored = measured_tracers(cfg, progress, runner)
     with progress.stage("redshift-trend correction"):
         temps = correct_trend(cfg, aps.temperatures, cat.z)
     listed, noise_columns = cat, {}
@@ -119,11 +122,11 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
             cat, noise_info, noise_columns = tracer_noise(cfg, cat, sky, aps, temps[0], progress)
     with progress.stage("geometry and jackknife regions"):
         positions, regions = geometry_and_regions(cfg, cat, rng, progress)
-        retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg)
+        retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg, runner)
     edges = cfg.bins.edges()
-    if cfg.compute.scheduler_address:  # every set made first, one stack for the work units
+    if runner is not None and runner.distributed:  # every set made first, one stack for the work units
         stack, pr, rotations = stacked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, rng,
-                                                 progress)
+                                                 progress, runner)
     else:
         stack, pr, rotations = chunked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, rng,
                                                  progress)
@@ -140,7 +143,7 @@ def run_stages(cfg: Config, progress: Progress) -> RunResult:
                                 likelihood=cfg.theory.likelihood, sim_rows=sim_radius_curves(pr, stack, cov))
         radii_joint = radius_joint(radius_fits, cov.jk_rows[stack.radius_rows], model.template_uk, in_fit=model.in_fit,
                                    likelihood=cfg.theory.likelihood)
-        spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error)
+        spread = region_seed_spread(cfg, cat, positions, aps.temperatures, temps, cov, model, fit.error, runner)
         cross = cross_curve(cfg, sky, partner, cat, positions, aps.temperatures[0], regions, model, power, progress)
     if cfg.multifrequency.per_channel:
         with progress.stage(f"each of the {len(cfg.multifrequency.map_paths)} frequency maps alone"):
@@ -192,7 +195,7 @@ class Apertures:
     n_dropped: int            # tracers whose aperture was unusable (maps.photometry.DROP_REASONS)
 
 
-def measured_tracers(cfg: Config, progress: Progress):
+def measured_tracers(cfg: Config, progress: Progress, runner: TaskRunner | None = None):
     """The used tracers, the map and their raw aperture temperatures: from catalogue + map, or from the
     tracer table of an earlier run (``restart.table_path``, then the map is None).
 
@@ -207,7 +210,7 @@ def measured_tracers(cfg: Config, progress: Progress):
     with progress.stage("sky map"):
         sky = prepare_map(cfg, progress)
     with progress.stage(f"aperture photometry at {len(cat)} tracers"):
-        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress, sources=sky.sources)
+        cat, aps = measure_tracers(cfg, cat, sky.skymap, progress, runner, sources=sky.sources)
     return cat, sky, aps, None
 
 
@@ -261,15 +264,20 @@ def mask_point_sources(cfg: Config, skymap, progress: Progress):
     return masked, sources
 
 
-def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress, *,
-                    sources=None) -> tuple[Catalogue, Apertures]:
+def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress,
+                    runner: TaskRunner | None = None, *, sources=None) -> tuple[Catalogue, Apertures]:
     """Aperture temperatures at every radius; tracers unusable at any radius are dropped and counted, and so
     are those whose aperture touches a masked point source (``sources``) or whose temperature is an outlier
-    (``outliers.clip_sigma``)."""
+    (``outliers.clip_sigma``).  On a Dask cluster (``runner``) the tracers are measured in chunks, with
+    the same result."""
     options = photometry_options(cfg, cat.z)
     scale = options["radius_scale"]  # None for fixed angular radii
-    res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
-                            progress=progress.counter("apertures"))
+    if runner is not None and runner.distributed:
+        res = measure_apertures_in_chunks(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
+                                          runner=runner)
+    else:
+        res = measure_apertures(skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), **options,
+                                progress=progress.counter("apertures"))
     reach = np.sqrt(2.0) * max(aperture_radii(cfg.aperture)) * (1.0 if scale is None else scale)  # outer annulus
     usable, reason, screened = screen_apertures(cat.ra, cat.dec, res.temperatures, res.usable, res.drop_reason,
                                                 reach_arcmin=reach, sources=sources,
@@ -492,7 +500,7 @@ def geometry_and_regions(cfg: Config, cat: Catalogue, rng, progress: Progress) -
     return positions, regions
 
 
-def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
+def retrended_sets(temps_raw, z, regions, cfg: Config, runner: TaskRunner | None = None) -> np.ndarray:
     """Set r n_jk + k: the temperatures of radius r with the redshift trend estimated from the
     tracers outside region k (region k's own tracers, whose pairs the jackknife sample drops, are
     set to 0).  ``temps_raw`` (n_radii, N).
@@ -502,12 +510,15 @@ def retrended_sets(temps_raw, z, regions, cfg: Config) -> np.ndarray:
     errors of p(r) by up to ~2.8x at 300 Mpc.  Without the re-estimate (trend correction or
     ``jackknife_retrend`` off) the tracer-split jackknife (``jackknife_deletes = "tracers"``) still
     needs set k, the corrected temperatures zeroed in region k; the pair-deleting one then needs
-    none: empty (0, N).
+    none: empty (0, N).  On a Dask cluster (``runner``) the regions' re-estimates are tasks.
     """
     n, n_jk = z.size, int(regions.max()) + 1
     retrend = cfg.trend.enabled and cfg.covariance.jackknife_retrend
     if not (retrend or cfg.covariance.jackknife_deletes == "tracers"):
         return np.zeros((0, n))
+    if retrend and runner is not None and runner.distributed:
+        return trend_without_each_region(temps_raw, z, regions, sigma_z=cfg.trend.sigma_z,
+                                         runner=runner).reshape(-1, n)
     once = None if retrend else correct_trend(cfg, temps_raw, z)  # the tracer split alone: zero region k
     out = np.zeros((temps_raw.shape[0], n_jk, n))
     for k in range(n_jk):
@@ -705,7 +716,7 @@ class TemperatureStack:
 
 
 def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, retrended, positions,
-                      regions, rng, progress: Progress):
+                      regions, rng, progress: Progress, runner: TaskRunner | None = None):
     """Every temperature set made, stacked, and summed in one pair pass: (stack, PairwiseResult, rotations)."""
     with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
         random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress)
@@ -722,7 +733,7 @@ def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
     stack = TemperatureStack.build(temps, null_sets, retrended, sims)
     edges = cfg.bins.edges()
     with progress.stage(f"pair pass: {len(cat)} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
-        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress)
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress, runner)
     return stack, pr, rotations
 
 
@@ -796,12 +807,20 @@ def shuffled_chunks(cfg: Config, engine: ChunkedPass, rows: dict, temps, z, rng,
                    trend_sets(cfg, in_z, z))
 
 
-def pair_pass(cfg: Config, positions, values, edges, regions, cat: Catalogue, progress: Progress):
-    """One pass over every pair for every temperature set, locally or on a Dask scheduler."""
-    if cfg.compute.scheduler_address:
+def compute_runner(cfg: Config):
+    """Context manager: the :class:`~pairvel.core.cluster.TaskRunner` of ``[compute]``, a Dask cluster when
+    a scheduler is configured, else this process."""
+    cc = cfg.compute
+    return open_runner(cc.scheduler_address, scheduler_file=cc.scheduler_file, worker_wait_s=cc.worker_wait_s)
+
+
+def pair_pass(cfg: Config, positions, values, edges, regions, cat: Catalogue, progress: Progress,
+              runner: TaskRunner | None = None):
+    """One pass over every pair for every temperature set, locally or as work units on a Dask cluster."""
+    if runner is not None and runner.distributed:
         pr = pairwise_momentum_units(positions, values, edges, regions=regions, redshifts=cat.z,
                                      weights=cat.weight, n_units=cfg.compute.n_units,
-                                     scheduler=cfg.compute.scheduler_address, n_threads=cfg.compute.n_threads)
+                                     scheduler=runner, n_threads=cfg.compute.n_threads)
     else:
         pr = pairwise_momentum(positions, values, edges, regions=regions, redshifts=cat.z,
                                weights=cat.weight, n_threads=cfg.compute.n_threads)
@@ -993,7 +1012,7 @@ def significance(fit, model: TemplateResult, cov: CovarianceResult, pr, stack: T
 
 
 def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps, cov: CovarianceResult,
-                       model: TemplateResult, quoted_error: float) -> dict | None:
+                       model: TemplateResult, quoted_error: float, runner: TaskRunner | None = None) -> dict | None:
     """tau_mean refitted with the jackknife covariance of k-means regions drawn with other seeds.
 
     Entry 0 is the run's own regions (``cov.jackknife``); each of ``covariance.extra_region_seeds``
@@ -1012,9 +1031,9 @@ def region_seed_spread(cfg: Config, cat: Catalogue, positions, temps_raw, temps,
     fits, skipped = [refit(cov.jackknife, cov.n_jk)], 0
     for gen in derived_generators(cfg.run.seed, "jackknife region seeds", cc.extra_region_seeds):
         regions = kmeans_regions(cat.ra, cat.dec, cc.n_regions, seed=gen)
-        stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg),
+        stack = TemperatureStack.build(temps[:1], {}, retrended_sets(temps_raw[:1], cat.z, regions, cfg, runner),
                                        np.zeros((0, len(cat))))
-        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet)
+        pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet, runner)
         p_jk = _jackknife_rows(cfg, pr, stack, cc.n_regions)[0]
         if not np.all(np.isfinite(p_jk)):
             skipped += 1

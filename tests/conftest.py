@@ -103,3 +103,12 @@ def tiny_run(tmp_path_factory):
     make_tiny_survey(folder)
     assert main(["run", str(folder / "run.toml"), "--out", str(folder / "out"), "--quiet"]) == 0
     return folder / "out"
+
+
+@pytest.fixture(scope="session")
+def dask_cluster():
+    """One real two-worker Dask LocalCluster (one thread each) and its client, shared by the Dask tests."""
+    distributed = pytest.importorskip("dask.distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                  dashboard_address=None) as local, distributed.Client(local) as client:
+        yield local, client

@@ -436,6 +436,13 @@ CONFIG_CASES = [
          r"'theory\.tau_prior_sigma' and theory\.tau_prior_mean must be set together"),
     Case("bias-and-bias-from-proxy", "config", set_in_config("theory", 'bias_from_proxy = "mass"'),
          r"'theory\.bias' and theory\.bias_from_proxy are both set; keep one"),
+    Case("scheduler-file-and-address", "config",
+         both(set_in_config("compute", 'scheduler_address = "tcp://127.0.0.1:1"\nscheduler_file = "sched.json"'),
+              write_file("sched.json", b"{}")),
+         r"'compute\.scheduler_file' and compute\.scheduler_address are both set; keep one"),
+    Case("scheduler-file-missing", "config", set_in_config("compute", 'scheduler_file = "sched.json"'),
+         r"'compute\.scheduler_file' must be the file `dask scheduler --scheduler-file` wrote; \S*sched\.json does "
+         r"not exist \(start the scheduler first\)"),
     Case("v12-table-without-unit", "config",
          both(set_in_config("theory", 'velocity_model = "table"\nv12_table_path = "v12.ecsv"'),
               write_file("v12.ecsv", b"# %ECSV 1.0\n# ---\n# datatype:\n# - {name: r, datatype: float64}\n"

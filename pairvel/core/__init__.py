@@ -3,7 +3,8 @@
 In: nothing from the rest of pairvel (standard library and numpy only).
 Out: the :class:`~pairvel.core.errors.PairvelError` hierarchy, physical constants, seed
 normalisation, the progress reporter, the keeper of a run's warnings, version and checksum records, unit vectors on the sphere,
-and the style of every figure (plotstyle; matplotlib imported only when a figure is drawn).
+the style of every figure (plotstyle; matplotlib imported only when a figure is drawn), and where
+tasks run (cluster: this process, or Dask when a scheduler is configured; dask imported only then).
 Every other subpackage may import from here; nothing here imports from them.
 
 Messages go through the standard :mod:`logging` module, to the ``pairvel`` logger or its children
@@ -16,4 +17,4 @@ import logging
 
 logging.getLogger("pairvel").addHandler(logging.NullHandler())
 
-__all__ = ["constants", "errors", "plotstyle", "progress", "provenance", "rng", "sphere", "warnlog"]
+__all__ = ["cluster", "constants", "errors", "plotstyle", "progress", "provenance", "rng", "sphere", "warnlog"]

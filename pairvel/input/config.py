@@ -351,10 +351,15 @@ class ComputeConfig:
                                          "sets are made and summed in chunks of about this size, so the run's peak "
                                          "memory does not grow with the number of sets (without a scheduler)",
                                    bounds=(1e-6, 10000.0))
-    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to spread "
-                                               "the pair pass over; unset: run in this process")
-    n_units: int = _key(16, "spatial work units the pair pass is cut into when a scheduler is used",
-                        bounds=(1, 100000))
+    scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to run the "
+                                               "photometry, trend re-estimates and pair pass on; unset: run in this "
+                                               "process")
+    scheduler_file: Path | None = _key(None, "scheduler file written by `dask scheduler --scheduler-file` (instead "
+                                             "of scheduler_address)")
+    n_units: int | None = _key(None, "spatial work units of the pair pass on a scheduler; unset: 3 per worker, "
+                                     "capped so that every slab is at least r_max thick", bounds=(1, 100000))
+    worker_wait_s: float = _key(120.0, "seconds a run on a scheduler waits with no worker before it fails",
+                                bounds=(1.0, 86400.0))
 
 
 @dataclass(frozen=True)
@@ -805,6 +810,11 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
                                          f"{ap.beam_fwhm_arcmin:g} and {pf.beam_fwhm_arcmin:g}")
     if pf.beam_fwhm_arcmin is not None and pf.beam_path is not None:
         bad("prefilter.beam_path", "and prefilter.beam_fwhm_arcmin are both set; keep one")
+    if cfg.compute.scheduler_address and cfg.compute.scheduler_file is not None:
+        bad("compute.scheduler_file", "and compute.scheduler_address are both set; keep one")
+    if cfg.compute.scheduler_file is not None and not Path(cfg.compute.scheduler_file).is_file():
+        bad("compute.scheduler_file", f"must be the file `dask scheduler --scheduler-file` wrote; "
+                                      f"{cfg.compute.scheduler_file} does not exist (start the scheduler first)")
     if pf.kind == "highpass" and pf.highpass_width > pf.highpass_ell:
         bad("prefilter.highpass_width", f"must not exceed highpass_ell ({pf.highpass_ell:g})")
 

@@ -14,4 +14,4 @@ a cylindrical WCS.
 """
 
 __all__ = ["car", "car_io", "channels", "harmonics", "healpix", "healpix_io", "multifreq", "photometry", "prefilter", "radii", "skymap", "sources",
-           "trend"]
+           "tasks", "trend"]

@@ -250,7 +250,7 @@ def _add_velocities(i, nacc, jbuf, r2buf, x, v, edges, uniform, inv_width, a_v, 
 
 
 @nb.njit(parallel=True, cache=True)
-def pair_sums(x, u, temps, w, reg, zz, start, dims, rows, edges, uniform, n_jk, want_z):
+def pair_sums(x, u, temps, w, reg, zz, start, dims, rows, edges, uniform, n_jk, want_z, cell_lo, cell_hi):
     """Accumulate the estimator's sums over all pairs with edges[0] <= r < edges[-1].
 
     x, u : (3, N) positions and unit vectors, sorted by cell; temps : (N, M); w : (N,) weights (each
@@ -291,7 +291,7 @@ def pair_sums(x, u, temps, w, reg, zz, start, dims, rows, edges, uniform, n_jk, 
         a_jnum = jk_num[ch]
         a_jden = jk_den[ch]
         a_jcnt = jk_cnt[ch]
-        for cell in range(ch, n_cells, n_chunks):
+        for cell in range(cell_lo + ch, min(cell_hi, n_cells), n_chunks):
             s0, s1 = start[cell], start[cell + 1]
             if s0 == s1:
                 continue
@@ -500,11 +500,12 @@ def _add_object(i, nacc, jbuf, r2buf, x, u, w, reg, edges, uniform, inv_width, s
 
 
 @nb.njit(parallel=True, cache=True)
-def object_sums(x, u, w, reg, start, dims, rows, edges, uniform, row_start, row_reg, n_jk):
+def object_sums(x, u, w, reg, start, dims, rows, edges, uniform, row_start, row_reg, n_jk, cell_lo, cell_hi):
     """W (N, nb): sum over partners of w_j c_ij per bin, and V (R, nb): the same restricted to the
     partners in region row_reg[r] (rows laid out by :func:`object_rows`; R may be 0 when n_jk == 0).
 
-    x, u : (3, N) positions and unit vectors sorted by cell; rows from :func:`all_rows`.
+    x, u : (3, N) positions and unit vectors sorted by cell; rows from :func:`all_rows`.  Only the
+    objects in cells [cell_lo, cell_hi) get their sums (the others stay 0).
     """
     n = x.shape[1]
     nbins = edges.size - 1
@@ -522,7 +523,7 @@ def object_sums(x, u, w, reg, start, dims, rows, edges, uniform, row_start, row_
         jbuf = np.empty(BUFFER, dtype=np.int64)
         r2buf = np.empty(BUFFER)
         slot = np.zeros(max(n_jk, 1), dtype=np.int64)
-        for cell in range(ch, n_cells, N_CHUNKS):
+        for cell in range(cell_lo + ch, min(cell_hi, n_cells), N_CHUNKS):
             s0, s1 = start[cell], start[cell + 1]
             if s0 == s1:
                 continue

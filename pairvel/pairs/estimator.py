@@ -192,13 +192,17 @@ def _validate(positions, temperatures, edges, regions, redshifts, weights=None):
     return pos, temps2, single, edges, reg, n_jk, zz, want_z, w
 
 
-def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_threads=None, method="auto") -> tuple:
+def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_threads=None, method="auto",
+              columns=None) -> tuple:
     """One pass of the compiled engine over validated inputs; returns the additive sums
     (num (M, nb), den, cnt, zsum, jk_num (max(n_jk,1), M, nb), jk_den, jk_cnt).
 
     The sums of disjoint sets of pairs add, which is what lets work units run anywhere.
     ``method`` is as in :func:`pairwise_momentum`; "auto" takes the path the cost model of
-    :mod:`pairvel.pairs.pathcost` finds cheaper for this geometry and number of sets.
+    :mod:`pairvel.pairs.pathcost` finds cheaper for this geometry and number of sets.  ``columns``
+    (x0, x1) keeps only the pairs owned by the cells of columns x0 <= cx < x1 along the first axis
+    of the grid of ``_kernels.build_cells(pos, edges[-1])`` (None: all); ranges that tile the
+    columns give sums that add up to the whole pass.
     """
     n = pos.shape[0]
     nbins = edges.size - 1
@@ -215,11 +219,12 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     full = _kernels.all_rows(int(rows[-1, 3]))
     linear, layout = _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, edges[-1])
     if linear:
-        sums, columns = linear_geometry(pos, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads,
-                                        n_sets=m_sets, layout=layout)
-        num, jk_num = _numerators_from_columns(temps2, columns, n_jk)
+        sums, cols = linear_geometry(pos, reg, zz, edges, n_jk, want_z, weights=w, n_threads=n_threads,
+                                     n_sets=m_sets, layout=layout, columns=columns)
+        num, jk_num = _numerators_from_columns(temps2, cols, n_jk)
         _, den, cnt, zsum, _, jk_den, jk_cnt = sums
         return num, den, cnt, zsum, jk_num, jk_den, jk_cnt
+    cell_lo, cell_hi = _cell_range(start, dims, columns)
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
     _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, direct path", n, m_sets, nbins,
@@ -227,9 +232,17 @@ def pass_sums(pos, temps2, reg, zz, edges, n_jk, want_z, *, weights=None, n_thre
     try:
         return _kernels.pair_sums(xs, us, np.ascontiguousarray(temps2[:, order].T), np.ascontiguousarray(w[order]),
                                   regs, np.ascontiguousarray(zz[order]),
-                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z, cell_lo, cell_hi)
     finally:
         numba.set_num_threads(previous)
+
+
+def _cell_range(start, dims, columns) -> tuple:
+    """(first cell, end cell) of the grid columns x0 <= cx < x1 (all cells for None)."""
+    if columns is None:
+        return 0, start.size - 1
+    plane = int(dims[1] * dims[2])
+    return int(columns[0]) * plane, int(columns[1]) * plane
 
 
 def linear_is_cheaper(pos, reg, edges, n_jk, m_sets) -> bool:
@@ -242,33 +255,37 @@ def linear_is_cheaper(pos, reg, edges, n_jk, m_sets) -> bool:
                         n_jk, edges[-1])[0]
 
 
-def linear_geometry(pos, reg, zz, edges, n_jk, want_z, *, weights, n_threads=None, n_sets=0, layout=None) -> tuple:
+def linear_geometry(pos, reg, zz, edges, n_jk, want_z, *, weights, n_threads=None, n_sets=0, layout=None,
+                    columns=None) -> tuple:
     """The pair pass of the linear path, which needs no temperatures: (sums, columns).
 
     ``sums`` are the additive sums of :func:`pass_sums` for no set (den, cnt, zsum, jk_den and
-    jk_cnt filled; num and jk_num with 0 sets); ``columns`` is what :func:`_numerators_from_columns`
-    turns any sets' temperatures (M, N) into their numerators with, so sets can come in chunks.
-    Inputs validated, ``weights`` an (N,) array, N >= 2; ``n_sets`` only for the log line;
-    ``layout`` the sparse rows when :func:`_choose_path` made them already.
+    jk_cnt filled; num and jk_num with 0 sets); the second item is what
+    :func:`_numerators_from_columns` turns any sets' temperatures (M, N) into their numerators with,
+    so sets can come in chunks.  Inputs validated, ``weights`` an (N,) array, N >= 2; ``n_sets``
+    only for the log line; ``layout`` the sparse rows when :func:`_choose_path` made them already;
+    ``columns`` the grid columns of a work unit, as in :func:`pass_sums`.
     """
     n, nbins = pos.shape[0], edges.size - 1
     order, start, dims, rows, xs, us = _prepare(pos, edges[-1])
     ws = np.ascontiguousarray(weights[order])
     regs = np.ascontiguousarray(reg[order])
     full = _kernels.all_rows(int(rows[-1, 3]))
+    cell_lo, cell_hi = _cell_range(start, dims, columns)
     previous = numba.get_num_threads()
     numba.set_num_threads(_threads(n_threads))
     _log.debug("pair pass: %d tracers, %d temperature sets, %d bins, %d threads, linear path", n, n_sets, nbins,
                numba.get_num_threads())
     try:
         sums = _kernels.pair_sums(xs, us, np.empty((n, 0)), ws, regs, np.ascontiguousarray(zz[order]),
-                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z)
+                                  start, dims, rows, edges, _is_uniform(edges), n_jk, want_z, cell_lo, cell_hi)
         row_start, row_reg = layout if layout is not None else _row_layout(regs, start, dims, full, n_jk)
         w_obj, v_obj = _kernels.object_sums(xs, us, ws, regs, start, dims, full, edges, _is_uniform(edges),
-                                            row_start, row_reg, n_jk)
+                                            row_start, row_reg, n_jk, cell_lo, cell_hi)
     finally:
         numba.set_num_threads(previous)
-    return sums, _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk)
+    objects = None if columns is None else slice(start[cell_lo], start[cell_hi])
+    return sums, _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, objects=objects)
 
 
 def _row_layout(regs, start, dims, full, n_jk):
@@ -294,11 +311,12 @@ def _choose_path(method, pos, start, dims, regs, full, m_sets, nbins, n_jk, r_ma
     return costs.best == "linear", layout
 
 
-def _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk) -> tuple:
+def _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk, *, objects=None) -> tuple:
     """What every set's numerators are products with: (cols, q, seg, nbins), made once per pass.
 
     Columns region by region: the region's own tracers (all of w_i W_i), then the tracers outside
-    it with partners inside (their V rows for that region); ``seg`` cuts them.
+    it with partners inside (their V rows for that region); ``seg`` cuts them.  ``objects`` (a
+    slice in cell order) limits the columns to those objects, the only ones a work unit gave sums to.
     """
     n = order.size
     nbins = w_obj.shape[1]
@@ -313,6 +331,10 @@ def _numerator_columns(order, ws, regs, w_obj, v_obj, row_start, row_reg, n_jk) 
     row_obj = order[owner]
     vv = v_obj * ws[owner, None]
     by_region = np.argsort(reg_in, kind="stable")
+    if objects is not None:  # a work unit: the other objects' W are 0
+        mine = np.zeros(n, dtype=bool)
+        mine[order[objects]] = True
+        by_region = by_region[mine[by_region]]
     cuts = np.searchsorted(reg_in[by_region], np.arange(nj + 1))
     rows_by_region = np.argsort(row_reg, kind="stable")
     row_cuts = np.searchsorted(row_reg[rows_by_region], np.arange(nj + 1))
