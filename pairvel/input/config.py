@@ -460,6 +460,10 @@ class SingleClusterConfig:
     relativistic: bool = _key(False, "`pairvel velocities`: fit the tSZ with its first-order relativistic correction "
                                      "at each cluster's T_e (Challinor & Lasenby 1998); false: the non-relativistic "
                                      "spectrum")
+    tau_response_scatter: float = _key(0.0, "`pairvel velocities`: fractional rms scatter of the aperture's "
+                                            "response to a cluster's own signal, added in quadrature to each "
+                                            "tau error as scatter x tau (the velocities do not carry it)",
+                                       bounds=(0.0, 1.0))
 
 
 @dataclass(frozen=True)
