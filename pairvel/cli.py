@@ -306,7 +306,7 @@ def _cmd_velocities(args, run_log) -> int:
     from .report.folders import claim_output_dir
     from .single_cluster import measure_cluster_velocities
 
-    cfg = load_config(args.config)
+    cfg = load_config(args.config, needs_bias=False)  # no pairwise template: theory.bias is not used
     default_out = Path.cwd() / f"{cfg.run.name}-velocities"
     with claim_output_dir(args.out if args.out else default_out, force=args.force,
                           protect=cfg.named_paths()) as claim:  # before the work; released if it fails

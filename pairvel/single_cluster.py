@@ -118,7 +118,8 @@ def measure_cluster_velocities(cfg: Config, *, progress: Progress | None = None)
         cov = channel_covariance(ch.random_temperatures)
         t_cmb_uk = cfg.cosmology.t_cmb_k * 1e6
         dec = decompose_channels(ch.temperatures[keep], f_fit, cov, t_cmb_uk=t_cmb_uk)
-        vel = line_of_sight_velocities(dec, te[keep], t_cmb_uk=t_cmb_uk)
+        vel = line_of_sight_velocities(dec, te[keep], t_cmb_uk=t_cmb_uk,
+                                       response_scatter=sc.tau_response_scatter)
         proxy = None if cat.proxy is None else cat.proxy[keep]
         crowded = has_neighbour(cat.ra, cat.dec, overlap_distance_arcmin(ap.radius_arcmin, scale))[keep]
         flags = caution_flags(dec, vel, min_tau_snr=sc.min_tau_snr, min_fit_pte=sc.min_fit_pte, proxy=proxy,

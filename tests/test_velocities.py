@@ -68,7 +68,7 @@ proxy_column = "log_mass"
 [aperture]
 radius_arcmin = {RADIUS}
 [theory]
-bias = 3.0  # every config states it (for `pairvel run`); the velocities do not use it
+bias = 3.0  # for `pairvel run`; the velocities do not use it (a test drops it)
 [multifrequency]
 map_paths = {json.dumps(paths)}
 frequencies_ghz = {list(FREQS)}
@@ -140,6 +140,23 @@ def test_temperature_column_and_errors(measured, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "multifrequency.map_paths must list the frequency maps" in err
     assert not (tmp_path / "c").exists()
+
+
+def test_no_bias_needed(measured, tmp_path):
+    """`pairvel velocities` fits no pairwise template, so a config without theory.bias is accepted there and
+    gives the same numbers; the pairwise run still refuses it (internal consistency)."""
+    from pairvel.core.errors import ConfigError
+    from pairvel.input.config import load_config
+
+    folder, text, _ = measured
+    (folder / "nobias.toml").write_text(text.replace("[theory]\nbias = 3.0", "[theory]"))
+    assert "bias" not in (folder / "nobias.toml").read_text().split("[theory]")[1].split("[")[0]
+    with pytest.raises(ConfigError, match="theory.bias' is required"):
+        load_config(folder / "nobias.toml")
+    assert _velocities(folder / "nobias.toml", "--out", tmp_path / "nb") == 0
+    a = Table.read(tmp_path / "nb" / "cluster_velocities.ecsv")
+    b = Table.read(folder / "out" / "cluster_velocities.ecsv")
+    np.testing.assert_allclose(a["v_los_km_s"], b["v_los_km_s"], rtol=1e-12)
 
 
 @pytest.mark.validation

@@ -460,6 +460,10 @@ class SingleClusterConfig:
     relativistic: bool = _key(False, "`pairvel velocities`: fit the tSZ with its first-order relativistic correction "
                                      "at each cluster's T_e (Challinor & Lasenby 1998); false: the non-relativistic "
                                      "spectrum")
+    tau_response_scatter: float = _key(0.0, "`pairvel velocities`: fractional rms scatter of the aperture's "
+                                            "response to a cluster's own signal, added in quadrature to each "
+                                            "tau error as scatter x tau (the velocities do not carry it)",
+                                       bounds=(0.0, 1.0))
 
 
 @dataclass(frozen=True)
@@ -692,7 +696,7 @@ def _value_problem(typed, fld) -> str | None:
     return None
 
 
-def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
+def config_from_dict(data: dict, *, source: Path | None = None, needs_bias: bool = True) -> Config:
     """Validate a parsed TOML mapping into a :class:`Config`.
 
     Parameters
@@ -701,6 +705,9 @@ def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
         The parsed TOML document.
     source : Path, optional
         The file it came from; relative paths resolve against its folder (else the working folder).
+    needs_bias : bool, default True
+        False for commands that fit no pairwise template (`pairvel velocities`): ``theory.bias`` may
+        then be left out.
     """
     where_file = str(source) if source is not None else "<dict>"
     base_dir = source.parent.resolve() if source is not None else Path.cwd()
@@ -712,13 +719,13 @@ def config_from_dict(data: dict, *, source: Path | None = None) -> Config:
             raise ConfigError(f"config {where_file}: unknown section '[{sec_name}]'{extra}", path=where_file, key=sec_name)
         sections[sec_name] = _build_section(_section_type(sec_name), table, sec_name, where_file, base_dir)
     cfg = Config(**sections, source=source)
-    _check_consistency(cfg, where_file)
+    _check_consistency(cfg, where_file, needs_bias=needs_bias)
     return cfg
 
 
-def _check_bias_and_velocity_model(cfg: Config, bad) -> None:
+def _check_bias_and_velocity_model(cfg: Config, bad, needs_bias: bool = True) -> None:
     th = cfg.theory
-    if th.bias_from_proxy is None and th.bias is None:
+    if needs_bias and th.bias_from_proxy is None and th.bias is None:
         bad("theory.bias", "is required: tau_mean scales as 1/b, so no value is assumed; give the linear bias of the "
                            "tracers under [theory], or derive it from masses with theory.bias_from_proxy")
     if th.bias_from_proxy is not None and th.bias is not None:
@@ -738,7 +745,7 @@ def _check_bias_and_velocity_model(cfg: Config, bad) -> None:
         bad("theory.photoz_sigma", "cannot damp a v12 table (its own r range); put the damping into the table")
 
 
-def _check_consistency(cfg: Config, where_file: str) -> None:
+def _check_consistency(cfg: Config, where_file: str, *, needs_bias: bool = True) -> None:
     def bad(key, msg):
         raise ConfigError(f"config {where_file}: '{key}' {msg}", path=where_file, key=key)
 
@@ -754,7 +761,7 @@ def _check_consistency(cfg: Config, where_file: str) -> None:
         bad("catalogue.path", "is required (or restart.table_path)")
     elif cfg.map.path is None and not cfg.multifrequency.map_paths:
         bad("map.path", "is required (or multifrequency.map_paths)")
-    _check_bias_and_velocity_model(cfg, bad)
+    _check_bias_and_velocity_model(cfg, bad, needs_bias)
     if not cfg.catalogue.z_min < cfg.catalogue.z_max:
         bad("catalogue.z_max", f"must exceed catalogue.z_min; got {cfg.catalogue.z_min} and {cfg.catalogue.z_max}")
     if not cfg.catalogue.proxy_min < cfg.catalogue.proxy_max:
@@ -896,8 +903,8 @@ def _check_partner(cfg, bad) -> None:
         bad("partner.proxy_column", "is required when partner.proxy_min or partner.proxy_max is set")
 
 
-def load_config(path) -> Config:
-    """Read and validate a TOML config file.
+def load_config(path, *, needs_bias: bool = True) -> Config:
+    """Read and validate a TOML config file (``needs_bias``: as in :func:`config_from_dict`).
 
     Raises
     ------
@@ -910,7 +917,7 @@ def load_config(path) -> Config:
     if not data:
         raise ConfigError(f"config {path}: holds no settings (an empty file or only comments); see configs/README.md",
                           path=path)
-    return config_from_dict(data, source=path.resolve())
+    return config_from_dict(data, source=path.resolve(), needs_bias=needs_bias)
 
 
 def _read_toml(path) -> dict:

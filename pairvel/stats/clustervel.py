@@ -174,7 +174,8 @@ def decompose_channels(t_uk, f_tsz, channel_cov, *, t_cmb_uk: float = T_CMB_UK) 
     return Decomposition(y=par[:, 0], dt_ksz_uk=par[:, 1], cov=par_cov, chi2=chi2, n_channels=int(k))
 
 
-def line_of_sight_velocities(dec: Decomposition, te_kev, *, t_cmb_uk: float = T_CMB_UK) -> ClusterVelocities:
+def line_of_sight_velocities(dec: Decomposition, te_kev, *, t_cmb_uk: float = T_CMB_UK,
+                             response_scatter: float = 0.0) -> ClusterVelocities:
     """tau = y m_e c^2 / (k T_e) and v_r = -c dT_kSZ / (T_CMB tau), with first-order errors.
 
     Parameters
@@ -183,6 +184,11 @@ def line_of_sight_velocities(dec: Decomposition, te_kev, *, t_cmb_uk: float = T_
     te_kev : float or array_like of shape (n,), keV
         Electron temperature of every cluster (taken as exact).
     t_cmb_uk : float, uK
+    response_scatter : float, default 0
+        Fractional rms scatter s of the aperture's response to a cluster's own signal (profile and
+        pixels against the aperture), added to the optical depth's error:
+        tau_err^2 = (noise part)^2 + (s tau)^2.  It multiplies y and dT_kSZ alike, so v and its
+        error do not carry it.
 
     Returns
     -------
@@ -198,7 +204,7 @@ def line_of_sight_velocities(dec: Decomposition, te_kev, *, t_cmb_uk: float = T_
     n = dec.y.size
     te = np.broadcast_to(np.asarray(te_kev, dtype=float), (n,)).copy()
     tau = optical_depth_from_y(dec.y, te)
-    tau_err = optical_depth_from_y(np.sqrt(dec.cov[:, 0, 0]), te)
+    tau_err = np.hypot(optical_depth_from_y(np.sqrt(dec.cov[:, 0, 0]), te), response_scatter * tau)
     var_y, var_t, cov_yt = dec.cov[:, 0, 0], dec.cov[:, 1, 1], dec.cov[:, 0, 1]
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = dec.dt_ksz_uk / dec.y

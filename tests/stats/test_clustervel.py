@@ -219,3 +219,24 @@ def test_relativistic_fit_removes_the_tau_bias_of_hot_clusters():
     assert np.median(plain.tau / tau) < 0.95
     s = pull_summary(rel.v_km_s, rel.v_err_km_s, v)
     assert abs(s["variance"] - 1) < 4 * s["variance_error"]
+
+
+def test_response_scatter_enters_tau_error_only():
+    # each cluster's signal (y and dT_kSZ alike) scaled by a response R_i = 1 + 0.08 g_i: with the scatter 0.08
+    # stated, the tau pulls have unit variance (analytic: var = noise^2 + (s tau)^2; Monte Carlo with numpy),
+    # without it they are too wide; v and its error do not change (the response cancels in dT / y)
+    rng = np.random.default_rng(17)
+    n, s = 4000, 0.08
+    f = tsz_spectrum(FREQS)
+    _, _, tau, v, y, dt = _sky(n, rng, tau_range=(8e-3, 1.2e-2))
+    resp = 1.0 + s * rng.normal(size=n)
+    t = resp[:, None] * (dt[:, None] + T_CMB_UK * f * y[:, None]) + rng.normal(0, 1, (n, 3)) * NOISE
+    dec = decompose_channels(t, f, np.diag(NOISE**2))
+    plain, with_s = line_of_sight_velocities(dec, 6.0), line_of_sight_velocities(dec, 6.0, response_scatter=s)
+    np.testing.assert_allclose(with_s.tau_err, np.hypot(plain.tau_err, s * plain.tau), rtol=1e-12)
+    np.testing.assert_array_equal(with_s.v_km_s, plain.v_km_s)
+    np.testing.assert_array_equal(with_s.v_err_km_s, plain.v_err_km_s)
+    var_with = np.var((with_s.tau - tau) / with_s.tau_err, ddof=1)
+    var_plain = np.var((plain.tau - tau) / plain.tau_err, ddof=1)
+    assert abs(var_with - 1.0) < 4 * np.sqrt(2 / (n - 1)) + 0.03, var_with  # sampling error of a variance (analytic)
+    assert var_plain > 1.3, var_plain
