@@ -58,6 +58,7 @@ def one_mock(folder: Path, seed: int, args) -> dict:
             res = run_pipeline(config_from_dict(run_config(folder, seed, weighting)))
         out[label] = (res.fit.amplitude, res.fit.error)
         out["effective_fraction"] = res.extra["noise_weighting"]["effective_fraction"]
+        out["sky_variance"] = res.extra["noise_weighting"]["sky_variance_uk2"]
     return out
 
 
@@ -124,7 +125,7 @@ def main(argv=None) -> int:
             r = rows[-1]
             print(f"mock {k:2d}: truth {r['expected']:.4e}  no weights {r['plain'][0]:.4e} +- {r['plain'][1]:.2e}  "
                   f"weighted {r['weighted'][0]:.4e} +- {r['weighted'][1]:.2e}  "
-                  f"(effective fraction {r['effective_fraction']:.2f})", flush=True)
+                  f"(effective fraction {r['effective_fraction']:.2f}, sky variance {r['sky_variance']:.4g} uK^2)", flush=True)
     s = summarise(rows)
     print(f"\n{_dt.date.today()}: {args.n_mocks} mocks of ~{args.n_tracers} tracers, tau_mean {args.tau_mean:g}, {'no CMB, ' if args.no_cmb else ''}noise {args.noise_uk_arcmin:g} "
           f"uK-arcmin at the centre, depth ratio {args.depth_ratio:g}")

@@ -304,8 +304,9 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress,
 def tracer_noise(cfg: Config, cat: Catalogue, sky: SkyInputs, aps: Apertures, temps, progress: Progress):
     """Each tracer's aperture noise at the primary radius (``[noise]``, :mod:`pairvel.maps.noise`); with
     ``noise.tracer_weighting`` the catalogue returned carries the noise weights (times its own), so the
-    pair pass, the pair-averaged template, every null and every covariance use them (the redshift-trend
-    removal and the trend-loss model stay unweighted, as for ``catalogue.weight_column``).
+    pair pass, the pair-averaged template, the trend-loss model's pair sums, every null and every
+    covariance use them (the redshift-trend removal itself stays unweighted, as for
+    ``catalogue.weight_column``).
 
     Returns (cat, info for ``extra["noise_weighting"]``, tracers.fits columns of the used tracers).
     """
@@ -930,13 +931,15 @@ def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, prog
                           f"range has templates that agree this well; raise it or widen the fit range")
     for line in template_progress_lines(info):
         progress.say(line)
-    factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress)
+    factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress, weights=cat.weight)
     v12 = v12 * factor
     return TemplateResult(v12, T_CMB_UK * v12 / C_KM_S, in_fit, z_eff, factor, info)
 
 
-def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:
-    """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled).
+def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress,
+               weights=None) -> np.ndarray:
+    """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled), its
+    pairs weighted as the estimator's (``weights``: the catalogue's, noise weights included).
 
     Records the fraction, its Monte Carlo error and the draws in ``template_info``.
     """
@@ -945,7 +948,7 @@ def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict
         template_info["trend_loss_model"] = None
         return np.ones(nbins)
     tr = trend_transfer(positions, z, edges, cfg.trend.sigma_z, seed=rng, cosmo=cfg.cosmology,
-                        wiggles=cfg.theory.wiggles, power=power)
+                        wiggles=cfg.theory.wiggles, power=power, weights=weights)
     factor = tr.factor
     template_info["trend_loss_model"] = {
         "kept_fraction": [round(float(x), 5) for x in factor],
