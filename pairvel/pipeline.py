@@ -17,6 +17,7 @@ __all__ = ["run_pipeline", "TemperatureStack"]
 
 import dataclasses
 import datetime as _dt
+import math
 import platform
 import warnings
 from dataclasses import dataclass
@@ -38,7 +39,7 @@ from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_ape
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
-from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures
+from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures, source_exclusion
 from .maps.tasks import measure_apertures_in_chunks, trend_without_each_region
 from .maps.trend import remove_redshift_trend
 from .model.template import load_power, load_v12_table, template_for_run
@@ -531,8 +532,9 @@ def retrended_sets(temps_raw, z, regions, cfg: Config, runner: TaskRunner | None
 
 
 # ------------------------------------------------------------------ null and simulated sets
-def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress) -> np.ndarray:
-    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data.
+def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, *, sources=None) -> np.ndarray:
+    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data; positions
+    whose apertures would touch a masked point source (``sources``) are redrawn, as such tracers are dropped.
 
     The positions are drawn from their own generator (derived from ``run.seed``), not the run's: the
     number of draws depends on the map, and a run from a tracer table, which has no map and skips
@@ -543,20 +545,22 @@ def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: P
         _skipped_without_map("nulls.n_random", n_null)
         return np.zeros((0, len(cat)))
     return np.concatenate([np.zeros((0, len(cat)))] + list(random_position_chunks(cfg, skymap, cat, scale, progress,
-                                                                                  max(n_null, 1))))
+                                                                                  max(n_null, 1), sources=sources)))
 
 
-def random_position_chunks(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, chunk: int):
+def random_position_chunks(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, chunk: int, *,
+                           sources=None):
     """The sets of :func:`random_position_sets` (a map is needed), ``chunk`` at a time, trend-corrected
     together."""
     n_null = cfg.nulls.n_random
     rng = derived_generators(cfg.run.seed, "random-position null", 1)[0]
+    exclude = source_exclusion(sources, math.sqrt(2.0) * max(aperture_radii(cfg.aperture)))  # the tracers' reach
     sets = []
     for k in range(n_null):
         _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
                                              max_masked_fraction=cfg.map.max_masked_fraction,
                                              pixel_weighting=cfg.aperture.pixel_weighting,
-                                             method=cfg.aperture.method, radius_scale=scale)
+                                             method=cfg.aperture.method, radius_scale=scale, exclude=exclude)
         sets.append(t_r[0])
         progress.say(f"      null set {k + 1}/{n_null}")
         if len(sets) == chunk or k == n_null - 1:
@@ -720,7 +724,7 @@ def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
                       regions, rng, progress: Progress, runner: TaskRunner | None = None):
     """Every temperature set made, stacked, and summed in one pair pass: (stack, PairwiseResult, rotations)."""
     with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
-        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress)
+        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress, sources=sky.sources)
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
         rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
     with progress.stage(f"shuffled nulls: {cfg.nulls.n_shuffle} + {cfg.nulls.n_shuffle_z} within redshift slices, "
@@ -765,7 +769,7 @@ def chunked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
     if n_random:
         with progress.stage(f"null-test photometry: {n_random} sets of random sky positions"):
             start = rows["random_positions"].start
-            for sets in random_position_chunks(cfg, sky.skymap, cat, aps.scale, progress, chunk):
+            for sets in random_position_chunks(cfg, sky.skymap, cat, aps.scale, progress, chunk, sources=sky.sources):
                 engine.add(slice(start, start + sets.shape[0]), sets)
                 start += sets.shape[0]
     elif sky.skymap is None:
