@@ -47,7 +47,7 @@ moment estimate, Var(T) - <sigma_noise^2>, is unbiased too, but where the noise 
 small difference of two large numbers set by the shallowest tracers: on a striped mock whose aperture
 noise spans 30-300 uK against a sky of 65 uK rms (benchmarks/noise_weighting.py settings, 1000 uK-arcmin,
 depth ratio 10, 10^4 tracers; truth from the same mock without noise: 4290 uK^2) the moment estimate
-gave 3660 uK^2 with a bootstrap spread of ~800, the likelihood 4300 with ~150, because it lets the deep
+gave 3660 uK^2 (three bootstrap resamples: 2300-4050), the likelihood 4300 (4250-4540): it lets the deep
 tracers, where the sky stands out of the noise, carry the estimate.  The result is floored at
 :data:`SKY_VARIANCE_FLOOR` of Var(T), so a noise estimate that is too high cannot give a few quiet
 tracers all the weight.  When the noise is far below the sky, the weights tend to equal ones (the
