@@ -34,11 +34,14 @@ MOCK = dict(nside=512, ra_min=-12, ra_max=12, dec_min=-8, dec_max=8, z_min=0.15,
             bias=0.4, cell_mpc=8.0, beam_fwhm_arcmin=5.0, aperture_radius_arcmin=8.0, include_cmb=True)
 
 
-def run_config(folder: Path, seed: int, weighting: bool) -> dict:
+def run_config(folder: Path, seed: int, weighting: bool, sky_variance=None) -> dict:
+    noise = {"path": str(folder / ivar_file(MAP_FILE)), "tracer_weighting": weighting}
+    if sky_variance is not None:
+        noise["sky_variance_uk2"] = sky_variance
     return {"run": {"seed": seed},
             "catalogue": {"path": str(folder / CATALOGUE_FILE)},
             "map": {"path": str(folder / MAP_FILE)},
-            "noise": {"path": str(folder / ivar_file(MAP_FILE)), "tracer_weighting": weighting},
+            "noise": noise,
             "aperture": {"radius_arcmin": 8.0},
             "bins": {"r_max_mpc": 200.0, "width_mpc": 20.0},
             "covariance": {"n_regions": 30},
@@ -55,9 +58,10 @@ def one_mock(folder: Path, seed: int, args) -> dict:
     for label, weighting in (("plain", False), ("weighted", True)):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", PairvelWarning)
-            res = run_pipeline(config_from_dict(run_config(folder, seed, weighting)))
+            res = run_pipeline(config_from_dict(run_config(folder, seed, weighting, args.sky_variance)))
         out[label] = (res.fit.amplitude, res.fit.error)
         out["effective_fraction"] = res.extra["noise_weighting"]["effective_fraction"]
+        out["sky_variance"] = res.extra["noise_weighting"]["sky_variance_uk2"]
     return out
 
 
@@ -72,6 +76,8 @@ def summarise(rows: list) -> dict:
                     "tau_std": tau.std(ddof=1), "tau": tau, "err": err}
     s["error_ratio"] = np.mean(s["weighted"]["err"] / s["plain"]["err"])
     s["scatter_ratio"] = s["weighted"]["tau_std"] / s["plain"]["tau_std"]
+    diff = (s["weighted"]["tau"] - s["plain"]["tau"]) / exp  # paired: the same mock with and without weights
+    s["paired_diff"], s["paired_diff_sem"] = diff.mean(), diff.std(ddof=1) / np.sqrt(len(rows))
     return s
 
 
@@ -114,6 +120,9 @@ def main(argv=None) -> int:
     p.add_argument("--depth-ratio", type=float, default=10.0)
     p.add_argument("--tau-mean", type=float, default=TAU, help="injected tau_mean (a low one: noise-dominated)")
     p.add_argument("--no-cmb", action="store_true", help="mocks without the primary CMB (noise-dominated apertures)")
+    p.add_argument("--sky-variance", type=float, default=None,
+                   help="noise.sky_variance_uk2 (default: estimated from the data); a tiny value with a noiseless mock "
+                        "gives weights 1/noise variance, a test that weighting leaves tau unbiased")
     p.add_argument("--seed", type=int, default=500)
     p.add_argument("--out", type=Path, default=None, help="folder for noise_weighting.png/.pdf (default: none)")
     args = p.parse_args(argv)
@@ -124,7 +133,7 @@ def main(argv=None) -> int:
             r = rows[-1]
             print(f"mock {k:2d}: truth {r['expected']:.4e}  no weights {r['plain'][0]:.4e} +- {r['plain'][1]:.2e}  "
                   f"weighted {r['weighted'][0]:.4e} +- {r['weighted'][1]:.2e}  "
-                  f"(effective fraction {r['effective_fraction']:.2f})", flush=True)
+                  f"(effective fraction {r['effective_fraction']:.2f}, sky variance {r['sky_variance']:.4g} uK^2)", flush=True)
     s = summarise(rows)
     print(f"\n{_dt.date.today()}: {args.n_mocks} mocks of ~{args.n_tracers} tracers, tau_mean {args.tau_mean:g}, {'no CMB, ' if args.no_cmb else ''}noise {args.noise_uk_arcmin:g} "
           f"uK-arcmin at the centre, depth ratio {args.depth_ratio:g}")
@@ -135,6 +144,7 @@ def main(argv=None) -> int:
               f"scatter of tau/truth {x['tau_std'] / np.mean([r['expected'] for r in rows]):.3f}")
     print(f"  quoted error, weighted / plain: {s['error_ratio']:.3f}; scatter across mocks, weighted / plain: "
           f"{s['scatter_ratio']:.3f}")
+    print(f"  (weighted - plain) / truth, paired over the mocks: {s['paired_diff']:+.3f} +- {s['paired_diff_sem']:.3f}")
     if args.out is not None:
         args.out.mkdir(parents=True, exist_ok=True)
         figure(rows, s, args.out / "noise_weighting", args)

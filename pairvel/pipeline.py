@@ -17,6 +17,7 @@ __all__ = ["run_pipeline", "TemperatureStack"]
 
 import dataclasses
 import datetime as _dt
+import math
 import platform
 import warnings
 from dataclasses import dataclass
@@ -38,7 +39,7 @@ from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_ape
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
-from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures
+from .maps.sourcemask import CLIPPED, NEAR_SOURCE, mask_sources, read_source_list, screen_apertures, source_exclusion
 from .maps.tasks import measure_apertures_in_chunks, trend_without_each_region
 from .maps.trend import remove_redshift_trend
 from .model.template import load_power, load_v12_table, template_for_run
@@ -304,8 +305,9 @@ def measure_tracers(cfg: Config, cat: Catalogue, skymap, progress: Progress,
 def tracer_noise(cfg: Config, cat: Catalogue, sky: SkyInputs, aps: Apertures, temps, progress: Progress):
     """Each tracer's aperture noise at the primary radius (``[noise]``, :mod:`pairvel.maps.noise`); with
     ``noise.tracer_weighting`` the catalogue returned carries the noise weights (times its own), so the
-    pair pass, the pair-averaged template, every null and every covariance use them (the redshift-trend
-    removal and the trend-loss model stay unweighted, as for ``catalogue.weight_column``).
+    pair pass, the pair-averaged template, the trend-loss model's pair sums, every null and every
+    covariance use them (the redshift-trend removal itself stays unweighted, as for
+    ``catalogue.weight_column``).
 
     Returns (cat, info for ``extra["noise_weighting"]``, tracers.fits columns of the used tracers).
     """
@@ -530,8 +532,9 @@ def retrended_sets(temps_raw, z, regions, cfg: Config, runner: TaskRunner | None
 
 
 # ------------------------------------------------------------------ null and simulated sets
-def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress) -> np.ndarray:
-    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data.
+def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, *, sources=None) -> np.ndarray:
+    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data; positions
+    whose apertures would touch a masked point source (``sources``) are redrawn, as such tracers are dropped.
 
     The positions are drawn from their own generator (derived from ``run.seed``), not the run's: the
     number of draws depends on the map, and a run from a tracer table, which has no map and skips
@@ -542,20 +545,22 @@ def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: P
         _skipped_without_map("nulls.n_random", n_null)
         return np.zeros((0, len(cat)))
     return np.concatenate([np.zeros((0, len(cat)))] + list(random_position_chunks(cfg, skymap, cat, scale, progress,
-                                                                                  max(n_null, 1))))
+                                                                                  max(n_null, 1), sources=sources)))
 
 
-def random_position_chunks(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, chunk: int):
+def random_position_chunks(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, chunk: int, *,
+                           sources=None):
     """The sets of :func:`random_position_sets` (a map is needed), ``chunk`` at a time, trend-corrected
     together."""
     n_null = cfg.nulls.n_random
     rng = derived_generators(cfg.run.seed, "random-position null", 1)[0]
+    exclude = source_exclusion(sources, math.sqrt(2.0) * max(aperture_radii(cfg.aperture)))  # the tracers' reach
     sets = []
     for k in range(n_null):
         _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
                                              max_masked_fraction=cfg.map.max_masked_fraction,
                                              pixel_weighting=cfg.aperture.pixel_weighting,
-                                             method=cfg.aperture.method, radius_scale=scale)
+                                             method=cfg.aperture.method, radius_scale=scale, exclude=exclude)
         sets.append(t_r[0])
         progress.say(f"      null set {k + 1}/{n_null}")
         if len(sets) == chunk or k == n_null - 1:
@@ -719,7 +724,7 @@ def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
                       regions, rng, progress: Progress, runner: TaskRunner | None = None):
     """Every temperature set made, stacked, and summed in one pair pass: (stack, PairwiseResult, rotations)."""
     with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
-        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress)
+        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress, sources=sky.sources)
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
         rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
     with progress.stage(f"shuffled nulls: {cfg.nulls.n_shuffle} + {cfg.nulls.n_shuffle_z} within redshift slices, "
@@ -764,7 +769,7 @@ def chunked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
     if n_random:
         with progress.stage(f"null-test photometry: {n_random} sets of random sky positions"):
             start = rows["random_positions"].start
-            for sets in random_position_chunks(cfg, sky.skymap, cat, aps.scale, progress, chunk):
+            for sets in random_position_chunks(cfg, sky.skymap, cat, aps.scale, progress, chunk, sources=sky.sources):
                 engine.add(slice(start, start + sets.shape[0]), sets)
                 start += sets.shape[0]
     elif sky.skymap is None:
@@ -930,13 +935,15 @@ def template(cfg: Config, pr, edges, cat: Catalogue, positions, power, rng, prog
                           f"range has templates that agree this well; raise it or widen the fit range")
     for line in template_progress_lines(info):
         progress.say(line)
-    factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress)
+    factor = trend_loss(positions, cat.z, edges, cfg, rng, power, info, progress, weights=cat.weight)
     v12 = v12 * factor
     return TemplateResult(v12, T_CMB_UK * v12 / C_KM_S, in_fit, z_eff, factor, info)
 
 
-def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress) -> np.ndarray:
-    """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled).
+def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict, progress,
+               weights=None) -> np.ndarray:
+    """Per-bin fraction of the pairwise signal the redshift-trend removal keeps (1 when not modelled), its
+    pairs weighted as the estimator's (``weights``: the catalogue's, noise weights included).
 
     Records the fraction, its Monte Carlo error and the draws in ``template_info``.
     """
@@ -945,7 +952,7 @@ def trend_loss(positions, z, edges, cfg: Config, rng, power, template_info: dict
         template_info["trend_loss_model"] = None
         return np.ones(nbins)
     tr = trend_transfer(positions, z, edges, cfg.trend.sigma_z, seed=rng, cosmo=cfg.cosmology,
-                        wiggles=cfg.theory.wiggles, power=power)
+                        wiggles=cfg.theory.wiggles, power=power, weights=weights)
     factor = tr.factor
     template_info["trend_loss_model"] = {
         "kept_fraction": [round(float(x), 5) for x in factor],

@@ -410,7 +410,16 @@ def rectangular_pixel_window(height_rad: float, width_rad: float, lmax: int, *, 
 
 def grid_pixel_window(grid: RingGrid, lmax: int) -> np.ndarray:
     """:func:`rectangular_pixel_window` of the grid's mean pixel: height the mean row height in
-    colatitude, width the mean pixel solid angle divided by that height."""
+    colatitude, width the mean pixel solid angle divided by that height.
+
+    Accuracy (measured 2026-12-05 against the window of one pixel computed on the sphere from its
+    definition, tests/maps/test_car_sht.py): for a pixel's own shape (side a x a cos(dec)) the flat-sky
+    form is exact to < 3e-5 up to l = 21600 at 0.5' pixels, at declinations 0-75 deg.  One window for
+    the whole grid is the approximation: the pixels narrow as cos(dec), so on a 0.5' grid spanning
+    |dec| <= 60 deg the mean pixel's window is off at dec 0 / 60 by +0.13% / -0.17% at l = 3000,
+    +0.5% / -0.7% at 6000, +1.4% / -2.0% at 10000, +3.4% / -4.6% at 15000; its only user, the
+    pre-filter's analytic aperture response, integrates over the rows, where the errors of opposite
+    sign partly cancel.  Grids spanning a narrow range in declination are well inside 1%."""
     lo, hi = _row_edges(grid.theta_rad)
     height = float(np.mean(hi - lo)) if grid.n_lat > 1 else abs(grid.dlon_rad)
     return rectangular_pixel_window(height, float(np.mean(pixel_solid_angles(grid))) / height, lmax)

@@ -291,7 +291,8 @@ def _drop_reasons(skymap: SkyMap, ra, dec, radii, res: ApertureResult, options: 
     return reason.astype(str)
 
 
-def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto", scale=None):
+def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting="centre", method="auto", scale=None,
+                 exclude=None):
     if not np.any(skymap.weight > 0):
         raise MapError(f"map {skymap.path}: no usable pixels to place random apertures on", path=skymap.path)
     ra_parts, dec_parts, t_parts = [], [], []
@@ -306,7 +307,11 @@ def _draw_usable(skymap: SkyMap, n: int, rng, radii, fmax, max_draws, weighting=
         ra, dec = skymap.random_points(k, rng)  # in the map's frame
         cand_scale = None if scale is None else scale[rng.integers(0, scale.size, k)]
         res = _measure(skymap, ra, dec, radii, fmax, None, weighting=weighting, method=method, scale=cand_scale)
-        ok = np.flatnonzero(res.usable)
+        usable = res.usable
+        if exclude is not None:  # refused as a tracer would be (near a masked point source)
+            usable = usable & ~np.asarray(exclude(*skymap.to_equatorial(ra, dec),
+                                                  np.ones(k) if cand_scale is None else cand_scale), dtype=bool)
+        ok = np.flatnonzero(usable)
         drawn += k
         accepted += ok.size
         ok = ok[: n - have]
@@ -356,7 +361,7 @@ def random_positions_in_footprint(skymap: SkyMap, n, *, seed, radius_arcmin, max
 
 
 def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_masked_fraction=0.1, max_draws=None,
-                             pixel_weighting="centre", method="auto", radius_scale=None):
+                             pixel_weighting="centre", method="auto", radius_scale=None, exclude=None):
     """Random usable positions (see :func:`random_positions_in_footprint`) and their aperture temperatures.
 
     Returns
@@ -371,6 +376,11 @@ def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_mask
     With ``radius_scale`` (any length), each candidate position takes a scale drawn at random from
     it, so the random apertures follow the tracers' radius distribution (up to the acceptance,
     which favours small apertures where the footprint is fragmented).
+
+    ``exclude``, if given, is called as ``exclude(ra_deg, dec_deg, scale)`` on each batch of candidate
+    positions (equatorial degrees, and their radius scale, 1 for fixed radii) and returns a bool array:
+    True positions are refused and redrawn, as tracers screened out after the photometry would be
+    (:func:`pairvel.maps.sourcemask.source_exclusion`: apertures touching a masked point source).
     """
     if not isinstance(skymap, SkyMap):
         raise InputError(f"skymap must be a pairvel SkyMap (see read_map); got {type(skymap).__name__}")
@@ -382,4 +392,6 @@ def measure_random_apertures(skymap: SkyMap, n, radius_arcmin, *, seed, max_mask
     _check_choice(pixel_weighting, _WEIGHTINGS, "pixel_weighting")
     _check_choice(method, _METHODS, "method")
     scale = None if radius_scale is None else _check_scale(radius_scale, np.size(radius_scale))
-    return _draw_usable(skymap, n, rng, radii, fmax, limit, pixel_weighting, method, scale)
+    if exclude is not None and not callable(exclude):
+        raise InputError(f"exclude must be a callable (ra_deg, dec_deg, scale) -> bool array; got {type(exclude).__name__}")
+    return _draw_usable(skymap, n, rng, radii, fmax, limit, pixel_weighting, method, scale, exclude)

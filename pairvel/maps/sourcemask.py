@@ -25,7 +25,7 @@ robust sigma; 1.4826 MAD is the standard deviation of a Gaussian [analytic: 1 / 
 
 from __future__ import annotations
 
-__all__ = ["SourceList", "read_source_list", "source_radii_arcmin", "mask_sources", "near_sources",
+__all__ = ["SourceList", "read_source_list", "source_radii_arcmin", "mask_sources", "near_sources", "source_exclusion",
            "clip_outliers", "screen_apertures", "NEAR_SOURCE", "CLIPPED", "MAD_TO_SIGMA"]
 
 from dataclasses import dataclass
@@ -159,6 +159,20 @@ def near_sources(ra_deg, dec_deg, reach_arcmin, sources: SourceList) -> np.ndarr
     out = np.zeros(n, dtype=bool)
     out[t_idx[touches]] = True
     return out
+
+
+def source_exclusion(sources: SourceList | None, reach_arcmin: float):
+    """The ``exclude`` test of :func:`pairvel.maps.photometry.measure_random_apertures` that refuses random
+    apertures as :func:`screen_apertures` refuses tracers: those reaching within a source's disc, the reach
+    ``reach_arcmin`` (the outer annulus radius of the largest aperture) times each position's radius
+    scale.  None without sources."""
+    if sources is None or not len(sources):
+        return None
+
+    def near(ra_deg, dec_deg, scale):
+        return near_sources(ra_deg, dec_deg, float(reach_arcmin) * np.asarray(scale, dtype=float), sources)
+
+    return near
 
 
 def clip_outliers(temperatures, threshold_sigma: float) -> tuple[np.ndarray, dict]:

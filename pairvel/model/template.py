@@ -55,7 +55,8 @@ def los_error_mpc(z, sigma_z0: float, *, cosmo: Cosmology = DEFAULT_COSMOLOGY):
     return C_KM_S * sigma_z0 * (1 + z) / cosmo.hubble_km_s_mpc(z)
 
 
-def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nodes: int = 16, z_partner=None):
+def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nodes: int = 16, z_partner=None,
+                               weights=None):
     """Redshift distribution of the pairs of a catalogue, (dN/dz)^2 / (dV/dz), on ``n_nodes`` nodes.
 
     Parameters
@@ -67,6 +68,9 @@ def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nod
     z_partner : ndarray of shape (m,), optional
         Redshifts of a second catalogue: the distribution of the cross pairs, (dN_1/dz)(dN_2/dz) / (dV/dz),
         on bins spanning both.
+    weights : ndarray of shape (n,), optional
+        The estimator's tracer weights w_i (pairs weigh w_i w_j): dN/dz becomes sum w_i per unit z.
+        The nodes kept are those holding tracers, as without weights.
 
     Returns
     -------
@@ -83,12 +87,16 @@ def pair_redshift_distribution(z, *, cosmo: Cosmology = DEFAULT_COSMOLOGY, n_nod
         return np.array([lo]), np.array([1.0])
     counts, e = np.histogram(z, bins=n_nodes, range=(lo, hi))
     counts2 = counts if z_partner is None else np.histogram(z2, bins=n_nodes, range=(lo, hi))[0]
+    summed = counts if weights is None else np.histogram(z, bins=n_nodes, range=(lo, hi),
+                                                         weights=np.asarray(weights, dtype=float))[0]
     zc = 0.5 * (e[1:] + e[:-1])
     chi = cosmo.comoving_distance_mpc(zc)
     dvdz = chi**2 / cosmo.hubble_km_s_mpc(zc)  # up to constants that cancel
-    dndz = counts / np.diff(e)
+    dndz = summed / np.diff(e)
     w = dndz * (dndz if z_partner is None else counts2 / np.diff(e)) / dvdz
-    keep = w > 0
+    keep = counts * counts2 > 0
+    if not np.sum(w[keep]) > 0:
+        raise TheoryError("the tracer weights sum to zero in every redshift shell; cannot weight the pair redshifts")
     return zc[keep], w[keep] / w[keep].sum()
 
 
@@ -268,7 +276,8 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
     power : TabulatedPower, optional
         From :func:`load_power`.
     proxy, weights : ndarray of shape (n,), optional
-        The tracers' proxy column and pair weights, for ``theory.bias_from_proxy``.
+        The tracers' proxy column (for ``theory.bias_from_proxy``) and the estimator's tracer weights
+        (pairs weigh w_i w_j: the pair redshift distribution and the pair-weighted bias use them).
     v12_table : V12Table, optional
         From :func:`load_v12_table`, for ``theory.velocity_model = "table"`` (and the comparison).
     bias : (float, float), optional
@@ -281,7 +290,7 @@ def template_for_run(theory_cfg, cosmo: Cosmology, edges, *, pair_counts, z_trac
     if tc.bias is None and tc.bias_from_proxy is None:  # load_config refuses such a config; this catches one in code
         raise TheoryError("theory.bias is required: tau_mean scales as 1/b, so no value is assumed")
     if tc.redshift_weighting == "pair_distribution":
-        z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo, z_partner=z_partner)
+        z_nodes, z_w = pair_redshift_distribution(z_tracers, cosmo=cosmo, z_partner=z_partner, weights=weights)
     else:
         z_nodes, z_w = np.array([z_eff]), np.array([1.0])
     if bias is None:
@@ -344,7 +353,7 @@ def _run_bias(tc, cosmo: Cosmology, z_tracers, z_w, *, proxy, weights, power):
     b_i = tracer_bias(mass, z, delta=tc.halo_overdensity, cosmo=cosmo, wiggles=tc.wiggles, power=power)
     b_shell = pair_weighted_bias(b_i, z, weights=weights)  # the shells of pair_redshift_distribution
     by_shell = tc.redshift_weighting == "pair_distribution"
-    share = z_w if by_shell else pair_redshift_distribution(z, cosmo=cosmo)[1]
+    share = z_w if by_shell else pair_redshift_distribution(z, cosmo=cosmo, weights=weights)[1]
     b_eff = float(np.sum(share * b_shell))
     bias = b_shell if by_shell else b_eff
     info = {"b_eff": b_eff, "b_per_redshift_node": np.atleast_1d(bias).tolist(),

@@ -28,9 +28,15 @@ random subsample of the catalogue.  The template of a run with trend removal is 
 plain template.
 
 Approximations (each small at the scales fitted, and checked by the validation mocks): the
-clustering of the shell tracers around i and j (second order), catalogue weights (pairs counted
-unweighted) and the tracers' own redshift-space positions are ignored; the streaming law is the
-linear one at the matter correlation's shape (its amplitude cancels).
+clustering of the shell tracers around i and j (second order) and the tracers' own redshift-space
+positions are ignored; the streaming law is the linear one at the matter correlation's shape (its
+amplitude cancels).
+
+Tracer weights (``weights``: catalogue weights, noise weights) enter as they enter the estimator:
+each drawn pair's terms count with w_i w_j in both sums of R_b, so the kept fraction is that of the
+weighted numerator.  The trend removal itself is unweighted (every tracer counts once in the kernel
+mean, :mod:`pairvel.maps.trend`), and so are the shell means here.  Without weights (or with equal
+ones) the draws and the result are exactly those of the unweighted model.
 """
 
 from __future__ import annotations
@@ -160,7 +166,8 @@ def _draw_pairs(pos, edges, n_pairs, rng, n_sub):
 
 
 def trend_transfer(positions, z, edges, sigma_z, *, seed=None, n_pairs=400, n_shell=8000, n_sub=4000,
-                   cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True, power=None) -> TrendTransfer:
+                   cosmo: Cosmology = DEFAULT_COSMOLOGY, wiggles: bool = True, power=None,
+                   weights=None) -> TrendTransfer:
     """Expected trend-removed signal over the plain signal per separation bin (module docstring).
 
     Parameters
@@ -180,6 +187,8 @@ def trend_transfer(positions, z, edges, sigma_z, *, seed=None, n_pairs=400, n_sh
         Catalogue tracers standing for the redshift shells.
     n_sub : int, default 4000
         Tracers whose neighbour counts weight the pair draws.
+    weights : ndarray of shape (N,), optional
+        The estimator's tracer weights (>= 0); a drawn pair counts with w_i w_j.  None: all 1.
 
     Returns
     -------
@@ -194,6 +203,10 @@ def trend_transfer(positions, z, edges, sigma_z, *, seed=None, n_pairs=400, n_sh
         raise InputError(f"trend transfer needs positions (N, 3) and redshifts (N,); got {pos.shape} and {z.shape}")
     if not (math.isfinite(sigma_z) and sigma_z > 0):
         raise InputError(f"trend transfer needs sigma_z > 0; got {sigma_z!r}", key="trend.sigma_z")
+    w = np.ones(z.size) if weights is None else np.asarray(weights, dtype=np.float64)
+    if w.shape != z.shape or not np.all(np.isfinite(w) & (w >= 0)) or not np.any(w > 0):
+        raise InputError(f"trend transfer needs finite weights >= 0 (not all 0), one per tracer ({z.size}); got "
+                         f"shape {w.shape}")
     rng = as_generator(seed)
     s_tab, u_tab = _streaming_table(cosmo, wiggles, power)
     step = 0.25
@@ -230,11 +243,15 @@ def trend_transfer(positions, z, edges, sigma_z, *, seed=None, n_pairs=400, n_sh
         w_ij = np.exp(-((z[i] - z[j]) ** 2) * inv2s2)
         own_i = (a_i + w_ij * a_j) / ks[0]
         own_j = (a_j + w_ij * a_i) / ks[1]
-        plain = c * (a_i - a_j)
-        removed = c * ((g[0] + g[1] + own_i) - (g[2] + g[3] + own_j))
+        pw = w[i] * w[j]
+        if not np.any(pw > 0):
+            continue
+        pw = pw / pw.mean()
+        plain = pw * c * (a_i - a_j)
+        removed = pw * c * ((g[0] + g[1] + own_i) - (g[2] + g[3] + own_j))
         mean_plain = plain.mean()
         ratio[b] = 1.0 - removed.mean() / mean_plain
-        # delta method on the ratio of two means over independent pairs
+        # delta method on the ratio of two means over independent pairs (the weights' own mean fixed)
         t = -removed / mean_plain + (1.0 - ratio[b]) * plain / mean_plain
         error[b] = t.std(ddof=1) / math.sqrt(t.size)
     return TrendTransfer(ratio, error, int(n_pairs), int(shell.size))

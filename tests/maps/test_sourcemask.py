@@ -12,10 +12,10 @@ from scipy.stats import norm
 from pairvel.core.errors import ConfigError, InputError
 from pairvel.input.config import config_from_dict
 from pairvel.maps.healpix import HealpixMap
-from pairvel.maps.photometry import measure_apertures
+from pairvel.maps.photometry import measure_apertures, measure_random_apertures
 from pairvel.maps.sources import paint_beam_sources
 from pairvel.maps.sourcemask import (CLIPPED, NEAR_SOURCE, SourceList, clip_outliers, mask_sources, near_sources,
-                                     read_source_list, screen_apertures, source_radii_arcmin)
+                                     read_source_list, screen_apertures, source_exclusion, source_radii_arcmin)
 
 NSIDE = 2048  # 1.72 arcmin pixels
 CENTRE = (30.0, 5.0)
@@ -55,6 +55,29 @@ def test_near_sources_uses_source_radius_plus_aperture_reach():
     assert near.tolist() == [True, False, False, False]  # analytic: 3' + 2.828' = 5.828'
     per_tracer = near_sources(np.full(4, 30.0), 5.0 + offsets, np.array([2.9, 2.8, 3.1, 5.1]), src)
     assert per_tracer.tolist() == [True, False, True, True]  # analytic: reach + 3' against 5.7, 5.9, 6.0, 8.0'
+
+
+@pytest.mark.parametrize("scaled", [False, True])
+def test_random_apertures_obey_the_source_screen_of_the_tracers(scaled):
+    """Random null apertures on a source-masked map: with the tracers' screen (source_exclusion) none reaches
+    a source's disc (analytic: separation >= disc radius + sqrt(2) x aperture radius x scale); without it,
+    apertures partly over the masked discs are accepted up to max_masked_fraction."""
+    src = sources_at([29.7, 30.0, 30.4, 30.1], [5.3, 4.6, 5.1, 5.6], 4.0)
+    sky = mask_sources(patch(radius_deg=1.0), src)
+    radius, reach = 3.0, math.sqrt(2) * 3.0
+    scale = np.array([0.8, 1.0, 1.3]) if scaled else None
+    seps = {}
+    for label, exclude in (("screened", source_exclusion(src, reach)), ("plain", None)):
+        ra, dec, t = measure_random_apertures(sky, 3000, radius, seed=4, max_masked_fraction=0.3, radius_scale=scale,
+                                              exclude=exclude)
+        assert ra.size == 3000 and np.all(np.isfinite(t))
+        sep = np.degrees(np.arccos(np.clip(hp.ang2vec(ra, dec, lonlat=True) @ hp.ang2vec(src.ra, src.dec, lonlat=True).T,
+                                           -1, 1))).min(axis=1) * 60.0
+        seps[label] = sep
+    # the smallest scale bounds every reach from below: screened positions lie beyond 4' + 0.8 x 4.24'
+    assert seps["screened"].min() >= 4.0 + (0.8 if scaled else 1.0) * reach - 1e-6
+    assert np.sum(seps["plain"] < 4.0 + reach) > 20  # without the screen, many random apertures touch a disc
+    assert source_exclusion(None, reach) is None
 
 
 def test_flux_rule_for_the_disc_radius():

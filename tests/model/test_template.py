@@ -163,3 +163,17 @@ def test_template_for_run_refuses_a_config_without_bias():
     with pytest.raises(TheoryError, match=r"theory\.bias is required: tau_mean scales as 1/b"):
         tp.template_for_run(TheoryConfig(), DEFAULT_COSMOLOGY, edges, pair_counts=np.ones(2),
                             z_tracers=np.array([0.2, 0.3]), z_eff=0.25)
+
+
+def test_pair_redshift_distribution_with_weights_counts_a_tracer_w_times():
+    """Analytic: integer weights give the distribution of the catalogue with each tracer repeated w times."""
+    rng = np.random.default_rng(8)
+    z = rng.uniform(0.1, 0.5, 3000)
+    w = rng.integers(0, 4, z.size)
+    w[np.argmin(z)] = w[np.argmax(z)] = 1  # the same redshift range, so the same nodes
+    zn, share = tp.pair_redshift_distribution(z, n_nodes=10, weights=w.astype(float))
+    zr, rep = tp.pair_redshift_distribution(np.repeat(z, w), n_nodes=10)
+    np.testing.assert_allclose(zn, zr, rtol=1e-12)
+    np.testing.assert_allclose(share, rep, rtol=1e-12)
+    _, plain = tp.pair_redshift_distribution(z, n_nodes=10)
+    assert not np.allclose(share, plain, rtol=1e-3)

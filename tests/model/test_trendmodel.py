@@ -88,3 +88,20 @@ def test_same_seed_same_result_and_bad_input_refused():
         trend_transfer(pos, z, edges, 0.0)
     with pytest.raises(InputError, match="positions"):
         trend_transfer(pos[:, :2], z, edges, 0.01)
+
+
+def test_pair_weights_enter_both_sums():
+    """Equal weights change nothing (they cancel in R_b, analytic); 0/1 weights on a random half of the
+    tracers (a sub-population with the same geometry) keep the same fraction within the Monte Carlo
+    errors, whereas a weight on one sum only would not; bad weights are refused."""
+    pos, z = _cone(6000, 12)
+    edges = np.arange(0.0, 241.0, 40.0)
+    plain = trend_transfer(pos, z, edges, 0.01, seed=4, n_pairs=300, n_shell=3000)
+    equal = trend_transfer(pos, z, edges, 0.01, seed=4, n_pairs=300, n_shell=3000, weights=np.full(z.size, 3.0))
+    np.testing.assert_allclose(equal.ratio, plain.ratio, rtol=1e-12)
+    half = (np.random.default_rng(13).uniform(size=z.size) < 0.5).astype(float)
+    sub = trend_transfer(pos, z, edges, 0.01, seed=5, n_pairs=1200, n_shell=3000, weights=half)
+    assert np.all(np.abs(sub.ratio - plain.ratio) < 4.0 * np.hypot(sub.error, plain.error))
+    assert np.any(np.abs(sub.ratio - plain.ratio) > 0.0)  # a different pair sample: not a copy
+    with pytest.raises(InputError, match="weights"):
+        trend_transfer(pos, z, edges, 0.01, weights=-half)
