@@ -6,6 +6,10 @@ up to r_max = 150 Mpc.  The baseline finds the pairs with ``scipy.spatial.cKDTre
 every pair in memory, so it runs on a subsample when the pair list would be large; its rate is then
 quoted per pair and the full-size time is scaled by the pair count.
 
+With gcc present, the engine is also compared with ``cell_loop.c`` (a plain single-threaded C
+cell-list loop, same arithmetic and pair counts) at the C loop's fastest cell size, interleaved
+rounds, median ratios and the load average printed (see :func:`compare_with_c`).
+
 Usage::
 
     python benchmarks/bench_pairs.py --n 2e5          # also builds cell_loop.c with gcc -O3 -march=native
