@@ -6,9 +6,13 @@ up to r_max = 150 Mpc.  The baseline finds the pairs with ``scipy.spatial.cKDTre
 every pair in memory, so it runs on a subsample when the pair list would be large; its rate is then
 quoted per pair and the full-size time is scaled by the pair count.
 
+With gcc present, the engine is also compared with ``cell_loop.c`` (a plain single-threaded C
+cell-list loop, same arithmetic and pair counts) at the C loop's fastest cell size, interleaved
+rounds, median ratios and the load average printed (see :func:`compare_with_c`).
+
 Usage::
 
-    python benchmarks/bench_pairs.py --n 2e5          # also builds cell_loop.c with gcc -O2
+    python benchmarks/bench_pairs.py --n 2e5          # also builds cell_loop.c with gcc -O3 -march=native
     python benchmarks/bench_pairs.py --n 1e6 --sets 3 --regions 50 --baseline-max-pairs 0
 """
 
@@ -16,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import ctypes
+import os
 import pathlib
 import resource
 import shutil
@@ -24,6 +29,7 @@ import tempfile
 import time
 import tracemalloc
 
+import numba
 import numpy as np
 from scipy.spatial import cKDTree
 
@@ -60,26 +66,81 @@ def baseline(pos, temps, edges):
     return -num / den, cnt
 
 
-def c_loop_time(pos, temps, edges, flags):
-    """Build cell_loop.c with gcc and time it on the same points (single set); None without gcc."""
+def build_c_loop(flags, directory):
+    """Compile cell_loop.c with gcc into ``directory``; a function running it, or None without gcc.
+
+    The function takes (pos, temps, edges, n_sub) and returns (seconds, p, pair counts).
+    """
     gcc = shutil.which("gcc")
     if gcc is None:
         return None
-    with tempfile.TemporaryDirectory() as tmp:
-        lib_path = pathlib.Path(tmp) / "cell_loop.so"
-        src = pathlib.Path(__file__).with_name("cell_loop.c")
-        subprocess.run([gcc, *flags.split(), "-shared", "-fPIC", str(src), "-o", str(lib_path), "-lm"], check=True)
-        lib = ctypes.CDLL(str(lib_path))
-        dbl = np.ctypeslib.ndpointer(np.float64, flags="C_CONTIGUOUS")
-        lng = np.ctypeslib.ndpointer(np.int64, flags="C_CONTIGUOUS")
-        lib.cell_loop.argtypes = [ctypes.c_long, dbl, dbl, ctypes.c_double, ctypes.c_long, dbl, dbl, dbl, lng]
+    lib_path = pathlib.Path(directory) / "cell_loop.so"
+    src = pathlib.Path(__file__).with_name("cell_loop.c")
+    subprocess.run([gcc, *flags.split(), "-shared", "-fPIC", str(src), "-o", str(lib_path), "-lm"], check=True)
+    lib = ctypes.CDLL(str(lib_path))
+    dbl = np.ctypeslib.ndpointer(np.float64, flags="C_CONTIGUOUS")
+    lng = np.ctypeslib.ndpointer(np.int64, flags="C_CONTIGUOUS")
+    lib.cell_loop.argtypes = [ctypes.c_long, dbl, dbl, ctypes.c_double, ctypes.c_long, dbl, dbl, dbl, lng,
+                              ctypes.c_long]
+
+    def run(pos, temps, edges, n_sub):
         nbins = edges.size - 1
         num, den, cnt = np.zeros(nbins), np.zeros(nbins), np.zeros(nbins, dtype=np.int64)
+        pos_c, temps_c, edges_c = np.ascontiguousarray(pos), np.ascontiguousarray(temps), np.ascontiguousarray(edges)
         t0 = time.perf_counter()
-        lib.cell_loop(pos.shape[0], np.ascontiguousarray(pos), np.ascontiguousarray(temps), float(edges[-1]), nbins,
-                      np.ascontiguousarray(edges), num, den, cnt)
-        elapsed = time.perf_counter() - t0
-    return elapsed, -num / den, cnt
+        lib.cell_loop(pos.shape[0], pos_c, temps_c, float(edges[-1]), nbins, edges_c, num, den, cnt, int(n_sub))
+        return time.perf_counter() - t0, -num / den, cnt
+
+    return run
+
+
+def compare_with_c(pos, temps, edges, flags, threads, repeat):
+    """The pair engine against the C loop at its fastest cell size, same points, single set, no jackknife.
+
+    Cell sizes r_max / n_sub, n_sub = 1-4, are scanned first (best of two runs each); then the
+    engine on ``threads`` threads, the engine on 1 thread and the C loop at its best n_sub run
+    interleaved ``repeat`` times, and the ratios of each round are summarised by their median, so
+    that load from other users of the machine falls on both sides alike.
+    """
+    with tempfile.TemporaryDirectory() as tmp:
+        run_c = build_c_loop(flags, tmp)
+        if run_c is None:
+            print("C cell-list loop: skipped (no gcc)")
+            return
+        ours = pairwise_momentum(pos, temps, edges, n_threads=threads)
+        scan = {}
+        for n_sub in (1, 2, 3, 4):
+            runs = [run_c(pos, temps, edges, n_sub) for _ in range(2)]
+            t_c, p_c, cnt_c = min(runs, key=lambda got: got[0])
+            if not np.array_equal(cnt_c, ours.pair_counts):
+                raise RuntimeError(f"C loop (n_sub={n_sub}) and pair engine count different pairs")
+            scan[n_sub] = t_c
+            agree = np.nanmax(np.abs(p_c - ours.p) / np.abs(ours.p))
+            print(f"  C loop, cells of r_max/{n_sub}: {t_c:.3f} s [same pair counts; max relative difference "
+                  f"of p {agree:.1e}]")
+        best_sub = min(scan, key=scan.get)
+        n_pairs = int(ours.pair_counts.sum())
+        rounds = []
+        for _ in range(max(repeat, 1)):
+            t0 = time.perf_counter()
+            pairwise_momentum(pos, temps, edges, n_threads=threads)
+            t_many = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            pairwise_momentum(pos, temps, edges, n_threads=1)
+            t_one = time.perf_counter() - t0
+            t_c = run_c(pos, temps, edges, best_sub)[0]
+            rounds.append((t_many, t_one, t_c))
+        t_many, t_one, t_c = np.median(np.array(rounds), axis=0)
+        r_many = np.median([c / a for a, _, c in rounds])
+        r_one = np.median([c / b for _, b, c in rounds])
+        print(f"C cell-list loop (gcc {flags}, 1 thread) at its fastest cells, r_max/{best_sub}; "
+              f"{n_pairs:,} pairs, single set, no jackknife; medians of {len(rounds)} interleaved rounds:")
+        print(f"  C loop 1 thread : {t_c:.3f} s -> {n_pairs / t_c:.3e} pairs/s")
+        print(f"  pairvel 1 thread: {t_one:.3f} s -> {n_pairs / t_one:.3e} pairs/s; C time / pairvel time "
+              f"{r_one:.2f}x")
+        print(f"  pairvel {numba.get_num_threads() if threads is None else threads} threads: {t_many:.3f} s -> "
+              f"{n_pairs / t_many:.3e} pairs/s; C time / pairvel time {r_many:.2f}x")
+        print(f"  load average (1, 5, 15 min) after: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
 
 
 def peak_rss_mb():
@@ -96,7 +157,9 @@ def main(argv=None):
     parser.add_argument("--regions", type=int, default=0, help="jackknife regions (default 0: none)")
     parser.add_argument("--threads", type=int, default=None, help="numba threads (default: all)")
     parser.add_argument("--repeat", type=int, default=3, help="timed repeats of the pair engine; best is shown")
-    parser.add_argument("--c-flags", default="-O2", help="gcc flags for the C cell-list loop (default -O2; '' skips it)")
+    parser.add_argument("--c-flags", default="-O3 -march=native",
+                        help="gcc flags for the C cell-list loop (default '-O3 -march=native'; '' skips it)")
+    parser.add_argument("--c-repeat", type=int, default=5, help="interleaved rounds against the C loop (default 5)")
     parser.add_argument("--baseline-max-pairs", type=float, default=2e7,
                         help="run the baseline on a subsample with about this many pairs (0: skip it)")
     args = parser.parse_args(argv)
@@ -126,17 +189,8 @@ def main(argv=None):
 
     t_single = temps if temps.ndim == 1 else temps[0]
     if args.c_flags and edges[0] == 0.0:
-        ours_one = pairwise_momentum(pos, t_single, edges, n_threads=args.threads)
-        got = c_loop_time(pos, t_single, edges, args.c_flags)
-        if got is None:
-            print("C cell-list loop: skipped (no gcc)")
-        else:
-            t_c, p_c, cnt_c = got
-            same = np.array_equal(cnt_c, ours_one.pair_counts)
-            agree_c = np.nanmax(np.abs(p_c - ours_one.p) / np.abs(ours_one.p))
-            print(f"C cell-list loop (gcc {args.c_flags}, 1 thread, single set, no jackknife): {t_c:.3f} s -> "
-                  f"{cnt_c.sum() / t_c:.3e} pairs/s; pairvel / C = {rate / (cnt_c.sum() / t_c):.2f}x "
-                  f"[same pair counts: {same}; max relative difference of p: {agree_c:.1e}]")
+        print(f"load average (1, 5, 15 min) before the C comparison: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
+        compare_with_c(pos, t_single, edges, args.c_flags, args.threads, args.c_repeat)
     if args.baseline_max_pairs <= 0:
         return 0
     frac = min(1.0, np.sqrt(args.baseline_max_pairs / max(n_pairs, 1)))  # pairs scale as n^2
