@@ -168,8 +168,10 @@ def slice_means(sets, z, width) -> np.ndarray:
     set shuffled within those slices averages to over many shuffles."""
     sets = np.atleast_2d(np.asarray(sets, dtype=float))
     out = np.empty_like(sets)
-    for g in _slices(z, width):
-        out[:, g] = sets[:, g].mean(axis=1, keepdims=True)
+    groups = _slices(z, width)
+    for row, values in zip(out, sets):  # set by set: numpy's mean over a 2-D block rounds by its row count
+        for g in groups:
+            row[g] = values[g].mean()
     return out
 
 
