@@ -136,30 +136,44 @@ class MeteredRunner(TaskRunner):
         self.stages, self.shared_bytes, self.waited = {}, 0, 0.0
 
     def share(self, value):
-        from dask.sizeof import sizeof
-
-        self.shared_bytes += sizeof(value) * self.n_workers()  # a broadcast: one copy per worker
+        self.shared_bytes += _nbytes(value) * self.n_workers()  # a broadcast: one copy per worker
         return super().share(value)
 
     def run(self, fn, calls):
-        from dask.sizeof import sizeof
-
         calls = [tuple(c) for c in calls]
-        name = _task_name(fn, calls[0]) if calls else fn.__name__
         t0 = time.perf_counter()
         done = super().run(_timed, [(fn, *c) for c in calls])
         self.waited += time.perf_counter() - t0
-        row = self.stages.setdefault(name, {"tasks": 0, "scattered": 0, "back": 0, "cpu": [], "wall": 0.0})
-        row["tasks"] += len(calls)
-        row["scattered"] += self.shared_bytes
+        rows = [self.stages.setdefault(_task_name(fn, c), {"tasks": 0, "scattered": 0, "back": 0, "cpu": []})
+                for c in calls]
+        for row, (out, cpu) in zip(rows, done):
+            row["tasks"] += 1
+            row["back"] += _nbytes(out)
+            row["cpu"].append(cpu)
+        if rows:  # the data shared for this call, counted with its first stage
+            rows[0]["scattered"] += self.shared_bytes
         self.shared_bytes = 0
-        row["back"] += sum(sizeof(out) for out, _ in done)
-        row["cpu"] += [cpu for _, cpu in done]
-        row["wall"] += time.perf_counter() - t0
         return [out for out, _ in done]
 
 
-def stages(n_workers: int) -> None:
+def _nbytes(obj, seen=None) -> int:
+    """Bytes of the numpy arrays inside ``obj`` (tuples, lists, dicts, objects' attributes), each counted once."""
+    seen = set() if seen is None else seen
+    if id(obj) in seen or obj is None or isinstance(obj, (str, bytes, int, float, bool)):
+        return 0
+    seen.add(id(obj))
+    if isinstance(obj, np.ndarray):
+        return obj.nbytes
+    if isinstance(obj, dict):
+        return sum(_nbytes(v, seen) for v in obj.values())
+    if isinstance(obj, (tuple, list)):
+        return sum(_nbytes(v, seen) for v in obj)
+    fields = getattr(obj, "__dict__", None) or {n: getattr(obj, n) for n in getattr(obj, "__slots__", ())
+                                                 if hasattr(obj, n)}
+    return sum(_nbytes(v, seen) for v in fields.values())
+
+
+def stages(n_workers: int, n_sim: int = 0) -> None:
     """The demo run on a LocalCluster with a metered runner: the per-stage table and the Amdahl model."""
     import contextlib
     import tempfile
@@ -175,6 +189,8 @@ def stages(n_workers: int) -> None:
         runner = MeteredRunner(client)
         pipeline.compute_runner = lambda cfg: contextlib.nullcontext(runner)
         text = demo.read_text().replace('"../demo_data/', f'"{ROOT}/demo_data/')
+        if n_sim:
+            text = text.replace("[covariance]\n", f'[covariance]\nestimator = "simulations"\nn_sim = {n_sim}\n')
         path = Path(tmp) / "demo_on_dask.toml"
         path.write_text(f'{text}\n[compute]\nscheduler_address = "{cluster.scheduler_address}"\nn_threads = 1\n')
         with warnings.catch_warnings():
@@ -184,7 +200,7 @@ def stages(n_workers: int) -> None:
             wall = time.perf_counter() - t0
     serial = wall - runner.waited
     parallel = sum(sum(row["cpu"]) for row in runner.stages.values())
-    print(f"demo run on {n_workers} one-thread workers: {wall:.1f} s wall, {runner.waited:.1f} s of it waiting for "
+    print(f"demo run{f' with {n_sim} simulated skies' if n_sim else ''} on {n_workers} one-thread workers: {wall:.1f} s wall, {runner.waited:.1f} s of it waiting for "
           f"tasks; serial driver part S = {serial:.1f} s")
     print("| stage | tasks | scattered (MiB, all workers) | gathered (MiB) | CPU s per task (median, max) | CPU s |")
     print("|---|---|---|---|---|---|")
@@ -208,9 +224,10 @@ def main(argv=None):
     ap.add_argument("--repeat", type=int, default=2)
     ap.add_argument("--whole-run", action="store_true", help="the demo run, in this process and on the cluster")
     ap.add_argument("--stages", action="store_true", help="the demo run on the cluster: per-stage work and data table")
+    ap.add_argument("--sims", type=int, default=0, help="with --stages: simulated-sky covariance of this many skies")
     args = ap.parse_args(argv)
     if args.stages:
-        return stages(args.workers)
+        return stages(args.workers, args.sims)
     if args.whole_run:
         return whole_run(args.workers)
     from dask.distributed import Client, LocalCluster
