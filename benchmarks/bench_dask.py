@@ -133,26 +133,25 @@ class MeteredRunner(TaskRunner):
 
     def __init__(self, client, **kw):
         super().__init__(client, **kw)
-        self.stages, self.shared_bytes, self.waited = {}, 0, 0.0
+        self.stages, self.ref_bytes, self.waited = {}, {}, 0.0
 
     def share(self, value):
-        self.shared_bytes += _nbytes(value) * self.n_workers()  # a broadcast: one copy per worker
-        return super().share(value)
+        ref = super().share(value)
+        if self.client is not None:  # a broadcast: one copy per worker, counted with the first stage that reads it
+            self.ref_bytes[ref.key] = _nbytes(value) * self.n_workers()
+        return ref
 
     def run(self, fn, calls):
         calls = [tuple(c) for c in calls]
         t0 = time.perf_counter()
         done = super().run(_timed, [(fn, *c) for c in calls])
         self.waited += time.perf_counter() - t0
-        rows = [self.stages.setdefault(_task_name(fn, c), {"tasks": 0, "scattered": 0, "back": 0, "cpu": []})
-                for c in calls]
-        for row, (out, cpu) in zip(rows, done):
+        for call, (out, cpu) in zip(calls, done):
+            row = self.stages.setdefault(_task_name(fn, call), {"tasks": 0, "scattered": 0, "back": 0, "cpu": []})
             row["tasks"] += 1
             row["back"] += _nbytes(out)
             row["cpu"].append(cpu)
-        if rows:  # the data shared for this call, counted with its first stage
-            rows[0]["scattered"] += self.shared_bytes
-        self.shared_bytes = 0
+            row["scattered"] += sum(self.ref_bytes.pop(getattr(a, "key", None), 0) for a in call[:2])
         return [out for out, _ in done]
 
 

@@ -749,11 +749,25 @@ def set_layout(cfg: Config, sky: SkyInputs, temps, rotated, retrended) -> Temper
     return TemperatureStack.layout(temps.shape[0], counts, retrended.shape[0], n_sim)
 
 
-def _set_stage(cfg: Config, stack: TemperatureStack, chunk: int, where: str) -> str:
-    nc, n_sim = cfg.nulls, stack.sim_rows.stop - stack.sim_rows.start
+def make_set_stages(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, stack: TemperatureStack, add,
+                    progress: Progress, runner: TaskRunner | None = None) -> None:
+    """The jobs of :func:`set_jobs` made in three progress stages (random positions when there are any, the
+    shuffles, the simulated skies when configured), chunks of ``compute.memory_budget_gb``, every set handed to
+    ``add(rows, values)``; on ``runner`` as tasks (:func:`pairvel.stats.setchunks.make_sets`)."""
+    nc, chunk = cfg.nulls, sets_per_chunk(len(cat), cfg.compute.memory_budget_gb)
+    jobs = set_jobs(cfg, sky, cat, aps.scale, temps, stack)
+    where = "as tasks" if runner is not None and runner.distributed else f"up to {chunk} sets a chunk"
     n_random = stack.null_rows["random_positions"].stop - stack.null_rows["random_positions"].start
-    return (f"null and simulated sets {where}: {n_random} of random sky positions, {nc.n_shuffle} + {nc.n_shuffle_z} "
-            f"shuffles (trend re-applied), {n_sim} simulated skies; up to {chunk} sets a chunk")
+    n_sim = stack.sim_rows.stop - stack.sim_rows.start
+    groups = [(("random_positions",), f"null-test photometry: {n_random} sets of random sky positions, {where}"),
+              (("shuffled", "shuffled_in_z"), f"shuffled nulls: {nc.n_shuffle} + {nc.n_shuffle_z} within redshift "
+                                               f"slices, trend re-applied, {where}"),
+              (("simulated_sky",), f"simulated maps: {n_sim} Gaussian skies, {where}")]
+    for kinds, label in groups:
+        mine = [job for job in jobs if job.kind in kinds]
+        if mine or kinds[0] == "shuffled":  # the shuffle stage is always listed
+            with progress.stage(label):
+                make_sets(mine, add, chunk=chunk, runner=runner, say=progress.say)
 
 
 def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, retrended, positions,
@@ -762,7 +776,6 @@ def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
     chunks of at most ``compute.memory_budget_gb``), stacked, and summed in one pair pass (as work units on
     a cluster): (stack, PairwiseResult, rotations)."""
     n, edges = len(cat), cfg.bins.edges()
-    chunk = sets_per_chunk(n, cfg.compute.memory_budget_gb)
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
         rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat, runner)
     layout = set_layout(cfg, sky, temps, rotated, retrended)
@@ -770,10 +783,7 @@ def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
     values[layout.radius_rows] = temps
     values[layout.null_rows["rotated"]] = rotated
     values[layout.retrend_start:layout.retrend_start + layout.n_retrend] = retrended
-    with progress.stage(_set_stage(cfg, layout, chunk, "as tasks" if runner is not None and runner.distributed
-                                   else "in this process")):
-        make_sets(set_jobs(cfg, sky, cat, aps.scale, temps, layout), values.__setitem__, chunk=chunk, runner=runner,
-                  say=progress.say)
+    make_set_stages(cfg, sky, cat, aps, temps, layout, values.__setitem__, progress, runner)
     stack = dataclasses.replace(layout, values=values)
     with progress.stage(f"pair pass: {n} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
         pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress, runner)
@@ -799,8 +809,7 @@ def chunked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
         _add_in_chunks(engine, stack.retrend_start, retrended, chunk)
         progress.say(f"      {'linear' if engine.linear else 'direct'} path; the data, extra radii, rotated-map and "
                      f"re-trended jackknife sets summed")
-    with progress.stage(_set_stage(cfg, stack, chunk, "in this process")):
-        make_sets(set_jobs(cfg, sky, cat, aps.scale, temps, stack), engine.add, chunk=chunk, say=progress.say)
+    make_set_stages(cfg, sky, cat, aps, temps, stack, engine.add, progress)
     with progress.stage(f"pair pass: {n} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
         pr = engine.result()
         progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
