@@ -3,6 +3,7 @@
     .venv/bin/python benchmarks/bench_dask.py                     # demo catalogue, 84 sets, 50 regions
     .venv/bin/python benchmarks/bench_dask.py --sets 300 --workers 2 --repeat 3
     .venv/bin/python benchmarks/bench_dask.py --whole-run                # the demo run, local and on Dask
+    .venv/bin/python benchmarks/bench_dask.py --stages                   # per-stage table and speed-up model
 
 Prints the local time (all numba threads), the Dask time (``--workers`` workers of one thread, each
 unit on one numba thread), their ratio, and per unit: its grid columns, slab thickness in r_max,
@@ -13,6 +14,13 @@ load, so CPU seconds are printed too: the local process's, and each unit's own (
 its task on the worker).  The busiest worker's CPU seconds (units dealt costliest first) over the
 local CPU seconds per thread is the ratio an idle machine would show; the speed-up model for W
 workers is made from the same CPU seconds.
+
+``--stages`` runs the demo config once on the cluster with a metered runner and prints, per stage
+(photometry, trend re-estimates, null and simulated sets, rotations, pair pass), the tasks, the bytes
+scattered to the workers and gathered back, and the CPU seconds per task (each task's own thread
+time on its worker); the driver's serial part is the run's wall time outside the cluster waits.
+From these it prints the Amdahl-style model t_W = S + P / W (S serial driver seconds, P the tasks'
+CPU seconds) and its speed-up over one worker.
 
 ``--whole-run`` instead runs the demo config in this process and on the cluster (photometry, trend
 re-estimates and pair pass as tasks) and prints both times and the largest differences.
@@ -108,6 +116,104 @@ def whole_run(n_workers: int) -> None:
           f"{abs(spread.fit.amplitude / local.fit.amplitude - 1):.1e}")
 
 
+def _task_name(fn, args) -> str:
+    """The stage a task belongs to: the set-chunk task's own function, else the task function."""
+    fn = args[0] if fn.__name__ == "_chunk_task" else fn
+    return fn.__name__.strip("_")
+
+
+def _timed(fn, *args):
+    t0 = time.thread_time()
+    out = fn(*args)
+    return out, time.thread_time() - t0
+
+
+class MeteredRunner(TaskRunner):
+    """A TaskRunner that records, per stage, tasks, bytes shared and returned, task CPU s and wall waits."""
+
+    def __init__(self, client, **kw):
+        super().__init__(client, **kw)
+        self.stages, self.ref_bytes, self.waited = {}, {}, 0.0
+
+    def share(self, value):
+        ref = super().share(value)
+        if self.client is not None:  # a broadcast: one copy per worker, counted with the first stage that reads it
+            self.ref_bytes[ref.key] = _nbytes(value) * self.n_workers()
+        return ref
+
+    def run(self, fn, calls):
+        calls = [tuple(c) for c in calls]
+        t0 = time.perf_counter()
+        done = super().run(_timed, [(fn, *c) for c in calls])
+        self.waited += time.perf_counter() - t0
+        for call, (out, cpu) in zip(calls, done):
+            row = self.stages.setdefault(_task_name(fn, call), {"tasks": 0, "scattered": 0, "back": 0, "cpu": []})
+            row["tasks"] += 1
+            row["back"] += _nbytes(out)
+            row["cpu"].append(cpu)
+            row["scattered"] += sum(self.ref_bytes.pop(getattr(a, "key", None), 0) for a in call[:2])
+        return [out for out, _ in done]
+
+
+def _nbytes(obj, seen=None) -> int:
+    """Bytes of the numpy arrays inside ``obj`` (tuples, lists, dicts, objects' attributes), each counted once."""
+    seen = set() if seen is None else seen
+    if id(obj) in seen or obj is None or isinstance(obj, (str, bytes, int, float, bool)):
+        return 0
+    seen.add(id(obj))
+    if isinstance(obj, np.ndarray):
+        return obj.nbytes
+    if isinstance(obj, dict):
+        return sum(_nbytes(v, seen) for v in obj.values())
+    if isinstance(obj, (tuple, list)):
+        return sum(_nbytes(v, seen) for v in obj)
+    fields = getattr(obj, "__dict__", None) or {n: getattr(obj, n) for n in getattr(obj, "__slots__", ())
+                                                 if hasattr(obj, n)}
+    return sum(_nbytes(v, seen) for v in fields.values())
+
+
+def stages(n_workers: int, n_sim: int = 0) -> None:
+    """The demo run on a LocalCluster with a metered runner: the per-stage table and the Amdahl model."""
+    import contextlib
+    import tempfile
+
+    from dask.distributed import Client, LocalCluster
+
+    from pairvel import pipeline
+
+    demo = ROOT / "configs" / "demo.toml"
+    with LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster, Client(cluster) as client, \
+            tempfile.TemporaryDirectory() as tmp:
+        runner = MeteredRunner(client)
+        pipeline.compute_runner = lambda cfg: contextlib.nullcontext(runner)
+        text = demo.read_text().replace('"../demo_data/', f'"{ROOT}/demo_data/')
+        if n_sim:
+            text = text.replace("[covariance]\n", f'[covariance]\nestimator = "simulations"\nn_sim = {n_sim}\n')
+        path = Path(tmp) / "demo_on_dask.toml"
+        path.write_text(f'{text}\n[compute]\nscheduler_address = "{cluster.scheduler_address}"\nn_threads = 1\n')
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t0 = time.perf_counter()
+            pipeline.run_pipeline(load_config(path))
+            wall = time.perf_counter() - t0
+    serial = wall - runner.waited
+    parallel = sum(sum(row["cpu"]) for row in runner.stages.values())
+    print(f"demo run{f' with {n_sim} simulated skies' if n_sim else ''} on {n_workers} one-thread workers: {wall:.1f} s wall, {runner.waited:.1f} s of it waiting for "
+          f"tasks; serial driver part S = {serial:.1f} s")
+    print("| stage | tasks | scattered (MiB, all workers) | gathered (MiB) | CPU s per task (median, max) | CPU s |")
+    print("|---|---|---|---|---|---|")
+    for name, row in runner.stages.items():
+        cpu = np.array(row["cpu"])
+        print(f"| {name} | {row['tasks']} | {row['scattered'] / 2**20:.1f} | {row['back'] / 2**20:.2f} | "
+              f"{np.median(cpu):.3f}, {cpu.max():.3f} | {cpu.sum():.2f} |")
+    print(f"model t_W = S + P / W with S = {serial:.1f} s, P = {parallel:.1f} CPU s (tasks only; each stage waits for "
+          f"its slowest task, so the model is a bound from below):")
+    for w in (1, 2, 4, 8, 16, 64):
+        print(f"  W={w:3d}: {serial + parallel / w:7.1f} s, speed-up over one worker "
+              f"{(serial + parallel) / (serial + parallel / w):5.2f}")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sets", type=int, default=84, help="temperature sets (the demo run has 84)")
@@ -116,7 +222,11 @@ def main(argv=None):
     ap.add_argument("--units", type=int, default=None, help="work units (default: 3 per worker, r_max-capped)")
     ap.add_argument("--repeat", type=int, default=2)
     ap.add_argument("--whole-run", action="store_true", help="the demo run, in this process and on the cluster")
+    ap.add_argument("--stages", action="store_true", help="the demo run on the cluster: per-stage work and data table")
+    ap.add_argument("--sims", type=int, default=0, help="with --stages: simulated-sky covariance of this many skies")
     args = ap.parse_args(argv)
+    if args.stages:
+        return stages(args.workers, args.sims)
     if args.whole_run:
         return whole_run(args.workers)
     from dask.distributed import Client, LocalCluster

@@ -56,7 +56,7 @@ def main(argv=None) -> None:
     temps = correct_trend(cfg, aps.temperatures, cat.z)
     positions, regions = geometry_and_regions(cfg, cat, rng, progress)
     with progress.stage(f"{args.n_sim} simulated skies"):
-        noise = simulated_sets(cfg, sky, cat, rng, progress)[0]
+        noise = simulated_sets(cfg, sky, cat, progress)[0]
     signal_rng = derived_generators(cfg.run.seed, "signal comparison", 1)[0]
     draw = simulated_signal(with_signal, cat)
     signal = np.array([_trend(draw(signal_rng)[0], cat.z, cfg) for _ in range(args.n_sim)])

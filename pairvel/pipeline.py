@@ -35,7 +35,7 @@ from .input.catalogue import DUPLICATE, OUTSIDE_PROXY, OUTSIDE_Z, Catalogue, Rem
 from .input.config import Config
 from .maps.multifreq import map_provenance, read_channel_maps, read_input_map
 from .maps.noise import aperture_noise_variance, noise_weights, pixel_variance, read_noise_map, sky_variance
-from .maps.photometry import DROP_REASONS, measure_apertures, measure_random_apertures
+from .maps.photometry import DROP_REASONS, measure_apertures
 from .maps.prefilter import apply_prefilter
 from .maps.radii import aperture_radii, radius_scale
 from .maps.skymap import read_mask, remove_monopole_dipole
@@ -67,12 +67,14 @@ from .stats.cross import cross_pairs, load_partner
 from .stats.fit import fit_amplitude
 from .stats.joint import fit_velocity_scale
 from .stats.perchannel import channel_results
-from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null, rotated_sets, shuffled_sets, slice_means
+from .stats.nulltests import NULL_KINDS, SLICE_MEANS, evaluate_null
 from .stats.masstrend import fit_mass_trend
 from .stats.radii import fit_radii, radius_joint
 from .stats.regionseeds import summarise_spread
 from .stats.significance import empirical_significance, fitted_amplitudes
-from .stats.simcov import simulate_aperture_temperatures, simulation_covariance
+from .stats.setchunks import (SetJob, make_sets, random_position_job, rotated_sets_on, shuffle_job,
+                              simulation_job)
+from .stats.simcov import prepare_simulations, simulation_covariance
 from .stats.subsamples import fit_proxy_bins
 
 
@@ -126,11 +128,10 @@ def run_stages(cfg: Config, progress: Progress, runner: TaskRunner | None = None
         retrended = retrended_sets(aps.temperatures, cat.z, regions, cfg, runner)
     edges = cfg.bins.edges()
     if runner is not None and runner.distributed:  # every set made first, one stack for the work units
-        stack, pr, rotations = stacked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, rng,
-                                                 progress, runner)
+        stack, pr, rotations = stacked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, progress,
+                                                 runner)
     else:
-        stack, pr, rotations = chunked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, rng,
-                                                 progress)
+        stack, pr, rotations = chunked_pair_pass(cfg, sky, cat, aps, temps, retrended, positions, regions, progress)
     if not cfg.theory.proxy_bin_edges:
         retrended = np.zeros((0, len(cat)))  # only the proxy-bin fits use them again: free them
     with progress.stage("covariance, template and fit"):
@@ -532,51 +533,73 @@ def retrended_sets(temps_raw, z, regions, cfg: Config, runner: TaskRunner | None
 
 
 # ------------------------------------------------------------------ null and simulated sets
-def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, *, sources=None) -> np.ndarray:
-    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data; positions
-    whose apertures would touch a masked point source (``sources``) are redrawn, as such tracers are dropped.
+def set_jobs(cfg: Config, sky: SkyInputs, cat: Catalogue, scale, temps, stack: "TemperatureStack") -> list[SetJob]:
+    """The run's random sets as jobs of :mod:`pairvel.stats.setchunks`, their rows those of ``stack`` (a
+    layout): apertures at random sky positions, shuffles over all tracers (with their slice means) and
+    within redshift slices, simulated skies at every radius.  Every set is drawn from its own generator
+    (``core.rng.set_generator``: run seed, kind, index), so chunks and tasks make the same sets.
 
-    The positions are drawn from their own generator (derived from ``run.seed``), not the run's: the
-    number of draws depends on the map, and a run from a tracer table, which has no map and skips
-    this null, must leave every other random step (shuffles, trend-loss draws, bootstrap) as it was.
+    The trend correction is applied again to each set, as to the data: a shuffle mixes tracers of
+    different redshifts, so without it a shuffled set keeps a residual trend the data do not have, and
+    its curve scatters more at large separations.
     """
-    n_null = cfg.nulls.n_random
+    nc, rows, seed = cfg.nulls, stack.null_rows, cfg.run.seed
+    sigma_z = cfg.trend.sigma_z if cfg.trend.enabled else None
+
+    def count(kind):  # kinds the layout does not hold are not made
+        return rows[kind].stop - rows[kind].start if kind in rows else 0
+
+    jobs = []
+    if count("random_positions"):
+        jobs.append(random_position_job(sky.skymap, cat.z, cfg.aperture.radius_arcmin, count("random_positions"),
+                                        rows["random_positions"].start, seed=seed, sigma_z=sigma_z,
+                                        max_masked_fraction=cfg.map.max_masked_fraction,
+                                        pixel_weighting=cfg.aperture.pixel_weighting, method=cfg.aperture.method,
+                                        radius_scale=scale,
+                                        exclude=source_exclusion(sky.sources, math.sqrt(2.0) * max(aperture_radii(cfg.aperture)))))
+    means = [rows[SLICE_MEANS].start] if count(SLICE_MEANS) else []  # the reference of shuffled_in_z
+    if count("shuffled"):
+        jobs.append(shuffle_job(temps[0], cat.z, count("shuffled"), [rows["shuffled"].start] + means, seed=seed,
+                                sigma_z=sigma_z, means_width=nc.z_slice_width if means else None))
+    if count("shuffled_in_z"):
+        jobs.append(shuffle_job(temps[0], cat.z, count("shuffled_in_z"), [rows["shuffled_in_z"].start], seed=seed,
+                                sigma_z=sigma_z, z_slice_width=nc.z_slice_width))
+    n_sim = stack.sim_rows.stop - stack.sim_rows.start
+    if n_sim:
+        jobs.append(simulation_job(simulation_plan(cfg, sky, cat), cat.z, n_sim,
+                                   [r.start for r in stack.sim_radius_rows], seed=seed, sigma_z=sigma_z))
+    return jobs
+
+
+def _sets_of(jobs: list[SetJob], n_rows: int, n: int) -> np.ndarray:
+    """(n_rows, n): the jobs' sets made here, in one chunk per kind."""
+    out = np.empty((n_rows, n))
+    make_sets(jobs, out.__setitem__, chunk=max(n_rows, 1))
+    return out
+
+
+def random_position_sets(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, *, sources=None) -> np.ndarray:
+    """(n_random, N): apertures at random usable sky positions, trend-corrected like the data (the sets
+    of :func:`set_jobs`; empty with a warning without a map, as in a run from a tracer table); positions
+    whose apertures would touch a masked point source (``sources``) are redrawn, as such tracers are dropped."""
     if skymap is None:
-        _skipped_without_map("nulls.n_random", n_null)
+        _skipped_without_map("nulls.n_random", cfg.nulls.n_random)
         return np.zeros((0, len(cat)))
-    return np.concatenate([np.zeros((0, len(cat)))] + list(random_position_chunks(cfg, skymap, cat, scale, progress,
-                                                                                  max(n_null, 1), sources=sources)))
+    layout = TemperatureStack.layout(1, {"random_positions": cfg.nulls.n_random}, 0, 0)
+    jobs = set_jobs(cfg, SkyInputs(skymap, None, None, None, sources), cat, scale, np.zeros((1, len(cat))), layout)
+    return _sets_of([dataclasses.replace(job, targets=(0,)) for job in jobs], cfg.nulls.n_random, len(cat))
 
 
-def random_position_chunks(cfg: Config, skymap, cat: Catalogue, scale, progress: Progress, chunk: int, *,
-                           sources=None):
-    """The sets of :func:`random_position_sets` (a map is needed), ``chunk`` at a time, trend-corrected
-    together."""
-    n_null = cfg.nulls.n_random
-    rng = derived_generators(cfg.run.seed, "random-position null", 1)[0]
-    exclude = source_exclusion(sources, math.sqrt(2.0) * max(aperture_radii(cfg.aperture)))  # the tracers' reach
-    sets = []
-    for k in range(n_null):
-        _, _, t_r = measure_random_apertures(skymap, len(cat), cfg.aperture.radius_arcmin, seed=rng,
-                                             max_masked_fraction=cfg.map.max_masked_fraction,
-                                             pixel_weighting=cfg.aperture.pixel_weighting,
-                                             method=cfg.aperture.method, radius_scale=scale, exclude=exclude)
-        sets.append(t_r[0])
-        progress.say(f"      null set {k + 1}/{n_null}")
-        if len(sets) == chunk or k == n_null - 1:
-            yield trend_sets(cfg, np.array(sets).reshape(-1, len(cat)), cat.z)
-            sets = []
-
-
-def rotated_map_sets(cfg: Config, skymap, cat: Catalogue) -> tuple[np.ndarray, list]:
-    """(n_kept, N) apertures on the map rotated in longitude, trend-corrected, and the rotations kept."""
+def rotated_map_sets(cfg: Config, skymap, cat: Catalogue, runner: TaskRunner | None = None) -> tuple[np.ndarray, list]:
+    """(n_kept, N) apertures on the map rotated in longitude, trend-corrected, and the rotations kept
+    (one task per rotation on a Dask cluster)."""
     nc = cfg.nulls
     if skymap is None:
         _skipped_without_map("nulls.rotation_deg", len(nc.rotation_deg))
         return np.zeros((0, len(cat))), []
-    rot, kept = rotated_sets(skymap, cat.ra, cat.dec, nc.rotation_deg, radius_arcmin=cfg.aperture.radius_arcmin,
-                             max_masked_fraction=cfg.map.max_masked_fraction,
-                             min_usable_fraction=nc.rotation_min_usable)
+    rot, kept = rotated_sets_on(runner, skymap, cat.ra, cat.dec, nc.rotation_deg,
+                                radius_arcmin=cfg.aperture.radius_arcmin, max_masked_fraction=cfg.map.max_masked_fraction,
+                                min_usable_fraction=nc.rotation_min_usable)
     return correct_trend(cfg, rot, cat.z), kept
 
 
@@ -586,29 +609,23 @@ def _skipped_without_map(key: str, n: int) -> None:
                       f"skipped", PairvelWarning, stacklevel=3)
 
 
-def shuffled_null_sets(cfg: Config, temps: np.ndarray, z: np.ndarray, rng) -> dict:
-    """Shuffled temperatures, over all tracers and within redshift slices, and the slice means of the
-    all-tracer shuffles (the reference of the within-slice null, see ``stats.nulltests.evaluate_null``).
-
-    The redshift-trend correction is applied again to each shuffled set, as it was to the data: a
-    shuffle mixes tracers of different redshifts, so without it a shuffled set keeps a residual
-    trend the data do not have, and its curve scatters more at large separations.
-    """
+def shuffled_null_sets(cfg: Config, temps: np.ndarray, z: np.ndarray) -> dict:
+    """Shuffled temperatures (N,), over all tracers and within redshift slices, and the slice means of the
+    all-tracer shuffles (the reference of the within-slice null, see ``stats.nulltests.evaluate_null``):
+    the sets of :func:`set_jobs`, kind -> (count, N)."""
     nc = cfg.nulls
-    shuffled = trend_sets(cfg, shuffled_sets(temps, z, nc.n_shuffle, rng=rng), z)
-    in_z = shuffled_sets(temps, z, nc.n_shuffle_z, rng=rng, z_slice_width=nc.z_slice_width)
-    sets = {"shuffled": shuffled, "shuffled_in_z": trend_sets(cfg, in_z, z)}
-    if nc.n_shuffle_z:  # what in-slice shuffles of skies without signal average to: the reference of shuffled_in_z
-        sets[SLICE_MEANS] = trend_sets(cfg, slice_means(shuffled, z, nc.z_slice_width), z)
-    return sets
+    counts = {"shuffled": nc.n_shuffle, "shuffled_in_z": nc.n_shuffle_z,
+              **({SLICE_MEANS: nc.n_shuffle} if nc.n_shuffle_z else {})}
+    layout = TemperatureStack.layout(1, counts, 0, 0)
+    values = _sets_of(set_jobs(cfg, None, _ZOnly(z), None, temps[None, :], layout), layout.n_sets, z.size)
+    return {kind: values[rows] for kind, rows in layout.null_rows.items()}
 
 
-def trend_sets(cfg: Config, sets: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """Sets (M, N) of one radius with the redshift trend removed from all of them in one call (unchanged
-    when off): each set's numbers are those of one set at a time, about ten times faster at 1e6 tracers."""
-    if not cfg.trend.enabled or sets.shape[0] == 0:
-        return sets
-    return remove_redshift_trend(sets, z, sigma_z=cfg.trend.sigma_z)
+@dataclass(frozen=True)
+class _ZOnly:
+    """What :func:`set_jobs` reads of a catalogue for the shuffles alone."""
+
+    z: np.ndarray
 
 
 def _noise_cl(path) -> np.ndarray | None:
@@ -625,10 +642,10 @@ def _noise_cl(path) -> np.ndarray | None:
     return noise_cl
 
 
-def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: Progress) -> np.ndarray:
-    """(n_radii, n_sim, N): the aperture temperatures of the configured Gaussian sky simulations at every
-    radius, measured as the data (mask, physical radius, pixel weighting, pre-filter), trend-corrected like
-    them; with ``covariance.sim_signal_tau`` or ``sim_signal_tsz_uk`` each sky carries a tracer signal."""
+def simulation_plan(cfg: Config, sky: SkyInputs, cat: Catalogue):
+    """The simulated skies' :class:`~pairvel.stats.simcov.SimulationPlan`: the configured Gaussian sky, measured
+    as the data (mask, physical radius, pixel weighting, pre-filter); with ``covariance.sim_signal_tau`` or
+    ``sim_signal_tsz_uk`` each sky carries a tracer signal."""
     cc = cfg.covariance
     cmb_cl = None
     if cc.sim_cmb:
@@ -636,21 +653,24 @@ def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, rng, progress: P
 
         cmb_cl = load_cmb_cl()[1]
     pf = sky.prefilter
-    sims = simulate_aperture_temperatures(sky.skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), cc.n_sim,
-                                          seed=rng, cmb_cl=cmb_cl, beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
-                                          white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin,
-                                          noise_cl=_noise_cl(cc.sim_noise_cl_path), **photometry_options(cfg, cat.z),
-                                          n_threads=cfg.compute.n_threads,
-                                          progress=progress.counter("simulated maps"),
-                                          transfer=None if pf is None else pf.transfer / pf.response,
-                                          signal=simulated_signal(cfg, cat),
-                                          pixel_noise_variance=_noise_variance_map(cfg, sky))
-    out = np.empty(sims.shape).transpose(1, 0, 2)
-    for k, per_radius in enumerate(sims):
-        for r, t in enumerate(per_radius):
-            ok = np.isfinite(t)
-            out[r, k] = _trend(np.where(ok, t, t[ok].mean()), cat.z, cfg)
-    return out
+    return prepare_simulations(sky.skymap, cat.ra, cat.dec, aperture_radii(cfg.aperture), cmb_cl=cmb_cl,
+                               beam_fwhm_arcmin=cc.sim_beam_fwhm_arcmin,
+                               white_noise_uk_arcmin=cc.sim_white_noise_uk_arcmin,
+                               noise_cl=_noise_cl(cc.sim_noise_cl_path), **photometry_options(cfg, cat.z),
+                               n_threads=cfg.compute.n_threads,
+                               transfer=None if pf is None else pf.transfer / pf.response,
+                               signal=simulated_signal(cfg, cat), pixel_noise_variance=_noise_variance_map(cfg, sky))
+
+
+def simulated_sets(cfg: Config, sky: SkyInputs, cat: Catalogue, progress: Progress) -> np.ndarray:
+    """(n_radii, n_sim, N): the aperture temperatures of the simulated skies of :func:`set_jobs` at every
+    radius, unusable apertures set to the set's mean, trend-corrected like the data."""
+    n_radii, n_sim = len(aperture_radii(cfg.aperture)), cfg.covariance.n_sim
+    layout = TemperatureStack.layout(n_radii, {}, 0, n_sim)
+    jobs = set_jobs(cfg, sky, cat, None, np.zeros((1, len(cat))), layout)
+    first = layout.sim_rows.start
+    jobs = [dataclasses.replace(job, targets=tuple(t - first for t in job.targets)) for job in jobs]
+    return _sets_of(jobs, n_radii * n_sim, len(cat)).reshape(n_radii, n_sim, len(cat))
 
 
 def _noise_variance_map(cfg: Config, sky: SkyInputs):
@@ -720,69 +740,80 @@ class TemperatureStack:
         return self.sim_radius_rows[-1].stop  # the simulated skies come last (an empty slice at the end without)
 
 
+def set_layout(cfg: Config, sky: SkyInputs, temps, rotated, retrended) -> TemperatureStack:
+    """The rows (no values) of the run's stack: the data and extra radii, every null kind, the re-trended
+    jackknife sets, the simulated skies; no random-position rows without a map (warned)."""
+    nc = cfg.nulls
+    n_random = nc.n_random if sky.skymap is not None else 0
+    if sky.skymap is None:
+        _skipped_without_map("nulls.n_random", nc.n_random)
+    counts = {"random_positions": n_random, "shuffled": nc.n_shuffle, "shuffled_in_z": nc.n_shuffle_z,
+              **({SLICE_MEANS: nc.n_shuffle} if nc.n_shuffle_z else {}), "rotated": rotated.shape[0]}
+    n_sim = cfg.covariance.n_sim if cfg.covariance.estimator == "simulations" else 0
+    return TemperatureStack.layout(temps.shape[0], counts, retrended.shape[0], n_sim)
+
+
+def make_set_stages(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, stack: TemperatureStack, add,
+                    progress: Progress, runner: TaskRunner | None = None) -> None:
+    """The jobs of :func:`set_jobs` made in three progress stages (random positions when there are any, the
+    shuffles, the simulated skies when configured), chunks of ``compute.memory_budget_gb``, every set handed to
+    ``add(rows, values)``; on ``runner`` as tasks (:func:`pairvel.stats.setchunks.make_sets`)."""
+    nc, chunk = cfg.nulls, sets_per_chunk(len(cat), cfg.compute.memory_budget_gb)
+    jobs = set_jobs(cfg, sky, cat, aps.scale, temps, stack)
+    where = "as tasks" if runner is not None and runner.distributed else f"up to {chunk} sets a chunk"
+    n_random = stack.null_rows["random_positions"].stop - stack.null_rows["random_positions"].start
+    n_sim = stack.sim_rows.stop - stack.sim_rows.start
+    groups = [(("random_positions",), f"null-test photometry: {n_random} sets of random sky positions, {where}"),
+              (("shuffled", "shuffled_in_z"), f"shuffled nulls: {nc.n_shuffle} + {nc.n_shuffle_z} within redshift "
+                                               f"slices, trend re-applied, {where}"),
+              (("simulated_sky",), f"simulated maps: {n_sim} Gaussian skies, {where}")]
+    for kinds, label in groups:
+        mine = [job for job in jobs if job.kind in kinds]
+        if mine or kinds[0] == "shuffled":  # the shuffle stage is always listed
+            with progress.stage(label):
+                make_sets(mine, add, chunk=chunk, runner=runner, say=progress.say)
+
+
 def stacked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, retrended, positions,
-                      regions, rng, progress: Progress, runner: TaskRunner | None = None):
-    """Every temperature set made, stacked, and summed in one pair pass: (stack, PairwiseResult, rotations)."""
-    with progress.stage(f"null-test photometry: {cfg.nulls.n_random} sets of random sky positions"):
-        random_sets = random_position_sets(cfg, sky.skymap, cat, aps.scale, progress, sources=sky.sources)
+                      regions, progress: Progress, runner: TaskRunner | None = None):
+    """Every temperature set made (on ``runner``: the rotations, random sets and simulated skies as tasks,
+    chunks of at most ``compute.memory_budget_gb``), stacked, and summed in one pair pass (as work units on
+    a cluster): (stack, PairwiseResult, rotations)."""
+    n, edges = len(cat), cfg.bins.edges()
     with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
-        rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
-    with progress.stage(f"shuffled nulls: {cfg.nulls.n_shuffle} + {cfg.nulls.n_shuffle_z} within redshift slices, "
-                        f"trend re-applied"):
-        shuffled = shuffled_null_sets(cfg, temps[0], cat.z, rng)
-    null_sets = {"random_positions": random_sets, **shuffled, "rotated": rotated}
-    sims = np.zeros((0, len(cat)))
-    if cfg.covariance.estimator == "simulations":
-        with progress.stage(f"simulated maps: {cfg.covariance.n_sim} Gaussian skies at {sky.skymap.grid_label}"):
-            sims = simulated_sets(cfg, sky, cat, rng, progress)
-    stack = TemperatureStack.build(temps, null_sets, retrended, sims)
-    edges = cfg.bins.edges()
-    with progress.stage(f"pair pass: {len(cat)} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
+        rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat, runner)
+    layout = set_layout(cfg, sky, temps, rotated, retrended)
+    values = np.empty((layout.n_sets, n))
+    values[layout.radius_rows] = temps
+    values[layout.null_rows["rotated"]] = rotated
+    values[layout.retrend_start:layout.retrend_start + layout.n_retrend] = retrended
+    make_set_stages(cfg, sky, cat, aps, temps, layout, values.__setitem__, progress, runner)
+    stack = dataclasses.replace(layout, values=values)
+    with progress.stage(f"pair pass: {n} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
         pr = pair_pass(cfg, positions, stack.values, edges, regions, cat, progress, runner)
     return stack, pr, rotations
 
 
 def chunked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Apertures, temps, retrended, positions,
-                      regions, rng, progress: Progress):
+                      regions, progress: Progress):
     """The sets of :func:`stacked_pair_pass`, each made and summed a chunk at a time so that memory holds
     about ``compute.memory_budget_gb`` of them (:mod:`pairvel.pairs.chunked`); the same rows, the same
-    random draws in the same order, the same sums.  Returns (stack rows without values, result, rotations)."""
-    nc, n, edges = cfg.nulls, len(cat), cfg.bins.edges()
+    sets (each from its own generator), the same sums.  Returns (stack rows without values, result, rotations)."""
+    n, edges = len(cat), cfg.bins.edges()
     chunk = sets_per_chunk(n, cfg.compute.memory_budget_gb)
-    with progress.stage(f"null-test photometry: map rotated by {len(nc.rotation_deg)} longitude angles"):
+    with progress.stage(f"null-test photometry: map rotated by {len(cfg.nulls.rotation_deg)} longitude angles"):
         rotated, rotations = rotated_map_sets(cfg, sky.skymap, cat)
-    n_random = nc.n_random if sky.skymap is not None else 0
-    counts = {"random_positions": n_random, "shuffled": nc.n_shuffle, "shuffled_in_z": nc.n_shuffle_z,
-              **({SLICE_MEANS: nc.n_shuffle} if nc.n_shuffle_z else {}), "rotated": rotated.shape[0]}
-    n_sim = cfg.covariance.n_sim if cfg.covariance.estimator == "simulations" else 0
-    stack = TemperatureStack.layout(temps.shape[0], counts, retrended.shape[0], n_sim)
-    rows = stack.null_rows
+    stack = set_layout(cfg, sky, temps, rotated, retrended)
     with progress.stage(f"pair pass, geometry: {n} tracers, {stack.n_sets} temperature sets in chunks of up to "
                         f"{chunk}, {edges.size - 1} bins"):
         engine = ChunkedPass(positions, edges, stack.n_sets, regions=regions, redshifts=cat.z, weights=cat.weight,
                              n_threads=cfg.compute.n_threads, chunk_sets=chunk)
         engine.add(stack.radius_rows, temps)
-        engine.add(rows["rotated"], rotated)
+        engine.add(stack.null_rows["rotated"], rotated)
         _add_in_chunks(engine, stack.retrend_start, retrended, chunk)
         progress.say(f"      {'linear' if engine.linear else 'direct'} path; the data, extra radii, rotated-map and "
                      f"re-trended jackknife sets summed")
-    if n_random:
-        with progress.stage(f"null-test photometry: {n_random} sets of random sky positions"):
-            start = rows["random_positions"].start
-            for sets in random_position_chunks(cfg, sky.skymap, cat, aps.scale, progress, chunk, sources=sky.sources):
-                engine.add(slice(start, start + sets.shape[0]), sets)
-                start += sets.shape[0]
-    elif sky.skymap is None:
-        _skipped_without_map("nulls.n_random", nc.n_random)
-    with progress.stage(f"shuffled nulls: {nc.n_shuffle} + {nc.n_shuffle_z} within redshift slices, trend "
-                        f"re-applied to up to {chunk} sets at a time"):
-        shuffled_chunks(cfg, engine, rows, temps[0], cat.z, rng, chunk)
-    if n_sim:
-        with progress.stage(f"simulated maps: {n_sim} Gaussian skies at {sky.skymap.grid_label}"):
-            sims = simulated_sets(cfg, sky, cat, rng, progress)
-            for r, sim_rows in enumerate(stack.sim_radius_rows):
-                _add_in_chunks(engine, sim_rows.start, sims[r], chunk)
-            del sims
+    make_set_stages(cfg, sky, cat, aps, temps, stack, engine.add, progress)
     with progress.stage(f"pair pass: {n} tracers, {stack.n_sets} temperature sets, {edges.size - 1} bins"):
         pr = engine.result()
         progress.say(f"      {int(pr.pair_counts.sum()):,} pairs in {edges[0]:g}-{edges[-1]:g} Mpc")
@@ -792,24 +823,6 @@ def chunked_pair_pass(cfg: Config, sky: SkyInputs, cat: Catalogue, aps: Aperture
 def _add_in_chunks(engine: ChunkedPass, start: int, sets, chunk: int) -> None:
     for k in range(0, sets.shape[0], chunk):
         engine.add(slice(start + k, start + min(k + chunk, sets.shape[0])), sets[k:k + chunk])
-
-
-def shuffled_chunks(cfg: Config, engine: ChunkedPass, rows: dict, temps, z, rng, chunk: int) -> None:
-    """The sets of :func:`shuffled_null_sets` made and summed ``chunk`` at a time, drawn in the same order
-    from ``rng``: the all-tracer shuffles (each chunk's slice means with them), then the within-slice ones."""
-    nc = cfg.nulls
-    for k in range(0, nc.n_shuffle, chunk):
-        m = min(chunk, nc.n_shuffle - k)
-        shuffled = trend_sets(cfg, shuffled_sets(temps, z, m, rng=rng), z)
-        engine.add(slice(rows["shuffled"].start + k, rows["shuffled"].start + k + m), shuffled)
-        if nc.n_shuffle_z:
-            means = trend_sets(cfg, slice_means(shuffled, z, nc.z_slice_width), z)
-            engine.add(slice(rows[SLICE_MEANS].start + k, rows[SLICE_MEANS].start + k + m), means)
-    for k in range(0, nc.n_shuffle_z, chunk):
-        m = min(chunk, nc.n_shuffle_z - k)
-        in_z = shuffled_sets(temps, z, m, rng=rng, z_slice_width=nc.z_slice_width)
-        engine.add(slice(rows["shuffled_in_z"].start + k, rows["shuffled_in_z"].start + k + m),
-                   trend_sets(cfg, in_z, z))
 
 
 def compute_runner(cfg: Config):

@@ -61,7 +61,7 @@ def test_a_simulated_sky_measures_as_the_data(tiny_survey, monkeypatch, weightin
 
     measure = simcov.measure_apertures
     monkeypatch.setattr(simcov, "measure_apertures", recording)
-    sims = simulated_sets(cfg, sky, cat, np.random.default_rng(5), quiet)
+    sims = simulated_sets(cfg, sky, cat, quiet)
     assert sims.shape == (2, 2, len(cat)) and np.all(np.isfinite(sims))
     garbage = np.random.default_rng(6).normal(0, 1e4, sky.skymap.values.size)
     for k, (support, res) in enumerate(seen):
@@ -89,7 +89,7 @@ def test_white_noise_skies_have_the_variance_of_the_masked_apertures(tiny_survey
     n_ann = res.n_pixels_annulus * (1 - res.masked_fraction_annulus)
     sigma_pix = 400.0 / np.sqrt(hp.nside2pixarea(NSIDE, degrees=True) * 3600.0)
     expected = sigma_pix**2 * (1 / n_disc + 1 / n_ann)  # (n_radii, N)
-    sims = simulated_sets(cfg, sky, cat, np.random.default_rng(8), quiet)
+    sims = simulated_sets(cfg, sky, cat, quiet)
     ratio = sims.var(axis=1, ddof=1) / expected
     np.testing.assert_allclose(ratio.mean(axis=1), 1.0, rtol=0.03)
     assert np.all(np.abs(ratio - 1) < 0.6)
@@ -107,6 +107,6 @@ def test_the_configured_tracer_signal_reaches_the_simulated_skies(tiny_survey):
     mean 3 uK at the primary radius and (12 / 16)^2 of it at the second (no beam; see sims.skysignal)."""
     cfg = _holed_survey(tiny_survey, weighting="centre", noise=0.0, extra="n_sim = 3\nsim_signal_tsz_uk = 3.0")
     sky, cat, aps, quiet = _data_inputs(cfg)
-    sims = simulated_sets(cfg, sky, cat, np.random.default_rng(9), quiet)
+    sims = simulated_sets(cfg, sky, cat, quiet)
     assert np.all(sims[0] < 0) and abs(sims[0].mean() + 3.0) < 0.3  # 3 x ~585 draws of sd ~1.5 uK
     np.testing.assert_allclose(sims[1], sims[0] * (12.0 / 16.0) ** 2, rtol=1e-12)

@@ -60,7 +60,7 @@ def test_masked_sources_and_clipped_outliers_leave_every_set(tiny_survey):
     assert "point_sources_masked" not in from_table and "outlier_clip_sigma" not in from_table
 
     # the null and simulated-sky sets are made for exactly these tracers
-    sims = simulated_sets(cfg, sky, cat, np.random.default_rng(1), quiet)
+    sims = simulated_sets(cfg, sky, cat, quiet)
     randoms = random_position_sets(cfg, sky.skymap, cat, aps.scale, quiet)
     assert sims.shape == (1, 2, len(cat)) and randoms.shape == (2, len(cat))
     assert isinstance(aps, Apertures) and aps.temperatures.shape == (1, len(cat))

@@ -32,3 +32,19 @@ def derived_generators(seed, purpose: str, n: int) -> list[np.random.Generator]:
         raise ConfigError(f"seed must be None or a non-negative integer; got {seed!r}")
     entropy = None if seed is None else [int(seed), zlib.crc32(purpose.encode())]
     return [np.random.default_rng(child) for child in np.random.SeedSequence(entropy).spawn(int(n))]
+
+
+def set_generator(seed: int, kind: str, index: int) -> np.random.Generator:
+    """The Generator of temperature set ``index`` of one ``kind`` (a null kind, simulated skies).
+
+    The scheme: ``SeedSequence([seed, crc32(kind)], spawn_key=(index,))``, which is child ``index``
+    of ``derived_generators(seed, kind, n)`` for any n > index.  A set's draws therefore depend only
+    on the run seed, its kind and its index, never on which chunk or task makes it or on the sets
+    made before it, so the sets can be made in any grouping, in any order, on any worker.
+    """
+    if seed is None or not _is_int_seed(seed):
+        raise ConfigError(f"seed must be a non-negative integer; got {seed!r}")
+    if not isinstance(index, (int, np.integer)) or index < 0:
+        raise ConfigError(f"set index must be a non-negative integer; got {index!r}")
+    entropy = [int(seed), zlib.crc32(kind.encode())]
+    return np.random.default_rng(np.random.SeedSequence(entropy, spawn_key=(int(index),)))

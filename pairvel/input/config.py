@@ -349,11 +349,12 @@ class ComputeConfig:
     n_threads: int | None = _key(None, "threads for the pair engine (default: all cores)", bounds=(1, 4096))
     memory_budget_gb: float = _key(0.25, "memory for the temperature sets in flight (GB): null, jackknife and simulated "
                                          "sets are made and summed in chunks of about this size, so the run's peak "
-                                         "memory does not grow with the number of sets (without a scheduler)",
+                                         "memory does not grow with the number of sets (without a scheduler); with one, the "
+                                         "most sets a set-making task holds",
                                    bounds=(1e-6, 10000.0))
     scheduler_address: str | None = _key(None, "Dask scheduler address (e.g. tcp://head-node:8786) to run the "
-                                               "photometry, trend re-estimates and pair pass on; unset: run in this "
-                                               "process")
+                                               "photometry, trend re-estimates, null and simulated sets and pair pass on; "
+                                               "unset: run in this process")
     scheduler_file: Path | None = _key(None, "scheduler file written by `dask scheduler --scheduler-file` (instead "
                                              "of scheduler_address)")
     n_units: int | None = _key(None, "spatial work units of the pair pass on a scheduler; unset: 3 per worker, "

@@ -133,20 +133,26 @@ class NullTestResult:
 def shuffled_sets(temperatures, z, n_sets: int, *, rng, z_slice_width=None) -> np.ndarray:
     """``n_sets`` permutations of ``temperatures`` (N,), all tracers or within redshift slices.
 
+    ``rng`` is one Generator for all sets, drawn in turn, or a sequence of ``n_sets`` Generators,
+    set k drawn from the k-th (:func:`pairvel.core.rng.set_generator`: sets made in any grouping).
+
     Returns
     -------
     ndarray of shape (n_sets, N)
     """
     t = np.asarray(temperatures, dtype=float)
+    rngs = list(rng) if isinstance(rng, (list, tuple)) else [rng] * n_sets
+    if len(rngs) != n_sets:
+        raise InputError(f"shuffled sets need one generator per set; got {len(rngs)} for {n_sets} sets")
     out = np.empty((n_sets, t.size))
     if z_slice_width is None:
         for k in range(n_sets):
-            out[k] = t[rng.permutation(t.size)]
+            out[k] = t[rngs[k].permutation(t.size)]
         return out
     groups = _slices(z, z_slice_width)
     for k in range(n_sets):
         for g in groups:
-            out[k, g] = t[g[rng.permutation(g.size)]]
+            out[k, g] = t[g[rngs[k].permutation(g.size)]]
     return out
 
 
@@ -162,8 +168,10 @@ def slice_means(sets, z, width) -> np.ndarray:
     set shuffled within those slices averages to over many shuffles."""
     sets = np.atleast_2d(np.asarray(sets, dtype=float))
     out = np.empty_like(sets)
-    for g in _slices(z, width):
-        out[:, g] = sets[:, g].mean(axis=1, keepdims=True)
+    groups = _slices(z, width)
+    for row, values in zip(out, sets):  # set by set: numpy's mean over a 2-D block rounds by its row count
+        for g in groups:
+            row[g] = values[g].mean()
     return out
 
 

@@ -14,9 +14,11 @@ can be added to each realisation by a callback, which the synthetic-sky code pro
 
 from __future__ import annotations
 
-__all__ = ["simulate_aperture_temperatures", "simulation_covariance", "band_needed", "aperture_window"]
+__all__ = ["simulate_aperture_temperatures", "simulation_covariance", "band_needed", "aperture_window",
+           "SimulationPlan", "prepare_simulations", "simulate_realisations"]
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -161,8 +163,47 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     """
     if int(n_sim) < 1:
         raise InputError(f"number of simulated maps must be >= 1; got {n_sim}")
-    grid = _grid_of(sky)
+    plan = prepare_simulations(sky, ra_deg, dec_deg, radius_arcmin, cmb_cl=cmb_cl, beam_fwhm_arcmin=beam_fwhm_arcmin,
+                               white_noise_uk_arcmin=white_noise_uk_arcmin, noise_cl=noise_cl, lmax=lmax,
+                               max_masked_fraction=max_masked_fraction, n_threads=n_threads, transfer=transfer,
+                               pixel_weighting=pixel_weighting, method=method, radius_scale=radius_scale,
+                               signal=signal, pixel_noise_variance=pixel_noise_variance)
     rng = as_generator(seed)
+    draws = _Draws(plan)
+    out = np.empty((int(n_sim), plan.radii.size, plan.ra_deg.size))
+    for k in range(int(n_sim)):
+        out[k] = _realisation(plan, draws, rng)
+        if progress is not None:
+            progress(k + 1, int(n_sim))
+    return out[:, 0] if np.ndim(radius_arcmin) == 0 else out
+
+
+@dataclass(frozen=True)
+class SimulationPlan:
+    """What every realisation of :func:`simulate_aperture_temperatures` shares (made once by
+    :func:`prepare_simulations`; small enough to send to Dask workers: the support map and a spectrum)."""
+
+    support: SkyMap            # the pixels the apertures read, with the data's usable weights
+    ra_deg: np.ndarray
+    dec_deg: np.ndarray
+    radii: np.ndarray          # arcmin at radius scale 1
+    spec: np.ndarray           # (lmax + 1,) uK^2 drawn; empty without a harmonic part
+    band: int                  # multipoles synthesised
+    white_noise_uk_arcmin: float
+    pixel_noise: bool          # white noise per pixel (no transfer)
+    noise_sigma: np.ndarray | None  # per-pixel noise sigma of the support (pixel_noise_variance)
+    photometry: dict           # max_masked_fraction, pixel_weighting, method, radius_scale
+    n_threads: int | None
+    signal: object             # callable(rng) -> (n_radii, N), or None
+
+
+def prepare_simulations(sky, ra_deg, dec_deg, radius_arcmin, *, cmb_cl=None, beam_fwhm_arcmin: float = 0.0,
+                        white_noise_uk_arcmin: float = 0.0, noise_cl=None, lmax: int | None = None,
+                        max_masked_fraction: float = 0.1, n_threads: int | None = None, transfer=None,
+                        pixel_weighting: str = "centre", method: str = "auto", radius_scale=None, signal=None,
+                        pixel_noise_variance=None) -> SimulationPlan:
+    """The :class:`SimulationPlan` of :func:`simulate_aperture_temperatures` (same parameters)."""
+    grid = _grid_of(sky)
     if transfer is not None:
         transfer = np.asarray(transfer, dtype=float)
         lmax = transfer.size - 1
@@ -180,33 +221,54 @@ def simulate_aperture_temperatures(sky, ra_deg, dec_deg, radius_arcmin, n_sim: i
     harmonic = bool(np.any(spec > 0))
     # no a_lm beyond the last multipole with power: the package C_l table ends at l = 8000, while a
     # fine grid's band limit (e.g. 21599 for 0.5' CAR pixels) would make a_lm arrays of several GB
-    lmax = int(np.flatnonzero(spec > 0)[-1]) if harmonic else lmax
-    spec = spec[: lmax + 1]
-    ell, m = alm_ell_m(lmax)
-    amp = np.sqrt(spec[ell])
-    m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries
+    spec = spec[: int(np.flatnonzero(spec > 0)[-1]) + 1] if harmonic else np.zeros(0)
     smallest = float(radii.min() * (1.0 if radius_scale is None else np.min(radius_scale)))
-    band = band_needed(spec, smallest, white_cl=(white_noise_uk_arcmin * ARCMIN_RAD) ** 2 if pixel_noise else 0.0)
-    in_band = ell <= band                # the a_lm of l <= band, in the layout of that band
-    out = np.empty((int(n_sim), radii.size, len(ra_deg)))
-    for k in range(int(n_sim)):
-        values = np.zeros(support.values.size)
-        if harmonic:
-            alm = _draw_alm(amp, m0, rng)[in_band].astype(SYNTHESIS_DTYPE)    # the full draw: same stream
-            values += support.synthesise(alm, lmax=band, n_threads=n_threads)
-        if pixel_noise:
-            values += support.white_noise(white_noise_uk_arcmin, rng)
-        if noise_sigma is not None:
-            values += noise_sigma * rng.standard_normal(values.size)
-        res = measure_apertures(support.with_values(values), ra_deg, dec_deg, radii,
-                                max_masked_fraction=max_masked_fraction, pixel_weighting=pixel_weighting,
-                                method=method, radius_scale=radius_scale)
-        out[k] = np.where(res.usable, res.temperatures, np.nan)
-        if signal is not None:
-            out[k] += signal(rng)
-        if progress is not None:
-            progress(k + 1, int(n_sim))
-    return out[:, 0] if np.ndim(radius_arcmin) == 0 else out
+    band = band_needed(spec, smallest, white_cl=(white_noise_uk_arcmin * ARCMIN_RAD) ** 2 if pixel_noise else 0.0) \
+        if harmonic else 0
+    options = dict(max_masked_fraction=max_masked_fraction, pixel_weighting=pixel_weighting, method=method,
+                   radius_scale=radius_scale)
+    return SimulationPlan(support, np.asarray(ra_deg, dtype=float), np.asarray(dec_deg, dtype=float), radii, spec,
+                          band, float(white_noise_uk_arcmin), pixel_noise, noise_sigma, options, n_threads, signal)
+
+
+class _Draws:
+    """The a_lm amplitudes of a plan: drawn to the spectrum's lmax (the same stream for any band),
+    synthesised to the band (made once per process, not sent with the plan: O(lmax^2) numbers)."""
+
+    def __init__(self, plan: SimulationPlan):
+        lmax = max(plan.spec.size - 1, 0)
+        ell, m = alm_ell_m(lmax)
+        self.amp = np.sqrt(plan.spec[ell]) if plan.spec.size else np.zeros(0)
+        self.m0 = np.flatnonzero(m == 0)          # the first lmax + 1 entries
+        self.in_band = ell <= plan.band           # the a_lm of l <= band, in the layout of that band
+
+
+def _realisation(plan: SimulationPlan, draws: _Draws, rng) -> np.ndarray:
+    """(n_radii, N) aperture temperatures of one simulated sky drawn from ``rng`` (NaN where unusable)."""
+    support = plan.support
+    values = np.zeros(support.values.size)
+    if plan.spec.size:
+        alm = _draw_alm(draws.amp, draws.m0, rng)[draws.in_band].astype(SYNTHESIS_DTYPE)    # the full draw
+        values += support.synthesise(alm, lmax=plan.band, n_threads=plan.n_threads)
+    if plan.pixel_noise:
+        values += support.white_noise(plan.white_noise_uk_arcmin, rng)
+    if plan.noise_sigma is not None:
+        values += plan.noise_sigma * rng.standard_normal(values.size)
+    res = measure_apertures(support.with_values(values), plan.ra_deg, plan.dec_deg, plan.radii, **plan.photometry)
+    out = np.where(res.usable, res.temperatures, np.nan)
+    if plan.signal is not None:
+        out += plan.signal(rng)
+    return out
+
+
+def simulate_realisations(plan: SimulationPlan, generators) -> np.ndarray:
+    """(len(generators), n_radii, N): one simulated sky per Generator, each drawn from its own
+    (the sets of :func:`simulate_aperture_temperatures` when they all share one)."""
+    draws = _Draws(plan)
+    out = np.empty((len(generators), plan.radii.size, plan.ra_deg.size))
+    for k, rng in enumerate(generators):
+        out[k] = _realisation(plan, draws, rng)
+    return out
 
 
 def _support(grid: SkyMap, sky, ra_deg, dec_deg, radii, radius_scale, pixel_weighting) -> SkyMap:

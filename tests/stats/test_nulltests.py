@@ -153,9 +153,9 @@ def _null_mock(cfg, skymap, seed):
     positions = comoving_positions(ra, dec, z, cosmo=cfg.cosmology)
     regions = kmeans_regions(ra, dec, cfg.covariance.n_regions, seed=rng)
     quiet = Progress(1, quiet=True)
-    null_sets = {"random_positions": pl.random_position_sets(dataclasses.replace(cfg, run=dataclasses.replace(
-                     cfg.run, seed=seed)), skymap, cat, None, quiet),
-                 **pl.shuffled_null_sets(cfg, temps[0], z, rng)}
+    seeded = dataclasses.replace(cfg, run=dataclasses.replace(cfg.run, seed=seed))  # each set's stream from the seed
+    null_sets = {"random_positions": pl.random_position_sets(seeded, skymap, cat, None, quiet),
+                 **pl.shuffled_null_sets(seeded, temps[0], z)}
     stack = pl.TemperatureStack.build(temps, null_sets, np.zeros((0, n)), np.zeros((0, n)))
     edges = cfg.bins.edges()
     pr = pl.pair_pass(cfg, positions, stack.values, edges, regions, cat, quiet)
