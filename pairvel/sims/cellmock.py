@@ -117,7 +117,8 @@ def _draw(opt, rng, *, paired: bool):
     cosmo = DEFAULT_COSMOLOGY
     frame, lo, shape, d_min, d_max = _cell_box(opt)
     z_grid = np.linspace(opt.z_min, opt.z_max, 256)
-    cone = _Cone(frame, lo, shape, opt.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=cosmo))
+    cone = _Cone(frame, lo, shape, opt.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=cosmo),
+                 growth_rate(z_grid, cosmo=cosmo))
     spec = _CellSpec(opt)
     twin = np.random.Generator(type(rng.bit_generator)())  # the same white noise for the exact sum
     twin.bit_generator.state = rng.bit_generator.state

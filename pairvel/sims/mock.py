@@ -483,7 +483,8 @@ class _Cone:
 
     ``lo`` (Mpc, grid frame) is the outer corner of cell (0, 0, 0); ``d_min`` and ``d_max`` (Mpc) are the
     comoving distances of z_min and z_max; ``growth`` is the growth factor D at ``z_grid``, 256 redshifts
-    from z_min to z_max (D varies slowly: interpolated).
+    from z_min to z_max (D varies slowly: interpolated), and ``rate`` the growth rate f there (a cubic
+    spline through it is within about 1e-12 relative of the exact f, which costs one quadrature per redshift).
     """
 
     frame: np.ndarray
@@ -494,6 +495,7 @@ class _Cone:
     d_max: float
     z_grid: np.ndarray
     growth: np.ndarray
+    rate: np.ndarray
 
     def centres(self, axis: int) -> np.ndarray:
         """Grid-frame coordinate (Mpc) of the cell centres along ``axis``."""
@@ -503,7 +505,7 @@ class _Cone:
 def _cone_grid(spec: _MockSpec) -> _Cone:
     """The grid enclosing the light cone with one cell of margin, or an InputError naming ``cell_mpc``
     when it would have more than ``_MAX_CELLS`` cells."""
-    from ..model.theory import growth_factor
+    from ..model.theory import growth_factor, growth_rate
 
     d_min, d_max = spec.cosmo.comoving_distance_mpc([spec.z_min, spec.z_max])
     frame = _patch_frame(spec.ra_min, spec.ra_max, spec.dec_min, spec.dec_max)
@@ -515,7 +517,8 @@ def _cone_grid(spec: _MockSpec) -> _Cone:
                          f"({shape[0]}x{shape[1]}x{shape[2]} of {spec.cell_mpc:g} Mpc): increase cell_mpc or "
                          f"shrink the footprint or redshift range", key="cell_mpc")
     z_grid = np.linspace(spec.z_min, spec.z_max, 256)
-    return _Cone(frame, lo, shape, spec.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=spec.cosmo))
+    return _Cone(frame, lo, shape, spec.cell_mpc, d_min, d_max, z_grid, growth_factor(z_grid, cosmo=spec.cosmo),
+                 growth_rate(z_grid, cosmo=spec.cosmo))
 
 
 def _poisson_cells(cone: _Cone, delta0, spec: _MockSpec, rng):
@@ -575,7 +578,8 @@ class _Tracers:
 def _tracers_in_cone(cone: _Cone, cells, u0, spec: _MockSpec, rng) -> _Tracers:
     """Each tracer uniform within its cell, kept when inside the cone, with the linear velocity of its
     cell at its own redshift, v = a H f D u_0; an InputError when fewer than two are left."""
-    from ..model.theory import growth_rate
+    from scipy.interpolate import CubicSpline
+
     from ..pairs.geometry import comoving_positions
 
     pos = np.column_stack([cone.centres(i)[cells[:, i]] for i in range(3)])
@@ -593,7 +597,7 @@ def _tracers_in_cone(cone: _Cone, cells, u0, spec: _MockSpec, rng) -> _Tracers:
                          f"(requested {spec.n_tracers})", key="n_tracers")
     z = _inverse_distance(spec.cosmo, spec.z_max)(dist)
     growth = np.interp(z, cone.z_grid, cone.growth)
-    vel_scale = 1.0 / (1.0 + z) * spec.cosmo.hubble_km_s_mpc(z) * growth_rate(z, cosmo=spec.cosmo) * growth
+    vel_scale = 1.0 / (1.0 + z) * spec.cosmo.hubble_km_s_mpc(z) * CubicSpline(cone.z_grid, cone.rate)(z) * growth
     vel = np.column_stack([u[tuple(cells.T)] for u in u0]).astype(np.float64) @ cone.frame * vel_scale[:, None]
     v_r = np.einsum("ij,ij->i", vel, pos) / dist
     roundtrip = float(np.max(np.linalg.norm(comoving_positions(ra, dec, z, cosmo=spec.cosmo) - pos, axis=1)))
