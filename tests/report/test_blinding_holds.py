@@ -99,6 +99,9 @@ def _infall_survey(folder, *, n=700, nside=256, amp_uk=150.0, seed=21):
 _PDF_INFO = re.compile(r"/(Title|Author|Subject|Keywords|Creator|Producer|CreationDate|ModDate) \(([^)]*)\)")
 _DATA_URI = re.compile(r"data:image/png;base64,[A-Za-z0-9+/=]+")
 _NUMBER = re.compile(r"(?<![\w.])[-+]?(?:\d+\.\d*|\.\d+|\d+)(?:[eE][-+]?\d+)?")
+#: A clock time ("2026-12-05T19:07:01.927Z") carries no measurement; its seconds would otherwise read as
+#: a 4-5 digit number that matches a true value by chance about once in a few dozen runs.
+_TIMESTAMP = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}:\d{2}(?:\.\d+)?(?:Z|[+-]\d{2}:?\d{2})?")
 
 
 def _significant_digits(token: str) -> int:
@@ -110,7 +113,7 @@ def _significant_digits(token: str) -> int:
 
 
 def _text_numbers(text: str):
-    for m in _NUMBER.finditer(text):
+    for m in _NUMBER.finditer(_TIMESTAMP.sub(" ", text)):
         value = float(m.group())
         if value != 0 and math.isfinite(value):
             yield value, _significant_digits(m.group())
@@ -361,3 +364,9 @@ def test_joint_fit_is_made_again_from_the_blinded_fit(prior):
         np.testing.assert_allclose(getattr(back, name), getattr(true, name), rtol=1e-10, equal_nan=True)
     np.testing.assert_allclose(back.posterior, true.posterior, rtol=1e-9, atol=1e-15)
 
+
+
+def test_clock_times_in_logs_are_not_read_as_measured_numbers():
+    # run.log stamps each line; "…T19:07:01.927Z" once read as 1.927 and matched a true value by chance
+    got = list(_text_numbers("2026-12-05T19:07:01.927Z INFO tau 1.927e-3, written 2026-12-05 19:07:02+00:00"))
+    assert got == [(1.927e-3, 4)]
